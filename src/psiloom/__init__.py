@@ -1,0 +1,18 @@
+"""psiloom: neural trial wavefunctions for variational Monte Carlo on JAX, Flax and Optax.
+
+Data flows one way through the subpackages:
+
+    lattices / spaces  →  states (log ψ)  →  sampling  →  operators (local values)
+        →  stats  →  optimize (gradient, preconditioner)  →  train (the loop)
+
+``exact`` holds reference solutions (sparse ED by Lanczos, free fermions, Bethe ansatz).
+psiloom follows the dtype of its inputs; enable ``jax_enable_x64`` for float64, which
+stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
+"""
+
+from psiloom import batching, exact, lattices, operators, optimize, reduce, sampling, spaces, states, stats, train
+
+__version__ = "0.1.0"
+
+__all__ = ["batching", "exact", "lattices", "operators", "optimize", "reduce", "sampling", "spaces", "states",
+           "stats", "train", "__version__"]

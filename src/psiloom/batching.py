@@ -1,0 +1,32 @@
+"""Evaluating large batches in bounded memory."""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import jax
+import jax.numpy as jnp
+
+
+def map_in_chunks(fn: Callable, chunk: int | None, *arrays):
+    """Apply ``fn`` to the leading-axis batch of ``arrays`` in chunks of ``chunk`` rows.
+
+    Bounds peak memory to one chunk (``jax.lax.map`` runs chunks sequentially). Pads the
+    batch to a multiple of ``chunk`` with copies of the first row and drops the padding.
+    ``chunk=None`` (or a chunk ≥ batch) evaluates everything at once.
+    """
+    n = arrays[0].shape[0]
+    if chunk is None or chunk >= n:
+        return fn(*arrays)
+    if chunk < 1:
+        raise ValueError(f"chunk must be a positive integer or None, got {chunk!r}")
+    n_chunks = -(-n // chunk)
+    pad = n_chunks * chunk - n
+
+    def padded(a):
+        if pad:
+            a = jnp.concatenate([a, jnp.broadcast_to(a[:1], (pad, *a.shape[1:]))], axis=0)
+        return a.reshape(n_chunks, chunk, *a.shape[1:])
+
+    out = jax.lax.map(lambda args: fn(*args), tuple(padded(a) for a in arrays))
+    return jax.tree_util.tree_map(lambda o: o.reshape(n_chunks * chunk, *o.shape[2:])[:n], out)

@@ -1,0 +1,18 @@
+"""Operators: Pauli-sum Hamiltonians and observables, model builders, local estimators."""
+
+from psiloom.operators.pauli import PauliSum, pauli, total
+from psiloom.operators.models import (
+    heisenberg,
+    j1j2,
+    magnetization_z,
+    spin_correlation,
+    staggered_magnetization_z,
+    transverse_field_ising,
+    xxz,
+)
+from psiloom.operators.local import local_values
+
+__all__ = [
+    "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
+    "staggered_magnetization_z", "transverse_field_ising", "xxz", "local_values",
+]

@@ -1,0 +1,10 @@
+"""Gradients and preconditioners: energy gradient, sample geometry, stochastic reconfiguration."""
+
+from psiloom.optimize.flatten import conj_complex_leaves, ravel_real, tree_norm
+from psiloom.optimize.gradient import SampleGeometry, energy_gradient
+from psiloom.optimize.sr import SRState, stochastic_reconfiguration
+
+__all__ = [
+    "conj_complex_leaves", "ravel_real", "tree_norm", "SampleGeometry", "energy_gradient",
+    "SRState", "stochastic_reconfiguration",
+]

@@ -1,0 +1,20 @@
+"""Trial states: Flax modules mapping configurations to (complex) log-amplitudes."""
+
+from psiloom.states.base import (
+    TrialState,
+    check_input_size,
+    count_real_parameters,
+    default_complex_dtype,
+    default_real_dtype,
+    init_parameters,
+)
+from psiloom.states.feedforward import FeedForward
+from psiloom.states.jastrow import TwoBodyJastrow
+from psiloom.states.product import ProductState
+from psiloom.states.rbm import RBM, log_two_cosh
+
+__all__ = [
+    "TrialState", "check_input_size", "count_real_parameters", "default_complex_dtype",
+    "default_real_dtype", "init_parameters", "FeedForward", "TwoBodyJastrow", "ProductState",
+    "RBM", "log_two_cosh",
+]

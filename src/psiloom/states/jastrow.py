@@ -1,0 +1,37 @@
+"""Two-body Jastrow trial state on spin configurations.
+
+    log ψ(x) = Σ_{i<j} x_i W_ij x_j  (+ Σ_i a_i x_i)
+
+W is stored as a full ``N × N`` matrix of which only the strict upper triangle enters, so
+every pair has exactly one parameter. Complex W gives a phase.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import jax.numpy as jnp
+import flax.linen as nn
+
+from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+
+
+class TwoBodyJastrow(TrialState):
+    """``log ψ(x) = Σ_{i<j} x_i W_ij x_j`` with an optional one-body field."""
+
+    complex_params: bool = False
+    one_body: bool = False
+    init_scale: float = 0.01
+    param_dtype: Any = None
+
+    @nn.compact
+    def log_amplitude(self, x):
+        n = x.shape[-1]
+        dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
+        w = self.param("pair", nn.initializers.normal(self.init_scale), (n, n), dtype)
+        w = jnp.triu(w, k=1)
+        xc = x.astype(dtype)
+        out = jnp.einsum("bi,ij,bj->b", xc, w, xc)
+        if self.one_body:
+            out = out + xc @ self.param("field", nn.initializers.normal(self.init_scale), (n,), dtype)
+        return out
