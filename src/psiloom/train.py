@@ -31,7 +31,6 @@ import numpy as np
 import optax
 
 from psiloom import stats
-from psiloom.operators.local import local_values
 from psiloom.optimize.flatten import tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.sampling.metropolis import ChainState
@@ -146,7 +145,8 @@ class GroundStateSearch:
 
     Args:
         model: a trial state (Flax module; ``model.apply(variables, x) -> log ψ``).
-        hamiltonian: operator with ``connections`` (e.g. a PauliSum).
+        hamiltonian: anything with ``local_energy(log_amplitude, x, log_amp_x, chunk)``
+            (a :class:`~psiloom.operators.PauliSum` for lattices).
         sampler: e.g. :class:`psiloom.sampling.MetropolisSampler`; its ``n_chains`` must
             divide ``n_samples``.
         optimizer: an optax transformation; transformations that accept the extra keyword
@@ -161,8 +161,9 @@ class GroundStateSearch:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
             raise ValueError(f"n_samples={n_samples} is not a multiple of the sampler's n_chains={sampler.n_chains}")
-        if hamiltonian.n_sites != sampler.space.n_sites:
-            raise ValueError(f"Hamiltonian acts on {hamiltonian.n_sites} sites, the space has {sampler.space.n_sites}")
+        h_sites, s_sites = getattr(hamiltonian, "n_sites", None), getattr(sampler.space, "n_sites", None)
+        if h_sites is not None and s_sites is not None and h_sites != s_sites:
+            raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
         self.model = model
         self.hamiltonian = hamiltonian
         self.sampler = sampler
@@ -192,8 +193,8 @@ class GroundStateSearch:
         log_amp = lambda x: self.model.apply(params, x)
         chains = self.sampler.refresh(chains, log_amp)
         xs, logs, chains, acc = self.sampler.sample(key, chains, log_amp, n_per_chain)
-        x = xs.reshape(-1, xs.shape[-1])  # time-major leading sample axis
-        e_loc = local_values(log_amp, self.hamiltonian, x, logs.reshape(-1), chunk=self.chunk)
+        x = xs.reshape(-1, *xs.shape[2:])  # time-major leading sample axis
+        e_loc = self.hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=self.chunk)
         return x, e_loc, chains, acc
 
     def _step_impl(self, state: TrainState):

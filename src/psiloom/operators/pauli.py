@@ -245,6 +245,12 @@ class PauliSum:
         x_conn = x[..., None, :] * xp.asarray(tab["flip_sign"], dtype=x.dtype)
         return x_conn, mels
 
+    def local_energy(self, log_amplitude, x, log_amp_x=None, chunk: int | None = None):
+        """Local values O_loc(x) = Σ_x' ⟨x|O|x'⟩ ψ(x')/ψ(x) (see :mod:`psiloom.operators.local`)."""
+        from psiloom.operators.local import local_values
+
+        return local_values(log_amplitude, self, x, log_amp_x, chunk=chunk)
+
     def diagonal(self, x):
         """⟨x|O|x⟩ for a batch (the connection with an empty flip set)."""
         x_conn, mels = self.connections(x)

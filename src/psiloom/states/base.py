@@ -51,18 +51,20 @@ def init_parameters(model: nn.Module, space, key: jax.Array):
 
 def check_input_size(model: nn.Module, variables, space) -> None:
     """Raise a clear ValueError when ``variables`` were made for a different number of sites."""
-    probe = jax.ShapeDtypeStruct((1, space.n_sites), jnp.zeros(()).dtype)
+    example = jax.eval_shape(lambda k: space.random(k, 1), jax.random.PRNGKey(0))
+    probe = jax.ShapeDtypeStruct(example.shape, example.dtype)
+    size = getattr(space, "n_sites", example.shape[1:])
     try:
         out = jax.eval_shape(model.apply, variables, probe)
     except Exception as err:  # flax reports a parameter shape mismatch in its own words
         raise ValueError(
             f"trial state {type(model).__name__} does not accept configurations of "
-            f"{space.n_sites} sites (the space's size): {err}"
+            f"{size} sites (the space's size): {err}"
         ) from err
     if out.shape != (1,):
         raise ValueError(
             f"trial state {type(model).__name__} must return one log-amplitude per configuration, "
-            f"got output shape {out.shape} for input shape (1, {space.n_sites})"
+            f"got output shape {out.shape} for input shape {example.shape}"
         )
 
 

@@ -1,0 +1,401 @@
+"""Tests for psiloom.stats against exact AR(1) results and outside references."""
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+import math
+import warnings
+
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.signal import lfilter
+
+from psiloom import stats
+from psiloom.stats import (
+    Estimate,
+    autocorrelation,
+    blocking_analysis,
+    blocking_error,
+    effective_sample_size,
+    estimate,
+    integrated_autocorrelation_time,
+    split_rhat,
+)
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore")  # arviz announces a refactor on import
+    import arviz as az
+import emcee
+
+
+def ar1(seed: int, rho: float, n_time: int, n_chains: int) -> np.ndarray:
+    """Stationary unit-variance AR(1) chains x_t = ρ x_{t−1} + sqrt(1−ρ²) ξ_t, shape (n_time, n_chains)."""
+    noise = np.random.default_rng(seed).standard_normal((n_time, n_chains))
+    drive = math.sqrt(1.0 - rho**2) * noise
+    drive[0] = noise[0]  # x_0 ~ N(0, 1): start in the stationary distribution
+    return lfilter([1.0], [1.0, -rho], drive, axis=0)
+
+
+def ar1_tau(rho: float) -> float:
+    """τ_int = 1 + 2 Σ_{t≥1} ρ^t = (1 + ρ)/(1 − ρ) for AR(1) (textbook)."""
+    return (1.0 + rho) / (1.0 - rho)
+
+
+def tau_relative_sigma(tau: float, n_total: int, c: float = 5.0) -> float:
+    """Relative standard deviation of τ̂ with window M ≈ cτ: var(τ̂) ≈ 2(2M+1)/N τ² (Sokal 1997)."""
+    window = c * tau
+    return math.sqrt(2.0 * (2.0 * window + 1.0) / n_total)
+
+
+# --------------------------------------------------------------------------- autocorrelation
+
+
+def test_autocorrelation_of_ar1_is_geometric():
+    rho, n_time, n_chains = 0.8, 20_000, 8
+    values = ar1(1, rho, n_time, n_chains)
+    acf = np.asarray(autocorrelation(values))
+    assert acf.shape == (n_time,)
+    assert acf[0] == pytest.approx(1.0)
+    lags = np.arange(1, 6)
+    # ρ(t) = ρ^t for AR(1) (textbook); the estimate of each ρ(t) has standard deviation
+    # ≲ sqrt(τ/N) (Bartlett's formula, textbook), so 5 of those is a safe tolerance.
+    tol = 5.0 * math.sqrt(ar1_tau(rho) / (n_time * n_chains))
+    np.testing.assert_allclose(acf[lags], rho**lags, atol=tol)
+
+
+def test_autocorrelation_matches_direct_sum():
+    # The FFT result must equal the direct definition C(t) = (1/n) Σ_s δx_s δx_{s+t} (textbook).
+    values = np.random.default_rng(2).standard_normal((37, 3))
+    centred = values - values.mean(axis=0)
+    n = values.shape[0]
+    acov = np.array([np.sum(centred[: n - t] * centred[t:]) / n for t in range(n)])
+    np.testing.assert_allclose(autocorrelation(values), acov / acov[0], atol=1e-12)
+
+
+def test_autocorrelation_of_constant_chain_is_unit_impulse():
+    acf = np.asarray(autocorrelation(np.full((10, 2), 3.0)))
+    np.testing.assert_array_equal(acf, np.eye(10)[0])
+
+
+# --------------------------------------------------------------------------- τ_int
+
+
+@pytest.mark.parametrize("rho", [0.5, 0.8, 0.9])
+def test_tau_of_ar1_matches_exact(rho):
+    n_time, n_chains = 20_000, 8
+    values = ar1(10 + int(100 * rho), rho, n_time, n_chains)
+    tau_exact = ar1_tau(rho)  # textbook
+    tau = float(integrated_autocorrelation_time(values))
+    # 5 sigma of the statistical error of τ̂ (Sokal 1997).
+    tol = 5.0 * tau_relative_sigma(tau_exact, n_time * n_chains) * tau_exact
+    assert abs(tau - tau_exact) < tol
+
+
+@pytest.mark.parametrize("rho", [0.5, 0.9])
+def test_tau_agrees_with_emcee(rho):
+    # emcee implements the same Sokal windowing (Sokal 1997) on a single chain, so the two
+    # must agree on the same data far better than the ~10% statistical error of τ̂.
+    chain = ar1(20, rho, 50_000, 1)
+    ours = float(integrated_autocorrelation_time(chain))
+    theirs = float(emcee.autocorr.integrated_time(chain[:, 0], c=5, quiet=True)[0])
+    assert ours == pytest.approx(theirs, rel=1e-6)
+
+
+def test_tau_of_iid_chains_is_one():
+    values = np.random.default_rng(3).standard_normal((10_000, 4))
+    n_total = values.size
+    tau = float(integrated_autocorrelation_time(values))
+    # τ = 1 for independent samples (textbook), 5 sigma of Sokal 1997's error of τ̂.
+    assert abs(tau - 1.0) < 5.0 * tau_relative_sigma(1.0, n_total)
+
+
+def test_tau_of_too_short_chain_is_flagged():
+    # A chain much shorter than its correlation time: the Sokal window search fails and the
+    # chain-length rule (n_time ≥ 50 τ, Sokal 1997) must fire instead of a tiny τ.
+    values = ar1(4, 0.999, 200, 2)
+    result = estimate(values)
+    assert float(result.tau) > 200 / 50
+    assert any("chain length" in message for message in result.warnings())
+
+
+def test_tau_rejects_bad_window_constant():
+    with pytest.raises(ValueError, match="c=-1"):
+        integrated_autocorrelation_time(np.ones((10, 2)), c=-1.0)
+
+
+# --------------------------------------------------------------------------- errors
+
+
+def test_error_of_ar1_mean_matches_exact():
+    rho, n_time, n_chains = 0.8, 20_000, 8
+    n_total = n_time * n_chains
+    values = ar1(5, rho, n_time, n_chains)
+    exact = math.sqrt(ar1_tau(rho) / n_total)  # unit variance: σ_mean² = τ/N (textbook)
+    result = estimate(values)
+    # The error is sqrt(σ² τ̂ / N): its relative uncertainty is ~½ that of τ̂ (Sokal 1997);
+    # allow 5 sigma.
+    tol = 5.0 * 0.5 * tau_relative_sigma(ar1_tau(rho), n_total)
+    assert float(result.error) == pytest.approx(exact, rel=tol)
+    assert float(result.variance) == pytest.approx(1.0, rel=5.0 * math.sqrt(2 * ar1_tau(rho) / n_total))
+
+
+def test_error_bars_are_calibrated_over_replicas():
+    # Over independent replicas the z-scores mean/error of a zero-mean process must have unit
+    # spread (definition of a standard error); the sample std of n z-scores has relative
+    # standard deviation ≈ 1/sqrt(2n) (textbook); allow 5 of those.
+    n_rep, n_time, n_chains = 200, 1000, 4
+    values = ar1(6, 0.8, n_time, n_chains * n_rep).reshape(n_time, n_rep, n_chains)
+    results = jax.vmap(estimate, in_axes=1)(values)
+    z = np.asarray(results.mean) / np.asarray(results.error)
+    assert np.std(z) == pytest.approx(1.0, abs=5.0 / math.sqrt(2 * n_rep))
+
+
+def ar1_block_error(rho: float, block: int, n_total: int) -> float:
+    """Expected blocked error at block size b for unit-variance AR(1) (textbook sum):
+    Var(block mean)·b = τ − 2ρ(1 − ρ^b)/(b(1 − ρ)²), and σ² ≈ Var(block mean)/n_blocks."""
+    deficit = 2.0 * rho * (1.0 - rho**block) / (block * (1.0 - rho) ** 2)
+    return math.sqrt((ar1_tau(rho) - deficit) / n_total)
+
+
+@pytest.mark.parametrize("rho", [0.5, 0.8])
+def test_blocking_error_of_ar1(rho):
+    n_total = 2**16
+    series = ar1(7 + int(10 * rho), rho, n_total, 1)[:, 0]
+    error = blocking_error(series)
+    sizes, errors = blocking_analysis(series)
+    level = int(np.flatnonzero(errors == error)[0])
+    n_blocks = n_total // int(sizes[level])
+    # Flyvbjerg & Petersen 1989: the blocked error is known to a relative 1/sqrt(2(n_b−1));
+    # compare with the exact AR(1) value at the chosen block size within 5 of those.
+    expected = ar1_block_error(rho, int(sizes[level]), n_total)
+    assert error == pytest.approx(expected, rel=5.0 / math.sqrt(2 * (n_blocks - 1)))
+    # ... and the plateau must sit close to the asymptotic sqrt(τ/N) (textbook), with the
+    # ≤ 5% shortfall of a block size a few times τ allowed on top of the statistical error.
+    exact = math.sqrt(ar1_tau(rho) / n_total)
+    assert error == pytest.approx(exact, rel=0.05 + 5.0 / math.sqrt(2 * (n_blocks - 1)))
+    # and it agrees with the autocorrelation-based error of the same series
+    assert error == pytest.approx(float(estimate(series[:, None]).error), rel=0.15)
+
+
+def test_blocking_levels():
+    series = np.arange(10.0)
+    sizes, errors = blocking_analysis(series)
+    # 10 → 5 → 2 blocks (an odd leftover is dropped); a single block has no error.
+    np.testing.assert_array_equal(sizes, [1, 2, 4])
+    # each level: sqrt(c₀/(n_b − 1)) with c₀ the biased variance (Flyvbjerg & Petersen 1989)
+    level2 = np.array([1.5, 5.5])  # means of 0..3 and 4..7
+    expected = [
+        math.sqrt(np.var(series) / 9),
+        math.sqrt(np.var(series.reshape(5, 2).mean(axis=1)) / 4),
+        math.sqrt(np.var(level2) / 1),
+    ]
+    np.testing.assert_allclose(errors, expected)
+
+
+def test_blocking_rejects_bad_input():
+    with pytest.raises(ValueError, match=r"shape \(3, 2\)"):
+        blocking_analysis(np.ones((3, 2)))
+    with pytest.raises(ValueError, match=r"shape \(1,\)"):
+        blocking_error(np.ones(1))
+
+
+# --------------------------------------------------------------------------- R̂ and ESS
+
+
+def arviz_rhat(values: np.ndarray) -> float:
+    return float(az.rhat(np.asarray(values).T, method="rank"))  # arviz wants (chain, draw)
+
+
+def test_split_rhat_matches_arviz_well_mixed():
+    values = np.random.default_rng(8).standard_normal((1000, 4))
+    # Same definition as arviz's rank-normalized split-R̂ (Vehtari et al. 2021).
+    assert float(split_rhat(values)) == pytest.approx(arviz_rhat(values), abs=1e-6)
+
+
+def test_split_rhat_matches_arviz_shifted_means_odd_length():
+    values = ar1(9, 0.7, 501, 4) + np.array([0.0, 0.0, 0.4, 0.4])
+    ours = float(split_rhat(values))
+    assert ours == pytest.approx(arviz_rhat(values), abs=1e-6)  # Vehtari et al. 2021
+    assert ours > 1.01
+
+
+def test_split_rhat_matches_arviz_with_ties():
+    # Discrete draws: ties get average ranks (Vehtari et al. 2021, as in arviz).
+    values = np.random.default_rng(10).integers(0, 4, size=(200, 3)).astype(float)
+    assert float(split_rhat(values)) == pytest.approx(arviz_rhat(values), abs=1e-6)
+
+
+def test_split_rhat_detects_scale_difference_through_folding():
+    # Same mean, different spread: only the folded R̂ sees it (Vehtari et al. 2021).
+    rng = np.random.default_rng(11)
+    values = rng.standard_normal((1000, 4)) * np.array([1.0, 1.0, 3.0, 3.0])
+    ours = float(split_rhat(values))
+    assert ours == pytest.approx(arviz_rhat(values), abs=1e-6)
+    assert ours > 1.01
+
+
+@given(
+    n_time=st.integers(4, 30),
+    n_chains=st.integers(2, 5),
+    seed=st.integers(0, 2**31 - 1),
+)
+@settings(max_examples=15, deadline=None)
+def test_split_rhat_matches_arviz_random(n_time, n_chains, seed):
+    values = np.random.default_rng(seed).standard_normal((n_time, n_chains))
+    assert float(split_rhat(values)) == pytest.approx(arviz_rhat(values), abs=1e-6)  # arviz
+
+
+def test_split_rhat_short_chains_is_nan():
+    # Fewer than 4 draws per chain: no split-R̂ (Vehtari et al. 2021 / arviz min_draws=4).
+    assert math.isnan(float(split_rhat(np.ones((3, 4)))))
+
+
+def test_stuck_chains_are_flagged():
+    # Two groups of chains stuck in well-separated modes with no moves between them.
+    rng = np.random.default_rng(12)
+    modes = np.array([-5.0, -5.0, 5.0, 5.0])
+    values = modes + rng.standard_normal((2000, 4))
+    result = estimate(values)
+    assert float(result.rhat) > 1.5  # ≫ 1.01 (Vehtari et al. 2021 threshold)
+    assert float(result.rhat) == pytest.approx(arviz_rhat(values), abs=1e-6)
+    messages = result.warnings()
+    assert messages and any("R̂" in message for message in messages)
+
+
+def test_well_mixed_chains_pass():
+    values = np.random.default_rng(13).standard_normal((2000, 4))
+    result = estimate(values)
+    assert float(result.rhat) < 1.01  # Vehtari et al. 2021 threshold
+    assert result.warnings() == []
+
+
+@pytest.mark.parametrize("rho", [0.5, 0.9])
+def test_ess_close_to_arviz_bulk(rho):
+    # The estimators differ (ours: Sokal window on raw values; arviz bulk: rank-normalized
+    # split chains with Geyer's initial monotone sequence, Vehtari et al. 2021), so only
+    # rough agreement (factor 1.5, common practice) is expected.
+    values = ar1(14, rho, 5000, 4)
+    ours = float(effective_sample_size(values))
+    theirs = float(az.ess(values.T, method="bulk"))
+    assert theirs / 1.5 < ours < theirs * 1.5
+    # ... and both near the exact N/τ (textbook) within 5 sigma (Sokal 1997)
+    exact = values.size / ar1_tau(rho)
+    assert ours == pytest.approx(exact, rel=5.0 * tau_relative_sigma(ar1_tau(rho), values.size))
+
+
+# --------------------------------------------------------------------------- estimate
+
+
+def test_estimate_fields_for_complex_input():
+    rng = np.random.default_rng(15)
+    real = rng.standard_normal((500, 4))
+    imag = rng.standard_normal((500, 4))
+    values = real + 1j * imag
+    result = estimate(values)
+    assert complex(result.mean) == pytest.approx(values.mean())
+    # variance E|v − v̄|² (definition) is the sum of the two parts' variances
+    assert float(result.variance) == pytest.approx(np.var(real) + np.var(imag))
+    # error and τ from the real part only
+    real_result = estimate(real)
+    assert float(result.tau) == pytest.approx(float(real_result.tau))
+    assert float(result.error) == pytest.approx(float(real_result.error))
+    assert float(result.ess) == pytest.approx(values.size / float(result.tau))
+    assert float(result.error) == pytest.approx(
+        math.sqrt(np.var(real) * float(result.tau) / values.size)
+    )
+
+
+def test_estimate_short_chains():
+    values = np.random.default_rng(16).standard_normal((3, 5))
+    result = estimate(values)
+    assert float(result.tau) == 1.0
+    assert math.isnan(float(result.rhat))
+    assert float(result.error) == pytest.approx(math.sqrt(np.var(values) / values.size))
+
+
+@given(
+    n_time=st.integers(1, 40),
+    n_chains=st.integers(1, 4),
+    seed=st.integers(0, 2**31 - 1),
+)
+@settings(max_examples=8, deadline=None)
+def test_estimate_same_under_jit(n_time, n_chains, seed):
+    values = jnp.asarray(np.random.default_rng(seed).standard_normal((n_time, n_chains)))
+    eager = estimate(values)
+    jitted = jax.jit(estimate)(values)
+    for name, a, b in zip(Estimate._fields, eager, jitted):
+        np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-10, err_msg=name)
+
+
+bad_shapes = st.one_of(
+    st.lists(st.integers(1, 4), min_size=0, max_size=1),  # ndim 0 or 1
+    st.lists(st.integers(1, 3), min_size=3, max_size=4),  # ndim 3 or 4
+    st.tuples(st.just(0), st.integers(0, 3)).map(list),  # no samples
+    st.tuples(st.integers(1, 3), st.just(0)).map(list),  # no chains
+)
+
+
+@given(shape=bad_shapes)
+@settings(max_examples=30, deadline=None)
+def test_bad_shapes_raise(shape):
+    values = np.zeros(tuple(shape))
+    for function in (
+        estimate,
+        autocorrelation,
+        integrated_autocorrelation_time,
+        split_rhat,
+        effective_sample_size,
+    ):
+        with pytest.raises(ValueError, match="shape") as info:
+            function(values)
+        assert str(tuple(shape)) in str(info.value)
+    with pytest.raises(ValueError, match="shape"):
+        jax.jit(estimate)(values)
+
+
+# --------------------------------------------------------------------------- formatting
+
+
+def test_format_matches_digits_to_error():
+    result = Estimate(
+        mean=-7.142351, error=0.00034, variance=0.012, tau=1.8, ess=5000.0, rhat=1.002
+    )
+    text = str(result)
+    assert "-7.14235" in text and "0.00034" in text
+    assert "-7.142351" not in text  # digits of the mean matched to the error
+    assert text == result.format()
+
+
+def test_format_of_jax_estimate_contains_mean_and_error():
+    values = ar1(17, 0.5, 1000, 4) + 3.0
+    result = jax.jit(estimate)(values)
+    text = str(result)
+    error = float(result.error)
+    decimals = 1 - math.floor(math.log10(error))
+    assert f"{float(result.mean):.{decimals}f}" in text
+    assert f"{error:.{decimals}f}" in text
+
+
+def test_format_complex_and_degenerate():
+    text = Estimate(1.0 + 0.5j, 0.01, 1.0, 1.0, 1000.0, float("nan")).format()
+    assert "1.000+0.500j" in text and "0.010" in text and "R̂" not in text
+    text = Estimate(2.5, 0.0, 0.0, 1.0, 10.0, float("nan")).format()
+    assert "2.5" in text
+
+
+def test_warnings_with_plain_floats():
+    short = Estimate(1.0, 0.1, 1.0, tau=10.0, ess=60.0, rhat=1.2, n_time=100)
+    messages = short.warnings()
+    assert len(messages) == 3  # R̂ > 1.01, 100 < 50·10 (Sokal 1997), ESS < 100
+    fine = Estimate(1.0, 0.1, 1.0, tau=2.0, ess=1000.0, rhat=1.001, n_time=1000)
+    assert fine.warnings() == []
+    unknown_length = Estimate(1.0, 0.1, 1.0, tau=2.0, ess=1000.0, rhat=float("nan"))
+    assert unknown_length.warnings() == []
+
+
+def test_module_exports():
+    assert set(stats.__all__) >= {"Estimate", "estimate", "split_rhat", "blocking_error"}
