@@ -47,7 +47,7 @@ def metropolis_step(move: Move) -> Callable:
 
     def step(key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn):
         k_prop, k_acc = jax.random.split(key)
-        x_new = move(k_prop, state.x)
+        x_new, _ = move(k_prop, state.x)
         log_new = log_amplitude(x_new)
         log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
         u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)

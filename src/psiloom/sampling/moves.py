@@ -1,8 +1,11 @@
 """Symmetric proposal moves for Metropolis sampling of spin configurations.
 
-A move is a pure function ``propose(key, x) -> x'`` acting on a batch of chains
-``x`` of shape ``(n_chains, n_sites)`` (one independent proposal per chain). All moves here
-are symmetric, T(x→x') = T(x'→x), so the Metropolis acceptance is min(1, |ψ(x')/ψ(x)|²).
+A move is a pure function ``propose(key, x) -> (x', sites)`` acting on a batch of chains
+``x`` of shape ``(n_chains, n_sites)`` (one independent proposal per chain). ``sites`` has
+shape ``(n_chains, K)`` (K fixed per move) and lists the sites whose value may have changed,
+padded with −1; fast-update trial states use it to update cached quantities in O(K) instead
+of re-evaluating ψ. All moves here are symmetric, T(x→x') = T(x'→x), so the Metropolis
+acceptance is min(1, |ψ(x')/ψ(x)|²).
 """
 
 from __future__ import annotations
@@ -13,14 +16,15 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-Move = Callable[[jax.Array, jax.Array], jax.Array]
+Move = Callable[[jax.Array, jax.Array], tuple[jax.Array, jax.Array]]
 
 
-def single_flip(key: jax.Array, x: jax.Array) -> jax.Array:
+def single_flip(key: jax.Array, x: jax.Array):
     """Flip one uniformly chosen spin per chain (changes the magnetisation by ±1)."""
     c, n = x.shape
     site = jax.random.randint(key, (c,), 0, n)
-    return x * jnp.where(jax.nn.one_hot(site, n, dtype=bool), -1.0, 1.0).astype(x.dtype)
+    rows = jnp.arange(c)
+    return x.at[rows, site].multiply(-1), site[:, None].astype(jnp.int32)
 
 
 def _swap(x, i, j):
@@ -37,16 +41,17 @@ def bond_exchange(bonds) -> Move:
         raise ValueError("bond_exchange needs at least one bond")
     table = jnp.asarray(bonds)
 
-    def propose(key: jax.Array, x: jax.Array) -> jax.Array:
+    def propose(key: jax.Array, x: jax.Array):
         if int(bonds.max()) >= x.shape[1]:
             raise ValueError(f"bond site {int(bonds.max())} outside the {x.shape[1]}-site configuration")
         k = jax.random.randint(key, (x.shape[0],), 0, len(bonds))
-        return _swap(x, table[k, 0], table[k, 1])
+        i, j = table[k, 0], table[k, 1]
+        return _swap(x, i, j), jnp.stack([i, j], axis=1)
 
     return propose
 
 
-def pair_exchange(key: jax.Array, x: jax.Array) -> jax.Array:
+def pair_exchange(key: jax.Array, x: jax.Array):
     """Swap a uniformly chosen up spin with a uniformly chosen down spin (any distance);
     conserves the magnetisation and is symmetric because the numbers of up and down spins are
     fixed. A fully polarised chain is left unchanged."""
@@ -57,4 +62,5 @@ def pair_exchange(key: jax.Array, x: jax.Array) -> jax.Array:
     u_dn = jnp.where(~up, jax.random.uniform(k_down, x.shape), -1.0)
     i, j = jnp.argmax(u_up, axis=1), jnp.argmax(u_dn, axis=1)
     polarised = jnp.all(up, axis=1) | jnp.all(~up, axis=1)
-    return jnp.where(polarised[:, None], x, _swap(x, i, j))
+    sites = jnp.where(polarised[:, None], -1, jnp.stack([i, j], axis=1)).astype(jnp.int32)
+    return jnp.where(polarised[:, None], x, _swap(x, i, j)), sites
