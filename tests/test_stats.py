@@ -106,7 +106,7 @@ def test_tau_agrees_with_emcee(rho):
 
 
 def test_tau_of_iid_chains_is_one():
-    values = np.random.default_rng(3).standard_normal((10_000, 4))
+    values = np.random.default_rng(3).standard_normal((20_000, 8))
     n_total = values.size
     tau = float(integrated_autocorrelation_time(values))
     # τ = 1 for independent samples (textbook), 5 sigma of Sokal 1997's error of τ̂.
@@ -207,7 +207,9 @@ def test_blocking_rejects_bad_input():
 
 
 def arviz_rhat(values: np.ndarray) -> float:
-    return float(az.rhat(np.asarray(values).T, method="rank"))  # arviz wants (chain, draw)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # 0/0 for constant draws
+        return float(az.rhat(np.asarray(values).T, method="rank"))  # arviz wants (chain, draw)
 
 
 def test_split_rhat_matches_arviz_well_mixed():
@@ -225,7 +227,7 @@ def test_split_rhat_matches_arviz_shifted_means_odd_length():
 
 def test_split_rhat_matches_arviz_with_ties():
     # Discrete draws: ties get average ranks (Vehtari et al. 2021, as in arviz).
-    values = np.random.default_rng(10).integers(0, 4, size=(200, 3)).astype(float)
+    values = np.random.default_rng(10).integers(0, 4, size=(501, 4)).astype(float)
     assert float(split_rhat(values)) == pytest.approx(arviz_rhat(values), abs=1e-6)
 
 
@@ -239,14 +241,20 @@ def test_split_rhat_detects_scale_difference_through_folding():
 
 
 @given(
-    n_time=st.integers(4, 30),
-    n_chains=st.integers(2, 5),
-    seed=st.integers(0, 2**31 - 1),
+    draws=st.lists(st.integers(-3, 3) | st.floats(-10.0, 10.0, allow_subnormal=False), min_size=27, max_size=27),
 )
-@settings(max_examples=15, deadline=None)
-def test_split_rhat_matches_arviz_random(n_time, n_chains, seed):
-    values = np.random.default_rng(seed).standard_normal((n_time, n_chains))
-    assert float(split_rhat(values)) == pytest.approx(arviz_rhat(values), abs=1e-6)  # arviz
+@settings(max_examples=25, deadline=None)
+def test_split_rhat_matches_arviz_random(draws):
+    # One fixed odd shape (one compilation); small integers provoke ties. Subnormals are
+    # excluded because XLA on CPU flushes them to zero. Reference: arviz's rank-normalized
+    # split-R̂ (Vehtari et al. 2021).
+    values = np.asarray(draws, dtype=float).reshape(9, 3)
+    ours = float(split_rhat(values))
+    theirs = arviz_rhat(values)
+    if math.isnan(theirs):  # constant input: 0/0 in both
+        assert math.isnan(ours)
+    else:
+        assert ours == pytest.approx(theirs, abs=1e-6)
 
 
 def test_split_rhat_short_chains_is_nan():
@@ -292,8 +300,8 @@ def test_ess_close_to_arviz_bulk(rho):
 
 def test_estimate_fields_for_complex_input():
     rng = np.random.default_rng(15)
-    real = rng.standard_normal((500, 4))
-    imag = rng.standard_normal((500, 4))
+    real = rng.standard_normal((25, 4))
+    imag = rng.standard_normal((25, 4))
     values = real + 1j * imag
     result = estimate(values)
     assert complex(result.mean) == pytest.approx(values.mean())
@@ -318,15 +326,18 @@ def test_estimate_short_chains():
 
 
 @given(
-    n_time=st.integers(1, 40),
-    n_chains=st.integers(1, 4),
+    case=st.sampled_from([((3, 5), False), ((25, 4), True)]),
     seed=st.integers(0, 2**31 - 1),
 )
-@settings(max_examples=8, deadline=None)
-def test_estimate_same_under_jit(n_time, n_chains, seed):
-    values = jnp.asarray(np.random.default_rng(seed).standard_normal((n_time, n_chains)))
+@settings(max_examples=6, deadline=None)
+def test_estimate_same_under_jit(case, seed):
+    shape, complex_values = case
+    rng = np.random.default_rng(seed)
+    values = rng.standard_normal(shape)
+    if complex_values:
+        values = values + 1j * rng.standard_normal(shape)
     eager = estimate(values)
-    jitted = jax.jit(estimate)(values)
+    jitted = jax.jit(estimate)(jnp.asarray(values))
     for name, a, b in zip(Estimate._fields, eager, jitted):
         np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-10, err_msg=name)
 
@@ -371,8 +382,8 @@ def test_format_matches_digits_to_error():
 
 
 def test_format_of_jax_estimate_contains_mean_and_error():
-    values = ar1(17, 0.5, 1000, 4) + 3.0
-    result = jax.jit(estimate)(values)
+    values = ar1(17, 0.5, 2000, 4) + 3.0
+    result = estimate(values)  # fields are 0-d jax arrays
     text = str(result)
     error = float(result.error)
     decimals = 1 - math.floor(math.log10(error))

@@ -39,3 +39,8 @@ def sample_covariance(a, b, axis: int = 0):
     ca = a - jnp.mean(a, axis=axis, keepdims=True)
     cb = b - jnp.mean(b, axis=axis, keepdims=True)
     return jnp.mean(jnp.conj(ca) * cb, axis=axis)
+
+
+def sample_median(values, axis: int = 0):
+    """Median over the sample axis (real input; not a sum, so a sharded axis needs a gather)."""
+    return jnp.median(values, axis=axis)

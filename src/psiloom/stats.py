@@ -185,7 +185,12 @@ def autocorrelation(values) -> jax.Array:
         Array of shape ``(n_time,)`` with ``ρ(0) = 1`` (all-constant input gives
         ``ρ = (1, 0, 0, …)``).
     """
-    x = _real_part(_check_values(values))
+    return _autocorrelation(_check_values(values))
+
+
+@jax.jit
+def _autocorrelation(values: jax.Array) -> jax.Array:
+    x = _real_part(values)
     n_time = x.shape[0]
     n_fft = 1 << (2 * n_time - 1).bit_length()  # power of two ≥ 2 n_time: no wrap-around
     centred = x - sample_mean(x)[None, :]
@@ -193,9 +198,12 @@ def autocorrelation(values) -> jax.Array:
     acov = jnp.fft.irfft(spectrum * jnp.conj(spectrum), n=n_fft, axis=0)[:n_time] / n_time
     pooled = jnp.mean(acov, axis=1)
     c0 = pooled[0]
-    rho = pooled / jnp.where(c0 > 0, c0, 1.0)
+    # Constant chains leave only rounding noise of relative size eps after centring.
+    resolution = 16.0 * jnp.finfo(x.dtype).eps * jnp.max(jnp.abs(x))
+    varies = c0 > resolution**2
+    rho = pooled / jnp.where(varies, c0, 1.0)
     unit = jnp.zeros_like(rho).at[0].set(1.0)
-    return jnp.where(c0 > 0, rho, unit)
+    return jnp.where(varies, rho, unit)
 
 
 def integrated_autocorrelation_time(values, c: float = 5.0) -> jax.Array:
@@ -214,7 +222,12 @@ def integrated_autocorrelation_time(values, c: float = 5.0) -> jax.Array:
     """
     if isinstance(c, (int, float)) and not c > 0:
         raise ValueError(f"window constant c must be positive; got c={c}")
-    rho = autocorrelation(values)
+    return _integrated_autocorrelation_time(_check_values(values), c)
+
+
+@jax.jit
+def _integrated_autocorrelation_time(values: jax.Array, c: float | jax.Array) -> jax.Array:
+    rho = _autocorrelation(values)
     n_time = rho.shape[0]
     n_windows = n_time // 2 + 1  # windows M = 0 … n_time // 2
     taus = 2.0 * jnp.cumsum(rho[:n_windows]) - 1.0  # τ(M), using ρ(0) = 1
@@ -233,21 +246,22 @@ def effective_sample_size(values) -> jax.Array:
     """
     values = _check_values(values)
     n_total = values.shape[0] * values.shape[1]
-    return n_total / integrated_autocorrelation_time(values)
+    return n_total / _integrated_autocorrelation_time(values, 5.0)
 
 
-def _average_ranks(flat: jax.Array) -> jax.Array:
-    """1-based ranks; tied values get the average of their ranks."""
-    ordered = jnp.sort(flat)
+def _average_ranks(flat: jax.Array, ordered: jax.Array) -> jax.Array:
+    """1-based ranks of ``flat`` (``ordered`` is its sorted copy); ties get their average rank."""
     left = jnp.searchsorted(ordered, flat, side="left")
     right = jnp.searchsorted(ordered, flat, side="right")
     return (left + right + 1).astype(flat.dtype) / 2.0
 
 
-def _normal_scores(draws: jax.Array) -> jax.Array:
+def _normal_scores(draws: jax.Array, ordered: jax.Array | None = None) -> jax.Array:
     """Rank-normalize all draws jointly: Φ⁻¹((r − 3/8)/(S + 1/4))."""
     flat = draws.reshape(-1)
-    ranks = _average_ranks(flat)
+    if ordered is None:
+        ordered = jnp.sort(flat)
+    ranks = _average_ranks(flat, ordered)
     return ndtri((ranks - 0.375) / (flat.shape[0] + 0.25)).reshape(draws.shape)
 
 
@@ -273,14 +287,22 @@ def split_rhat(values) -> jax.Array:
     Returns:
         0-d array.
     """
-    x = _real_part(_check_values(values))
+    return _split_rhat(_check_values(values))
+
+
+@jax.jit
+def _split_rhat(values: jax.Array) -> jax.Array:
+    x = _real_part(values)
     n_time = x.shape[0]
     if n_time < _MIN_TIME_FOR_DIAGNOSTICS:
         return jnp.asarray(jnp.nan, dtype=x.dtype)
     half = n_time // 2
     split = jnp.concatenate([x[:half], x[n_time - half :]], axis=1)
-    bulk = _rhat_of_chains(_normal_scores(split))
-    folded = _rhat_of_chains(_normal_scores(jnp.abs(split - jnp.median(split))))
+    ordered = jnp.sort(split.reshape(-1))
+    size = ordered.shape[0]
+    median = 0.5 * (ordered[(size - 1) // 2] + ordered[size // 2])
+    bulk = _rhat_of_chains(_normal_scores(split, ordered))
+    folded = _rhat_of_chains(_normal_scores(jnp.abs(split - median)))
     return jnp.maximum(bulk, folded)
 
 
@@ -290,7 +312,11 @@ def estimate(values) -> Estimate:
     Works inside ``jax.jit``. For ``n_time < 4`` there is too little data for
     diagnostics: ``tau = 1`` and ``rhat = nan``.
     """
-    values = _check_values(values)
+    return _estimate(_check_values(values))
+
+
+@jax.jit
+def _estimate(values: jax.Array) -> Estimate:
     n_time, n_chains = values.shape
     n_total = n_time * n_chains
     flat = values.reshape(-1)
@@ -300,8 +326,8 @@ def estimate(values) -> Estimate:
         tau = jnp.asarray(1.0, dtype=real_dtype)
         rhat = jnp.asarray(jnp.nan, dtype=real_dtype)
     else:
-        tau = integrated_autocorrelation_time(x)
-        rhat = split_rhat(x)
+        tau = _integrated_autocorrelation_time(x, 5.0)
+        rhat = _split_rhat(x)
     real_variance = sample_variance(x.reshape(-1))
     return Estimate(
         mean=sample_mean(flat),

@@ -31,10 +31,12 @@ import numpy as np
 import optax
 
 from psiloom import stats
+from psiloom.optimize.clipping import clip_local_energies
 from psiloom.optimize.flatten import tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.sampling.metropolis import ChainState
 from psiloom.states.base import check_input_size, count_real_parameters
+from psiloom.states.bound import BoundState
 
 
 class NonFiniteError(FloatingPointError):
@@ -153,10 +155,13 @@ class GroundStateSearch:
             ``geometry`` (stochastic reconfiguration) receive the sample geometry.
         n_samples: samples per step (``n_samples / n_chains`` stored per chain).
         chunk: evaluate local energies and log-derivatives in chunks of this many samples.
+        energy_clip: if set, the width k of local-energy clipping around the median
+            (:func:`psiloom.optimize.clip_local_energies`) applied to the values feeding the
+            gradient and the SR geometry; the reported energy estimate stays unclipped.
     """
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
-                 n_samples: int = 1024, chunk: int | None = None):
+                 n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None):
         if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
@@ -171,6 +176,9 @@ class GroundStateSearch:
         self.n_samples = int(n_samples)
         self.n_per_chain = self.n_samples // sampler.n_chains
         self.chunk = chunk
+        if energy_clip is not None:
+            clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
+        self.energy_clip = energy_clip
         self._step = jax.jit(self._step_impl)
         self._eval = jax.jit(self._evaluate_impl, static_argnums=(2,))
 
@@ -182,7 +190,7 @@ class GroundStateSearch:
         if params is None:
             params = self.model.init(k_param, space.random(k_param, 1))
         check_input_size(self.model, params, space)
-        log_amp = lambda x: self.model.apply(params, x)
+        log_amp = BoundState(self.model, params)  # callable as log_amp(x); samplers may read the model
         chains = self.sampler.init(k_chain, log_amp)
         return TrainState(jnp.zeros((), jnp.int32), params, self.optimizer.init(params), chains, k_run)
 
@@ -190,7 +198,7 @@ class GroundStateSearch:
         return count_real_parameters(state.params)
 
     def _sample(self, key, params, chains, n_per_chain):
-        log_amp = lambda x: self.model.apply(params, x)
+        log_amp = BoundState(self.model, params)  # callable as log_amp(x); samplers may read the model
         chains = self.sampler.refresh(chains, log_amp)
         xs, logs, chains, acc = self.sampler.sample(key, chains, log_amp, n_per_chain)
         x = xs.reshape(-1, *xs.shape[2:])  # time-major leading sample axis
@@ -201,6 +209,8 @@ class GroundStateSearch:
         key, k_sample = jax.random.split(state.key)
         x, e_loc, chains, acc = self._sample(k_sample, state.params, state.chains, self.n_per_chain)
         estimate = stats.estimate(e_loc.reshape(self.n_per_chain, -1))
+        if self.energy_clip is not None:
+            e_loc = clip_local_energies(e_loc, self.energy_clip)
         _, grad = energy_gradient(self.model.apply, state.params, x, e_loc)
         geometry = SampleGeometry(self.model.apply, state.params, x, e_loc, chunk=self.chunk)
         updates, opt_state = self.optimizer.update(grad, state.opt_state, state.params, geometry=geometry)

@@ -15,6 +15,13 @@ L(θ) = 2 mean_s Re[ conj(log ψ_θ(x_s)) · stopgrad(E_loc(x_s) − E) ].
 with ΔO = O − ⟨O⟩, so that the quantum geometric tensor (real part) is S = Xᵀ X, and the
 residual ε = [Re ΔE; Im ΔE] / √n with F = Xᵀ ε = ½ ∇E. Preconditioners ask for what they need;
 unused pieces are never computed (everything is traced lazily inside ``jax.jit``).
+
+Matrix-free products with X (for iterative solvers) never form X or S:
+
+    X v  = centred jvp of θ ↦ [Re log ψ_θ(x_s); Im log ψ_θ(x_s)]_s along v, divided by √n,
+    Xᵀu = vjp of the same map with the centred cotangent u − ⟨u⟩ (per block), divided by √n,
+
+so S v = Xᵀ(X v) costs about one forward and one backward pass over the batch.
 """
 
 from __future__ import annotations
@@ -88,6 +95,82 @@ class SampleGeometry:
         if self.complex_output:
             return jnp.concatenate([jnp.real(d), jnp.imag(d)], axis=0)
         return d
+
+    # ------------------------------------------------------------ matrix-free products
+    def _real_outputs(self, vec, xs):
+        """θ ↦ [Re log ψ; Im log ψ] (complex ψ) or Re log ψ (real ψ), a real vector."""
+        out = self._log_psi_of_vector(vec, xs)
+        if self.complex_output:
+            return jnp.concatenate([jnp.real(out), jnp.imag(out)])
+        return jnp.real(out)
+
+    def _centre(self, u):
+        """Subtract the sample mean in each block (Re / Im) of a row vector and scale by 1/√n."""
+        blocks = u.reshape(-1, self.n_samples)
+        blocks = blocks - sample_mean(blocks, axis=1)[:, None]
+        return blocks.reshape(-1) / jnp.sqrt(self.n_samples)
+
+    def _linearized(self):
+        """``(f_jvp, f_vjp)`` of θ ↦ real outputs at the current parameters, built once per trace."""
+        if getattr(self, "_lin", None) is None:
+            f = lambda v: self._real_outputs(v, self.x)
+            _, f_jvp = jax.linearize(f, self.param_vector)
+            f_vjp = jax.linear_transpose(f_jvp, self.param_vector)
+            self._lin = (f_jvp, lambda u: f_vjp(u)[0])
+        return self._lin
+
+    def _chunked_rows(self, a, fill):
+        """Split the sample axis into ``(n_chunks, chunk, ...)`` blocks, padding with ``fill`` rows."""
+        n, chunk = self.n_samples, self.chunk
+        n_chunks = -(-n // chunk)
+        pad = n_chunks * chunk - n
+        if pad:
+            a = jnp.concatenate([a, jnp.broadcast_to(fill, (pad, *a.shape[1:])).astype(a.dtype)], axis=0)
+        return a.reshape(n_chunks, chunk, *a.shape[1:])
+
+    def _chunked(self) -> bool:
+        return self.chunk is not None and self.chunk < self.n_samples
+
+    def jvp(self, v: jax.Array) -> jax.Array:
+        """X v for a real parameter vector ``v`` of shape ``(P,)``; returns ``(n,)`` or ``(2n,)``."""
+        v = jnp.asarray(v, self.param_vector.dtype)
+        if not self._chunked():
+            return self._centre(self._linearized()[0](v))
+        xs = self._chunked_rows(self.x, self.x[0])  # padding repeats a valid configuration
+
+        def one(xc):
+            return jax.jvp(lambda p: self._real_outputs(p, xc).reshape(-1, xc.shape[0]),
+                           (self.param_vector,), (v,))[1]
+
+        out = jax.lax.map(one, xs)  # (n_chunks, blocks, chunk)
+        raw = jnp.moveaxis(out, 1, 0).reshape(out.shape[1], -1)[:, : self.n_samples].reshape(-1)
+        return self._centre(raw)
+
+    def vjp(self, u: jax.Array) -> jax.Array:
+        """Xᵀ u for a real row vector ``u`` of shape ``(n,)`` (``(2n,)`` for complex ψ); returns ``(P,)``."""
+        u = self._centre(jnp.asarray(u, self.param_vector.dtype))
+        if not self._chunked():
+            return self._linearized()[1](u)
+        cot = u.reshape(-1, self.n_samples).T  # (n, blocks)
+        xs = self._chunked_rows(self.x, self.x[0])
+        cs = self._chunked_rows(cot, jnp.zeros((), cot.dtype))  # padded rows get zero cotangent
+
+        def body(acc, args):
+            xc, cc = args
+            _, pull = jax.vjp(lambda p: self._real_outputs(p, xc), self.param_vector)
+            return acc + pull(cc.T.reshape(-1))[0], None
+
+        total, _ = jax.lax.scan(body, jnp.zeros_like(self.param_vector), (xs, cs))
+        return total
+
+    def s_matvec(self, v: jax.Array) -> jax.Array:
+        """S v = Xᵀ (X v) without forming X or S."""
+        return self.vjp(self.jvp(v))
+
+    def s_diagonal(self) -> jax.Array:
+        """diag S = Σ_rows X², shape ``(P,)`` (forms X)."""
+        x = self.jacobian()
+        return jnp.sum(x * x, axis=0)
 
     def residual(self) -> jax.Array:
         """ε = [Re ΔE; Im ΔE]/√n (real part only for real ψ), so that Xᵀ ε = ½ ∇E."""

@@ -3,21 +3,45 @@
 Given the real quantum geometric tensor S = Re⟨ΔO* ΔO⟩ = XᵀX and the force F = ½ ∇E
 (see :mod:`psiloom.optimize.gradient`), the update direction is
 
-    δ = (S + ε I)⁻¹ F ,
+    δ = (S + Λ)⁻¹ F ,        Λ = ε I + ε_rel · diag(S) ,
 
-with diagonal shift ε (a float or an optax schedule of the step count). Chained with
-``optax.sgd(η)`` this gives θ ← θ − η δ, a discretised imaginary-time step of length η
-(Sorella 1998; Carleo & Troyer 2017). The transformation needs the per-sample geometry and
-receives it as the extra keyword argument ``geometry`` (a :class:`SampleGeometry`), which the
-training step passes to every transformation of an ``optax.chain``.
+with an absolute diagonal shift ε and an optional relative (scale-invariant) shift ε_rel, each a
+float or an optax schedule of the step count. Chained with ``optax.sgd(η)`` this gives
+θ ← θ − η δ, a discretised imaginary-time step of length η (Sorella 1998; Carleo & Troyer 2017).
+The transformation needs the per-sample geometry and receives it as the extra keyword argument
+``geometry`` (a :class:`SampleGeometry`), which the training step passes to every transformation
+of an ``optax.chain``. Complex parameters are two real parameters each (real and imaginary part),
+which is exact for non-holomorphic trial states as well.
 
-Solvers: ``"dense"`` forms the P×P matrix S and uses a Cholesky solve (cheap for few
-parameters).
+Solvers (the ``solver`` option; all give the same δ up to rounding or the CG tolerance):
+
+``"dense"``
+    Forms the P×P matrix S = XᵀX and solves by Cholesky: O(nP² + P³). Best for few parameters.
+``"sample_space"``
+    Uses XᵀX + εI and XXᵀ + εI sharing their non-zero spectrum, i.e. the push-through identity
+    (XᵀX + εI)⁻¹Xᵀ = Xᵀ(XXᵀ + εI)⁻¹ (Chen & Heyl, Nat. Phys. 2024; Rende et al. 2024). With the
+    residual ε_res of :meth:`SampleGeometry.residual` (F = Xᵀ ε_res)
+
+        δ = Xᵀ (X Xᵀ + ε I)⁻¹ ε_res ,
+
+    an n×n solve (n samples, 2n for complex ψ): O(n²P + n³), far cheaper when P ≫ n. Should the
+    incoming gradient differ from Xᵀε_res (an earlier transformation rescaled it), the remainder
+    r = F − Xᵀε_res is added exactly through the Woodbury form
+    (S + εI)⁻¹ r = (r − Xᵀ(XXᵀ + εI)⁻¹X r)/ε, so the output is always (S + Λ)⁻¹ F.
+    With a relative shift the same is done for X̃ = X Λ^{-1/2}.
+``"cg"``
+    Matrix-free conjugate gradient (jax.scipy.sparse.linalg.cg) with S v = Xᵀ(X v) applied by a
+    jvp and a vjp of the log-amplitude (:meth:`SampleGeometry.s_matvec`): neither X nor S is
+    formed, memory O(P + n). Options ``tol``, ``atol``, ``maxiter`` and ``warm_start`` (start
+    from the previous step's δ). Only the absolute shift is available (diag S needs X).
+``"auto"``
+    ``"sample_space"`` when the parameters outnumber the rows of X, else ``"dense"`` (decided
+    from static shapes at trace time).
 """
 
 from __future__ import annotations
 
-from typing import Callable, NamedTuple
+from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -25,34 +49,101 @@ import optax
 
 from psiloom.optimize.flatten import ravel_real
 
+SOLVERS = ("dense", "sample_space", "cg", "auto")
+
 
 class SRState(NamedTuple):
-    count: jax.Array
+    count: jax.Array  # number of updates made (the schedules' argument)
+    previous: Any = None  # last δ (real vector) when the CG solver warm-starts, else None
 
 
 def _as_schedule(value, name) -> Callable:
     if callable(value):
         return value
-    v = float(value)
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a float or a schedule (callable), got {value!r}") from None
     if not v >= 0:
         raise ValueError(f"{name} must be >= 0, got {value!r}")
     return lambda count: v
 
 
-def stochastic_reconfiguration(shift=1e-3, solver: str = "dense") -> optax.GradientTransformationExtraArgs:
-    """Precondition the energy gradient with (S + shift·I)⁻¹, S the quantum geometric tensor.
+def _solve_dense(x, force, lam):
+    """(XᵀX + diag lam)⁻¹ F by Cholesky; lam scalar or (P,)."""
+    s = x.T @ x
+    s = s + jnp.diag(jnp.broadcast_to(lam, force.shape).astype(s.dtype))
+    chol = jax.scipy.linalg.cho_factor(s, lower=True)
+    return jax.scipy.linalg.cho_solve(chol, force)
+
+
+def _solve_sample_space_scalar(x, residual, force, eps):
+    """(XᵀX + εI)⁻¹ F via the n×n system, F = Xᵀ residual + r (r normally rounding-small)."""
+    k = x @ x.T
+    k = k + eps * jnp.eye(k.shape[0], dtype=k.dtype)
+    chol = jax.scipy.linalg.cho_factor(k, lower=True)
+    solve = lambda b: jax.scipy.linalg.cho_solve(chol, b)
+    delta = x.T @ solve(residual)
+    r = force - x.T @ residual
+    safe = jnp.where(eps > 0, eps, 1.0)
+    correction = jnp.where(eps > 0, (r - x.T @ solve(x @ r)) / safe, 0.0)
+    return delta + correction
+
+
+def _solve_sample_space_diag(x, residual, force, lam):
+    """(XᵀX + Λ)⁻¹ F with a positive diagonal Λ (P,), via X̃ = X Λ^{-1/2} and an n×n system."""
+    lam = jnp.where(lam > 0, lam, 1.0)  # a zero column of X has F_k = 0: any Λ_k gives δ_k = 0
+    d = 1.0 / jnp.sqrt(lam)
+    xt = x * d
+    k = xt @ xt.T + jnp.eye(x.shape[0], dtype=x.dtype)
+    chol = jax.scipy.linalg.cho_factor(k, lower=True)
+    solve = lambda b: jax.scipy.linalg.cho_solve(chol, b)
+    # main part: Λ^{-1/2} X̃ᵀ (X̃X̃ᵀ + I)⁻¹ ε_res ; remainder r̃ = Λ^{-1/2}(F − Xᵀ ε_res) by Woodbury
+    r = d * (force - x.T @ residual)
+    inner = xt.T @ solve(residual) + r - xt.T @ solve(xt @ r)
+    return d * inner
+
+
+def stochastic_reconfiguration(
+    shift=1e-3,
+    solver: str = "dense",
+    *,
+    relative_shift=None,
+    tol: float = 1e-10,
+    atol: float = 0.0,
+    maxiter: int | None = None,
+    warm_start: bool = False,
+) -> optax.GradientTransformationExtraArgs:
+    """Precondition the energy gradient with (S + ε I + ε_rel diag S)⁻¹ (see module docstring).
 
     Args:
-        shift: diagonal shift ε ≥ 0, a float or a schedule ``count -> ε``.
-        solver: ``"dense"`` (P×P Cholesky).
+        shift: absolute diagonal shift ε ≥ 0, a float or a schedule ``count -> ε``.
+        solver: ``"dense"``, ``"sample_space"``, ``"cg"`` or ``"auto"``.
+        relative_shift: optional ε_rel ≥ 0 (float or schedule) multiplying diag S
+            (``"dense"`` and ``"sample_space"`` only).
+        tol, atol: CG stopping rule ‖S̃δ − F‖ ≤ max(tol·‖F‖, atol) (``"cg"`` only).
+        maxiter: CG iteration cap (default: 10·P as in jax.scipy).
+        warm_start: start CG from the previous δ (stored in the state).
+
+    The output replaces the gradient by δ (a pytree like ``params``; complex leaves in psiloom's
+    convention Re + i Im); chain with ``optax.sgd(learning_rate)``.
     """
-    if solver not in ("dense",):
-        raise ValueError(f"unknown SR solver {solver!r}; available: 'dense'")
+    if solver not in SOLVERS:
+        raise ValueError(f"unknown SR solver {solver!r}; available: {', '.join(map(repr, SOLVERS))}")
     shift_fn = _as_schedule(shift, "shift")
+    rel_fn = None if relative_shift is None else _as_schedule(relative_shift, "relative_shift")
+    if rel_fn is not None and solver == "cg":
+        raise ValueError("relative_shift needs diag(S), which the matrix-free 'cg' solver does not form; "
+                         "use solver='dense' or 'sample_space'")
+    if not float(tol) >= 0 or not float(atol) >= 0:
+        raise ValueError(f"tol and atol must be >= 0, got tol={tol!r}, atol={atol!r}")
+    if maxiter is not None and (isinstance(maxiter, bool) or int(maxiter) != maxiter or maxiter < 1):
+        raise ValueError(f"maxiter must be a positive integer or None, got {maxiter!r}")
+    use_previous = warm_start and solver == "cg"
 
     def init(params):
-        del params
-        return SRState(count=jnp.zeros((), jnp.int32))
+        previous = jnp.zeros_like(ravel_real(params)[0]) if use_previous else None
+        return SRState(count=jnp.zeros((), jnp.int32), previous=previous)
 
     def update(updates, state, params=None, *, geometry=None, **extra):
         del params, extra
@@ -63,12 +154,31 @@ def stochastic_reconfiguration(shift=1e-3, solver: str = "dense") -> optax.Gradi
             )
         g, unravel = ravel_real(updates)
         force = 0.5 * g
-        x = geometry.jacobian()
-        s = x.T @ x
-        eps = shift_fn(state.count)
-        s = s + eps * jnp.eye(s.shape[0], dtype=s.dtype)
-        chol = jax.scipy.linalg.cho_factor(s, lower=True)
-        delta = jax.scipy.linalg.cho_solve(chol, force)
-        return unravel(delta.astype(g.dtype)), SRState(count=state.count + 1)
+        eps = jnp.asarray(shift_fn(state.count), force.dtype)
+        rows = geometry.n_samples * (2 if geometry.complex_output else 1)
+        kind = solver
+        if kind == "auto":
+            kind = "sample_space" if force.shape[0] > rows else "dense"
+
+        previous = state.previous
+        if kind == "cg":
+            matvec = lambda v: geometry.s_matvec(v) + eps * v
+            x0 = previous if use_previous else None
+            delta, _ = jax.scipy.sparse.linalg.cg(matvec, force, x0=x0, tol=tol, atol=atol, maxiter=maxiter)
+            if use_previous:
+                previous = delta
+        else:
+            x = geometry.jacobian()
+            if rel_fn is not None:
+                lam = eps + jnp.asarray(rel_fn(state.count), force.dtype) * jnp.sum(x * x, axis=0)
+            else:
+                lam = eps
+            if kind == "dense":
+                delta = _solve_dense(x, force, lam)
+            elif rel_fn is None:
+                delta = _solve_sample_space_scalar(x, geometry.residual(), force, eps)
+            else:
+                delta = _solve_sample_space_diag(x, geometry.residual(), force, lam)
+        return unravel(delta.astype(g.dtype)), SRState(count=state.count + 1, previous=previous)
 
     return optax.GradientTransformationExtraArgs(init, update)

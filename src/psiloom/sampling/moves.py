@@ -64,3 +64,59 @@ def pair_exchange(key: jax.Array, x: jax.Array):
     polarised = jnp.all(up, axis=1) | jnp.all(~up, axis=1)
     sites = jnp.where(polarised[:, None], -1, jnp.stack([i, j], axis=1)).astype(jnp.int32)
     return jnp.where(polarised[:, None], x, _swap(x, i, j)), sites
+
+
+def mixture(components) -> Move:
+    """A move that applies, independently in every chain, component ``k`` with probability p_k.
+
+    ``components`` is a sequence of ``(move, probability)`` pairs; the probabilities must be
+    positive and sum to one. The proposal kernel is the mixture
+
+        T(x → x') = Σ_k p_k T_k(x → x'),
+
+    which is symmetric whenever every T_k is symmetric and the p_k do not depend on x, so the
+    Metropolis acceptance stays min(1, |ψ(x')/ψ(x)|²) (Hastings 1970; Tierney 1994). The
+    mixture conserves the magnetisation only if every component does.
+
+    Every component is evaluated on the whole batch and each chain keeps the one it drew, so a
+    step costs the sum of the component costs (moves are cheap next to evaluating ψ). The
+    ``sites`` arrays of the components are padded with −1 to a common width K = max_k K_k.
+    """
+    try:
+        pairs = [(move, prob) for move, prob in components]
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"mixture expects a sequence of (move, probability) pairs, got {components!r}") from err
+    if not pairs:
+        raise ValueError("mixture needs at least one (move, probability) pair")
+    moves = []
+    probs = []
+    for move, prob in pairs:
+        if not callable(move):
+            raise ValueError(f"mixture component {move!r} is not a move (a callable (key, x) -> (x', sites))")
+        try:
+            p = float(prob)
+        except (TypeError, ValueError) as err:
+            raise ValueError(f"mixture probability {prob!r} is not a number") from err
+        if not np.isfinite(p) or p <= 0.0:
+            raise ValueError(f"mixture probabilities must be finite and > 0, got {prob!r}")
+        moves.append(move)
+        probs.append(p)
+    total = float(np.sum(probs))
+    if abs(total - 1.0) > 1e-9:
+        raise ValueError(f"mixture probabilities must sum to 1, got {probs} (sum {total})")
+    log_probs = jnp.log(jnp.asarray(probs))
+
+    def propose(key: jax.Array, x: jax.Array):
+        k_pick, *k_moves = jax.random.split(key, len(moves) + 1)
+        outs = [move(k, x) for move, k in zip(moves, k_moves)]
+        width = max(sites.shape[1] for _, sites in outs)
+        proposals = jnp.stack([xp for xp, _ in outs])  # (n_moves, C, N)
+        sites = jnp.stack([
+            jnp.pad(s.astype(jnp.int32), ((0, 0), (0, width - s.shape[1])), constant_values=-1) for _, s in outs
+        ])  # (n_moves, C, K)
+        choice = jax.random.categorical(k_pick, log_probs, shape=(x.shape[0],))
+        rows = jnp.arange(x.shape[0])
+        return proposals[choice, rows], sites[choice, rows]
+
+    propose.components = tuple(zip(moves, probs))
+    return propose

@@ -8,6 +8,8 @@ from psiloom.states.base import (
     default_real_dtype,
     init_parameters,
 )
+from psiloom.states.autoregressive import ChainRuleState
+from psiloom.states.bound import BoundState
 from psiloom.states.feedforward import FeedForward
 from psiloom.states.jastrow import TwoBodyJastrow
 from psiloom.states.product import ProductState
@@ -16,5 +18,5 @@ from psiloom.states.rbm import RBM, log_two_cosh
 __all__ = [
     "TrialState", "check_input_size", "count_real_parameters", "default_complex_dtype",
     "default_real_dtype", "init_parameters", "FeedForward", "TwoBodyJastrow", "ProductState",
-    "RBM", "log_two_cosh",
+    "RBM", "log_two_cosh", "BoundState", "ChainRuleState",
 ]

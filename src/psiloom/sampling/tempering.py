@@ -1,0 +1,230 @@
+"""Parallel tempering: replicas at a ladder of inverse temperatures β with replica swaps.
+
+Replica ``r`` of every chain targets
+
+    π_r(x) ∝ |ψ(x)|^{2 β_r},        1 = β_0 > β_1 > … > β_{R−1} ≥ 0,
+
+so the flattened replicas (small β) cross the barriers between the modes of |ψ|² and pass
+configurations down the ladder to the physical replica β_0 = 1, whose samples are returned.
+The joint target Π_r π_r(x_r) is sampled by two kinds of moves (Swendsen & Wang 1986;
+Geyer 1991; Hukushima & Nemoto 1996):
+
+* a Metropolis update of every replica with its own acceptance
+  min(1, exp(2 β_r Re[log ψ(x') − log ψ(x)])) (symmetric proposal, see
+  :mod:`psiloom.sampling.moves`);
+* an exchange of the configurations of neighbouring replicas r, r+1, accepted with
+
+      min(1, exp((β_r − β_{r+1}) (ℓ(x_{r+1}) − ℓ(x_r)))),     ℓ(x) = 2 Re log ψ(x),
+
+  which is the ratio of the joint target after and before the exchange. Pairs with even r
+  and pairs with odd r are attempted on alternate rounds (the pairs of one round are
+  disjoint, so they are exchanged in one vectorised gather).
+
+Both moves leave Π_r π_r invariant, so the β_0 replica samples |ψ|² exactly. Each
+:meth:`TemperingSampler.step` is one sweep of Metropolis proposals in every replica followed
+by one exchange round.
+
+States carry shape ``(n_replicas, n_chains, ...)``; the acceptance of every replica and the
+exchange rate of every neighbouring pair over the most recent :meth:`TemperingSampler.sample`
+call are kept in the state (``acceptance``, ``swap_rate``) for diagnostics.
+"""
+
+from __future__ import annotations
+
+from typing import Callable, NamedTuple, Sequence
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
+from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
+from psiloom.spaces import SpinSpace
+
+
+class TemperingState(NamedTuple):
+    x: jax.Array  # (R, C, N) configurations of every replica of every chain
+    log_amp: jax.Array  # (R, C) log ψ at x
+    parity: jax.Array  # () int32: which pair set (even r or odd r) the next exchange round tries
+    acceptance: jax.Array  # (R,) Metropolis acceptance per replica over the last sample() call
+    swap_rate: jax.Array  # (R−1,) accepted / attempted exchanges per pair over the last sample() call (nan: never tried)
+
+
+class TemperingInfo(NamedTuple):
+    acceptance: jax.Array  # (R,) mean Metropolis acceptance of each replica in this step
+    attempted: jax.Array  # (R−1,) bool: which neighbouring pairs were tried in this step
+    swapped: jax.Array  # (R−1, C) bool: which pairs of which chains were exchanged
+
+
+def geometric_betas(n_replicas: int, beta_min: float) -> np.ndarray:
+    """A geometric ladder β_r = beta_min^{r/(R−1)}, r = 0 … R−1 (β_0 = 1, β_{R−1} = beta_min)."""
+    n_replicas = _positive_int("n_replicas", n_replicas)
+    if not 0.0 < float(beta_min) < 1.0:
+        raise ValueError(f"beta_min must lie in (0, 1), got {beta_min!r}")
+    if n_replicas == 1:
+        return np.ones(1)
+    return float(beta_min) ** (np.arange(n_replicas) / (n_replicas - 1))
+
+
+def _check_betas(betas) -> np.ndarray:
+    try:
+        arr = np.asarray(betas, dtype=float).reshape(-1)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"betas must be a sequence of numbers, got {betas!r}") from err
+    if arr.size == 0:
+        raise ValueError("betas must hold at least one inverse temperature")
+    if not np.all(np.isfinite(arr)) or np.any(arr < 0.0) or np.any(arr > 1.0):
+        raise ValueError(f"every beta must lie in [0, 1], got {arr.tolist()}")
+    if arr[0] != 1.0:
+        raise ValueError(f"betas[0] must be 1 (the replica that samples |ψ|²), got {arr[0]}")
+    if np.any(np.diff(arr) >= 0.0):
+        raise ValueError(f"betas must decrease strictly, got {arr.tolist()}")
+    return arr
+
+
+def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
+    """Pure kernel ``step(key, x (R,C,N), log_amp (R,C), log_amplitude) -> (x, log_amp, accepted (R,C))``:
+    one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ))."""
+    betas = _check_betas(betas)
+
+    def step(key, x, log_amp, log_amplitude: LogAmplitudeFn):
+        r, c = log_amp.shape
+        k_prop, k_acc = jax.random.split(key)
+        flat = x.reshape(r * c, *x.shape[2:])
+        x_new = move(k_prop, flat)[0].reshape(x.shape)
+        log_new = log_amplitude(x_new.reshape(r * c, *x.shape[2:])).reshape(r, c)
+        beta = jnp.asarray(betas, dtype=jnp.real(log_new).dtype)[:, None]
+        log_ratio = 2.0 * beta * jnp.real(log_new - log_amp)
+        u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)
+        accept = jnp.log(u) < log_ratio
+        x = jnp.where(accept.reshape(r, c, *([1] * (x.ndim - 2))), x_new, x)
+        return x, jnp.where(accept, log_new, log_amp), accept
+
+    return step
+
+
+def replica_exchange(betas: Sequence[float]) -> Callable:
+    """Pure kernel ``exchange(key, x, log_amp, parity) -> (x, log_amp, attempted (R−1,), swapped (R−1,C))``:
+    one round of neighbour exchanges over the pairs (r, r+1) with r ≡ parity (mod 2)."""
+    betas = _check_betas(betas)
+    n_rep = len(betas)
+    dbeta = np.asarray(betas[:-1] - betas[1:])  # (R−1,) > 0
+
+    def exchange(key, x, log_amp, parity):
+        if n_rep == 1:
+            return x, log_amp, jnp.zeros((0,), bool), jnp.zeros((0, log_amp.shape[1]), bool)
+        ell = 2.0 * jnp.real(log_amp)  # (R, C)
+        log_acc = jnp.asarray(dbeta, ell.dtype)[:, None] * (ell[1:] - ell[:-1])  # (R−1, C)
+        attempted = (jnp.arange(n_rep - 1) % 2) == parity
+        u = jax.random.uniform(key, log_acc.shape, dtype=ell.dtype)
+        swapped = attempted[:, None] & (jnp.log(u) < log_acc)
+        s = swapped.astype(jnp.int32)
+        # replica r takes the configuration of r+1 if pair (r, r+1) swapped, of r−1 if (r−1, r) did
+        source = jnp.arange(n_rep)[:, None] + jnp.pad(s, ((0, 1), (0, 0))) - jnp.pad(s, ((1, 0), (0, 0)))
+        x = jnp.take_along_axis(x, source.reshape(*source.shape, *([1] * (x.ndim - 2))), axis=0)
+        log_amp = jnp.take_along_axis(log_amp, source, axis=0)
+        return x, log_amp, attempted, swapped
+
+    return exchange
+
+
+class TemperingSampler:
+    """Parallel tempering over ``len(betas)`` replicas of each of ``n_chains`` chains.
+
+    Args:
+        space: the configuration space.
+        n_chains: number of independent chains (each with one replica per β).
+        betas: inverse temperatures, ``betas[0] = 1`` then strictly decreasing to ≥ 0
+            (e.g. :func:`geometric_betas`).
+        move, bonds: the Metropolis proposal, chosen as in
+            :class:`~psiloom.sampling.MetropolisSampler`.
+        sweep: Metropolis proposals per replica between exchange rounds (default ``n_sites``);
+            one sweep plus one exchange round make a :meth:`step`, and samples are stored one
+            step apart.
+        burn_in: steps discarded at the start of every :meth:`sample` call.
+
+    :meth:`sample` returns the configurations of the β = 1 replica and its acceptance; the
+    acceptance per replica and the exchange rate per pair stay in the returned state.
+    """
+
+    def __init__(self, space: SpinSpace, n_chains: int = 16, betas: Sequence[float] = (1.0, 0.5),
+                 move: Move | None = None, bonds=None, sweep: int | None = None, burn_in: int = 0):
+        self.space = space
+        self.n_chains = _positive_int("n_chains", n_chains)
+        self.betas = _check_betas(betas)
+        self.n_replicas = len(self.betas)
+        self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
+        self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
+        if move is None:
+            if space.constrained:
+                move = bond_exchange(bonds) if bonds is not None else pair_exchange
+            else:
+                move = single_flip
+        elif move is single_flip and space.constrained:
+            raise ValueError(
+                f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
+                "use an exchange move"
+            )
+        self.move = move
+        self._metropolis = tempered_metropolis_step(move, self.betas)
+        self._exchange = replica_exchange(self.betas)
+
+    def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> TemperingState:
+        """Independent random configurations for every replica of every chain."""
+        r, c = self.n_replicas, self.n_chains
+        x = self.space.random(key, r * c)
+        log_amp = log_amplitude(x)
+        real = jnp.real(log_amp).dtype
+        return TemperingState(
+            x.reshape(r, c, *x.shape[1:]), log_amp.reshape(r, c), jnp.zeros((), jnp.int32),
+            jnp.zeros((r,), real), jnp.zeros((r - 1,), real),
+        )
+
+    def refresh(self, state: TemperingState, log_amplitude: LogAmplitudeFn) -> TemperingState:
+        """Recompute the cached log-amplitudes of all replicas (after the parameters changed)."""
+        r, c = state.log_amp.shape
+        flat = state.x.reshape(r * c, *state.x.shape[2:])
+        return state._replace(log_amp=log_amplitude(flat).reshape(r, c))
+
+    def step(self, key: jax.Array, state: TemperingState, log_amplitude: LogAmplitudeFn):
+        """One sweep of Metropolis proposals in every replica, then one exchange round."""
+        k_sweep, k_swap = jax.random.split(key)
+
+        def body(carry, k):
+            x, log_amp, acc = carry
+            x, log_amp, accepted = self._metropolis(k, x, log_amp, log_amplitude)
+            return (x, log_amp, acc + jnp.mean(accepted, axis=1)), None
+
+        real = jnp.real(state.log_amp).dtype
+        (x, log_amp, acc), _ = jax.lax.scan(
+            body, (state.x, state.log_amp, jnp.zeros((self.n_replicas,), real)), jax.random.split(k_sweep, self.sweep)
+        )
+        x, log_amp, attempted, swapped = self._exchange(k_swap, x, log_amp, state.parity)
+        new = state._replace(x=x, log_amp=log_amp, parity=1 - state.parity)
+        return new, TemperingInfo(acc / self.sweep, attempted, swapped)
+
+    def sample(self, key: jax.Array, state: TemperingState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
+        """Burn in, then store the β = 1 replica ``n_per_chain`` times, one :meth:`step` apart.
+
+        Returns ``(samples (n_per_chain, n_chains, N), log_amps (n_per_chain, n_chains), state,
+        acceptance)``; ``state.acceptance`` and ``state.swap_rate`` hold the per-replica
+        acceptance and per-pair exchange rate of the stored part.
+        """
+        n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        k_burn, k_run = jax.random.split(key)
+        if self.burn_in:
+            state, _ = jax.lax.scan(lambda s, k: (self.step(k, s, log_amplitude)[0], None), state,
+                                    jax.random.split(k_burn, self.burn_in))
+
+        def collect(st, k):
+            st, info = self.step(k, st, log_amplitude)
+            tried = info.attempted.astype(info.acceptance.dtype)
+            accepted = jnp.mean(info.swapped, axis=1).astype(info.acceptance.dtype)
+            return st, (st.x[0], st.log_amp[0], info.acceptance, tried, accepted)
+
+        state, (xs, logs, acc, tried, accepted) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
+        n_tried = jnp.sum(tried, axis=0)
+        swap_rate = jnp.where(n_tried > 0, jnp.sum(accepted, axis=0) / jnp.maximum(n_tried, 1.0), jnp.nan)
+        acceptance = jnp.mean(acc, axis=0)
+        state = state._replace(acceptance=acceptance, swap_rate=swap_rate)
+        return xs, logs, state, acceptance[0]

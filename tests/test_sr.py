@@ -1,0 +1,346 @@
+"""Stochastic reconfiguration solvers: dense, sample-space, matrix-free CG.
+
+Every check compares against an independent reference: the linear system
+(XᵀX + ε I + ε_rel diag XᵀX) δ = F solved with ``numpy.linalg.solve``, where X is built in
+numpy — from the closed-form RBM log-derivatives (Carleo & Troyer, Science 355, 602 (2017):
+∂_a log ψ = x, ∂_b log ψ = tanh θ, ∂_W log ψ = x tanh θ) or by central finite differences for a
+non-holomorphic network. The sample-space identity Xᵀ(XXᵀ + εI)⁻¹ = (XᵀX + εI)⁻¹Xᵀ is exact
+linear algebra (Chen & Heyl, Nat. Phys. 2024; Rende et al. 2024), so that form must agree with
+the dense one to rounding (~1e-10 in float64).
+"""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from hypothesis import given, strategies as st
+
+import psiloom as pl
+from psiloom.optimize import SampleGeometry, energy_gradient, ravel_real, stochastic_reconfiguration
+
+SOLVERS = ("dense", "sample_space", "cg", "auto")
+
+
+# ----------------------------------------------------------------------------- helpers
+class MatrixGeometry:
+    """A stand-in for SampleGeometry holding an explicit real X and residual (what SR reads)."""
+
+    def __init__(self, x, residual, complex_output=False):
+        self.x = jnp.asarray(x)
+        self.eps = jnp.asarray(residual)
+        self.complex_output = complex_output
+        self.n_samples = self.x.shape[0] // (2 if complex_output else 1)
+
+    def jacobian(self):
+        return self.x
+
+    def residual(self):
+        return self.eps
+
+    def s_matvec(self, v):
+        return self.x.T @ (self.x @ v)
+
+
+def numpy_sr(x, force, shift, rel=0.0):
+    x = np.asarray(x, np.float64)
+    s = x.T @ x
+    a = s + shift * np.eye(s.shape[0]) + rel * np.diag(np.diag(s))
+    return np.linalg.solve(a, np.asarray(force, np.float64))
+
+
+def apply_sr(solver, x, residual, force=None, shift=1e-2, rel=None, **kw):
+    """δ from the optax transformation for the gradient 2F (F = Xᵀε unless given)."""
+    geom = MatrixGeometry(x, residual)
+    if force is None:
+        force = np.asarray(x).T @ np.asarray(residual)
+    params = {"w": jnp.zeros(np.asarray(x).shape[1])}
+    tx = stochastic_reconfiguration(shift, solver, relative_shift=rel, **kw)
+    out, state = tx.update({"w": 2.0 * jnp.asarray(force)}, tx.init(params), params, geometry=geom)
+    return np.asarray(out["w"]), state
+
+
+def rbm_log_derivatives(params, x):
+    """Closed-form O = ∂ log ψ/∂(real parameters) of the RBM, in numpy, per parameter name.
+
+    log ψ = a·x + Σ_j log 2cosh θ_j, θ = xW + b (Carleo & Troyer 2017). For complex parameters
+    ψ is holomorphic in them, so ∂/∂Re p = O_p and ∂/∂Im p = i O_p.
+    """
+    p = {k: np.asarray(v) for k, v in params["params"].items()}
+    x = np.asarray(x, np.float64)
+    t = np.tanh(x @ p["kernel"] + p["hidden_bias"])  # (n, M)
+    o = {
+        "hidden_bias": t,
+        "kernel": (x[:, :, None] * t[:, None, :]).reshape(len(x), -1),
+        "visible_bias": x.astype(t.dtype),
+    }
+    cols, layout = [], []
+    for name in sorted(o):
+        cols.append(o[name])
+        layout.append((name, o[name].shape[1], np.iscomplexobj(p[name])))
+        if np.iscomplexobj(p[name]):
+            cols.append(1j * o[name])
+    return np.concatenate(cols, axis=1), layout
+
+
+def centred_x(o, complex_output):
+    n = o.shape[0]
+    d = (o - o.mean(axis=0)) / np.sqrt(n)
+    return np.concatenate([d.real, d.imag]) if complex_output else d.real
+
+
+def unpack(delta, layout, shapes):
+    """numpy real vector (ordered as in rbm_log_derivatives) → dict of leaves, Re + i Im."""
+    out, i = {}, 0
+    for name, size, is_complex in layout:
+        re = delta[i:i + size]
+        i += size
+        if is_complex:
+            out[name] = (re + 1j * delta[i:i + size]).reshape(shapes[name])
+            i += size
+        else:
+            out[name] = re.reshape(shapes[name])
+    return out
+
+
+# ----------------------------------------------------------------------------- solvers vs numpy
+@given(
+    n=st.integers(2, 12),
+    p=st.integers(1, 30),
+    shift=st.floats(1e-3, 1.0),
+    seed=st.integers(0, 2**16),
+)
+def test_all_solvers_match_numpy_solve(n, p, shift, seed):
+    # reference: numpy.linalg.solve of (XᵀX + εI) δ = Xᵀε (exact linear algebra)
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(n, p))
+    res = rng.normal(size=n)
+    ref = numpy_sr(x, x.T @ res, shift)
+    scale = np.linalg.norm(ref) + 1e-300
+    for solver in SOLVERS:
+        delta, _ = apply_sr(solver, x, res, shift=shift, tol=1e-13)
+        tol = 1e-8 if solver == "cg" else 1e-10  # cg: residual tolerance × condition number ≤ 1/ε·‖S‖
+        assert np.linalg.norm(delta - ref) <= tol * scale * max(1.0, np.linalg.norm(x) ** 2 / shift), solver
+
+
+@given(
+    n=st.integers(2, 10),
+    p=st.integers(1, 25),
+    shift=st.floats(1e-3, 0.5),
+    rel=st.floats(1e-3, 1.0),
+    seed=st.integers(0, 2**16),
+)
+def test_relative_shift_matches_numpy(n, p, shift, rel, seed):
+    # reference: numpy.linalg.solve of (S + εI + ε_rel diag S) δ = F, S = XᵀX
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(n, p))
+    res = rng.normal(size=n)
+    ref = numpy_sr(x, x.T @ res, shift, rel)
+    for solver in ("dense", "sample_space", "auto"):
+        delta, _ = apply_sr(solver, x, res, shift=shift, rel=rel)
+        np.testing.assert_allclose(delta, ref, rtol=1e-9, atol=1e-10 * np.abs(ref).max(), err_msg=solver)
+
+
+@given(n=st.integers(2, 10), p=st.integers(2, 30), factor=st.floats(-2.0, 2.0), seed=st.integers(0, 2**16))
+def test_sample_space_exact_for_any_incoming_gradient(n, p, factor, seed):
+    # an earlier transformation may rescale the gradient (e.g. clip_by_global_norm before SR):
+    # the output must still be (S + εI)⁻¹ F for the F received (numpy.linalg.solve reference)
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(n, p))
+    res = rng.normal(size=n)
+    force = factor * (x.T @ res) + 0.1 * rng.normal(size=p)
+    for rel in (None, 0.3):
+        ref = numpy_sr(x, force, 0.05, rel or 0.0)
+        delta, _ = apply_sr("sample_space", x, res, force=force, shift=0.05, rel=rel)
+        np.testing.assert_allclose(delta, ref, rtol=1e-8, atol=1e-9 * np.abs(ref).max())
+
+
+def test_sample_space_equals_dense_when_parameters_exceed_samples():
+    # P = 400 ≫ n = 24: identical in exact arithmetic (push-through identity), ~1e-10 in float64
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(24, 400)) / 5
+    res = rng.normal(size=24)
+    dense, _ = apply_sr("dense", x, res, shift=1e-4)
+    sample, _ = apply_sr("sample_space", x, res, shift=1e-4)
+    ref = numpy_sr(x, x.T @ res, 1e-4)
+    np.testing.assert_allclose(sample, dense, rtol=0, atol=1e-10 * np.abs(dense).max())
+    np.testing.assert_allclose(sample, ref, rtol=0, atol=1e-10 * np.abs(ref).max())
+
+
+def test_cg_respects_maxiter_and_warm_start():
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(30, 20))
+    res = rng.normal(size=30)
+    ref = numpy_sr(x, x.T @ res, 1e-3)
+    one, _ = apply_sr("cg", x, res, shift=1e-3, maxiter=1)
+    # one CG iteration from 0 is the steepest-descent step along F: δ₁ = (FᵀF / FᵀAF) F (textbook CG)
+    f = x.T @ res
+    a = x.T @ x + 1e-3 * np.eye(20)
+    np.testing.assert_allclose(one, (f @ f) / (f @ a @ f) * f, rtol=1e-10)
+    assert np.linalg.norm(one - ref) > 1e-3 * np.linalg.norm(ref)
+    # warm start: the state carries the previous δ; a second call starting there is converged
+    geom = MatrixGeometry(x, res)
+    params = {"w": jnp.zeros(20)}
+    tx = stochastic_reconfiguration(1e-3, "cg", warm_start=True, tol=1e-12)
+    state = tx.init(params)
+    out, state = tx.update({"w": 2 * jnp.asarray(f)}, state, params, geometry=geom)
+    np.testing.assert_allclose(np.asarray(state.previous), ref, rtol=1e-7)
+    tx1 = stochastic_reconfiguration(1e-3, "cg", warm_start=True, maxiter=1)
+    out1, _ = tx1.update({"w": 2 * jnp.asarray(f)}, state._replace(count=jnp.ones((), jnp.int32)), params,
+                         geometry=geom)
+    np.testing.assert_allclose(np.asarray(out1["w"]), ref, rtol=1e-6)
+
+
+def test_shift_schedule_is_followed():
+    # ε(t) from an optax schedule, checked against numpy.linalg.solve at each count
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(8, 12))
+    res = rng.normal(size=8)
+    f = x.T @ res
+    sched = optax.linear_schedule(1.0, 1e-2, transition_steps=2)
+    geom = MatrixGeometry(x, res)
+    params = {"w": jnp.zeros(12)}
+    for solver in ("dense", "sample_space", "cg"):
+        tx = stochastic_reconfiguration(sched, solver, tol=1e-13)
+        state = tx.init(params)
+        for t, eps in enumerate((1.0, 0.505, 1e-2, 1e-2)):
+            out, state = tx.update({"w": 2 * jnp.asarray(f)}, state, params, geometry=geom)
+            ref = numpy_sr(x, f, eps)
+            np.testing.assert_allclose(np.asarray(out["w"]), ref, rtol=1e-7, err_msg=f"{solver} t={t}")
+        assert int(state.count) == 4
+
+
+# ----------------------------------------------------------------------------- real trial states
+@pytest.fixture(scope="module")
+def rbm_batches():
+    space = pl.spaces.SpinSpace(6)
+    x = space.random(jax.random.PRNGKey(0), 16)
+    e_loc = jax.random.normal(jax.random.PRNGKey(2), (16,)) * 2.0 - 3.0
+    return x, e_loc
+
+
+@pytest.mark.parametrize("complex_params", [False, True])
+def test_rbm_sr_update_equals_closed_form_dense_solution(rbm_batches, complex_params):
+    # X from the closed-form RBM log-derivatives (Carleo & Troyer 2017), complex parameters split
+    # into (Re, Im) with ∂/∂Im = i ∂/∂Re (holomorphic ψ); F = Re⟨ΔO* ΔE⟩; numpy.linalg.solve.
+    x, e_loc = rbm_batches
+    if complex_params:
+        e_loc = e_loc + 0.5j * jnp.cos(jnp.arange(16.0))
+    model = pl.states.RBM(alpha=1, complex_params=complex_params, init_scale=0.4)
+    params = model.init(jax.random.PRNGKey(1), x)
+    o, layout = rbm_log_derivatives(params, x)
+    xm = centred_x(o, complex_params)
+    de = (np.asarray(e_loc) - np.asarray(e_loc).mean()) / np.sqrt(len(e_loc))
+    force = np.real(np.conj((o - o.mean(0)) / np.sqrt(len(o))).T @ de)
+    shapes = {k: v.shape for k, v in params["params"].items()}
+    for shift, rel in ((1e-3, None), (1e-2, 0.05)):
+        ref = unpack(numpy_sr(xm, force, shift, rel or 0.0), layout, shapes)
+        _, grad = energy_gradient(model.apply, params, x, e_loc)
+        for chunk in (None, 5):
+            geom = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk)
+            for solver in SOLVERS:
+                if solver == "cg" and rel is not None:
+                    continue
+                tx = stochastic_reconfiguration(shift, solver, relative_shift=rel, tol=1e-13)
+                out, _ = tx.update(grad, tx.init(params), params, geometry=geom)
+                for name, want in ref.items():
+                    got = np.asarray(out["params"][name])
+                    assert np.iscomplexobj(got) == complex_params
+                    np.testing.assert_allclose(got, want, rtol=1e-7, atol=1e-9 * np.abs(want).max(),
+                                               err_msg=f"{solver} {name} chunk={chunk}")
+
+
+def finite_difference_x(model, params, x, h=1e-5):
+    """X = [Re ΔO; Im ΔO]/√n by central differences of log ψ in each real parameter (numpy)."""
+    leaves, treedef = jax.tree_util.tree_flatten(params)
+    cols = []
+    for li, leaf in enumerate(leaves):
+        base = np.asarray(leaf)
+        for idx in np.ndindex(base.shape):
+            vals = []
+            for sign in (1, -1):
+                pert = base.copy()
+                pert[idx] += sign * h
+                new = list(leaves)
+                new[li] = jnp.asarray(pert)
+                vals.append(np.asarray(model.apply(jax.tree_util.tree_unflatten(treedef, new), x)))
+            cols.append((vals[0] - vals[1]) / (2 * h))
+    return np.stack(cols, axis=1)
+
+
+def test_non_holomorphic_state_real_split():
+    # FeedForward with a phase head: log ψ is a non-holomorphic (real-parameter, complex-valued)
+    # function. Reference X by central finite differences (numpy), solved with numpy.
+    model = pl.states.FeedForward(hidden=(1.0,), complex_output=True)
+    space = pl.spaces.SpinSpace(4)
+    x = space.random(jax.random.PRNGKey(3), 12)
+    params = model.init(jax.random.PRNGKey(4), x)
+    params = jax.tree_util.tree_map(lambda p: p * 3.0, params)  # leave the near-linear regime
+    e_loc = jax.random.normal(jax.random.PRNGKey(5), (12,)) + 0.3j * jax.random.normal(jax.random.PRNGKey(6), (12,))
+    o = finite_difference_x(model, params, x)
+    xm = centred_x(o, True)
+    de = (np.asarray(e_loc) - np.asarray(e_loc).mean()) / np.sqrt(12)
+    force = np.real(np.conj((o - o.mean(0)) / np.sqrt(12)).T @ de)
+    ref = numpy_sr(xm, force, 1e-2)
+    geom = SampleGeometry(model.apply, params, x, e_loc)
+    _, grad = energy_gradient(model.apply, params, x, e_loc)
+    # the force itself: psiloom's gradient / 2 equals the finite-difference covariance
+    # (real parameters: ravel order = leaf order, each leaf row-major, as in finite_difference_x)
+    np.testing.assert_allclose(np.asarray(ravel_real(grad)[0]) / 2, force, rtol=1e-6, atol=1e-9)
+    for solver in SOLVERS:
+        tx = stochastic_reconfiguration(1e-2, solver, tol=1e-13)
+        out, _ = tx.update(grad, tx.init(params), params, geometry=geom)
+        np.testing.assert_allclose(np.asarray(ravel_real(out)[0]), ref, rtol=1e-5,
+                                   atol=1e-7 * np.abs(ref).max(), err_msg=solver)
+
+
+def test_matrix_free_products_match_jacobian(rbm_batches):
+    # X v and Xᵀu without forming X agree with the explicit X (closed form, numpy), chunked or not
+    x, e_loc = rbm_batches
+    model = pl.states.RBM(alpha=1, complex_params=True, init_scale=0.4)
+    params = model.init(jax.random.PRNGKey(1), x)
+    o, layout = rbm_log_derivatives(params, x)
+    rng = np.random.default_rng(0)
+    for chunk in (None, 5):
+        geom = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk)
+        xm = np.asarray(geom.jacobian())
+        v = rng.normal(size=xm.shape[1])
+        u = rng.normal(size=xm.shape[0])
+        np.testing.assert_allclose(np.asarray(geom.jvp(v)), xm @ v, atol=1e-12)
+        np.testing.assert_allclose(np.asarray(geom.vjp(u)), xm.T @ u, atol=1e-12)
+        np.testing.assert_allclose(np.asarray(geom.s_matvec(v)), xm.T @ (xm @ v), atol=1e-12)
+    # and the explicit X itself equals the closed form up to column order (compare S spectra)
+    s_ref = np.linalg.eigvalsh(centred_x(o, True).T @ centred_x(o, True))
+    np.testing.assert_allclose(np.linalg.eigvalsh(xm.T @ xm), s_ref, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- input validation
+@given(bad=st.sampled_from(["lu", "", "Dense", "svd"]))
+def test_unknown_solver_rejected(bad):
+    with pytest.raises(ValueError, match=repr(bad).replace("(", r"\(")):
+        stochastic_reconfiguration(1e-3, bad)
+
+
+@given(shift=st.one_of(st.floats(max_value=-1e-12), st.just(float("nan"))))
+def test_negative_or_nan_shift_rejected(shift):
+    with pytest.raises(ValueError, match="shift"):
+        stochastic_reconfiguration(shift)
+    with pytest.raises(ValueError, match="relative_shift"):
+        stochastic_reconfiguration(1e-3, relative_shift=shift)
+
+
+def test_other_bad_options_rejected():
+    with pytest.raises(ValueError, match="cg"):
+        stochastic_reconfiguration(1e-3, "cg", relative_shift=0.1)
+    with pytest.raises(ValueError, match="maxiter"):
+        stochastic_reconfiguration(1e-3, "cg", maxiter=0)
+    with pytest.raises(ValueError, match="tol"):
+        stochastic_reconfiguration(1e-3, "cg", tol=-1.0)
+    with pytest.raises(ValueError, match="shift"):
+        stochastic_reconfiguration("big")
+    tx = stochastic_reconfiguration(1e-3)
+    params = {"w": jnp.zeros(3)}
+    with pytest.raises(ValueError, match="geometry"):
+        tx.update(params, tx.init(params), params)
