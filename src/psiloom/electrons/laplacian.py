@@ -112,6 +112,14 @@ class _Jet(NamedTuple):
     l: jax.Array
 
 
+def _bind_params(prim, params):
+    """``(subfuns, params)`` for ``prim.bind`` across JAX versions."""
+    out = _bind_params(prim, params)
+    if isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], (list, tuple)):
+        return list(out[0]), out[1]
+    return [], out
+
+
 def _is_jet(a) -> bool:
     return isinstance(a, _Jet)
 
@@ -143,7 +151,7 @@ def _eval_jaxpr(jaxpr, consts, args):
         if any(_is_jet(a) for a in ins):
             outs = _apply_rule(eqn, ins)
         else:
-            subfuns, params = eqn.primitive.get_bind_params(eqn.params)
+            subfuns, params = _bind_params(eqn.primitive, eqn.params)
             outs = eqn.primitive.bind(*subfuns, *ins, **params)
         if not eqn.primitive.multiple_results:
             outs = [outs]
@@ -199,7 +207,7 @@ def _apply_rule(eqn, ins):
                 outs = _eval_jaxpr(sub, [], ins)
             return outs if prim.multiple_results else outs[0]
     if name in _ZERO_DERIVATIVE or not any(float_outs):
-        subfuns, bparams = prim.get_bind_params(params)
+        subfuns, bparams = _bind_params(prim, params)
         return prim.bind(*subfuns, *[_value(a) for a in ins], **bparams)
     if name == "convert_element_type":
         if not float_outs[0]:
@@ -287,7 +295,7 @@ def _generic(eqn, ins):
     derivative along each column ∂_k y.
     """
     prim = eqn.primitive
-    subfuns, bparams = prim.get_bind_params(eqn.params)
+    subfuns, bparams = _bind_params(prim, eqn.params)
     values = [_value(a) for a in ins]
     jet_idx = [i for i, a in enumerate(ins) if _is_jet(a)]
     float_outs = [k for k, var in enumerate(eqn.outvars) if _inexact(var.aval)]
