@@ -267,15 +267,15 @@ def test_basis_order_convention():
     assert states[-1].tolist() == [1, 1, 1]
 
 
-@given(st.integers(1, 16), st.data(), st.integers(0, 2**31 - 1))
-def test_random_configurations_valid_and_in_sector(n, data, seed):
-    constrained = data.draw(st.booleans())
-    total_sz = data.draw(st.integers(0, n)) - n / 2 if constrained else None
+@pytest.mark.parametrize("n,total_sz", [(1, None), (9, None), (10, 0), (7, 1.5)])
+@given(seed=st.integers(0, 2**31 - 1))
+def test_random_configurations_valid_and_in_sector(n, total_sz, seed):
+    # hypothesis draws only the seed: a new shape would recompile for every example
     space = SpinSpace(n, total_sz=total_sz)
     x = np.asarray(space.random(jax.random.PRNGKey(seed), 7))
     assert x.shape == (7, n)
     assert np.all(np.abs(x) == 1)
-    if constrained:
+    if total_sz is not None:
         assert np.all(x.sum(axis=1) == 2 * total_sz)
     assert np.all(space.contains(x))
 

@@ -37,6 +37,8 @@ class SpinSpace:
         object.__setattr__(self, "n_sites", int(n))
         if self.total_sz is not None:
             sz = float(self.total_sz)
+            if not np.isfinite(sz):
+                raise ValueError(f"total_sz must be finite, got {self.total_sz!r}")
             n_up = n / 2 + sz
             if abs(n_up - round(n_up)) > 1e-12:
                 parity = "odd" if n % 2 else "even"

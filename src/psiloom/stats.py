@@ -303,7 +303,8 @@ def _split_rhat(values: jax.Array) -> jax.Array:
     median = 0.5 * (ordered[(size - 1) // 2] + ordered[size // 2])
     bulk = _rhat_of_chains(_normal_scores(split, ordered))
     folded = _rhat_of_chains(_normal_scores(jnp.abs(split - median)))
-    return jnp.maximum(bulk, folded)
+    # fmax: chains frozen in different modes give bulk = inf and folded = 0/0 = nan; keep the inf
+    return jnp.fmax(bulk, folded)
 
 
 def estimate(values) -> Estimate:

@@ -114,7 +114,7 @@ class _Jet(NamedTuple):
 
 def _bind_params(prim, params):
     """``(subfuns, params)`` for ``prim.bind`` across JAX versions."""
-    out = _bind_params(prim, params)
+    out = prim.get_bind_params(params)
     if isinstance(out, tuple) and len(out) == 2 and isinstance(out[0], (list, tuple)):
         return list(out[0]), out[1]
     return [], out

@@ -111,13 +111,15 @@ class SampleGeometry:
         return blocks.reshape(-1) / jnp.sqrt(self.n_samples)
 
     def _linearized(self):
-        """``(f_jvp, f_vjp)`` of θ ↦ real outputs at the current parameters, built once per trace."""
-        if getattr(self, "_lin", None) is None:
-            f = lambda v: self._real_outputs(v, self.x)
-            _, f_jvp = jax.linearize(f, self.param_vector)
-            f_vjp = jax.linear_transpose(f_jvp, self.param_vector)
-            self._lin = (f_jvp, lambda u: f_vjp(u)[0])
-        return self._lin
+        """``(f_jvp, f_vjp)`` of θ ↦ real outputs at the current parameters.
+
+        Built afresh on each call (a cached linearisation would leak tracers between traces);
+        :meth:`s_operator` builds it once and reuses it for every product.
+        """
+        f = lambda v: self._real_outputs(v, self.x)
+        _, f_jvp = jax.linearize(f, self.param_vector)
+        f_vjp = jax.linear_transpose(f_jvp, self.param_vector)
+        return f_jvp, lambda u: f_vjp(u)[0]
 
     def _chunked_rows(self, a, fill):
         """Split the sample axis into ``(n_chunks, chunk, ...)`` blocks, padding with ``fill`` rows."""
@@ -166,6 +168,20 @@ class SampleGeometry:
     def s_matvec(self, v: jax.Array) -> jax.Array:
         """S v = Xᵀ (X v) without forming X or S."""
         return self.vjp(self.jvp(v))
+
+    def s_operator(self) -> Callable[[jax.Array], jax.Array]:
+        """``v ↦ S v`` for repeated use (iterative solvers): linearises log ψ once, up front.
+
+        Without chunking the forward pass is linearised here and each product costs one jvp and
+        one transposed jvp; with chunking every product re-runs the forward pass chunk by chunk
+        (memory bounded by one chunk).
+        """
+        if self._chunked():
+            return self.s_matvec
+        f_jvp, f_vjp = self._linearized()
+        dtype = self.param_vector.dtype
+        # X v = C(J v)/√n and Xᵀu = Jᵀ C(u)/√n with C the (idempotent) centring
+        return lambda v: f_vjp(self._centre(self._centre(f_jvp(jnp.asarray(v, dtype)))))
 
     def s_diagonal(self) -> jax.Array:
         """diag S = Σ_rows X², shape ``(P,)`` (forms X)."""

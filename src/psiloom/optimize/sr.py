@@ -31,7 +31,7 @@ Solvers (the ``solver`` option; all give the same δ up to rounding or the CG to
     With a relative shift the same is done for X̃ = X Λ^{-1/2}.
 ``"cg"``
     Matrix-free conjugate gradient (jax.scipy.sparse.linalg.cg) with S v = Xᵀ(X v) applied by a
-    jvp and a vjp of the log-amplitude (:meth:`SampleGeometry.s_matvec`): neither X nor S is
+    jvp and a vjp of the log-amplitude (:meth:`SampleGeometry.s_operator`): neither X nor S is
     formed, memory O(P + n). Options ``tol``, ``atol``, ``maxiter`` and ``warm_start`` (start
     from the previous step's δ). Only the absolute shift is available (diag S needs X).
 ``"auto"``
@@ -162,7 +162,8 @@ def stochastic_reconfiguration(
 
         previous = state.previous
         if kind == "cg":
-            matvec = lambda v: geometry.s_matvec(v) + eps * v
+            s_op = geometry.s_operator()
+            matvec = lambda v: s_op(v) + eps * v
             x0 = previous if use_previous else None
             delta, _ = jax.scipy.sparse.linalg.cg(matvec, force, x0=x0, tol=tol, atol=atol, maxiter=maxiter)
             if use_previous:

@@ -8,22 +8,56 @@ With visible spins ``x_i = ±1`` and ``M = α·N`` hidden units ``h_j = ±1``,
 so ``log ψ(x) = a·x + Σ_j log(2 cosh θ_j)``. With complex parameters ψ carries a phase.
 ``log(2 cosh z)`` is evaluated stably for complex ``z`` as ``w + log1p(exp(−2w))`` with
 ``w = ±z`` chosen so that ``Re w ≥ 0``.
+
+Fast updates (:mod:`psiloom.states.fast`). Changing spins at sites ``s_k`` by
+``δ_k = x'_{s_k} − x_{s_k} ∈ {0, ±2}`` shifts ``θ`` by ``d = Σ_k δ_k W_{s_k}``, and
+
+    ψ(x')/ψ(x) = exp(a·(x' − x)) Π_j cosh(θ_j + d_j) / cosh θ_j
+               = exp(a·(x' − x)) Π_j ½ [u⁺_j e^{d_j} + u⁻_j e^{−d_j}],   u^± = 1 ± tanh θ .
+
+The cache of a configuration holds ``θ`` and ``u^±`` (the latter computed without
+cancellation as 2/(1 + e^{∓2θ})); ``e^{±d_j}`` is a product of rows of the tables
+``exp(±2W)`` computed once per parameter set. An update therefore costs O(K·M)
+multiplications plus one logarithm per eight hidden units — no exponential per unit — and
+the cache follows exactly: ``θ' = θ + d`` and ``u^±' = u^± e^{±d} / r`` with ``r`` the
+per-unit ratio above (so that ``u⁺' + u⁻' = 2``). For real parameters every term is
+positive, so the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the
+sites of one change distinct; the tables overflow only for ``|W| > 354``.
 """
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, NamedTuple
 
+import jax
 import jax.numpy as jnp
 import flax.linen as nn
 
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+from psiloom.states.fast import FastUpdates, log_product, values_at
 
 
 def log_two_cosh(z):
     """``log(2 cosh z)`` for real or complex ``z``, without overflow."""
     w = jnp.where(jnp.real(z) < 0, -z, z)
     return w + jnp.log1p(jnp.exp(-2.0 * w))
+
+
+class RBMCache(NamedTuple):
+    """Per-sample cache of the RBM fast updates (leading axis: samples)."""
+
+    theta: jax.Array  # (n, M) hidden pre-activations θ = xW + b
+    plus: jax.Array  # (n, M) 1 + tanh θ
+    minus: jax.Array  # (n, M) 1 − tanh θ
+
+
+def _one_plus_minus_tanh(theta):
+    """``(1 + tanh θ, 1 − tanh θ)`` without cancellation, for real or complex ``θ``."""
+    positive = jnp.real(theta) >= 0
+    q = jnp.exp(-2.0 * jnp.where(positive, theta, -theta))  # |q| ≤ 1
+    big = 2.0 / (1.0 + q)
+    small = big * q
+    return jnp.where(positive, big, small), jnp.where(positive, small, big)
 
 
 class RBM(TrialState):
@@ -70,3 +104,48 @@ class RBM(TrialState):
             a = self.param("visible_bias", nn.initializers.normal(self.init_scale), (x.shape[-1],), self._dtype())
             out = out + x.astype(a.dtype) @ a
         return out
+
+    def fast_updates(self) -> FastUpdates:
+        """Fast-update functions (see the module docstring); call via
+        ``model.apply(variables, method="fast_updates")`` or :func:`psiloom.states.bind_amplitude`."""
+        params = self.variables["params"]
+        kernel = params["kernel"]
+        hidden = params.get("hidden_bias") if self.hidden_bias else None
+        visible = params.get("visible_bias") if self.visible_bias else None
+        rise = jnp.exp(2.0 * kernel)  # e^{d} for a spin going −1 → +1 (δ = +2)
+        fall = jnp.exp(-2.0 * kernel)  # e^{d} for a spin going +1 → −1 (δ = −2)
+
+        def init(x):
+            theta = x.astype(kernel.dtype) @ kernel
+            if hidden is not None:
+                theta = theta + hidden
+            return RBMCache(theta, *_one_plus_minus_tanh(theta))
+
+        def update(x, cache: RBMCache, sites, new_values):
+            sites = jnp.asarray(sites)
+            valid = sites >= 0
+            idx = jnp.where(valid, sites, 0)
+            dv = jnp.where(valid, new_values - values_at(x, sites), 0).astype(x.dtype)  # (n, K)
+            w_rows, up_rows, down_rows = kernel[idx], rise[idx], fall[idx]  # (K, M) or (n, K, M)
+            e_plus = e_minus = None
+            d_theta = jnp.zeros_like(cache.theta)
+            delta = jnp.zeros(dv.shape[:1], cache.theta.dtype)
+            for k in range(dv.shape[1]):
+                up = (dv[:, k] > 0)[:, None]
+                down = (dv[:, k] < 0)[:, None]
+                f_plus = jnp.where(up, up_rows[..., k, :], jnp.where(down, down_rows[..., k, :], 1.0))
+                f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
+                e_plus = f_plus if e_plus is None else e_plus * f_plus
+                e_minus = f_minus if e_minus is None else e_minus * f_minus
+                d_theta = d_theta + dv[:, k, None] * w_rows[..., k, :]
+                if visible is not None:
+                    delta = delta + dv[:, k] * visible[idx[..., k]]
+            if e_plus is None:  # K = 0: nothing changes
+                return delta, cache
+            ratio = 0.5 * (cache.plus * e_plus + cache.minus * e_minus)  # cosh(θ + d) / cosh θ
+            delta = delta + log_product(ratio)
+            inv = 1.0 / ratio
+            new = RBMCache(cache.theta + d_theta, cache.plus * e_plus * inv, cache.minus * e_minus * inv)
+            return delta, new
+
+        return FastUpdates(init, update)

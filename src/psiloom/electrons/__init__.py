@@ -1,0 +1,37 @@
+"""Electrons in continuous space: atoms and molecules with neural determinant trial states.
+
+Data flow, as on the lattice side:
+
+    system (nuclei, n_up, n_down) → trial state (log|ψ|, sign) → ElectronSampler (|ψ|²)
+        → CoulombHamiltonian (local energy: kinetic + potential) → stats → optimize → train
+
+Units: bohr and hartree. Configurations have shape ``(n_samples, n_electrons, 3)``, the first
+``n_up`` electrons spin-up. Trial states return real log|ψ|; ``sign_and_log`` gives the sign.
+The optional Hartree-Fock start (:mod:`psiloom.electrons.pretrain`) needs PySCF.
+"""
+
+from psiloom.electrons.base import ElectronState
+from psiloom.electrons.basis import BasisFunction, aufbau_guess, default_basis
+from psiloom.electrons.determinants import (
+    SlaterJastrow,
+    neural_slater_jastrow,
+    signed_log_det,
+    signed_log_sum_exp,
+    slater_jastrow,
+)
+from psiloom.electrons.features import MomentMixer
+from psiloom.electrons.hamiltonian import CoulombHamiltonian, EnergyParts, kinetic_energy, potential_energy
+from psiloom.electrons.jastrow import CuspJastrow, NeuralJastrow
+from psiloom.electrons.laplacian import forward_laplacian, hessian_laplacian, value_grad_laplacian
+from psiloom.electrons.orbitals import NeuralOrbitals, SlaterTypeOrbitals
+from psiloom.electrons.sampler import ElectronSampler, WalkerState
+from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, molecule
+
+__all__ = [
+    "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "SlaterJastrow",
+    "neural_slater_jastrow", "signed_log_det", "signed_log_sum_exp", "slater_jastrow", "MomentMixer",
+    "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
+    "NeuralJastrow", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "NeuralOrbitals",
+    "SlaterTypeOrbitals", "ElectronSampler", "WalkerState", "BOHR_PER_ANGSTROM", "Molecule", "atom",
+    "molecule",
+]

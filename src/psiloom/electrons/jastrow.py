@@ -1,0 +1,129 @@
+"""Jastrow factors: symmetric multiplicative correlation terms ψ = e^{J(x)} · (determinants).
+
+:class:`CuspJastrow` fixes the Kato cusp conditions (Kato 1957) exactly:
+
+    J_cusp = Σ_{i<j} a_ij r_ij / (1 + r_ij / b_ij)  −  Σ_{i,I} Z_I r_iI / (1 + r_iI / c_I),
+
+    a_ij = 1/2 for antiparallel spins, 1/4 for parallel spins (fixed), b_ij > 0 learned
+    (one length for each spin pairing), c_I > 0 learned per nucleus.
+
+Since ∂/∂r [a r/(1 + r/b)] = a at r = 0 whatever b is, the spherically averaged logarithmic
+derivative of ψ at a coalescence is +1/2 (antiparallel), +1/4 (parallel) and −Z_I
+(electron–nucleus) provided the rest of ψ is smooth there, as psiloom's cusp-free orbitals are.
+Each term saturates at large distances (a·b, −Z_I c_I), so the orbitals set the decay.
+
+:class:`NeuralJastrow` adds a learnable symmetric part built from smooth features only (it
+leaves the cusps alone): electron–electron–nucleus pair terms and one-electron terms,
+
+    J_nn = Σ_{i<j} F(ρ_ij, s_ij, {ρ_iI + ρ_jI, ρ_iI ρ_jI}_I) + Σ_i G({ρ_iI}_I, s_i),
+
+with ρ the softened distances of :mod:`psiloom.electrons.features`, s_ij = s_i s_j the spin
+pairing, F and G small tanh networks whose last layers start at zero (so J_nn = 0 initially).
+Both factors are symmetric under exchanging any two same-spin electrons.
+"""
+
+from __future__ import annotations
+
+import flax.linen as nn
+import jax.numpy as jnp
+import numpy as np
+
+from psiloom.electrons.features import electron_electron, electron_nuclear, safe_distance, soft_distance, spin_signs
+from psiloom.electrons.system import Molecule
+
+
+def _inverse_softplus(y):
+    return np.log(np.expm1(np.asarray(y, dtype=np.float64)))
+
+
+def cusp_coefficients(system: Molecule, dtype=jnp.float64):
+    """``(N, N)`` matrix of a_ij: 1/4 for parallel, 1/2 for antiparallel spins (diagonal 0)."""
+    s = spin_signs(system, dtype)
+    same = s[:, None] * s[None, :] > 0
+    a = jnp.where(same, 0.25, 0.5)
+    return a * (1.0 - jnp.eye(system.n_electrons, dtype=dtype))
+
+
+class CuspJastrow(nn.Module):
+    """Cusp-exact Jastrow factor ``J_cusp`` (see module docstring); returns J of shape ``(B,)``.
+
+    Attributes:
+        system: the molecule.
+        nuclear: include the electron–nucleus term (set False when the orbitals carry the
+            nuclear cusp themselves, e.g. plain Slater "s" functions).
+        electronic: include the electron–electron term.
+    """
+
+    system: Molecule
+    nuclear: bool = True
+    electronic: bool = True
+
+    @nn.compact
+    def __call__(self, x):
+        dtype = x.dtype
+        sys_ = self.system
+        total = jnp.zeros(x.shape[:-2], dtype)
+        if self.electronic and sys_.n_electrons > 1:
+            lengths = nn.softplus(self.param("ee_length", lambda k: jnp.asarray(_inverse_softplus([1.0, 1.0]), dtype)))
+            s = spin_signs(sys_, dtype)
+            same = s[:, None] * s[None, :] > 0
+            b = jnp.where(same, lengths[0], lengths[1])
+            _, r2 = electron_electron(x)
+            r = safe_distance(r2)
+            a = cusp_coefficients(sys_, dtype)
+            total = total + 0.5 * jnp.sum(a * r / (1.0 + r / b), axis=(-2, -1))
+        if self.nuclear:
+            z = jnp.asarray(sys_.charges, dtype)
+            c = nn.softplus(self.param("en_length", lambda k: jnp.asarray(_inverse_softplus(1.0 / sys_.charges), dtype)))
+            _, r2 = electron_nuclear(x, sys_.positions)
+            r = safe_distance(r2)
+            total = total - jnp.sum(z * r / (1.0 + r / c), axis=(-2, -1))
+        return total
+
+
+class NeuralJastrow(nn.Module):
+    """Learnable smooth symmetric Jastrow term ``J_nn`` (see module docstring); shape ``(B,)``.
+
+    Attributes:
+        system: the molecule.
+        width: hidden width of the pair and one-electron networks.
+        layers: hidden layers of each network.
+        softening: λ (bohr) of the softened distances.
+    """
+
+    system: Molecule
+    width: int = 16
+    layers: int = 2
+    softening: float = 1.0
+
+    def _mlp(self, inputs, name):
+        h = inputs
+        for k in range(self.layers):
+            h = jnp.tanh(nn.Dense(self.width, name=f"{name}_{k}", param_dtype=inputs.dtype)(h))
+        out = nn.Dense(1, name=f"{name}_out", kernel_init=nn.initializers.zeros, param_dtype=inputs.dtype)(h)
+        return out[..., 0]
+
+    @nn.compact
+    def __call__(self, x):
+        dtype = x.dtype
+        sys_ = self.system
+        n = sys_.n_electrons
+        lam = self.softening
+        _, r2n = electron_nuclear(x, sys_.positions)
+        rho_n = soft_distance(r2n, lam)  # (B, N, M)
+        spins = spin_signs(sys_, dtype)
+        b = x.shape[0]
+        one = jnp.concatenate([jnp.exp(-rho_n), rho_n / (1.0 + rho_n),
+                               jnp.broadcast_to(spins[:, None], (b, n, 1))], axis=-1)
+        total = jnp.sum(self._mlp(one, "one"), axis=-1)
+        if n > 1:
+            _, r2 = electron_electron(x)
+            rho = soft_distance(r2, lam)[..., None]  # (B, N, N, 1)
+            same = jnp.broadcast_to((spins[:, None] * spins[None, :])[None, :, :, None], rho.shape)
+            sum_n = rho_n[:, :, None, :] + rho_n[:, None, :, :]
+            prod_n = rho_n[:, :, None, :] * rho_n[:, None, :, :]
+            pair = jnp.concatenate([jnp.exp(-rho), rho / (1.0 + rho), same,
+                                    jnp.exp(-0.5 * sum_n), prod_n / (1.0 + prod_n)], axis=-1)
+            upper = jnp.triu(jnp.ones((n, n), dtype), k=1)
+            total = total + jnp.sum(self._mlp(pair, "pair") * upper, axis=(-2, -1))
+        return total

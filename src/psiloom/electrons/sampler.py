@@ -1,0 +1,171 @@
+"""Metropolis sampling of |ψ(x)|² for electrons in R^{3N}.
+
+Proposals are symmetric Gaussian displacements (bohr):
+
+    all-electron move:   x' = x + σ ξ,          ξ ~ N(0, 1)^{N×3}
+    one-electron move:   r_i' = r_i + σ ξ_i      (electron i; the others stay)
+
+accepted with probability min(1, |ψ(x')/ψ(x)|²) = min(1, exp(2 [log|ψ(x')| − log|ψ(x)|])).
+
+The step size σ is part of the chain state. During burn-in sweeps it is adapted toward a
+target acceptance rate (default 0.5, common practice) by σ ← σ · exp(a − a*), a the acceptance
+of the last sweep; it is held fixed while samples are stored, so stored samples come from a
+fixed Metropolis kernel.
+
+:class:`ElectronSampler` offers the interface that :class:`psiloom.train.GroundStateSearch`
+expects (``space``, ``n_chains``, ``init``, ``refresh``, ``sample``). Walkers start around the
+nuclei, shared out by nuclear charge (:meth:`psiloom.electrons.Molecule.random`), and are
+equilibrated with adaptation by ``init``. Samples come out as ``(n_per_chain, n_chains, N, 3)``.
+"""
+
+from __future__ import annotations
+
+from typing import Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from psiloom.electrons.system import Molecule
+from psiloom.reduce import sample_mean
+
+LogAmplitudeFn = Callable[[jax.Array], jax.Array]
+MOVES = ("all", "one")
+
+
+class WalkerState(NamedTuple):
+    x: jax.Array  # (n_chains, N, 3) current configurations (bohr)
+    log_amp: jax.Array  # (n_chains,) log|ψ| at x
+    step_size: jax.Array  # () Gaussian proposal width σ (bohr)
+
+
+class StepInfo(NamedTuple):
+    accepted: jax.Array  # (n_chains,) bool
+    log_ratio: jax.Array  # (n_chains,) 2 [log|ψ(x')| − log|ψ(x)|]
+
+
+def metropolis_update(key, state: WalkerState, log_amplitude: LogAmplitudeFn, electron=None):
+    """One Gaussian proposal per chain (all electrons, or only ``electron`` if given)."""
+    k_prop, k_acc = jax.random.split(key)
+    noise = state.step_size * jax.random.normal(k_prop, state.x.shape, state.x.dtype)
+    if electron is not None:
+        mask = (jnp.arange(state.x.shape[1]) == electron).astype(state.x.dtype)
+        noise = noise * mask[None, :, None]
+    x_new = state.x + noise
+    log_new = log_amplitude(x_new)
+    log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
+    u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)
+    accept = jnp.log(u) < log_ratio
+    x = jnp.where(accept[:, None, None], x_new, state.x)
+    log_amp = jnp.where(accept, log_new, state.log_amp)
+    return WalkerState(x, log_amp, state.step_size), StepInfo(accept, log_ratio)
+
+
+def _integer(name, value, minimum):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}")
+    return int(value)
+
+
+class ElectronSampler:
+    """Metropolis walkers for an electronic system (see module docstring).
+
+    Args:
+        system: the molecule (also the sampler's ``space``: it draws starting walkers).
+        n_chains: number of walkers moved in parallel.
+        move: ``"all"`` (all-electron Gaussian moves) or ``"one"`` (one electron at a time,
+            cycling through the electrons).
+        step_size: initial proposal width σ in bohr.
+        sweep: proposals between stored samples (default 10 for ``"all"``, 2N for ``"one"``).
+        burn_in: sweeps (with step-size adaptation) at the start of every :meth:`sample` call.
+        equilibrate: sweeps (with adaptation) run by :meth:`init` from the initial placement.
+        target_acceptance: acceptance rate the step size is adapted toward.
+        init_width: spread (bohr) of the initial walkers around their nuclei.
+    """
+
+    def __init__(self, system: Molecule, n_chains: int = 64, move: str = "all", step_size: float = 0.3,
+                 sweep: int | None = None, burn_in: int = 5, equilibrate: int = 100,
+                 target_acceptance: float = 0.5, init_width: float = 1.0):
+        if not isinstance(system, Molecule):
+            raise ValueError(f"system must be a psiloom.electrons.Molecule, got {type(system).__name__}")
+        if move not in MOVES:
+            raise ValueError(f"unknown move {move!r}; available: {', '.join(MOVES)}")
+        if not (isinstance(step_size, (int, float)) and step_size > 0):
+            raise ValueError(f"step_size must be a positive number (bohr), got {step_size!r}")
+        if not 0.0 < float(target_acceptance) < 1.0:
+            raise ValueError(f"target_acceptance must lie in (0, 1), got {target_acceptance!r}")
+        if not init_width > 0:
+            raise ValueError(f"init_width must be > 0, got {init_width!r}")
+        self.system = system
+        self.space = system
+        self.n_chains = _integer("n_chains", n_chains, 1)
+        self.move = move
+        self.step_size = float(step_size)
+        n = system.n_electrons
+        default_sweep = 10 if move == "all" else 2 * n
+        self.sweep = default_sweep if sweep is None else _integer("sweep", sweep, 1)
+        self.burn_in = _integer("burn_in", burn_in, 0)
+        self.equilibrate = _integer("equilibrate", equilibrate, 0)
+        self.target_acceptance = float(target_acceptance)
+        self.init_width = float(init_width)
+
+    # ------------------------------------------------------------------ kernels
+    def step(self, key, state: WalkerState, log_amplitude: LogAmplitudeFn, electron=None):
+        """One proposal per chain: ``(state, StepInfo)``."""
+        return metropolis_update(key, state, log_amplitude, electron)
+
+    def _sweep(self, key, state, log_amplitude):
+        n = self.system.n_electrons
+
+        def body(carry, inputs):
+            st, acc = carry
+            k, i = inputs
+            electron = (i % n) if self.move == "one" else None
+            st, info = metropolis_update(k, st, log_amplitude, electron)
+            return (st, acc + sample_mean(info.accepted.astype(st.x.dtype))), None
+
+        keys = jax.random.split(key, self.sweep)
+        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), state.x.dtype)), (keys, jnp.arange(self.sweep)))
+        return state, acc / self.sweep
+
+    def _adaptive_sweeps(self, key, state, log_amplitude, n_sweeps):
+        target = self.target_acceptance
+
+        def body(st, k):
+            st, acc = self._sweep(k, st, log_amplitude)
+            sigma = jnp.clip(st.step_size * jnp.exp(acc - target), 1e-3, 10.0)
+            return WalkerState(st.x, st.log_amp, sigma), acc
+
+        return jax.lax.scan(body, state, jax.random.split(key, n_sweeps))
+
+    # ------------------------------------------------------------------ interface
+    def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
+        """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps."""
+        k_pos, k_eq = jax.random.split(key)
+        x = self.system.random(k_pos, self.n_chains, self.init_width)
+        state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
+        if self.equilibrate:
+            state, _ = self._adaptive_sweeps(k_eq, state, log_amplitude, self.equilibrate)
+        return state
+
+    def refresh(self, state: WalkerState, log_amplitude: LogAmplitudeFn) -> WalkerState:
+        """Recompute the cached log|ψ| after a parameter update."""
+        return WalkerState(state.x, log_amplitude(state.x), state.step_size)
+
+    def sample(self, key: jax.Array, state: WalkerState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
+        """Adaptive burn-in, then ``n_per_chain`` samples per chain one sweep apart.
+
+        Returns ``(samples (T, C, N, 3), log_amps (T, C), state, acceptance)``, the
+        acceptance averaged over the stored part.
+        """
+        n_per_chain = _integer("n_per_chain", n_per_chain, 1)
+        k_burn, k_run = jax.random.split(key)
+        if self.burn_in:
+            state, _ = self._adaptive_sweeps(k_burn, state, log_amplitude, self.burn_in)
+
+        def collect(st, k):
+            st, acc = self._sweep(k, st, log_amplitude)
+            return st, (st.x, st.log_amp, acc)
+
+        state, (xs, logs, acc) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
+        return xs, logs, state, jnp.mean(acc)

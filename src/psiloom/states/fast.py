@@ -1,0 +1,136 @@
+"""Fast amplitude updates: the protocol a trial state may implement, and its binding.
+
+Metropolis proposals and the connected configurations of a local energy change only a few
+sites of ``x``. A trial state that can evaluate
+
+    Δ log ψ = log ψ(x') − log ψ(x),     x' = x except at K listed sites,
+
+in less than a full evaluation implements **one** extra method,
+
+    def fast_updates(self) -> FastUpdates
+
+reached through ``model.apply(variables, method="fast_updates")``. It returns two pure
+functions closed over whatever the state precomputes from its parameters (once per parameter
+set, e.g. once per optimisation step):
+
+    init(x) -> cache
+        per-sample cache of a batch ``x`` (n, n_sites); every leaf has the sample axis leading.
+    update(x, cache, sites, new_values) -> (delta, new_cache)
+        ``sites``: int array (n, K), or (K,) for the same sites in every sample, padded with −1
+        (the format returned by the moves of :mod:`psiloom.sampling.moves`);
+        ``new_values``: (n, K) values x'_s at those sites (entries at padding are ignored);
+        ``delta``: (n,) Δ log ψ (complex for complex states, then defined modulo 2πi);
+        ``new_cache``: the cache of x'.
+
+Consumers never call the method themselves. They receive ``log ψ`` as a bound trial state
+(:class:`~psiloom.states.BoundState`, callable as ``x -> log ψ(x)``, which the training loop
+passes) and ask :func:`fast_updates_of` for the fast functions:
+:class:`psiloom.sampling.MetropolisSampler` and :func:`psiloom.operators.local_values` (hence
+``PauliSum.local_energy``) do so automatically. A trial state without the method, a plain
+function, or a binding made with ``bind_amplitude(model, variables, fast=False)`` takes the
+generic path of full re-evaluation. Both paths give the same results to rounding (tested in
+``tests/test_fast_updates.py``).
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+
+from psiloom.states.bound import BoundState
+
+
+class FastUpdates(NamedTuple):
+    """The two pure functions of the fast-update protocol (see the module docstring)."""
+
+    init: Callable[[jax.Array], Any]
+    update: Callable[[jax.Array, Any, jax.Array, jax.Array], tuple[jax.Array, Any]]
+
+
+def supports_fast_updates(model) -> bool:
+    """Whether ``model`` (a trial-state module) implements ``fast_updates``."""
+    return callable(getattr(model, "fast_updates", None))
+
+
+@jax.tree_util.register_pytree_node_class
+class BoundAmplitude(BoundState):
+    """A :class:`~psiloom.states.BoundState` that can switch the fast path off.
+
+    ``BoundAmplitude(model, variables, fast=False)(x)`` is ``model.apply(variables, x)`` and
+    makes every consumer take the generic path of full re-evaluation. A plain ``BoundState``
+    (or a ``BoundAmplitude`` with ``fast=True``) of a state implementing ``fast_updates``
+    uses the fast path.
+    """
+
+    def __init__(self, model, variables, fast: bool = True):
+        super().__init__(model, variables)
+        self.use_fast = bool(fast)
+
+    def tree_flatten(self):
+        return (self.variables,), (self.model, self.use_fast)
+
+    @classmethod
+    def tree_unflatten(cls, aux, children):
+        obj = object.__new__(cls)
+        obj.model, obj.use_fast = aux
+        obj.variables = children[0]
+        return obj
+
+    def __repr__(self) -> str:
+        return f"BoundAmplitude({type(self.model).__name__}, fast={self.use_fast})"
+
+
+def bind_amplitude(model, variables, fast: bool = True) -> BoundAmplitude:
+    """Bind ``variables`` to ``model``: a callable ``x -> log ψ(x)``; ``fast=False`` forces the
+    generic path."""
+    return BoundAmplitude(model, variables, fast=fast)
+
+
+def fast_updates_of(log_amplitude) -> FastUpdates | None:
+    """The fast-update functions of a bound trial state, or ``None`` (generic path).
+
+    ``log_amplitude`` qualifies when it is a :class:`~psiloom.states.BoundState` (or
+    :class:`BoundAmplitude` with ``fast=True``) whose model implements ``fast_updates``.
+    Each call evaluates the state's per-parameter precomputation, so call it once per
+    parameter set, outside loops over proposals.
+    """
+    if not isinstance(log_amplitude, BoundState) or not getattr(log_amplitude, "use_fast", True):
+        return None
+    if not supports_fast_updates(log_amplitude.model):
+        return None
+    out = log_amplitude.apply_method("fast_updates")
+    if not isinstance(out, FastUpdates):
+        raise TypeError(
+            f"{type(log_amplitude.model).__name__}.fast_updates must return FastUpdates(init, update), "
+            f"got {type(out).__name__}"
+        )
+    return out
+
+
+def values_at(x: jax.Array, sites: jax.Array) -> jax.Array:
+    """``x[s, sites[s, k]]`` for sites (n, K), or ``x[:, sites[k]]`` for shared sites (K,);
+    entries at −1 padding read site 0 (callers mask them)."""
+    idx = jnp.where(sites >= 0, sites, 0)
+    if idx.ndim == 1:
+        return x[:, idx]
+    return jnp.take_along_axis(x, idx, axis=1)
+
+
+def log_product(factors: jax.Array, block: int = 8) -> jax.Array:
+    """``Σ_j log f_j`` over the last axis, evaluated as ``Σ_blocks log Π_{j∈block} f_j``.
+
+    One logarithm per ``block`` factors instead of one per factor (logarithms dominate the
+    cost of an update on CPU). A block product overflows only when ``block`` factors exceed
+    the float range together (|log f| > 88 on average in float64); for complex factors the
+    imaginary part is defined modulo 2π.
+    """
+    m = factors.shape[-1]
+    n_blocks = -(-m // block)
+    pad = n_blocks * block - m
+    if pad:
+        ones = jnp.ones((*factors.shape[:-1], pad), factors.dtype)
+        factors = jnp.concatenate([factors, ones], axis=-1)
+    grouped = factors.reshape(*factors.shape[:-1], block, n_blocks)  # blocks of strided factors
+    return jnp.sum(jnp.log(jnp.prod(grouped, axis=-2)), axis=-1)

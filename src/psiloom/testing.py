@@ -1,0 +1,127 @@
+"""Property-based testing helpers for trial states and symmetries (import them in your tests).
+
+Strategies (need the ``hypothesis`` package, imported lazily):
+
+* :func:`configurations` — batches of ±1 spin configurations, optionally with a fixed number
+  of up spins (a magnetisation sector);
+* :func:`group_elements` — element indices of a :class:`~psiloom.symmetry.SymmetryGroup`.
+
+Assertions (plain NumPy, usable with or without hypothesis):
+
+* :func:`assert_invariant` — ``ψ(g·x) = ψ(x)``;
+* :func:`assert_covariant` — ``ψ(g·x) = χ(g)* ψ(x)`` (psiloom's sector convention).
+
+Log-amplitudes are compared as complex numbers modulo ``2πi`` (the phase of ψ is defined only
+modulo 2π) with a tolerance on ``|Δ log ψ|``. Configurations where ψ is negligible (``log|ψ|``
+more than ``floor`` below the largest in the batch, e.g. where a sector projection vanishes)
+only need a negligible image amplitude too.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes"]
+
+
+def _hypothesis():
+    try:
+        import hypothesis.extra.numpy as hnp
+        import hypothesis.strategies as st
+    except ImportError as err:  # pragma: no cover - hypothesis is a test dependency
+        raise ImportError("psiloom.testing strategies need the 'hypothesis' package") from err
+    return st, hnp
+
+
+def configurations(n_sites: int, batch: int | tuple[int, int] = 1, n_up: int | None = None, space=None):
+    """Strategy for NumPy arrays of shape ``(batch, n_sites)`` with entries ±1 (float64).
+
+    Args:
+        n_sites: number of spins.
+        batch: fixed batch size, or ``(min, max)`` to let hypothesis choose it.
+        n_up: draw configurations with exactly this many up spins (a fixed-``Sᶻ`` sector).
+        space: alternatively a :class:`~psiloom.spaces.SpinSpace`; its ``n_up`` is used.
+    """
+    st, hnp = _hypothesis()
+    if space is not None:
+        n_sites, n_up = space.n_sites, space.n_up
+    if isinstance(n_sites, bool) or not isinstance(n_sites, (int, np.integer)) or n_sites < 1:
+        raise ValueError(f"n_sites must be a positive integer, got {n_sites!r}")
+    if n_up is not None and not 0 <= n_up <= n_sites:
+        raise ValueError(f"n_up={n_up!r} must lie in [0, {n_sites}]")
+    sizes = st.just(int(batch)) if np.isscalar(batch) else st.integers(int(batch[0]), int(batch[1]))
+
+    if n_up is None:
+        return sizes.flatmap(lambda b: hnp.arrays(np.float64, (b, n_sites), elements=st.sampled_from([-1.0, 1.0])))
+
+    base = [1.0] * n_up + [-1.0] * (n_sites - n_up)
+    row = st.permutations(base)
+    return sizes.flatmap(lambda b: st.lists(row, min_size=b, max_size=b).map(lambda rows: np.asarray(rows, np.float64)))
+
+
+def group_elements(group, include_identity: bool = True):
+    """Strategy for element indices of ``group`` (``0`` is the identity)."""
+    st, _ = _hypothesis()
+    low = 0 if include_identity else 1
+    if len(group) <= low:
+        raise ValueError(f"{group!r} has no element to draw")
+    return st.integers(low, len(group) - 1)
+
+
+def log_amplitudes(model, variables, x) -> np.ndarray:
+    """``log ψ(x)`` as a complex NumPy array."""
+    return np.asarray(model.apply(variables, np.asarray(x)), dtype=complex)
+
+
+def _compare(before: np.ndarray, after: np.ndarray, expected_phase: np.ndarray, atol: float, floor: float, what: str):
+    top = np.max(np.real(before))
+    small = np.real(before) < top - floor
+    diff = after - before - expected_phase
+    diff = diff.real + 1j * (np.mod(diff.imag + np.pi, 2.0 * np.pi) - np.pi)
+    bad_big = (~small) & (np.abs(diff) > atol)
+    bad_small = small & (np.real(after) > top - floor + 1.0)
+    bad = bad_big | bad_small
+    if np.any(bad):
+        k = int(np.argmax(bad))
+        raise AssertionError(
+            f"{what} violated for sample {k}: log ψ(x) = {before[k]:.10g}, log ψ(g·x) = {after[k]:.10g}, "
+            f"expected difference {expected_phase[k]:.6g} (mod 2πi), off by {abs(diff[k]):.3g} > atol={atol}"
+        )
+
+
+def assert_covariant(model, variables, group, characters, x, elements=None, atol: float = 1e-8,
+                     floor: float = 25.0) -> None:
+    """Assert ``ψ(g·x) = χ(g)* ψ(x)`` for configurations ``x`` and elements ``g``.
+
+    Args:
+        model, variables: a trial state and its variables (``model.apply(variables, x)``).
+        group: a :class:`~psiloom.symmetry.SymmetryGroup`.
+        characters: ``χ(g)`` for every element (e.g. ``Sector.characters``).
+        x: configurations ``(B, N)``.
+        elements: element indices to check (int or sequence); default all elements.
+        atol: tolerance on ``|log ψ(g·x) − log ψ(x) − log χ(g)*|`` (mod 2πi).
+        floor: configurations with ``log|ψ|`` more than this below the batch maximum count as
+            zeros of ψ; their images only need to be negligible as well.
+    Raises:
+        AssertionError naming the first violating sample.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    if x.ndim != 2:
+        raise ValueError(f"x must have shape (B, n_sites), got {x.shape}")
+    chi = np.asarray(characters, dtype=complex).reshape(-1)
+    if chi.shape != (len(group),):
+        raise ValueError(f"need one character per group element ({len(group)}), got {chi.shape}")
+    elements = range(len(group)) if elements is None else np.atleast_1d(elements)
+    before = log_amplitudes(model, variables, x)
+    for g in elements:
+        g = int(g)
+        if not 0 <= g < len(group):
+            raise ValueError(f"element index {g} outside the group of order {len(group)}")
+        after = log_amplitudes(model, variables, group.act(x, g))
+        expected = np.full(len(x), np.log(np.conj(chi[g])))
+        _compare(before, after, expected, atol, floor, f"covariance ψ(g·x) = χ(g)* ψ(x) for g={g}")
+
+
+def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e-8, floor: float = 25.0) -> None:
+    """Assert ``ψ(g·x) = ψ(x)`` (see :func:`assert_covariant` for the arguments)."""
+    assert_covariant(model, variables, group, np.ones(len(group)), x, elements, atol, floor)
