@@ -12,6 +12,13 @@ run bit-identically: step count, parameters, optimiser state, chain state and PR
 
 Non-finite energies or gradients stop the run with :class:`NonFiniteError` naming the step;
 the state that produced them is discarded and the last checkpoint is left untouched.
+
+The step is composed of four phases — sampling, local energy, gradient, solve — written as
+separate methods. :meth:`GroundStateSearch.profile_step` compiles each phase on its own and
+times it with ``block_until_ready`` (the fused step is one XLA program and cannot be split
+from inside); ``run(..., profile_every=k)`` records that breakdown in the history.
+Trial states with fast updates (:mod:`psiloom.states.fast`, e.g. the RBM) use them in the
+sampler and the local energy unless ``fast=False``.
 """
 
 from __future__ import annotations
@@ -37,6 +44,7 @@ from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.sampling.metropolis import ChainState
 from psiloom.states.base import check_input_size, count_real_parameters
 from psiloom.states.bound import BoundState
+from psiloom.states.fast import BoundAmplitude
 
 
 class NonFiniteError(FloatingPointError):
@@ -70,15 +78,22 @@ class History:
         k: [] for k in ("step", "energy", "error", "variance", "tau", "rhat", "acceptance", "grad_norm", "seconds")
     })
 
-    def append(self, step: int, out: StepOutput, seconds: float) -> None:
+    def append(self, step: int, out: StepOutput, seconds: float, extra: dict[str, float] | None = None) -> None:
+        """Add one row; ``extra`` columns (e.g. the ``t_*`` phase timings) are created on first
+        use and hold NaN in rows that lack them."""
         e = out.energy
         row = {
             "step": step, "energy": float(np.real(e.mean)), "error": float(e.error),
             "variance": float(e.variance), "tau": float(e.tau), "rhat": float(e.rhat),
             "acceptance": float(out.acceptance), "grad_norm": float(out.grad_norm), "seconds": seconds,
         }
-        for k, v in row.items():
-            self.columns[k].append(v)
+        row.update(extra or {})
+        n = len(self)
+        for k in row:
+            if k not in self.columns:
+                self.columns[k] = [float("nan")] * n
+        for k, column in self.columns.items():
+            column.append(row.get(k, float("nan")))
 
     def __len__(self) -> int:
         return len(self.columns["step"])
@@ -158,10 +173,13 @@ class GroundStateSearch:
         energy_clip: if set, the width k of local-energy clipping around the median
             (:func:`psiloom.optimize.clip_local_energies`) applied to the values feeding the
             gradient and the SR geometry; the reported energy estimate stays unclipped.
+        fast: use the trial state's fast amplitude updates (if it has them) in sampling and
+            local energies; ``False`` forces full re-evaluation (same results, slower).
     """
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
-                 n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None):
+                 n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
+                 fast: bool = True):
         if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
@@ -179,6 +197,8 @@ class GroundStateSearch:
         if energy_clip is not None:
             clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
         self.energy_clip = energy_clip
+        self.fast = bool(fast)
+        self._phases = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(self._step_impl)
         self._eval = jax.jit(self._evaluate_impl, static_argnums=(2,))
 
@@ -188,39 +208,112 @@ class GroundStateSearch:
         k_param, k_chain, k_run = jax.random.split(key, 3)
         space = self.sampler.space
         if params is None:
-            params = self.model.init(k_param, space.random(k_param, 1))
+            # compiled: op-by-op initialisation of deep modules is many times slower
+            params = jax.jit(self.model.init)(k_param, space.random(k_param, 1))
         check_input_size(self.model, params, space)
-        log_amp = BoundState(self.model, params)  # callable as log_amp(x); samplers may read the model
-        chains = self.sampler.init(k_chain, log_amp)
+        chains = self.sampler.init(k_chain, self._bind(params))
         return TrainState(jnp.zeros((), jnp.int32), params, self.optimizer.init(params), chains, k_run)
 
     def n_parameters(self, state: TrainState) -> int:
         return count_real_parameters(state.params)
 
-    def _sample(self, key, params, chains, n_per_chain):
-        log_amp = BoundState(self.model, params)  # callable as log_amp(x); samplers may read the model
+    def _bind(self, params) -> BoundState:
+        """``log ψ`` at ``params`` as a callable that still knows its model (samplers may read
+        it; fast-update paths use it unless ``fast=False``)."""
+        return BoundAmplitude(self.model, params, fast=self.fast)
+
+    # The four phases of a step (composed by _step_impl, timed one by one by profile_step).
+    def _sampling_phase(self, key, params, chains, n_per_chain):
+        log_amp = self._bind(params)
         chains = self.sampler.refresh(chains, log_amp)
         xs, logs, chains, acc = self.sampler.sample(key, chains, log_amp, n_per_chain)
         x = xs.reshape(-1, *xs.shape[2:])  # time-major leading sample axis
-        e_loc = self.hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=self.chunk)
+        return x, logs.reshape(-1), chains, acc
+
+    def _local_energy_phase(self, params, x, logs):
+        return self.hamiltonian.local_energy(self._bind(params), x, logs, chunk=self.chunk)
+
+    def _gradient_phase(self, params, x, e_loc):
+        estimate = stats.estimate(e_loc.reshape(self.n_per_chain, -1))
+        if self.energy_clip is not None:
+            e_loc = clip_local_energies(e_loc, self.energy_clip)
+        _, grad = energy_gradient(self.model.apply, params, x, e_loc)
+        return estimate, grad, e_loc
+
+    def _solve_phase(self, params, opt_state, grad, x, e_loc):
+        geometry = SampleGeometry(self.model.apply, params, x, e_loc, chunk=self.chunk)
+        updates, opt_state = self.optimizer.update(grad, opt_state, params, geometry=geometry)
+        return optax.apply_updates(params, updates), opt_state
+
+    def _sample(self, key, params, chains, n_per_chain):
+        x, logs, chains, acc = self._sampling_phase(key, params, chains, n_per_chain)
+        e_loc = self._local_energy_phase(params, x, logs)
         return x, e_loc, chains, acc
 
     def _step_impl(self, state: TrainState):
         key, k_sample = jax.random.split(state.key)
         x, e_loc, chains, acc = self._sample(k_sample, state.params, state.chains, self.n_per_chain)
-        estimate = stats.estimate(e_loc.reshape(self.n_per_chain, -1))
-        if self.energy_clip is not None:
-            e_loc = clip_local_energies(e_loc, self.energy_clip)
-        _, grad = energy_gradient(self.model.apply, state.params, x, e_loc)
-        geometry = SampleGeometry(self.model.apply, state.params, x, e_loc, chunk=self.chunk)
-        updates, opt_state = self.optimizer.update(grad, state.opt_state, state.params, geometry=geometry)
-        params = optax.apply_updates(state.params, updates)
+        estimate, grad, e_loc = self._gradient_phase(state.params, x, e_loc)
+        params, opt_state = self._solve_phase(state.params, state.opt_state, grad, x, e_loc)
         new = TrainState(state.step + 1, params, opt_state, chains, key)
         return new, StepOutput(estimate, acc, tree_norm(grad))
 
     def step(self, state: TrainState) -> tuple[TrainState, StepOutput]:
         """One compiled optimisation step."""
         return self._step(state)
+
+    PHASES = ("sampling", "local_energy", "gradient", "solve")
+
+    def profile_step(self, state: TrainState, repeat: int = 3) -> dict[str, float]:
+        """Wall-clock seconds of the phases of one step from ``state`` (the state is not advanced).
+
+        Each phase is compiled on its own (once, not timed) and timed with
+        ``block_until_ready``, best of ``repeat``:
+
+        * ``sampling``: refresh of the chains and the Metropolis sweeps;
+        * ``local_energy``: E_loc of all samples;
+        * ``gradient``: energy estimate (with τ, R̂) and ∇E;
+        * ``solve``: the optimizer update — for SR this includes the per-sample
+          log-derivatives and the linear solve.
+
+        Also returns ``total`` (their sum) and ``step``: the normal fused step, timed the same
+        way (usually a little below ``total``: one program, no intermediate transfers).
+        """
+        if isinstance(repeat, bool) or not isinstance(repeat, (int, np.integer)) or repeat < 1:
+            raise ValueError(f"repeat must be a positive integer, got {repeat!r}")
+        if self._phases is None:
+            self._phases = (
+                jax.jit(self._sampling_phase, static_argnums=(3,)),
+                jax.jit(self._local_energy_phase),
+                jax.jit(self._gradient_phase),
+                jax.jit(self._solve_phase),
+            )
+        sampling, local_energy, gradient, solve = self._phases
+        _, k_sample = jax.random.split(state.key)
+        calls = {
+            "sampling": lambda: sampling(k_sample, state.params, state.chains, self.n_per_chain),
+        }
+        x, logs, _, _ = jax.block_until_ready(calls["sampling"]())
+        calls["local_energy"] = lambda: local_energy(state.params, x, logs)
+        e_loc = jax.block_until_ready(calls["local_energy"]())
+        calls["gradient"] = lambda: gradient(state.params, x, e_loc)
+        _, grad, e_used = jax.block_until_ready(calls["gradient"]())
+        calls["solve"] = lambda: solve(state.params, state.opt_state, grad, x, e_used)
+        jax.block_until_ready(calls["solve"]())
+        calls["step"] = lambda: self._step(state)
+        jax.block_until_ready(calls["step"]())
+        best = {}
+        for name, call in calls.items():
+            times = []
+            for _ in range(int(repeat)):
+                start = time.perf_counter()
+                jax.block_until_ready(call())
+                times.append(time.perf_counter() - start)
+            best[name] = min(times)
+        out = {name: best[name] for name in self.PHASES}
+        out["total"] = sum(out.values())
+        out["step"] = best["step"]
+        return out
 
     def _evaluate_impl(self, params, chains_key, n_per_chain):
         chains, key = chains_key
@@ -249,7 +342,7 @@ class GroundStateSearch:
     def run(self, n_steps: int, state: TrainState | None = None, key: jax.Array | None = None,
             history: History | None = None, checkpoint: str | None = None, checkpoint_every: int = 50,
             progress: bool | Callable[[str], None] = True, print_every: int = 10,
-            callback: Callable[[TrainState, StepOutput], None] | None = None):
+            callback: Callable[[TrainState, StepOutput], None] | None = None, profile_every: int = 0):
         """Run until ``state.step == n_steps`` (so a resumed run continues to the same total).
 
         Args:
@@ -258,19 +351,30 @@ class GroundStateSearch:
             checkpoint: path to write the state and history every ``checkpoint_every`` steps
                 and at the end (atomic writes; never after a non-finite step).
             progress: True prints to stdout, a callable receives each progress line.
+            profile_every: if > 0, every that many steps (and at the first) time the phases of
+                the step with :meth:`profile_step` (``repeat=1``) before taking it, and record
+                them as history columns ``t_sampling``, ``t_local_energy``, ``t_gradient``,
+                ``t_solve`` (NaN in other rows). Costs one extra compilation per phase.
         Returns:
             ``(state, history)``.
         """
         if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or n_steps < 0:
             raise ValueError(f"n_steps must be a non-negative integer, got {n_steps!r}")
+        if isinstance(profile_every, bool) or not isinstance(profile_every, (int, np.integer)) or profile_every < 0:
+            raise ValueError(f"profile_every must be a non-negative integer, got {profile_every!r}")
         if state is None:
             state = self.init(jax.random.PRNGKey(0) if key is None else key)
         history = History() if history is None else history
         history.truncate(int(state.step))
         emit = (lambda s: print(s, flush=True)) if progress is True else (progress or None)
-        step = int(state.step)
+        step = first = int(state.step)
         last = time.perf_counter()
         while step < n_steps:
+            timing = None
+            if profile_every and (step % profile_every == 0 or step == first):
+                phases = self.profile_step(state, repeat=1)
+                timing = {f"t_{name}": phases[name] for name in self.PHASES}
+                last = time.perf_counter()  # profiling time is not step time
             new_state, out = self._step(state)
             energy = float(np.real(out.energy.mean))
             if not np.isfinite(energy) or not np.isfinite(float(out.energy.error)):
@@ -278,7 +382,7 @@ class GroundStateSearch:
             if not np.isfinite(float(out.grad_norm)):
                 raise NonFiniteError(step, "gradient")
             now = time.perf_counter()
-            history.append(step, out, now - last)
+            history.append(step, out, now - last, timing)
             last = now
             state, step = new_state, step + 1
             if callback is not None:

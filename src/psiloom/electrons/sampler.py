@@ -141,12 +141,16 @@ class ElectronSampler:
     # ------------------------------------------------------------------ interface
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps."""
-        k_pos, k_eq = jax.random.split(key)
-        x = self.system.random(k_pos, self.n_chains, self.init_width)
-        state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
-        if self.equilibrate:
-            state, _ = self._adaptive_sweeps(k_eq, state, log_amplitude, self.equilibrate)
-        return state
+        def start(key):
+            k_pos, k_eq = jax.random.split(key)
+            x = self.system.random(k_pos, self.n_chains, self.init_width)
+            state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
+            if self.equilibrate:
+                state, _ = self._adaptive_sweeps(k_eq, state, log_amplitude, self.equilibrate)
+            return state
+
+        # compiled as one program (also when called outside jit, as GroundStateSearch.init does)
+        return jax.jit(start)(key)
 
     def refresh(self, state: WalkerState, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Recompute the cached log|ψ| after a parameter update."""

@@ -206,8 +206,13 @@ class PauliSum:
         assign = np.zeros((len(strings), len(flips)), dtype=np.float64)
         assign[np.arange(len(strings)), group_of] = 1.0
         real = bool(np.all(np.abs(phased.imag) < 1e-14))
+        width = max(1, max(len(flip) for flip in flips))
+        flip_sites = np.full((len(flips), width), -1, dtype=np.int32)
+        for flip, g in flips.items():
+            flip_sites[g, : len(flip)] = flip
         return {
             "flip_sign": 1.0 - 2.0 * flip_masks,  # multiply x by this to apply the flips
+            "flip_sites": flip_sites,  # (G, K) flipped sites per connection, −1 padding
             "zmask": zmask,
             "coef": phased.real.copy() if real else phased,
             "assign": assign,
@@ -223,6 +228,27 @@ class PauliSum:
         """True when all matrix elements in the σᶻ basis are real."""
         return not np.iscomplexobj(self._tables["coef"])
 
+    @property
+    def flip_table(self) -> np.ndarray:
+        """``(n_connections, K)`` int32: the sites flipped by each connection, padded with −1
+        (K = the largest number of flipped sites, at least 1; the diagonal row is all −1).
+        Connection ``g`` of :meth:`connections` is ``x`` with the sites ``flip_table[g]`` flipped;
+        fast-update trial states use it to get ψ(x')/ψ(x) in O(K) per connection."""
+        return self._tables["flip_sites"]
+
+    def matrix_elements(self, x):
+        """Row matrix elements ``⟨x|O|x'_g⟩`` of a batch, shape ``(..., n_connections)``, in the
+        order of :attr:`flip_table` (the second output of :meth:`connections`)."""
+        xp = np if isinstance(x, np.ndarray) else jnp
+        if x.shape[-1] != self.n_sites:
+            raise ValueError(f"configurations have {x.shape[-1]} sites, operator acts on {self.n_sites}")
+        tab = self._tables
+        down = (x < 0).astype(x.dtype)
+        counts = down @ xp.asarray(tab["zmask"].T, dtype=x.dtype)  # (..., T)
+        signs = 1.0 - 2.0 * xp.mod(counts, 2.0)
+        values = signs * xp.asarray(tab["coef"])  # (..., T)
+        return values @ xp.asarray(tab["assign"], dtype=values.dtype)  # (..., G)
+
     def connections(self, x):
         """Connected configurations and row matrix elements of a batch.
 
@@ -234,15 +260,8 @@ class PauliSum:
             Works on NumPy arrays (host) and inside ``jax.jit`` (traced arrays).
         """
         xp = np if isinstance(x, np.ndarray) else jnp
-        if x.shape[-1] != self.n_sites:
-            raise ValueError(f"configurations have {x.shape[-1]} sites, operator acts on {self.n_sites}")
-        tab = self._tables
-        down = (x < 0).astype(x.dtype)
-        counts = down @ xp.asarray(tab["zmask"].T, dtype=x.dtype)  # (..., T)
-        signs = 1.0 - 2.0 * xp.mod(counts, 2.0)
-        values = signs * xp.asarray(tab["coef"])  # (..., T)
-        mels = values @ xp.asarray(tab["assign"], dtype=values.dtype)  # (..., G)
-        x_conn = x[..., None, :] * xp.asarray(tab["flip_sign"], dtype=x.dtype)
+        mels = self.matrix_elements(x)
+        x_conn = x[..., None, :] * xp.asarray(self._tables["flip_sign"], dtype=x.dtype)
         return x_conn, mels
 
     def local_energy(self, log_amplitude, x, log_amp_x=None, chunk: int | None = None):

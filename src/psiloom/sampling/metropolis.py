@@ -16,11 +16,19 @@ recompute the cached log-amplitudes, then continue sampling from where the chain
 
 Samples come out with shape ``(n_per_chain, n_chains, n_sites)`` — time along the chain
 first, chains second — and flatten to a leading sample axis of ``n_per_chain · n_chains``.
+
+Fast updates: when ``log_amplitude`` is a bound trial state implementing the protocol of
+:mod:`psiloom.states.fast` (e.g. the RBM), the chain state also carries the per-chain cache
+(for the RBM θ = xW + b and 1 ± tanh θ) and each proposal costs O(K·M) for the K sites the
+move changed, instead of a full O(N·M) evaluation. The random numbers are drawn exactly as
+on the generic path, so both paths produce the same chain for the same key (to rounding of
+the log-ratios). The cached log-amplitude is then accumulated, ``log ψ(x') = log ψ(x) + Δ``;
+:meth:`MetropolisSampler.refresh` (called by the training loop every step) recomputes both.
 """
 
 from __future__ import annotations
 
-from typing import Callable, NamedTuple
+from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -28,6 +36,7 @@ import numpy as np
 
 from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
 from psiloom.spaces import SpinSpace
+from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
 LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 
@@ -35,6 +44,7 @@ LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 class ChainState(NamedTuple):
     x: jax.Array  # (n_chains, n_sites) current configurations
     log_amp: jax.Array  # (n_chains,) log ψ at x
+    cache: Any = None  # fast-update cache of x (leading axis n_chains), None on the generic path
 
 
 class StepInfo(NamedTuple):
@@ -42,19 +52,48 @@ class StepInfo(NamedTuple):
     log_ratio: jax.Array  # (n_chains,) 2 Re[log ψ(x') − log ψ(x)]
 
 
-def metropolis_step(move: Move) -> Callable:
-    """Build the pure kernel ``step(key, state, log_amplitude) -> (state, StepInfo)``."""
+def _select(accept, new, old):
+    """Per-chain choice between two pytrees with the chain axis leading."""
+    return jax.tree_util.tree_map(
+        lambda a, b: jnp.where(accept.reshape(accept.shape + (1,) * (a.ndim - 1)), a, b), new, old
+    )
 
-    def step(key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn):
-        k_prop, k_acc = jax.random.split(key)
-        x_new, _ = move(k_prop, state.x)
+
+def _transition(state: ChainState, x_new, sites, log_u, log_amplitude, fast):
+    """Accept or reject the proposals ``x_new`` (changed ``sites``) given ``log u`` per chain."""
+    if fast is not None and state.cache is not None:
+        delta, cache_new = fast.update(state.x, state.cache, sites, values_at(x_new, sites))
+        log_new = state.log_amp + delta
+        log_ratio = 2.0 * jnp.real(delta)
+    else:
+        cache_new = None
         log_new = log_amplitude(x_new)
         log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
-        u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)
-        accept = jnp.log(u) < log_ratio
-        x = jnp.where(accept[:, None], x_new, state.x)
-        log_amp = jnp.where(accept, log_new, state.log_amp)
-        return ChainState(x, log_amp), StepInfo(accept, log_ratio)
+    accept = log_u < log_ratio
+    x = jnp.where(accept.reshape(accept.shape + (1,) * (x_new.ndim - 1)), x_new, state.x)
+    log_amp = jnp.where(accept, log_new, state.log_amp)
+    cache = None if cache_new is None else _select(accept, cache_new, state.cache)
+    return ChainState(x, log_amp, cache), StepInfo(accept, log_ratio)
+
+
+def _uniform_dtype(state: ChainState):
+    return jnp.real(state.log_amp).dtype
+
+
+def metropolis_step(move: Move) -> Callable:
+    """Build the pure kernel ``step(key, state, log_amplitude, fast=None) -> (state, StepInfo)``.
+
+    With ``fast`` (the :class:`~psiloom.states.FastUpdates` of ``log_amplitude``) and a state
+    carrying a cache, Δ log ψ comes from the cached per-chain quantities and the sites the
+    move changed; otherwise ψ(x') is re-evaluated in full (and any cache is dropped). The
+    proposal and acceptance draws are identical on both paths.
+    """
+
+    def step(key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn, fast: FastUpdates | None = None):
+        k_prop, k_acc = jax.random.split(key)
+        x_new, sites = move(k_prop, state.x)
+        u = jax.random.uniform(k_acc, state.log_amp.shape, dtype=_uniform_dtype(state))
+        return _transition(state, x_new, sites, jnp.log(u), log_amplitude, fast)
 
     return step
 
@@ -73,7 +112,7 @@ class MetropolisSampler:
     Args:
         space: the configuration space (its magnetisation constraint picks the default move).
         n_chains: number of independent chains (the batch of one proposal).
-        move: a proposal ``(key, x) -> x'``; default single flips for an unconstrained space,
+        move: a proposal ``(key, x) -> (x', sites)``; default single flips for an unconstrained space,
             nearest-neighbour exchange over ``bonds`` (or any-pair exchange without bonds)
             for a fixed-magnetisation space.
         bonds: pairs for the exchange move (e.g. ``lattice.bonds``).
@@ -101,25 +140,45 @@ class MetropolisSampler:
         self._step = metropolis_step(move)
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
-        """Random valid starting configurations and their log-amplitudes."""
+        """Random valid starting configurations, their log-amplitudes (and fast-update cache)."""
         x = self.space.random(key, self.n_chains)
-        return ChainState(x, log_amplitude(x))
+        return self._with_cache(ChainState(x, log_amplitude(x)), fast_updates_of(log_amplitude))
 
     def refresh(self, state: ChainState, log_amplitude: LogAmplitudeFn) -> ChainState:
-        """Recompute the cached log-amplitudes (after the parameters changed)."""
-        return ChainState(state.x, log_amplitude(state.x))
+        """Recompute the cached log-amplitudes and fast-update cache (after the parameters changed)."""
+        return self._with_cache(ChainState(state.x, log_amplitude(state.x)), fast_updates_of(log_amplitude))
+
+    @staticmethod
+    def _with_cache(state: ChainState, fast: FastUpdates | None, recompute: bool = True) -> ChainState:
+        if fast is None:
+            return state._replace(cache=None)
+        if recompute or state.cache is None:
+            return state._replace(cache=fast.init(state.x))
+        return state
 
     def step(self, key, state: ChainState, log_amplitude: LogAmplitudeFn):
-        """One proposal per chain: ``(state, StepInfo)``."""
-        return self._step(key, state, log_amplitude)
+        """One proposal per chain: ``(state, StepInfo)`` (fast path when available)."""
+        fast = fast_updates_of(log_amplitude)
+        state = self._with_cache(state, fast, recompute=False)
+        return self._step(key, state, log_amplitude, fast)
 
-    def _sweep(self, key, state, log_amplitude):
-        def body(carry, k):
+    def _sweep(self, key, state, log_amplitude, fast=None):
+        """``self.sweep`` proposals per chain. The random numbers of the whole sweep (move keys,
+        acceptance uniforms) are drawn before the loop: on CPU every random-number call inside
+        a loop body costs more than a fast update itself."""
+        move = self.move
+        k_moves, k_acc = jax.random.split(key)
+        keys = jax.random.split(k_moves, self.sweep)
+        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
+
+        def body(carry, draws):
             st, acc = carry
-            st, info = self._step(k, st, log_amplitude)
+            k, lu = draws
+            x_new, sites = move(k, st.x)
+            st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
             return (st, acc + jnp.mean(info.accepted.astype(jnp.float32))), None
 
-        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.float32)), jax.random.split(key, self.sweep))
+        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.float32)), (keys, log_u))
         return state, acc / self.sweep
 
     def sample(self, key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
@@ -127,18 +186,21 @@ class MetropolisSampler:
 
         Returns ``(samples, log_amps, state, acceptance)`` with samples of shape
         ``(n_per_chain, n_chains, n_sites)``, their log-amplitudes ``(n_per_chain, n_chains)``
-        and the mean acceptance rate over the stored part.
+        and the mean acceptance rate over the stored part. Uses fast updates when
+        ``log_amplitude`` offers them (see the module docstring).
         """
         n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        fast = fast_updates_of(log_amplitude)
+        state = self._with_cache(state, fast, recompute=False)
         k_burn, k_run = jax.random.split(key)
         if self.burn_in:
             def burn(st, k):
-                return self._sweep(k, st, log_amplitude)[0], None
+                return self._sweep(k, st, log_amplitude, fast)[0], None
 
             state, _ = jax.lax.scan(burn, state, jax.random.split(k_burn, self.burn_in))
 
         def collect(st, k):
-            st, acc = self._sweep(k, st, log_amplitude)
+            st, acc = self._sweep(k, st, log_amplitude, fast)
             return st, (st.x, st.log_amp, acc)
 
         state, (xs, logs, acc) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))

@@ -1,0 +1,230 @@
+"""Accuracy ladder: lattice ground states against exact or published energies.
+
+Each rung trains a trial state with stochastic reconfiguration through the public API
+(:class:`psiloom.train.GroundStateSearch`), evaluates the energy in a separate, longer sampling
+pass and compares it with its reference. One JSON line per rung, the summary line last
+(``shared/BENCHMARKS.md``); progress goes to stderr.
+
+Full-mode rungs (targets are relative errors; a time limit, where given, includes compilation):
+
+| rung | reference | target |
+|---|---|---|
+| TFIM ring L=40, h = J (Pauli)       | free fermions (Pfeuty 1970)                  | 1e-5 |
+| Heisenberg ring L=40                | Bethe ansatz (Bethe 1931)                    | 1e-4 |
+| Heisenberg ring L=100               | Bethe ansatz                                 | 1e-4 in 10 min |
+| Heisenberg 4×4 PBC                  | exact diagonalisation (Sᶻ = 0)               | 2e-4 |
+| J1-J2 4×4 PBC, J2 = 0.5 (no sign rule) | exact diagonalisation (Sᶻ = 0)            | 2e-3 |
+| Heisenberg 10×10 PBC                | −0.671549(4)/site, Sandvik 1997 QMC (from memory) | 1e-3 in 60 min |
+
+``--quick`` runs reduced sizes (TFIM L=16, Heisenberg L=20, Heisenberg 4×4, J1-J2 4×4) with
+short optimisations and looser targets, in under three minutes on two cores.
+``--rung NAME`` (repeatable) selects rungs; ``--list`` prints their names.
+"""
+
+from __future__ import annotations
+
+import sys
+from dataclasses import dataclass, field, replace
+from typing import Callable
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+import numpy as np  # noqa: E402
+import optax  # noqa: E402
+
+import psiloom as pl  # noqa: E402
+from _common import Timer, emit, lattice_system, parse_args, progress, relative_error, summary  # noqa: E402
+
+SANDVIK_1997_PER_SITE = -0.671549  # Heisenberg square lattice 10×10 PBC, SSE QMC (from memory)
+
+
+@dataclass(frozen=True)
+class Rung:
+    name: str
+    model: str  # "tfim" | "heisenberg" | "j1j2"
+    extent: tuple[int, ...]
+    target: float  # relative-error target
+    alpha: float = 1.0
+    complex_params: bool = False
+    sign_rule: bool = True
+    n_samples: int = 1024
+    n_chains: int = 32
+    steps: int = 300
+    lr: tuple[float, float] = (0.02, 0.05)  # linear warm-up from lr[0] to lr[1] over warmup steps
+    warmup: int = 50
+    shift: tuple[float, float] = (1e-2, 1e-4)  # exponential decay of the SR diagonal shift
+    shift_decay_steps: int = 200
+    solver: str = "auto"
+    eval_samples: int = 32768
+    time_limit: float | None = None  # seconds for the whole rung; training stops in time for evaluation
+    couplings: dict = field(default_factory=dict)
+    seed: int = 0
+
+
+def build(rung: Rung):
+    """Hamiltonian, space, sampler, reference energy, its source and the JSON ``system`` object."""
+    if len(rung.extent) == 1:
+        lat = pl.lattices.chain(rung.extent[0])
+        lattice_name = "chain"
+    else:
+        lat = pl.lattices.square(*rung.extent)
+        lattice_name = "square"
+    n = lat.n_sites
+    if rung.model == "tfim":
+        J, h = rung.couplings.get("J", 1.0), rung.couplings.get("h", 1.0)
+        ham = pl.operators.transverse_field_ising(lat, J, h)
+        space = pl.spaces.SpinSpace(n)
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, burn_in=4)
+        ref = pl.exact.tfim_ring_energy(n, J, h)
+        source = "free fermions (Pfeuty 1970), exact for the periodic ring"
+        system = lattice_system("tfim", lattice_name, rung.extent, True, "pauli", J=J, h=h)
+        return ham, sampler, ref, source, system
+    space = pl.spaces.SpinSpace(n, total_sz=0)
+    if rung.model == "heisenberg":
+        ham = pl.operators.heisenberg(lat, sign_rule=rung.sign_rule)
+        system = lattice_system("heisenberg", lattice_name, rung.extent, True, "spin", J=1.0)
+        bonds = lat.bonds
+    elif rung.model == "j1j2":
+        J2 = rung.couplings.get("J2", 0.5)
+        ham = pl.operators.j1j2(lat, 1.0, J2, sign_rule=rung.sign_rule)
+        system = lattice_system("j1j2", lattice_name, rung.extent, True, "spin", J=1.0, J2=J2)
+        bonds = np.concatenate([lat.bonds, lat.next_bonds])
+    else:
+        raise ValueError(f"unknown model {rung.model!r}")
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, bonds=bonds, burn_in=4)
+    if lattice_name == "chain":
+        ref = pl.exact.heisenberg_ring_energy(n)
+        source = "Bethe ansatz (Bethe 1931), solved numerically"
+    elif space.size <= 2_000_000:
+        progress(f"{rung.name}: exact diagonalisation in the Sz=0 sector ({space.size} states)")
+        ref, _ = pl.exact.ground_state(ham, space)
+        source = "exact diagonalisation (Lanczos, Sz=0 sector)"
+    else:
+        ref = SANDVIK_1997_PER_SITE * n
+        source = "Sandvik 1997 stochastic series expansion QMC, -0.671549(4)/site (from memory)"
+    return ham, sampler, ref, source, system
+
+
+def optimizer(rung: Rung):
+    lr = optax.linear_schedule(rung.lr[0], rung.lr[1], max(1, rung.warmup))
+    s0, s1 = rung.shift
+    shift = optax.exponential_decay(s0, max(1, rung.shift_decay_steps), s1 / s0, end_value=s1) if s0 != s1 else s0
+    return optax.chain(pl.optimize.stochastic_reconfiguration(shift=shift, solver=rung.solver), optax.sgd(lr))
+
+
+def run_rung(rung: Rung) -> dict:
+    progress(f"--- rung {rung.name}")
+    with Timer() as timer:
+        ham, sampler, ref, source, system = build(rung)
+        model = pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params)
+        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer(rung), n_samples=rung.n_samples)
+        state = search.init(jax.random.PRNGKey(rung.seed))
+        n_params = search.n_parameters(state)
+        rows = rung.n_samples * (2 if rung.complex_params else 1)
+        solver = rung.solver if rung.solver != "auto" else ("sample_space" if n_params > rows else "dense")
+        progress(f"{rung.name}: {n_params} real parameters, {rung.n_samples} samples/step, SR solver {solver}")
+        block, done, history = 25, 0, None
+        reserve = 0.0
+        while done < rung.steps:
+            target_steps = min(rung.steps, done + block)
+            t_block = timer.elapsed
+            state, history = search.run(target_steps, state=state, history=history, print_every=50,
+                                        progress=lambda s: progress(f"{rung.name}: {s}"))
+            per_step = (timer.elapsed - t_block) / (target_steps - done)
+            done = target_steps
+            # keep enough time for the evaluation pass (≈ eval_samples / n_samples steps' sampling)
+            reserve = max(reserve, 0.5 * per_step * rung.eval_samples / rung.n_samples + 10.0)
+            if rung.time_limit is not None and timer.elapsed + block * per_step + reserve > rung.time_limit:
+                progress(f"{rung.name}: stopping after {done} steps to stay within {rung.time_limit:.0f} s")
+                break
+        estimate, acceptance = search.evaluate(state, rung.eval_samples, burn_in_sweeps=8)
+    energy = float(np.real(estimate.mean))
+    rel = relative_error(energy, ref)
+    passed = rel <= rung.target and (rung.time_limit is None or timer.seconds <= rung.time_limit)
+    progress(f"{rung.name}: E = {energy:.6f} ± {float(estimate.error):.6f}, reference {ref:.6f}, "
+             f"rel. error {rel:.2e} (target {rung.target:.0e}) in {timer.seconds:.0f} s")
+    return {
+        "benchmark": "ladder",
+        "rung": rung.name,
+        "system": system,
+        "method": {
+            "trial_state": f"RBM alpha={rung.alpha}" + (" complex" if rung.complex_params else " real"),
+            "sign_rule": rung.sign_rule if rung.model != "tfim" else None,
+            "sampler": f"Metropolis {'single flip' if rung.model == 'tfim' else 'exchange'}, {rung.n_chains} chains",
+            "optimizer": f"SR ({solver}), shift {rung.shift[0]:g}->{rung.shift[1]:g}, "
+                         f"sgd lr {rung.lr[0]:g}->{rung.lr[1]:g}",
+            "eval_samples": rung.eval_samples,
+            "tau": float(estimate.tau),
+            "rhat": float(estimate.rhat),
+            "acceptance": acceptance,
+        },
+        "energy": energy,
+        "error_bar": float(estimate.error),
+        "reference": float(ref),
+        "reference_source": source,
+        "rel_error": rel,
+        "target": rung.target,
+        "time_limit": rung.time_limit,
+        "passed": bool(passed),
+        "seconds": timer.seconds,
+        "steps": int(done),
+        "samples_per_step": rung.n_samples,
+        "n_params": n_params,
+    }
+
+
+FULL = [
+    Rung("tfim_chain_40", "tfim", (40,), 1e-5, alpha=2, n_samples=2048, steps=800, lr=(0.02, 0.05),
+         shift=(1e-2, 1e-5), shift_decay_steps=400, eval_samples=131072, couplings={"J": 1.0, "h": 1.0}),
+    Rung("heisenberg_chain_40", "heisenberg", (40,), 1e-4, alpha=2, n_samples=2048, steps=800,
+         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=131072),
+    Rung("heisenberg_chain_100", "heisenberg", (100,), 1e-4, alpha=1, n_samples=1024, steps=2000,
+         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=65536, time_limit=600.0),
+    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 2e-4, alpha=2, n_samples=2048, steps=600,
+         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=131072),
+    Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, complex_params=True, sign_rule=False,
+         n_samples=2048, steps=1500, lr=(0.01, 0.03), warmup=100, shift=(3e-2, 1e-3), shift_decay_steps=600,
+         eval_samples=131072, couplings={"J2": 0.5}),
+    Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=1, n_samples=1024, steps=5000,
+         shift=(1e-2, 1e-4), shift_decay_steps=500, eval_samples=65536, time_limit=3600.0),
+]
+
+QUICK = [
+    Rung("tfim_chain_16", "tfim", (16,), 1e-3, alpha=1, n_samples=512, n_chains=32, steps=150, lr=(0.03, 0.05),
+         warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=16384, couplings={"J": 1.0, "h": 1.0}),
+    Rung("heisenberg_chain_20", "heisenberg", (20,), 2e-3, alpha=1, n_samples=512, n_chains=32, steps=150,
+         lr=(0.03, 0.05), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=16384),
+    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 5e-3, alpha=1, n_samples=512, n_chains=32, steps=150,
+         lr=(0.03, 0.05), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=16384),
+    Rung("j1j2_square_4x4", "j1j2", (4, 4), 3e-2, alpha=1, complex_params=True, sign_rule=False, n_samples=512,
+         n_chains=32, steps=150, lr=(0.02, 0.04), warmup=20, shift=(3e-2, 1e-3), shift_decay_steps=80,
+         eval_samples=16384, couplings={"J2": 0.5}),
+]
+
+
+def main(argv=None) -> None:
+    def extra(parser):
+        parser.add_argument("--rung", action="append", default=None, help="run only this rung (repeatable)")
+        parser.add_argument("--list", action="store_true", help="list the rung names and exit")
+        parser.add_argument("--seed", type=int, default=0)
+
+    args = parse_args("ladder", "accuracy ladder against exact and published energies", argv, extra)
+    rungs = QUICK if args.quick else FULL
+    if args.list:
+        for r in rungs:
+            sys.stderr.write(f"{r.name}\n")
+        return
+    if args.rung:
+        names = {r.name for r in rungs}
+        unknown = [n for n in args.rung if n not in names]
+        if unknown:
+            raise SystemExit(f"unknown rung(s) {unknown}; available: {sorted(names)}")
+        rungs = [r for r in rungs if r.name in args.rung]
+    records = [emit(run_rung(replace(r, seed=args.seed))) for r in rungs]
+    summary(records, benchmark="ladder", quick=bool(args.quick))
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,282 @@
+"""Electron trial states and the Coulomb Hamiltonian: symmetry, exact solutions, cusps, Laplacians."""
+
+import importlib.util
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from hypothesis import given, strategies as st
+
+from psiloom import electrons as el
+from psiloom.electrons.basis import BasisFunction
+
+LI = el.atom("Li")  # n_up = 2, n_down = 1
+BE = el.atom("Be")  # n_up = 2, n_down = 2
+
+
+def _perturbed(params, scale=0.1, seed=5):
+    """Random non-zero values everywhere (the zero-initialised read-outs would hide bugs)."""
+    leaves, tree = jax.tree_util.tree_flatten(params)
+    keys = jax.random.split(jax.random.PRNGKey(seed), len(leaves))
+    return jax.tree_util.tree_unflatten(tree, [l + scale * jax.random.normal(k, l.shape) for l, k in zip(leaves, keys)])
+
+
+def _config(system, seed):
+    return np.random.default_rng(seed).normal(scale=1.2, size=(system.n_electrons, 3))
+
+
+@pytest.fixture(scope="module")
+def neural_be():
+    model = el.neural_slater_jastrow(BE, n_det=2, width=8, channels=4, jastrow_width=8)
+    params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(0), jnp.zeros((1, 4, 3))))
+    return model, params, jax.jit(lambda x: model.apply(params, x, method=model.sign_and_log))
+
+
+@pytest.fixture(scope="module")
+def neural_li():
+    model = el.neural_slater_jastrow(LI, n_det=2, width=8, channels=4, jastrow_width=8)
+    params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(1), jnp.zeros((1, 3, 3))))
+    return model, params
+
+
+# ----------------------------------------------------------------------------- antisymmetry
+@given(st.integers(0, 2**31 - 1), st.sampled_from([(0, 1), (2, 3)]))
+def test_same_spin_exchange_flips_sign(neural_be, seed, pair):
+    # Pauli principle: ψ is antisymmetric under exchanging two same-spin electrons (exact).
+    _, _, sign_log = neural_be
+    x = _config(BE, seed)
+    i, j = pair
+    swapped = x.copy()
+    swapped[[i, j]] = x[[j, i]]
+    s0, l0 = sign_log(x)
+    s1, l1 = sign_log(swapped)
+    assert float(s1) == -float(s0)
+    assert float(l1) == pytest.approx(float(l0), abs=1e-10)
+
+
+@given(st.integers(0, 2**31 - 1))
+def test_closed_shell_spin_block_exchange(seed):
+    # Spin-factorised closed shell with the same orbitals for both spins and a spin-symmetric
+    # Jastrow (a singlet, e.g. Be 1s²2s²): exchanging the up block with the down block of
+    # positions leaves ψ unchanged, since ψ = det Φ(r↑) det Φ(r↓) e^{J} is symmetric in the
+    # two blocks (textbook property of the restricted spin-factorised form).
+    params = _perturbed(_SJ_BE_PARAMS)
+    orb = params["params"]["orbitals"]
+    params["params"]["orbitals"]["coeff_down"] = orb["coeff_up"]
+    x = _config(BE, seed)
+    swapped = np.concatenate([x[2:], x[:2]])
+    s0, l0 = _SJ_BE_APPLY(params, x)
+    s1, l1 = _SJ_BE_APPLY(params, swapped)
+    assert float(s1) == float(s0)
+    assert float(l1) == pytest.approx(float(l0), abs=1e-10)
+    # ... and a single opposite-spin exchange is *not* a symmetry: the value changes.
+    one = x.copy()
+    one[[0, 2]] = x[[2, 0]]
+    assert abs(float(_SJ_BE_APPLY(params, one)[1]) - float(l0)) > 1e-8
+
+
+_SJ_BE_MODEL = el.slater_jastrow(BE, neural_jastrow=False)
+_SJ_BE_PARAMS = jax.jit(_SJ_BE_MODEL.init)(jax.random.PRNGKey(2), jnp.zeros((1, 4, 3)))
+_SJ_BE_APPLY = jax.jit(lambda p, x: _SJ_BE_MODEL.apply(p, x, method=_SJ_BE_MODEL.sign_and_log))
+
+
+def test_spin_factorised_form_matches_explicit_determinants():
+    # |ψ| = |det Φ↑| |det Φ↓| e^{J} computed independently with numpy determinants.
+    model = el.SlaterJastrow(el.SlaterTypeOrbitals(LI), (el.CuspJastrow(LI),))
+    x = _config(LI, 3)[None]
+    params = _perturbed(model.init(jax.random.PRNGKey(0), x))
+    up, down = model.apply(params, x, method=model.orbital_matrices)
+    jastrow = el.CuspJastrow(LI).apply({"params": params["params"]["jastrows_0"]}, x)
+    expected = np.log(abs(np.linalg.det(np.asarray(up[0, 0])) * np.linalg.det(np.asarray(down[0, 0])))) + float(jastrow[0])
+    assert float(model.apply(params, x)[0]) == pytest.approx(expected, rel=1e-12)
+    # exchanging the up electron 1 with the down electron 2 re-evaluates the same formula
+    y = x.copy()
+    y[0, [1, 2]] = x[0, [2, 1]]
+    up, down = model.apply(params, y, method=model.orbital_matrices)
+    jastrow = el.CuspJastrow(LI).apply({"params": params["params"]["jastrows_0"]}, y)
+    expected = np.log(abs(np.linalg.det(np.asarray(up[0, 0])) * np.linalg.det(np.asarray(down[0, 0])))) + float(jastrow[0])
+    assert float(model.apply(params, y)[0]) == pytest.approx(expected, rel=1e-12)
+
+
+@given(st.integers(0, 2**31 - 1), st.permutations(range(2)), st.permutations(range(2)))
+def test_features_are_permutation_equivariant(seed, perm_up, perm_down):
+    # Relabelling electrons within each spin group relabels the feature rows identically.
+    net = el.MomentMixer(BE, width=8, channels=4, layers=2)
+    params = _perturbed(_FEATURE_PARAMS)
+    x = _config(BE, seed)
+    order = np.concatenate([np.asarray(perm_up), 2 + np.asarray(perm_down)])
+    h = _FEATURES(params, x[None])[0]
+    h_perm = _FEATURES(params, x[order][None])[0]
+    np.testing.assert_allclose(np.asarray(h_perm), np.asarray(h)[order], atol=1e-12)
+    assert net.width == h.shape[-1]
+
+
+_FEATURE_NET = el.MomentMixer(BE, width=8, channels=4, layers=2)
+_FEATURE_PARAMS = _FEATURE_NET.init(jax.random.PRNGKey(4), jnp.zeros((1, 4, 3)))
+_FEATURES = jax.jit(_FEATURE_NET.apply)
+
+
+# ----------------------------------------------------------------------------- exact solutions
+def _hydrogenic(z):
+    system = el.molecule([(float(z), (0.1, -0.2, 0.3))], n_up=1, n_down=0)
+    orbitals = el.SlaterTypeOrbitals(system, basis=(BasisFunction(0, "s", float(z), label="1s"),), cusp_free=False)
+    model = el.SlaterJastrow(orbitals, ())
+    params = model.init(jax.random.PRNGKey(0), jnp.zeros((1, 1, 3)))
+    return system, model, params
+
+
+@pytest.mark.parametrize("z, exact", [(1, -0.5), (2, -2.0)])
+@pytest.mark.parametrize("method", ["forward", "hessian"])
+def test_hydrogenic_ground_state_has_exact_local_energy(z, exact, method):
+    # ψ = e^{−Z r} is the exact 1s state: E_loc = −Z²/2 at every point, zero variance
+    # (hydrogen −0.5 Ha, He⁺ −2.0 Ha; textbook hydrogen-like atom).
+    system, model, params = _hydrogenic(z)
+    x = jax.random.normal(jax.random.PRNGKey(z), (64, 1, 3)) * 2.0
+    h = el.CoulombHamiltonian(system, laplacian=method)
+    e = h.local_energy(lambda y: model.apply(params, y), x)
+    np.testing.assert_allclose(np.asarray(e), exact, atol=1e-10)
+    parts = h.local_energy_parts(lambda y: model.apply(params, y), x, chunk=16)
+    np.testing.assert_allclose(np.asarray(parts.total), exact, atol=1e-10)
+    assert np.all(np.asarray(parts.kinetic) != 0)
+
+
+def test_wrong_trial_exponent_is_not_an_eigenstate():
+    # With ζ ≠ Z the local energy varies: E_L = −ζ²/2 + (ζ − Z)/r (hydrogen-like algebra).
+    system = el.molecule([(1.0, (0, 0, 0))], n_up=1, n_down=0)
+    orbitals = el.SlaterTypeOrbitals(system, basis=(BasisFunction(0, "s", 1.3, label="1s"),), cusp_free=False)
+    model = el.SlaterJastrow(orbitals, ())
+    params = model.init(jax.random.PRNGKey(0), jnp.zeros((1, 1, 3)))
+    x = jax.random.normal(jax.random.PRNGKey(1), (16, 1, 3))
+    e = el.CoulombHamiltonian(system).local_energy(lambda y: model.apply(params, y), x)
+    r = np.linalg.norm(np.asarray(x[:, 0]), axis=-1)
+    np.testing.assert_allclose(np.asarray(e), -1.3**2 / 2 + 0.3 / r, rtol=1e-10)
+
+
+# ----------------------------------------------------------------------------- Laplacians
+def _finite_difference(f, x, h=1e-3):
+    """Central differences: gradient and Laplacian, errors O(h²)."""
+    flat = x.reshape(-1)
+    grad, lap = np.zeros_like(flat), 0.0
+    f0 = f(flat)
+    for k in range(flat.size):
+        e = np.zeros_like(flat)
+        e[k] = h
+        fp, fm = f(flat + e), f(flat - e)
+        grad[k] = (fp - fm) / (2 * h)
+        lap += (fp - 2 * f0 + fm) / h**2
+    return grad.reshape(x.shape), lap
+
+
+def test_laplacian_methods_agree_with_each_other_and_finite_differences(neural_li):
+    model, params = neural_li
+    x = jnp.asarray(_config(LI, 11))
+    f = lambda r: model.apply(params, r.reshape(1, 3, 3))[0]
+    methods = ["forward", "hessian"] + (["folx"] if importlib.util.find_spec("folx") else [])
+    results = {m: jax.jit(lambda y, m=m: el.value_grad_laplacian(f, y, m))(x) for m in methods}
+    v0, g0, l0 = results["hessian"]
+    for m in methods:
+        v, g, l = results[m]
+        assert float(v) == pytest.approx(float(v0), abs=1e-12)
+        np.testing.assert_allclose(np.asarray(g), np.asarray(g0), atol=1e-10)
+        assert float(l) == pytest.approx(float(l0), rel=1e-10, abs=1e-10)
+    f_np = jax.jit(lambda r: f(r))
+    g_fd, l_fd = _finite_difference(lambda r: float(f_np(jnp.asarray(r))), np.asarray(x))
+    np.testing.assert_allclose(np.asarray(g0), g_fd, atol=1e-5)
+    assert float(l0) == pytest.approx(l_fd, abs=1e-3)  # second differences: error O(h²)·f'''' + rounding/h²
+
+
+def test_unknown_laplacian_method_raises():
+    with pytest.raises(ValueError, match="unknown laplacian"):
+        el.CoulombHamiltonian(LI, laplacian="magic")
+    with pytest.raises(ValueError, match="unknown Laplacian method"):
+        el.value_grad_laplacian(jnp.sum, jnp.zeros(3), "magic")
+
+
+# ----------------------------------------------------------------------------- cusp conditions
+def _radial_log_derivative(logpsi, x, electron, centre, direction, delta):
+    f = lambda d: logpsi(x.at[electron].set(centre + d * direction))
+    return jax.grad(f)(delta)
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_kato_cusp_conditions(neural_li, seed):
+    # Kato 1957: spherically averaged ∂ ln ψ/∂r at coalescence = −Z (electron–nucleus) and
+    # +1/2 (antiparallel electrons); +1/4 for parallel electrons after removing the linear
+    # zero of ψ (Pack & Byers Brown 1966, from memory). Averaging over ±n removes the smooth
+    # linear part; Richardson extrapolation 2f(δ) − f(2δ) removes the O(δ) remainder.
+    model, params = neural_li
+    logpsi = jax.jit(lambda y: model.apply(params, y))
+    x = jnp.asarray(_config(LI, 100 + seed))
+    n = jnp.asarray(np.random.default_rng(seed).normal(size=3))
+    n = n / jnp.linalg.norm(n)
+    nucleus = jnp.asarray(LI.positions[0])
+
+    def averaged(electron, centre, delta, subtract_pole=False):
+        d = 0.5 * (_radial_log_derivative(logpsi, x, electron, centre, n, delta)
+                   + _radial_log_derivative(logpsi, x, electron, centre, -n, delta))
+        return d - (1.0 / delta if subtract_pole else 0.0)
+
+    def extrapolated(*args, **kw):
+        delta = 1e-4
+        return 2 * averaged(*args, delta, **kw) - averaged(*args, 2 * delta, **kw)
+
+    assert float(extrapolated(0, nucleus)) == pytest.approx(-3.0, abs=1e-4)  # Z(Li) = 3
+    assert float(extrapolated(2, x[0])) == pytest.approx(0.5, abs=1e-4)  # electron 2 down, 0 up
+    assert float(extrapolated(1, x[0], subtract_pole=True)) == pytest.approx(0.25, abs=1e-3)  # both up
+
+
+# ----------------------------------------------------------------------------- building blocks
+@given(st.lists(st.tuples(st.floats(-30, 30), st.sampled_from([-1.0, 1.0]), st.floats(-2, 2)), min_size=1, max_size=5))
+def test_signed_log_sum_exp_matches_direct_sum(terms):
+    logs = np.array([t[0] for t in terms])
+    signs = np.array([t[1] for t in terms])
+    weights = np.array([t[2] for t in terms])
+    direct = np.sum(weights * signs * np.exp(logs))
+    sign, log = el.signed_log_sum_exp(jnp.asarray(signs), jnp.asarray(logs), jnp.asarray(weights))
+    if abs(direct) < 1e-9 * np.max(np.abs(weights) * np.exp(logs)) or direct == 0:
+        return  # cancellation: nothing to compare in floating point
+    assert float(sign) == np.sign(direct)
+    assert float(log) == pytest.approx(np.log(abs(direct)), abs=1e-8)
+
+
+def test_empty_determinant_is_one():
+    sign, log = el.signed_log_det(jnp.zeros((5, 2, 0, 0)))
+    assert sign.shape == (5, 2) and np.all(np.asarray(sign) == 1) and np.all(np.asarray(log) == 0)
+    with pytest.raises(ValueError, match="square"):
+        el.signed_log_det(jnp.zeros((2, 3)))
+
+
+def test_bad_configurations_raise():
+    model = el.slater_jastrow(LI, neural_jastrow=False)
+    with pytest.raises(ValueError, match=r"\(\.\.\., n_electrons, 3\)"):
+        model.init(jax.random.PRNGKey(0), jnp.zeros((1, 3, 2)))
+    with pytest.raises(ValueError, match="3 electrons"):
+        model.init(jax.random.PRNGKey(0), jnp.zeros((1, 4, 3)))
+    with pytest.raises(ValueError, match="n_samples, 3, 3"):
+        el.CoulombHamiltonian(LI).local_energy(lambda y: jnp.zeros(y.shape[0]), jnp.zeros((2, 2, 3)))
+
+
+def test_single_configuration_and_batch_shapes(neural_li):
+    model, params = neural_li
+    x = jnp.asarray(_config(LI, 7))
+    single = model.apply(params, x)
+    batch = model.apply(params, jnp.stack([x, x])[None])
+    assert single.shape == () and batch.shape == (1, 2)
+    assert float(batch[0, 1]) == pytest.approx(float(single), abs=1e-12)
+
+
+def test_basis_normalisation_by_quadrature():
+    # ∫ χ² d³r = 1 for each basis kind (radial quadrature with scipy, angular part analytic).
+    from scipy.integrate import quad
+    from psiloom.electrons.basis import normalisation
+    zeta = 1.7
+    radial = {
+        "s": (lambda r: np.exp(-zeta * r), 4 * np.pi),
+        "sc": (lambda r: (1 + zeta * r) * np.exp(-zeta * r), 4 * np.pi),
+        "s2": (lambda r: r**2 * np.exp(-zeta * r), 4 * np.pi),
+        "p": (lambda r: r * np.exp(-zeta * r), 4 * np.pi / 3),  # ⟨cos²θ⟩ over the sphere = 1/3
+    }
+    for kind, (f, angular) in radial.items():
+        integral = angular * quad(lambda r: f(r) ** 2 * r**2, 0, np.inf)[0]
+        assert normalisation(kind, zeta) ** 2 * integral == pytest.approx(1.0, rel=1e-10), kind
