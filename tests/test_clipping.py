@@ -35,7 +35,7 @@ def numpy_clip(e, k):
 finite = st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)
 
 
-@given(e=hnp.arrays(np.float64, st.integers(1, 40), elements=finite), k=st.floats(0.1, 20.0))
+@given(e=hnp.arrays(np.float64, st.sampled_from([1, 2, 7, 40]), elements=finite), k=st.floats(0.1, 20.0))
 def test_clip_matches_definition(e, k):
     got = np.asarray(clip_local_energies(jnp.asarray(e), k))
     np.testing.assert_allclose(got, numpy_clip(e, k), rtol=1e-12, atol=1e-9)
@@ -44,7 +44,7 @@ def test_clip_matches_definition(e, k):
     assert np.all(np.abs(got - m) <= k * np.mean(np.abs(e - m)) * (1 + 1e-12) + 1e-9)
 
 
-@given(e=hnp.arrays(np.float64, st.integers(1, 40), elements=finite))
+@given(e=hnp.arrays(np.float64, st.sampled_from([1, 2, 7, 40]), elements=finite))
 def test_clip_is_monotone_and_keeps_the_median(e):
     # clipping is a monotone map (order of samples preserved) and the median is a fixed point
     got = np.asarray(clip_local_energies(jnp.asarray(e), 2.0))

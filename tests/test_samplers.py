@@ -134,6 +134,27 @@ def test_parallel_tempering_replicas_sample_their_powers_of_psi():
     assert np.all(np.diff(np.asarray(chains.acceptance)) > 0)
 
 
+def test_tempering_fast_updates_match_full_evaluation():
+    # The RBM's fast-update cache must follow its configuration through replica exchanges:
+    # with identical random numbers the fast and the generic path give the same chains.
+    from psiloom.states.fast import bind_amplitude
+
+    space = pl.spaces.SpinSpace(N_SITES)
+    state = random_rbm(scale=0.4)
+    sampler = TemperingSampler(space, 8, betas=(1.0, 0.7, 0.4, 0.2))
+    run = jax.jit(sampler.sample, static_argnums=3)
+    out = {}
+    for fast in (True, False):
+        bound = bind_amplitude(state.model, state.variables, fast=fast)
+        chains = sampler.init(jax.random.PRNGKey(0), bound)
+        assert (chains.cache is not None) == fast
+        out[fast] = run(jax.random.PRNGKey(1), chains, bound, 30)
+    np.testing.assert_array_equal(np.asarray(out[True][0]), np.asarray(out[False][0]))
+    np.testing.assert_allclose(np.asarray(out[True][1]), np.asarray(out[False][1]), atol=1e-10)
+    np.testing.assert_array_equal(np.asarray(out[True][2].x), np.asarray(out[False][2].x))
+    assert float(np.nanmin(np.asarray(out[True][2].swap_rate))) > 0.0
+
+
 # --------------------------------------------------------------------------- mixture move itself
 
 
@@ -142,7 +163,7 @@ def test_mixture_picks_components_with_given_probabilities():
     # a pair exchange never does, so the fraction of magnetisation-changing proposals is p_flip.
     p_flip, n = 0.3, 20_000
     move = mixture([(single_flip, p_flip), (pair_exchange, 1.0 - p_flip)])
-    x = pl.spaces.SpinSpace(10, total_sz=0).random(jax.random.PRNGKey(0), n)
+    x = jnp.asarray(np.random.default_rng(0).permuted(np.tile([1.0] * 5 + [-1.0] * 5, (n, 1)), axis=1))
     x_new, sites = jax.jit(move)(jax.random.PRNGKey(1), x)
     frac = float(jnp.mean(jnp.sum(x_new, axis=1) != jnp.sum(x, axis=1)))
     assert abs(frac - p_flip) < 5 * np.sqrt(p_flip * (1 - p_flip) / n)

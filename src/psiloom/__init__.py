@@ -10,9 +10,9 @@ psiloom follows the dtype of its inputs; enable ``jax_enable_x64`` for float64, 
 stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
 """
 
-from psiloom import batching, exact, lattices, operators, optimize, plotting, reduce, sampling, spaces, states, stats, train
+from psiloom import batching, exact, lattices, operators, optimize, plotting, reduce, sampling, spaces, states, stats, symmetry, train
 
 __version__ = "0.1.0"
 
 __all__ = ["batching", "exact", "lattices", "operators", "optimize", "plotting", "reduce", "sampling", "spaces", "states",
-           "stats", "train", "__version__"]
+           "stats", "symmetry", "train", "__version__"]

@@ -11,8 +11,9 @@ from psiloom.operators.models import (
     xxz,
 )
 from psiloom.operators.local import local_values
+from psiloom.operators import observables
 
 __all__ = [
     "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
-    "staggered_magnetization_z", "transverse_field_ising", "xxz", "local_values",
+    "staggered_magnetization_z", "transverse_field_ising", "xxz", "local_values", "observables",
 ]

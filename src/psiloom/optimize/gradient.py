@@ -33,7 +33,7 @@ import jax.numpy as jnp
 
 from psiloom.batching import map_in_chunks
 from psiloom.optimize.flatten import conj_complex_leaves, ravel_real
-from psiloom.reduce import sample_mean
+from psiloom.reduce import sample_mean, sample_sum
 
 
 def energy_gradient(apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array):
@@ -106,9 +106,9 @@ class SampleGeometry:
 
     def _centre(self, u):
         """Subtract the sample mean in each block (Re / Im) of a row vector and scale by 1/√n."""
-        blocks = u.reshape(-1, self.n_samples)
-        blocks = blocks - sample_mean(blocks, axis=1)[:, None]
-        return blocks.reshape(-1) / jnp.sqrt(self.n_samples)
+        blocks = u.reshape(-1, self.n_samples).T  # (n, 1 or 2): sample axis leading
+        blocks = blocks - sample_mean(blocks)
+        return blocks.T.reshape(-1) / jnp.sqrt(self.n_samples)
 
     def _linearized(self):
         """``(f_jvp, f_vjp)`` of θ ↦ real outputs at the current parameters.
@@ -186,7 +186,7 @@ class SampleGeometry:
     def s_diagonal(self) -> jax.Array:
         """diag S = Σ_rows X², shape ``(P,)`` (forms X)."""
         x = self.jacobian()
-        return jnp.sum(x * x, axis=0)
+        return sample_sum(x * x)
 
     def residual(self) -> jax.Array:
         """ε = [Re ΔE; Im ΔE]/√n (real part only for real ψ), so that Xᵀ ε = ½ ∇E."""

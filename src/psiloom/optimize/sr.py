@@ -48,6 +48,7 @@ import jax.numpy as jnp
 import optax
 
 from psiloom.optimize.flatten import ravel_real
+from psiloom.reduce import sample_sum
 
 SOLVERS = ("dense", "sample_space", "cg", "auto")
 
@@ -171,7 +172,7 @@ def stochastic_reconfiguration(
         else:
             x = geometry.jacobian()
             if rel_fn is not None:
-                lam = eps + jnp.asarray(rel_fn(state.count), force.dtype) * jnp.sum(x * x, axis=0)
+                lam = eps + jnp.asarray(rel_fn(state.count), force.dtype) * sample_sum(x * x)
             else:
                 lam = eps
             if kind == "dense":

@@ -31,7 +31,7 @@ call are kept in the state (``acceptance``, ``swap_rate``) for diagnostics.
 
 from __future__ import annotations
 
-from typing import Callable, NamedTuple, Sequence
+from typing import Any, Callable, NamedTuple, Sequence
 
 import jax
 import jax.numpy as jnp
@@ -40,6 +40,7 @@ import numpy as np
 from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
 from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
 from psiloom.spaces import SpinSpace
+from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
 
 class TemperingState(NamedTuple):
@@ -48,6 +49,7 @@ class TemperingState(NamedTuple):
     parity: jax.Array  # () int32: which pair set (even r or odd r) the next exchange round tries
     acceptance: jax.Array  # (R,) Metropolis acceptance per replica over the last sample() call
     swap_rate: jax.Array  # (R−1,) accepted / attempted exchanges per pair over the last sample() call (nan: never tried)
+    cache: Any = None  # fast-update cache of x flattened to (R·C, ...), None on the generic path
 
 
 class TemperingInfo(NamedTuple):
@@ -82,37 +84,61 @@ def _check_betas(betas) -> np.ndarray:
     return arr
 
 
+def _select(accept, new, old):
+    return jax.tree_util.tree_map(
+        lambda a, b: jnp.where(accept.reshape(accept.shape + (1,) * (a.ndim - 1)), a, b), new, old
+    )
+
+
 def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
-    """Pure kernel ``step(key, x (R,C,N), log_amp (R,C), log_amplitude) -> (x, log_amp, accepted (R,C))``:
-    one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ))."""
+    """Pure kernel for one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ)):
+
+        step(key, x (R,C,N), log_amp (R,C), log_amplitude, log_u=None, cache=None, fast=None)
+            -> (x, log_amp, cache, accepted (R,C))
+
+    ``log_u`` (R, C) are the logs of the acceptance uniforms (drawn from ``key`` when omitted).
+    With ``fast`` (the :class:`~psiloom.states.FastUpdates` of ``log_amplitude``) and a cache of
+    the flattened replicas (leading axis R·C), Δ log ψ comes from the cache and the sites the
+    move changed; otherwise ψ(x') is evaluated in full.
+    """
     betas = _check_betas(betas)
 
-    def step(key, x, log_amp, log_amplitude: LogAmplitudeFn):
+    def step(key, x, log_amp, log_amplitude: LogAmplitudeFn, log_u=None, cache=None, fast: FastUpdates | None = None):
         r, c = log_amp.shape
         k_prop, k_acc = jax.random.split(key)
         flat = x.reshape(r * c, *x.shape[2:])
-        x_new = move(k_prop, flat)[0].reshape(x.shape)
-        log_new = log_amplitude(x_new.reshape(r * c, *x.shape[2:])).reshape(r, c)
+        flat_new, sites = move(k_prop, flat)
+        if fast is not None and cache is not None:
+            delta, cache_new = fast.update(flat, cache, sites, values_at(flat_new, sites))
+            delta = delta.reshape(r, c)
+            log_new = log_amp + delta
+        else:
+            cache_new = None
+            log_new = log_amplitude(flat_new).reshape(r, c)
+            delta = log_new - log_amp
         beta = jnp.asarray(betas, dtype=jnp.real(log_new).dtype)[:, None]
-        log_ratio = 2.0 * beta * jnp.real(log_new - log_amp)
-        u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)
-        accept = jnp.log(u) < log_ratio
-        x = jnp.where(accept.reshape(r, c, *([1] * (x.ndim - 2))), x_new, x)
-        return x, jnp.where(accept, log_new, log_amp), accept
+        log_ratio = 2.0 * beta * jnp.real(delta)
+        if log_u is None:
+            log_u = jnp.log(jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype))
+        accept = log_u < log_ratio
+        x = jnp.where(accept.reshape(r, c, *([1] * (x.ndim - 2))), flat_new.reshape(x.shape), x)
+        cache = None if cache_new is None else _select(accept.reshape(-1), cache_new, cache)
+        return x, jnp.where(accept, log_new, log_amp), cache, accept
 
     return step
 
 
 def replica_exchange(betas: Sequence[float]) -> Callable:
-    """Pure kernel ``exchange(key, x, log_amp, parity) -> (x, log_amp, attempted (R−1,), swapped (R−1,C))``:
-    one round of neighbour exchanges over the pairs (r, r+1) with r ≡ parity (mod 2)."""
+    """Pure kernel ``exchange(key, x, log_amp, parity, cache=None) -> (x, log_amp, cache, attempted (R−1,),
+    swapped (R−1,C))``: one round of neighbour exchanges over the pairs (r, r+1) with r ≡ parity (mod 2);
+    a fast-update cache (leading axis R·C) travels with its configuration."""
     betas = _check_betas(betas)
     n_rep = len(betas)
     dbeta = np.asarray(betas[:-1] - betas[1:])  # (R−1,) > 0
 
-    def exchange(key, x, log_amp, parity):
+    def exchange(key, x, log_amp, parity, cache=None):
         if n_rep == 1:
-            return x, log_amp, jnp.zeros((0,), bool), jnp.zeros((0, log_amp.shape[1]), bool)
+            return x, log_amp, cache, jnp.zeros((0,), bool), jnp.zeros((0, log_amp.shape[1]), bool)
         ell = 2.0 * jnp.real(log_amp)  # (R, C)
         log_acc = jnp.asarray(dbeta, ell.dtype)[:, None] * (ell[1:] - ell[:-1])  # (R−1, C)
         attempted = (jnp.arange(n_rep - 1) % 2) == parity
@@ -123,7 +149,10 @@ def replica_exchange(betas: Sequence[float]) -> Callable:
         source = jnp.arange(n_rep)[:, None] + jnp.pad(s, ((0, 1), (0, 0))) - jnp.pad(s, ((1, 0), (0, 0)))
         x = jnp.take_along_axis(x, source.reshape(*source.shape, *([1] * (x.ndim - 2))), axis=0)
         log_amp = jnp.take_along_axis(log_amp, source, axis=0)
-        return x, log_amp, attempted, swapped
+        if cache is not None:
+            flat_source = (source * source.shape[1] + jnp.arange(source.shape[1])[None, :]).reshape(-1)
+            cache = jax.tree_util.tree_map(lambda leaf: leaf[flat_source], cache)
+        return x, log_amp, cache, attempted, swapped
 
     return exchange
 
@@ -144,7 +173,9 @@ class TemperingSampler:
         burn_in: steps discarded at the start of every :meth:`sample` call.
 
     :meth:`sample` returns the configurations of the β = 1 replica and its acceptance; the
-    acceptance per replica and the exchange rate per pair stay in the returned state.
+    acceptance per replica and the exchange rate per pair stay in the returned state. Trial
+    states with fast amplitude updates (:mod:`psiloom.states.fast`) are updated through them,
+    with one cache per replica that travels with its configuration in exchanges.
     """
 
     def __init__(self, space: SpinSpace, n_chains: int = 16, betas: Sequence[float] = (1.0, 0.5),
@@ -169,39 +200,59 @@ class TemperingSampler:
         self._metropolis = tempered_metropolis_step(move, self.betas)
         self._exchange = replica_exchange(self.betas)
 
+    @staticmethod
+    def _with_cache(state: TemperingState, fast: FastUpdates | None, recompute: bool = True) -> TemperingState:
+        """Attach (or drop) the fast-update cache of all replicas, flattened to (R·C, ...)."""
+        if fast is None:
+            return state._replace(cache=None)
+        if recompute or state.cache is None:
+            r, c = state.log_amp.shape
+            return state._replace(cache=fast.init(state.x.reshape(r * c, *state.x.shape[2:])))
+        return state
+
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> TemperingState:
         """Independent random configurations for every replica of every chain."""
         r, c = self.n_replicas, self.n_chains
         x = self.space.random(key, r * c)
         log_amp = log_amplitude(x)
         real = jnp.real(log_amp).dtype
-        return TemperingState(
+        state = TemperingState(
             x.reshape(r, c, *x.shape[1:]), log_amp.reshape(r, c), jnp.zeros((), jnp.int32),
             jnp.zeros((r,), real), jnp.zeros((r - 1,), real),
         )
+        return self._with_cache(state, fast_updates_of(log_amplitude))
 
     def refresh(self, state: TemperingState, log_amplitude: LogAmplitudeFn) -> TemperingState:
-        """Recompute the cached log-amplitudes of all replicas (after the parameters changed)."""
+        """Recompute the cached log-amplitudes (and fast-update cache) of all replicas."""
         r, c = state.log_amp.shape
         flat = state.x.reshape(r * c, *state.x.shape[2:])
-        return state._replace(log_amp=log_amplitude(flat).reshape(r, c))
+        state = state._replace(log_amp=log_amplitude(flat).reshape(r, c))
+        return self._with_cache(state, fast_updates_of(log_amplitude))
 
-    def step(self, key: jax.Array, state: TemperingState, log_amplitude: LogAmplitudeFn):
-        """One sweep of Metropolis proposals in every replica, then one exchange round."""
-        k_sweep, k_swap = jax.random.split(key)
+    def _step(self, key, state: TemperingState, log_amplitude, fast):
+        k_sweep, k_acc, k_swap = jax.random.split(key, 3)
+        # draw the sweep's random numbers up front (cheaper than inside the loop on CPU)
+        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape),
+                                           dtype=jnp.real(state.log_amp).dtype))
 
-        def body(carry, k):
-            x, log_amp, acc = carry
-            x, log_amp, accepted = self._metropolis(k, x, log_amp, log_amplitude)
-            return (x, log_amp, acc + jnp.mean(accepted, axis=1)), None
+        def body(carry, draws):
+            x, log_amp, cache, acc = carry
+            k, lu = draws
+            x, log_amp, cache, accepted = self._metropolis(k, x, log_amp, log_amplitude, lu, cache, fast)
+            return (x, log_amp, cache, acc + jnp.mean(accepted, axis=1)), None
 
         real = jnp.real(state.log_amp).dtype
-        (x, log_amp, acc), _ = jax.lax.scan(
-            body, (state.x, state.log_amp, jnp.zeros((self.n_replicas,), real)), jax.random.split(k_sweep, self.sweep)
-        )
-        x, log_amp, attempted, swapped = self._exchange(k_swap, x, log_amp, state.parity)
-        new = state._replace(x=x, log_amp=log_amp, parity=1 - state.parity)
+        init = (state.x, state.log_amp, state.cache, jnp.zeros((self.n_replicas,), real))
+        (x, log_amp, cache, acc), _ = jax.lax.scan(body, init, (jax.random.split(k_sweep, self.sweep), log_u))
+        x, log_amp, cache, attempted, swapped = self._exchange(k_swap, x, log_amp, state.parity, cache)
+        new = state._replace(x=x, log_amp=log_amp, parity=1 - state.parity, cache=cache)
         return new, TemperingInfo(acc / self.sweep, attempted, swapped)
+
+    def step(self, key: jax.Array, state: TemperingState, log_amplitude: LogAmplitudeFn):
+        """One sweep of Metropolis proposals in every replica, then one exchange round
+        (fast updates when ``log_amplitude`` offers them, see :mod:`psiloom.states.fast`)."""
+        fast = fast_updates_of(log_amplitude)
+        return self._step(key, self._with_cache(state, fast, recompute=False), log_amplitude, fast)
 
     def sample(self, key: jax.Array, state: TemperingState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
         """Burn in, then store the β = 1 replica ``n_per_chain`` times, one :meth:`step` apart.
@@ -211,13 +262,15 @@ class TemperingSampler:
         acceptance and per-pair exchange rate of the stored part.
         """
         n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        fast = fast_updates_of(log_amplitude)
+        state = self._with_cache(state, fast, recompute=False)
         k_burn, k_run = jax.random.split(key)
         if self.burn_in:
-            state, _ = jax.lax.scan(lambda s, k: (self.step(k, s, log_amplitude)[0], None), state,
+            state, _ = jax.lax.scan(lambda s, k: (self._step(k, s, log_amplitude, fast)[0], None), state,
                                     jax.random.split(k_burn, self.burn_in))
 
         def collect(st, k):
-            st, info = self.step(k, st, log_amplitude)
+            st, info = self._step(k, st, log_amplitude, fast)
             tried = info.attempted.astype(info.acceptance.dtype)
             accepted = jnp.mean(info.swapped, axis=1).astype(info.acceptance.dtype)
             return st, (st.x[0], st.log_amp[0], info.acceptance, tried, accepted)

@@ -21,10 +21,14 @@ from psiloom.states.feedforward import FeedForward
 from psiloom.states.jastrow import TwoBodyJastrow
 from psiloom.states.product import ProductState
 from psiloom.states.rbm import RBM, RBMCache, log_two_cosh
+from psiloom.states.symmetric import Symmetrized
+from psiloom.states.translation_rbm import TranslationInvariantRBM
+from psiloom.states.equivariant import GroupConv, GroupConvNet, GroupLift
 
 __all__ = [
     "TrialState", "check_input_size", "count_real_parameters", "default_complex_dtype",
     "default_real_dtype", "init_parameters", "FeedForward", "TwoBodyJastrow", "ProductState",
     "RBM", "log_two_cosh", "BoundState", "ChainRuleState",
     "BoundAmplitude", "FastUpdates", "bind_amplitude", "fast_updates_of", "supports_fast_updates", "RBMCache",
+    "Symmetrized", "TranslationInvariantRBM", "GroupConv", "GroupConvNet", "GroupLift",
 ]

@@ -20,7 +20,7 @@ import jax
 class BoundState:
     """``log ψ`` of ``model`` at fixed ``variables``: ``BoundState(model, variables)(x)``."""
 
-    __slots__ = ("model", "variables")
+    __slots__ = ("model", "variables", "__weakref__")
 
     def __init__(self, model, variables: Any):
         if not hasattr(model, "apply"):

@@ -1,0 +1,252 @@
+"""Fast amplitude updates (psiloom.states.fast, RBM.fast_updates) against full re-evaluation.
+
+References used here:
+* the RBM amplitude with the hidden units traced out, ψ(x) = exp(a·x) Π_j 2 cosh(θ_j),
+  θ = xW + b (Carleo & Troyer, Science 355, 602 (2017), Eq. 2), evaluated directly with
+  NumPy's cosh as an independent implementation of the amplitude ratios;
+* the variational identity Σ_x |ψ(x)|² E_loc(x) / Σ_x |ψ(x)|² = ⟨ψ|H|ψ⟩/⟨ψ|ψ⟩ (textbook VMC),
+  with the right-hand side from a dense matrix-vector product in NumPy.
+Equality of the fast and generic code paths is asserted to float64 rounding (common practice:
+a few hundred ulps of the magnitudes involved).
+"""
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import psiloom as pl
+from psiloom.sampling import ChainState
+from psiloom.states import RBM, bind_amplitude, fast_updates_of
+
+N_SITES, N_BATCH, K_SITES = 10, 6, 3
+
+
+def _wrap_phase(d):
+    """Imaginary parts of log-amplitudes are defined modulo 2π."""
+    return np.real(d) + 1j * (np.mod(np.imag(d) + np.pi, 2 * np.pi) - np.pi)
+
+
+def _model(complex_params: bool, scale: float = 0.4):
+    model = RBM(alpha=2, complex_params=complex_params, init_scale=scale)
+    space = pl.spaces.SpinSpace(N_SITES)
+    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(0), 1))
+    return model, variables
+
+
+_MODELS = {flag: _model(flag) for flag in (False, True)}
+
+
+@jax.jit
+def _fast_real(variables, x, sites, new_values):
+    fast = fast_updates_of(bind_amplitude(_MODELS[False][0], variables))
+    return fast.update(x, fast.init(x), sites, new_values)
+
+
+@jax.jit
+def _fast_complex(variables, x, sites, new_values):
+    fast = fast_updates_of(bind_amplitude(_MODELS[True][0], variables))
+    return fast.update(x, fast.init(x), sites, new_values)
+
+
+def _numpy_log_psi(variables, x):
+    """log ψ straight from the RBM formula with NumPy (independent of psiloom's log_two_cosh)."""
+    p = jax.tree_util.tree_map(np.asarray, variables["params"])
+    theta = x @ p["kernel"] + p["hidden_bias"]
+    return x @ p["visible_bias"] + np.sum(np.log(2.0 * np.cosh(theta)), axis=-1)
+
+
+@st.composite
+def _changes(draw):
+    """A batch of ±1 configurations and, per row, up to K distinct sites (−1 padded) with new values."""
+    spins = draw(st.lists(st.sampled_from([-1.0, 1.0]), min_size=N_BATCH * N_SITES, max_size=N_BATCH * N_SITES))
+    x = np.array(spins).reshape(N_BATCH, N_SITES)
+    sites = np.full((N_BATCH, K_SITES), -1, dtype=np.int32)
+    new_values = np.ones((N_BATCH, K_SITES))
+    for row in range(N_BATCH):
+        chosen = draw(st.lists(st.integers(0, N_SITES - 1), max_size=K_SITES, unique=True))
+        slots = draw(st.permutations(list(range(K_SITES))))[: len(chosen)]  # padding anywhere
+        for slot, site in zip(slots, chosen):
+            sites[row, slot] = site
+            new_values[row, slot] = draw(st.sampled_from([-1.0, 1.0]))  # may equal the old value
+    return x, sites, new_values
+
+
+def _apply(x, sites, new_values):
+    x_new = x.copy()
+    for row in range(x.shape[0]):
+        for site, value in zip(sites[row], new_values[row]):
+            if site >= 0:
+                x_new[row, site] = value
+    return x_new
+
+
+@pytest.mark.parametrize("complex_params", [False, True])
+@settings(max_examples=20)
+@given(change=_changes())
+def test_fast_ratio_equals_rbm_formula(complex_params, change):
+    x, sites, new_values = change
+    model, variables = _MODELS[complex_params]
+    update = _fast_complex if complex_params else _fast_real
+    delta, cache = update(variables, jnp.asarray(x), jnp.asarray(sites), jnp.asarray(new_values))
+    x_new = _apply(x, sites, new_values)
+    # reference: the amplitude formula of Carleo & Troyer (2017), Eq. 2, in NumPy
+    expected = _numpy_log_psi(variables, x_new) - _numpy_log_psi(variables, x)
+    diff = _wrap_phase(np.asarray(delta) - expected)
+    assert np.max(np.abs(diff)) < 1e-11 * (1.0 + np.max(np.abs(expected)))
+    # the cache follows: it equals the cache computed from scratch at x'
+    fast = fast_updates_of(bind_amplitude(model, variables))
+    fresh = fast.init(jnp.asarray(x_new))
+    for got, want in zip(cache, fresh):
+        np.testing.assert_allclose(np.asarray(got), np.asarray(want), rtol=1e-11, atol=1e-12)
+
+
+def test_fast_ratio_with_large_weights_and_shared_sites():
+    """Weights of order 3 (|θ| up to ~30, where tanh θ rounds to ±1): no cancellation."""
+    model = RBM(alpha=2, complex_params=False, init_scale=3.0)
+    x = pl.spaces.SpinSpace(N_SITES).random(jax.random.PRNGKey(5), 32)
+    variables = model.init(jax.random.PRNGKey(6), x[:1])
+    fast = fast_updates_of(bind_amplitude(model, variables))
+    sites = jnp.array([4, -1, 7])  # the same sites in every sample (the local-energy layout)
+    delta, _ = fast.update(x, fast.init(x), sites, -x[:, jnp.array([4, 0, 7])])
+    x_new = np.asarray(x).copy()
+    x_new[:, [4, 7]] *= -1
+    expected = _numpy_log_psi(variables, x_new) - _numpy_log_psi(variables, np.asarray(x))
+    assert np.max(np.abs(expected)) > 20  # the test really probes large ratios
+    np.testing.assert_allclose(np.asarray(delta), expected, rtol=1e-12, atol=1e-11)
+
+
+def test_generic_states_take_the_generic_path():
+    jastrow = pl.states.TwoBodyJastrow()
+    x = pl.spaces.SpinSpace(6).random(jax.random.PRNGKey(0), 2)
+    variables = jastrow.init(jax.random.PRNGKey(1), x)
+    assert fast_updates_of(bind_amplitude(jastrow, variables)) is None
+    rbm, rbm_vars = _MODELS[False]
+    assert fast_updates_of(bind_amplitude(rbm, rbm_vars, fast=False)) is None
+    assert fast_updates_of(pl.states.BoundState(rbm, rbm_vars)) is not None
+    assert fast_updates_of(lambda x: rbm.apply(rbm_vars, x)) is None  # a plain function
+    assert ChainState(x, jnp.zeros(2)).cache is None  # old two-field construction still works
+
+
+# ----------------------------------------------------------------------------- Metropolis
+@pytest.mark.parametrize(
+    "constrained, complex_params",
+    [(False, False), (True, False), (True, True)],
+)
+def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params):
+    lat = pl.lattices.chain(12)
+    space = pl.spaces.SpinSpace(12, total_sz=0 if constrained else None)
+    model = RBM(alpha=1, complex_params=complex_params, init_scale=0.3)
+    variables = model.init(jax.random.PRNGKey(2), space.random(jax.random.PRNGKey(0), 1))
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None, burn_in=1)
+    runs = {}
+    for fast in (True, False):
+        amp = bind_amplitude(model, variables, fast=fast)
+        state = sampler.init(jax.random.PRNGKey(7), amp)
+        assert (state.cache is None) == (not fast)
+        runs[fast] = jax.jit(lambda s, k: sampler.sample(k, s, amp, 12))(state, jax.random.PRNGKey(8))
+    (xs_f, logs_f, end_f, acc_f), (xs_g, logs_g, end_g, acc_g) = runs[True], runs[False]
+    assert 0.05 < float(acc_g) < 0.95  # a chain that actually moves and rejects
+    np.testing.assert_array_equal(np.asarray(xs_f), np.asarray(xs_g))
+    assert float(acc_f) == float(acc_g)
+    diff = _wrap_phase(np.asarray(logs_f) - np.asarray(logs_g))
+    assert np.max(np.abs(diff)) < 1e-11
+    # after many accepted updates the carried cache still equals a fresh one
+    fresh = fast_updates_of(bind_amplitude(model, variables)).init(end_f.x)
+    for got, want in zip(end_f.cache, fresh):
+        np.testing.assert_allclose(np.asarray(got), np.asarray(want), rtol=1e-10, atol=1e-11)
+
+
+# ----------------------------------------------------------------------------- local energies
+def _hamiltonians():
+    chain, square = pl.lattices.chain(10), pl.lattices.square(3, 4)
+    return {
+        "heisenberg-chain": (pl.operators.heisenberg(chain, sign_rule=True), chain, 0),
+        "tfim-chain": (pl.operators.transverse_field_ising(chain, 1.0, 0.7), chain, None),
+        "j1j2-chain": (pl.operators.j1j2(chain, 1.0, 0.4, sign_rule=False), chain, 0),
+        "heisenberg-square": (pl.operators.heisenberg(pl.lattices.square(4), sign_rule=True), pl.lattices.square(4), 0),
+        "tfim-square": (pl.operators.transverse_field_ising(square, 1.0, 3.0), square, None),
+        "j1j2-square": (pl.operators.j1j2(pl.lattices.square(4), 1.0, 0.5, sign_rule=False), pl.lattices.square(4), 0),
+    }
+
+
+@pytest.mark.parametrize("name", list(_hamiltonians()))
+@pytest.mark.parametrize("complex_params", [False, True])
+def test_fast_local_energy_equals_generic(name, complex_params):
+    hamiltonian, lattice, sz = _hamiltonians()[name]
+    space = pl.spaces.SpinSpace(lattice.n_sites, total_sz=sz)
+    model = RBM(alpha=2, complex_params=complex_params, init_scale=0.3)
+    variables = model.init(jax.random.PRNGKey(4), space.random(jax.random.PRNGKey(0), 1))
+    x = space.random(jax.random.PRNGKey(9), 40)
+    fast = hamiltonian.local_energy(bind_amplitude(model, variables), x, chunk=16)
+    generic = hamiltonian.local_energy(bind_amplitude(model, variables, fast=False), x)
+    scale = np.max(np.abs(np.asarray(generic)))
+    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=0, atol=1e-12 * scale)
+
+
+def test_fast_local_energy_gives_the_variational_energy_exactly():
+    """Σ_x |ψ|² E_loc / Σ_x |ψ|² over all 2^8 states equals ψ†Hψ/ψ†ψ from the dense matrix."""
+    lattice = pl.lattices.chain(8)
+    space = pl.spaces.SpinSpace(8)
+    hamiltonian = pl.operators.transverse_field_ising(lattice, 1.0, 0.8) + pl.operators.heisenberg(lattice, 0.5)
+    model = RBM(alpha=1, complex_params=True, init_scale=0.4)
+    variables = model.init(jax.random.PRNGKey(11), space.random(jax.random.PRNGKey(0), 1))
+    states = jnp.asarray(space.all_states())
+    e_loc = np.asarray(hamiltonian.local_energy(bind_amplitude(model, variables), states, chunk=100))
+    psi = np.exp(_numpy_log_psi(variables, np.asarray(states)))  # NumPy amplitude (Carleo & Troyer Eq. 2)
+    weights = np.abs(psi) ** 2
+    vmc = np.sum(weights * e_loc) / np.sum(weights)
+    dense = np.vdot(psi, hamiltonian.to_dense(space) @ psi) / np.vdot(psi, psi)
+    assert abs(vmc - dense) < 1e-11 * abs(dense)
+
+
+def test_uniform_state_local_energy_closed_form():
+    """Zero RBM weights give ψ = const; for H = −J Σ σᶻσᶻ − h Σ σˣ (Pauli),
+    E_loc(x) = −J Σ_⟨ij⟩ x_i x_j − h N exactly (every σˣ connection has ratio 1)."""
+    lattice = pl.lattices.square(3, 4)
+    space = pl.spaces.SpinSpace(lattice.n_sites)
+    model = RBM(alpha=1)
+    variables = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(0), 1))
+    variables = jax.tree_util.tree_map(jnp.zeros_like, variables)
+    x = space.random(jax.random.PRNGKey(1), 25)
+    e_loc = pl.operators.transverse_field_ising(lattice, 1.3, 0.6).local_energy(bind_amplitude(model, variables), x)
+    xn = np.asarray(x)
+    bonds = np.asarray(lattice.bonds)
+    expected = -1.3 * np.sum(xn[:, bonds[:, 0]] * xn[:, bonds[:, 1]], axis=1) - 0.6 * lattice.n_sites
+    np.testing.assert_allclose(np.asarray(e_loc), expected, rtol=0, atol=1e-12)
+
+
+def test_flip_table_describes_the_connections():
+    for hamiltonian, lattice, _ in _hamiltonians().values():
+        x = pl.spaces.SpinSpace(lattice.n_sites).random(jax.random.PRNGKey(2), 5)
+        x_conn, mels = hamiltonian.connections(np.asarray(x))
+        table = hamiltonian.flip_table
+        assert table.shape == (hamiltonian.n_connections, table.shape[1]) and table.dtype == np.int32
+        for g, sites in enumerate(table):
+            expected = np.asarray(x).copy()
+            expected[:, sites[sites >= 0]] *= -1
+            np.testing.assert_array_equal(x_conn[:, g, :], expected)
+        np.testing.assert_array_equal(hamiltonian.matrix_elements(np.asarray(x)), mels)
+
+
+# ----------------------------------------------------------------------------- training
+def test_training_with_fast_path_equals_generic_path():
+    lattice = pl.lattices.chain(10)
+    space = pl.spaces.SpinSpace(10, total_sz=0)
+    hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+    results = {}
+    for fast in (True, False):
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lattice.bonds, burn_in=1)
+        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
+        search = pl.train.GroundStateSearch(RBM(alpha=1), hamiltonian, sampler, optimizer, n_samples=128,
+                                            chunk=48, fast=fast)
+        results[fast] = search.run(4, key=jax.random.PRNGKey(1), progress=False)
+    (state_f, hist_f), (state_g, hist_g) = results[True], results[False]
+    np.testing.assert_allclose(hist_f["energy"], hist_g["energy"], rtol=1e-11)
+    np.testing.assert_array_equal(hist_f["acceptance"], hist_g["acceptance"])
+    for a, b in zip(jax.tree_util.tree_leaves(state_f.params), jax.tree_util.tree_leaves(state_g.params)):
+        np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-9, atol=1e-12)
+    assert state_f.chains.cache is not None and state_g.chains.cache is None

@@ -1,0 +1,199 @@
+"""The training loop: bit-identical resume, non-finite stops, history round trips, bad input."""
+
+from __future__ import annotations
+
+import flax.linen as nn
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+import psiloom as pl
+from psiloom.spaces import SpinSpace
+from psiloom.states import RBM, TrialState
+from psiloom.train import GroundStateSearch, History, NonFiniteError, load_checkpoint, save_checkpoint
+
+L = 6
+
+
+def make_search(model=None, optimizer=None, n_samples=64, n_chains=8):
+    lat = pl.lattices.chain(L)
+    space = SpinSpace(L, total_sz=0)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lat.bonds, burn_in=1)
+    if optimizer is None:
+        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
+    model = RBM(alpha=1.0, complex_params=True, init_scale=0.05) if model is None else model
+    return GroundStateSearch(model, pl.operators.heisenberg(lat), sampler, optimizer, n_samples=n_samples)
+
+
+def leaves_equal(a, b) -> bool:
+    la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
+    return len(la) == len(lb) and all(np.array_equal(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
+
+
+@pytest.fixture(scope="module")
+def search():
+    # one instance (one compilation) shared by the tests that only run it
+    return make_search()
+
+
+@pytest.fixture(scope="module")
+def start(search):
+    return search.init(jax.random.PRNGKey(42))
+
+
+def test_resume_from_checkpoint_is_bit_identical(search, start, tmp_path):
+    straight, hist_straight = search.run(6, state=start, progress=False)
+
+    path = str(tmp_path / "run.ckpt")
+    half, _ = search.run(3, state=start, progress=False, checkpoint=path, checkpoint_every=3)
+    loaded, hist_loaded = load_checkpoint(path)
+    assert int(loaded.step) == 3 and len(hist_loaded) == 3
+    assert leaves_equal(loaded, half)
+    resumed, hist_resumed = search.run(6, state=loaded, history=hist_loaded, progress=False)
+
+    assert int(resumed.step) == int(straight.step) == 6
+    assert leaves_equal(resumed.params, straight.params)
+    assert leaves_equal(resumed.opt_state, straight.opt_state)
+    assert leaves_equal(resumed.chains, straight.chains)
+    assert leaves_equal(resumed.key, straight.key)
+    for column in ("step", "energy", "error", "variance", "acceptance", "grad_norm"):
+        np.testing.assert_array_equal(hist_resumed[column], hist_straight[column])
+    # the run actually moved: an unchanged state would make the comparison vacuous
+    assert not leaves_equal(straight.params, start.params)
+
+
+def test_history_save_and_load_round_trip(search, start, tmp_path):
+    _, hist = search.run(3, state=start, progress=False)
+    path = str(tmp_path / "history.json")
+    hist.save(path)
+    back = History.load(path)
+    assert back.columns == hist.columns
+    assert len(back) == 3 and list(back["step"]) == [0, 1, 2]
+    assert np.all(np.isfinite(back["energy"])) and np.all(back["error"] >= 0)
+    assert np.all((back["acceptance"] >= 0) & (back["acceptance"] <= 1))
+
+
+def test_checkpoint_round_trip_preserves_dtypes(start, tmp_path):
+    state = start
+    path = str(tmp_path / "s.ckpt")
+    save_checkpoint(path, state)
+    back, hist = load_checkpoint(path)
+    assert len(hist) == 0
+    for a, b in zip(jax.tree_util.tree_leaves(state), jax.tree_util.tree_leaves(back)):
+        assert np.asarray(a).dtype == np.asarray(b).dtype
+        np.testing.assert_array_equal(np.asarray(a), np.asarray(b))
+
+
+# --------------------------------------------------------------------------- non-finite stops
+
+
+class BreaksAtThreshold(TrialState):
+    """log ψ = w·x + log(T − c): finite while the scalar parameter c < T, NaN beyond."""
+
+    threshold: float = 3.5
+
+    @nn.compact
+    def log_amplitude(self, x):
+        w = self.param("w", nn.initializers.normal(0.1), (x.shape[-1],), jnp.float64)
+        c = self.param("counter", nn.initializers.zeros, (), jnp.float64)
+        return x @ w + jnp.log(self.threshold - c)
+
+
+def count_steps() -> optax.GradientTransformation:
+    """Ignore the gradient of ``counter`` and raise it by one per step; plain SGD for the rest."""
+
+    def init(params):
+        return optax.EmptyState()
+
+    def update(grads, state, params=None):
+        upd = jax.tree_util.tree_map(lambda g: -0.01 * g, grads)
+        upd["params"]["counter"] = jnp.ones_like(grads["params"]["counter"])
+        return upd, state
+
+    return optax.GradientTransformation(init, update)
+
+
+def test_nan_stops_run_and_keeps_last_good_checkpoint(tmp_path):
+    run = make_search(model=BreaksAtThreshold(), optimizer=count_steps())
+    path = str(tmp_path / "nan.ckpt")
+    start = run.init(jax.random.PRNGKey(5))
+    # steps 0..3 see counter = 0..3 < 3.5: finite; step 4 sees counter = 4: log of a negative
+    good, _ = run.run(4, state=start, progress=False)
+    with pytest.raises(NonFiniteError) as err:
+        run.run(10, state=start, progress=False, checkpoint=path, checkpoint_every=1)
+    assert err.value.step == 4
+    assert "step 4" in str(err.value)
+    saved, hist = load_checkpoint(path)
+    assert int(saved.step) == 4 and len(hist) == 4
+    assert leaves_equal(saved.params, good.params)
+    assert float(saved.params["params"]["counter"]) == 4.0
+    # resuming from the bad point fails again and leaves the file byte-for-byte untouched
+    before = open(path, "rb").read()
+    with pytest.raises(NonFiniteError, match="step 4"):
+        run.run(10, state=saved, history=hist, progress=False, checkpoint=path, checkpoint_every=1)
+    assert open(path, "rb").read() == before
+
+
+def test_infinite_energy_names_step():
+    # an energy wrapper returning inf from a fixed step on, driven by the parameter counter
+    lat = pl.lattices.chain(L)
+    base = pl.operators.heisenberg(lat)
+
+    class Wrapped:
+        n_sites = L
+
+        def local_energy(self, log_amplitude, x, log_amp_x=None, chunk=None):
+            e = base.local_energy(log_amplitude, x, log_amp_x, chunk)
+            counter = jnp.exp(-log_amplitude(jnp.zeros((1, L)))[0])  # = 1/(T − c) for x = 0
+            return jnp.where(counter > 1.0 / 2.5, jnp.inf, e)  # c > 7.5 → inf
+
+    space = SpinSpace(L, total_sz=0)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds)
+    run = GroundStateSearch(BreaksAtThreshold(threshold=10.0), Wrapped(), sampler, count_steps(), n_samples=64)
+    with pytest.raises(NonFiniteError) as err:
+        run.run(20, key=jax.random.PRNGKey(1), progress=False)
+    assert err.value.step == 8 and "step 8" in str(err.value) and err.value.what == "energy"
+
+
+# --------------------------------------------------------------------------- bad input
+
+
+bad_counts = st.one_of(st.integers(max_value=0), st.just(2.5), st.just(True), st.just("64"))
+
+
+@given(bad_counts)
+def test_bad_n_samples_raises(n_samples):
+    with pytest.raises(ValueError) as err:
+        make_search(n_samples=n_samples)
+    assert repr(n_samples) in str(err.value)
+
+
+@given(st.integers(1, 200).filter(lambda n: n % 8))
+def test_n_samples_not_multiple_of_chains_raises(n_samples):
+    with pytest.raises(ValueError) as err:
+        make_search(n_samples=n_samples, n_chains=8)
+    assert f"n_samples={n_samples}" in str(err.value) and "n_chains=8" in str(err.value)
+
+
+@given(st.one_of(st.integers(max_value=-1), st.just(1.5), st.just(True)))
+def test_bad_n_steps_raises(search, start, n_steps):
+    with pytest.raises(ValueError) as err:
+        search.run(n_steps, state=start, progress=False)
+    assert repr(n_steps) in str(err.value)
+
+
+@given(bad_counts)
+def test_bad_evaluation_samples_raises(search, start, n_samples):
+    with pytest.raises(ValueError) as err:
+        search.evaluate(start, n_samples)
+    assert repr(n_samples) in str(err.value)
+
+
+def test_hamiltonian_and_space_sizes_must_agree():
+    sampler = pl.sampling.MetropolisSampler(SpinSpace(4), n_chains=2)
+    with pytest.raises(ValueError, match="6 sites.*4"):
+        GroundStateSearch(RBM(), pl.operators.heisenberg(pl.lattices.chain(6)), sampler, optax.sgd(0.1), n_samples=4)
