@@ -137,7 +137,8 @@ def main() -> None:
     space = pl.spaces.SpinSpace(n)
     lattice = pl.lattices.chain(n, pbc=False)
     key = jax.random.PRNGKey(0)
-    start = ar.apply_method("sample", jax.random.PRNGKey(1), n_chains)  # exact draws: chains start in equilibrium
+    # exact draws: every chain starts in equilibrium
+    start = jax.jit(lambda v, k: ar.model.apply(v, k, n_chains, method="sample"))(ar.variables, jax.random.PRNGKey(1))
     exchange = pl.sampling.mixture([(pl.sampling.bond_exchange(lattice.bonds), 0.5), (pl.sampling.single_flip, 0.5)])
     methods = [
         ("single_flip", "Metropolis, single flips, one sweep (N proposals) per sample",

@@ -133,3 +133,11 @@ def test_plots_draw_into_given_axes():
     fig, axes = plt.subplots(1, 2)
     assert plotting.plot_trace(np.zeros(5), ax=axes[1]) is axes[1]
     assert plotting.plot_energy_history(fake_history(), ax=axes[0]) is axes[0]
+
+
+def test_missing_matplotlib_gives_a_clear_import_error(monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "matplotlib.pyplot", None)  # makes "import matplotlib.pyplot" fail
+    with pytest.raises(ImportError, match="pip install matplotlib"):
+        plotting.plot_trace(np.zeros(5))

@@ -13,8 +13,8 @@ Assertions (plain NumPy, usable with or without hypothesis):
 
 Log-amplitudes are compared as complex numbers modulo ``2πi`` (the phase of ψ is defined only
 modulo 2π) with a tolerance on ``|Δ log ψ|``. Configurations where ψ is negligible (``log|ψ|``
-more than ``floor`` below the largest in the batch, e.g. where a sector projection vanishes)
-only need a negligible image amplitude too.
+more than ``floor`` below ``scale``, by default the largest in the batch; e.g. where a sector
+projection vanishes) only need a negligible image amplitude too.
 """
 
 from __future__ import annotations
@@ -73,8 +73,9 @@ def log_amplitudes(model, variables, x) -> np.ndarray:
     return np.asarray(model.apply(variables, np.asarray(x)), dtype=complex)
 
 
-def _compare(before: np.ndarray, after: np.ndarray, expected_phase: np.ndarray, atol: float, floor: float, what: str):
-    top = np.max(np.real(before))
+def _compare(before: np.ndarray, after: np.ndarray, expected_phase: np.ndarray, atol: float, floor: float,
+             scale: float | None, what: str):
+    top = np.max(np.real(before)) if scale is None else float(scale)
     small = np.real(before) < top - floor
     diff = after - before - expected_phase
     diff = diff.real + 1j * (np.mod(diff.imag + np.pi, 2.0 * np.pi) - np.pi)
@@ -90,7 +91,7 @@ def _compare(before: np.ndarray, after: np.ndarray, expected_phase: np.ndarray, 
 
 
 def assert_covariant(model, variables, group, characters, x, elements=None, atol: float = 1e-8,
-                     floor: float = 25.0) -> None:
+                     floor: float = 25.0, scale: float | None = None) -> None:
     """Assert ``ψ(g·x) = χ(g)* ψ(x)`` for configurations ``x`` and elements ``g``.
 
     Args:
@@ -100,8 +101,11 @@ def assert_covariant(model, variables, group, characters, x, elements=None, atol
         x: configurations ``(B, N)``.
         elements: element indices to check (int or sequence); default all elements.
         atol: tolerance on ``|log ψ(g·x) − log ψ(x) − log χ(g)*|`` (mod 2πi).
-        floor: configurations with ``log|ψ|`` more than this below the batch maximum count as
-            zeros of ψ; their images only need to be negligible as well.
+        floor: configurations with ``log|ψ|`` more than this below ``scale`` count as zeros of
+            ψ (e.g. where a sector projection cancels to rounding noise, ~1e-16 of its terms);
+            their images only need to be negligible as well.
+        scale: reference ``log|ψ|``; default the largest in the batch. Pass it when a batch may
+            consist of zeros of ψ only (e.g. hypothesis drawing only symmetric configurations).
     Raises:
         AssertionError naming the first violating sample.
     """
@@ -119,9 +123,10 @@ def assert_covariant(model, variables, group, characters, x, elements=None, atol
             raise ValueError(f"element index {g} outside the group of order {len(group)}")
         after = log_amplitudes(model, variables, group.act(x, g))
         expected = np.full(len(x), np.log(np.conj(chi[g])))
-        _compare(before, after, expected, atol, floor, f"covariance ψ(g·x) = χ(g)* ψ(x) for g={g}")
+        _compare(before, after, expected, atol, floor, scale, f"covariance ψ(g·x) = χ(g)* ψ(x) for g={g}")
 
 
-def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e-8, floor: float = 25.0) -> None:
+def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e-8, floor: float = 25.0,
+                     scale: float | None = None) -> None:
     """Assert ``ψ(g·x) = ψ(x)`` (see :func:`assert_covariant` for the arguments)."""
-    assert_covariant(model, variables, group, np.ones(len(group)), x, elements, atol, floor)
+    assert_covariant(model, variables, group, np.ones(len(group)), x, elements, atol, floor, scale)

@@ -46,6 +46,7 @@ from typing import NamedTuple
 import jax
 import jax.numpy as jnp
 
+from psiloom.reduce import sample_mean
 from psiloom.sampling.metropolis import ChainState, _positive_int
 from psiloom.spaces import SpinSpace
 from psiloom.states.bound import BoundState
@@ -159,7 +160,7 @@ class BlockGibbsSampler:
         def body(carry, k):
             x, moved = carry
             x_new = gibbs_update(k, x, weights)
-            return (x_new, moved + jnp.mean(jnp.any(x_new != x, axis=1))), None
+            return (x_new, moved + sample_mean(jnp.any(x_new != x, axis=1).astype(jnp.float32))), None
 
         (x, moved), _ = jax.lax.scan(body, (x, jnp.zeros((), jnp.float32)), jax.random.split(key, self.sweep))
         return x, moved / self.sweep
@@ -184,4 +185,4 @@ class BlockGibbsSampler:
 
         x, (xs, moved) = jax.lax.scan(collect, x, jax.random.split(k_run, n_per_chain))
         logs = log_amplitude(xs)
-        return xs, logs, ChainState(x, logs[-1]), jnp.mean(moved)
+        return xs, logs, ChainState(x, logs[-1]), sample_mean(moved)

@@ -37,6 +37,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom.reduce import sample_mean, sample_sum
 from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
 from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
 from psiloom.spaces import SpinSpace
@@ -239,7 +240,7 @@ class TemperingSampler:
             x, log_amp, cache, acc = carry
             k, lu = draws
             x, log_amp, cache, accepted = self._metropolis(k, x, log_amp, log_amplitude, lu, cache, fast)
-            return (x, log_amp, cache, acc + jnp.mean(accepted, axis=1)), None
+            return (x, log_amp, cache, acc + sample_mean(accepted.astype(acc.dtype), axis=1)), None
 
         real = jnp.real(state.log_amp).dtype
         init = (state.x, state.log_amp, state.cache, jnp.zeros((self.n_replicas,), real))
@@ -272,12 +273,12 @@ class TemperingSampler:
         def collect(st, k):
             st, info = self._step(k, st, log_amplitude, fast)
             tried = info.attempted.astype(info.acceptance.dtype)
-            accepted = jnp.mean(info.swapped, axis=1).astype(info.acceptance.dtype)
+            accepted = sample_mean(info.swapped.astype(info.acceptance.dtype), axis=1)
             return st, (st.x[0], st.log_amp[0], info.acceptance, tried, accepted)
 
         state, (xs, logs, acc, tried, accepted) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
-        n_tried = jnp.sum(tried, axis=0)
-        swap_rate = jnp.where(n_tried > 0, jnp.sum(accepted, axis=0) / jnp.maximum(n_tried, 1.0), jnp.nan)
-        acceptance = jnp.mean(acc, axis=0)
+        n_tried = sample_sum(tried)
+        swap_rate = jnp.where(n_tried > 0, sample_sum(accepted) / jnp.maximum(n_tried, 1.0), jnp.nan)
+        acceptance = sample_mean(acc)
         state = state._replace(acceptance=acceptance, swap_rate=swap_rate)
         return xs, logs, state, acceptance[0]

@@ -17,7 +17,8 @@ with ``l_g = log ψ(g·x) + log χ(g)`` and ``m = max_g Re l_g``,
 
 so huge or tiny amplitudes neither overflow nor underflow. When the projection vanishes at
 ``x`` (possible in non-trivial sectors, e.g. a configuration invariant under a translation
-whose character is not 1), the result is ``log ψ ≈ m + log(tiny)``: a finite, negligible
+whose character is not 1), the terms cancel to rounding noise; such sums are snapped to an
+exact zero, ``log ψ = m + log(tiny)`` (see :func:`log_sum_exp_weighted`): a finite, negligible
 amplitude that a Metropolis chain never moves to.
 
 The output is real when the base output is real and all characters (and the parity) are +1;
@@ -40,19 +41,24 @@ __all__ = ["Symmetrized", "log_sum_exp_weighted"]
 def log_sum_exp_weighted(log_terms, log_weights=None, axis: int = -1):
     """``log Σ exp(log_terms + log_weights)`` along ``axis`` for complex logs (stable).
 
-    Returns a real array when every term and weight is real and the sum cannot be negative
-    (all weights ``0`` in log space means all factors positive); complex otherwise. A sum that
-    vanishes exactly is replaced by the smallest positive normal number times ``exp(m)``.
+    With ``m`` the largest real part, the sum ``s = Σ exp(l − m)`` has terms of modulus ≤ 1.
+    If ``|s|`` is below ``16 K ε`` (``K`` terms, ``ε`` the machine epsilon) it carries no
+    significant digit — the terms cancel to rounding noise — and is treated as an exact zero:
+    the result is then ``m + log(tiny)`` (``tiny`` the smallest normal number), i.e. an
+    amplitude ~1e-308 (float64) times the largest term. Real terms without weights give a
+    real result (their sum is positive); complex terms or weights give a complex one.
     """
     terms = log_terms if log_weights is None else log_terms + log_weights
     m = jax.lax.stop_gradient(jnp.max(jnp.real(terms), axis=axis, keepdims=True))
     m = jnp.where(jnp.isfinite(m), m, 0.0)
     s = jnp.sum(jnp.exp(terms - m), axis=axis)
-    tiny = jnp.finfo(jnp.real(s).dtype).tiny
+    real_dtype = jnp.real(s).dtype
+    tiny = jnp.finfo(real_dtype).tiny
+    noise = 16.0 * terms.shape[axis] * jnp.finfo(real_dtype).eps
     if jnp.iscomplexobj(s):
-        safe = jnp.where(jnp.abs(s) > tiny, s, tiny)
+        safe = jnp.where(jnp.abs(s) > noise, s, tiny)
     else:
-        safe = jnp.where(s > tiny, s, tiny)
+        safe = jnp.where(s > noise, s, tiny)  # real terms: s > 0 unless it underflowed
     return jnp.squeeze(m, axis) + jnp.log(safe)
 
 

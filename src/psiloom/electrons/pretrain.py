@@ -1,0 +1,214 @@
+"""Optional Hartree-Fock start: PySCF orbitals evaluated in JAX, and orbital pretraining.
+
+Needs the optional package PySCF (``pip install pyscf``) only for :func:`hartree_fock`; the
+JAX side (:class:`GaussianOrbitals`, :func:`pretrain_orbitals`) works on the extracted arrays.
+
+Gaussian basis functions. A contracted Cartesian Gaussian on centre A with exponents α_p and
+contraction coefficients c_p (PySCF's, including primitive normalisation) is
+
+    g(r) = f_l · x^a y^b z^c Σ_p c_p e^{−α_p |r − A|²},     a + b + c = l,
+
+with the factor f_0 = 1/(2√π), f_1 = √(3/(4π)), f_l = 1 (l ≥ 2) that PySCF's integral library
+applies to s and p shells. Spherical functions are ``cartesian @ T`` with PySCF's
+``cart2sph_coeff`` matrix T; molecular orbitals are ``AO @ C`` with the SCF coefficients C
+(unrestricted: separate columns for each spin, occupied ones lowest first).
+
+Pretraining (common practice): fit the orbital matrices Φ_θ(x) of a trial state to the
+Hartree-Fock ones on walkers x drawn from |ψ_HF|²,
+
+    L(θ) = mean_x Σ_{d,i,a} (Φ_θ[d, i, a](x) − Φ_HF[i, a](x))²,
+
+with Adam; every determinant is pulled toward the same HF orbitals.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import flax.linen as nn
+import jax
+import jax.numpy as jnp
+import numpy as np
+import optax
+
+from psiloom.electrons.determinants import SlaterJastrow
+from psiloom.electrons.sampler import ElectronSampler
+from psiloom.electrons.system import Molecule
+from psiloom.reduce import sample_mean
+
+_SHELL_FACTOR = {0: 0.5 / np.sqrt(np.pi), 1: np.sqrt(3.0 / (4.0 * np.pi))}
+
+
+def cartesian_powers(l: int) -> list[tuple[int, int, int]]:
+    """PySCF's order of Cartesian components for angular momentum l (xx, xy, xz, yy, yz, zz…)."""
+    return [(lx, ly, l - lx - ly) for lx in range(l, -1, -1) for ly in range(l - lx, -1, -1)]
+
+
+@dataclass(frozen=True, eq=False)
+class GaussianBasis:
+    """Flat arrays describing contracted Cartesian Gaussians (one row per Cartesian function).
+
+    Attributes:
+        centres: ``(F, 3)`` centre of each function (bohr).
+        powers: ``(F, 3)`` integer powers (a, b, c).
+        exponents: ``(F, P)`` primitive exponents α (padded with 1 where unused).
+        coefficients: ``(F, P)`` contraction coefficients times the shell factor (0 where unused).
+        cart2sph: ``(F, n_ao)`` map to the AO basis (identity for a Cartesian basis).
+    """
+
+    centres: np.ndarray
+    powers: np.ndarray
+    exponents: np.ndarray
+    coefficients: np.ndarray
+    cart2sph: np.ndarray
+
+    @property
+    def n_ao(self) -> int:
+        return self.cart2sph.shape[1]
+
+    def cartesian(self, r):
+        """Cartesian function values at points ``r`` ``(..., 3)`` → ``(..., F)``."""
+        d = r[..., None, :] - jnp.asarray(self.centres, r.dtype)
+        r2 = jnp.sum(d * d, axis=-1)
+        radial = jnp.sum(jnp.asarray(self.coefficients, r.dtype)
+                         * jnp.exp(-jnp.asarray(self.exponents, r.dtype) * r2[..., None]), axis=-1)
+        angular = jnp.ones_like(r2)
+        for c in range(3):
+            p = self.powers[:, c]
+            for k in range(1, int(p.max(initial=0)) + 1):
+                angular = angular * jnp.where(jnp.asarray(p >= k), d[..., c], 1.0)
+        return angular * radial
+
+    def __call__(self, r):
+        """AO values at points ``r`` ``(..., 3)`` → ``(..., n_ao)`` (PySCF's AO order)."""
+        return self.cartesian(r) @ jnp.asarray(self.cart2sph, r.dtype)
+
+    @classmethod
+    def from_pyscf(cls, mol) -> "GaussianBasis":
+        centres, powers, exps, coeffs = [], [], [], []
+        for ib in range(mol.nbas):
+            l = int(mol.bas_angular(ib))
+            alpha = np.asarray(mol.bas_exp(ib))
+            ctr = np.asarray(mol._libcint_ctr_coeff(ib)) * _SHELL_FACTOR.get(l, 1.0)
+            for k in range(ctr.shape[1]):
+                for pw in cartesian_powers(l):
+                    centres.append(mol.bas_coord(ib))
+                    powers.append(pw)
+                    exps.append(alpha)
+                    coeffs.append(ctr[:, k])
+        width = max(len(a) for a in exps)
+        pad = lambda rows, fill: np.array([np.concatenate([r, np.full(width - len(r), fill)]) for r in rows])
+        t = np.eye(len(powers)) if mol.cart else np.asarray(mol.cart2sph_coeff())
+        return cls(np.asarray(centres, float), np.asarray(powers, int), pad(exps, 1.0), pad(coeffs, 0.0), t)
+
+
+class GaussianOrbitals(nn.Module):
+    """Fixed orbitals ``AO(r) @ C`` as an orbital layer (one determinant, no parameters).
+
+    Attributes:
+        system: the molecule.
+        basis: a :class:`GaussianBasis`.
+        coeff_up, coeff_down: ``(n_ao, n_up)`` and ``(n_ao, n_down)`` occupied MO coefficients,
+            wrapped in :class:`Coefficients` (hashable holder).
+    """
+
+    system: Molecule
+    basis: GaussianBasis
+    coefficients: "Coefficients"
+
+    def __call__(self, x):
+        nu = self.system.n_up
+        ao = self.basis(x)  # (B, N, n_ao)
+        up = ao[:, :nu] @ jnp.asarray(self.coefficients.up, x.dtype)
+        down = ao[:, nu:] @ jnp.asarray(self.coefficients.down, x.dtype)
+        return up[:, None], down[:, None]
+
+
+@dataclass(frozen=True, eq=False)
+class Coefficients:
+    up: np.ndarray  # (n_ao, n_up)
+    down: np.ndarray  # (n_ao, n_down)
+
+
+class HartreeFock(NamedTuple):
+    energy: float  # SCF total energy (hartree)
+    orbitals: GaussianOrbitals  # orbital layer
+    state: SlaterJastrow  # the HF determinant as a trial state (no parameters)
+    mol: object  # the PySCF Mole
+    scf: object  # the converged PySCF SCF object
+
+
+def hartree_fock(system: Molecule, basis: str = "cc-pvdz", cart: bool = False, verbose: int = 0) -> HartreeFock:
+    """Run PySCF restricted (closed shell) or unrestricted Hartree-Fock for ``system``.
+
+    Raises ImportError naming the optional extra when PySCF is absent.
+    """
+    try:
+        from pyscf import gto, scf
+    except ImportError as err:  # pragma: no cover - depends on the environment
+        raise ImportError("hartree_fock needs the optional package PySCF (pip install pyscf)") from err
+    atoms = [(int(round(z)) if float(z).is_integer() else float(z), tuple(map(float, p)))
+             for z, p in zip(system.charges, system.positions)]
+    mol = gto.M(atom=atoms, unit="bohr", basis=basis, spin=system.spin, charge=int(round(system.charge)),
+                cart=cart, verbose=verbose)
+    if system.spin == 0:
+        mf = scf.RHF(mol)
+        mf.kernel()
+        c = np.asarray(mf.mo_coeff)
+        c_up, c_down = c[:, : system.n_up], c[:, : system.n_down]
+    else:
+        mf = scf.UHF(mol)
+        mf.kernel()
+        c = np.asarray(mf.mo_coeff)
+        c_up, c_down = c[0][:, : system.n_up], c[1][:, : system.n_down]
+    orbitals = GaussianOrbitals(system, GaussianBasis.from_pyscf(mol), Coefficients(c_up, c_down))
+    return HartreeFock(float(mf.e_tot), orbitals, SlaterJastrow(orbitals, ()), mol, mf)
+
+
+def orbital_loss(model, params, target: GaussianOrbitals, x):
+    """Mean squared difference of all determinants' orbital matrices from the target's."""
+    up, down = model.apply(params, x, method=model.orbital_matrices)
+    t_up, t_down = target.apply({}, x)
+    per_sample = jnp.sum((up - t_up) ** 2, axis=(1, 2, 3)) + jnp.sum((down - t_down) ** 2, axis=(1, 2, 3))
+    return sample_mean(per_sample)
+
+
+def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: int = 200, n_walkers: int = 256,
+                      learning_rate: float = 3e-3, sweeps_per_step: int = 1):
+    """Fit ``model``'s orbital matrices to Hartree-Fock ones (see module docstring).
+
+    Args:
+        model: a :class:`SlaterJastrow` (anything with an ``orbital_matrices`` method).
+        params: its variables (only the orbital part changes in practice).
+        hf: the result of :func:`hartree_fock`.
+        n_steps, n_walkers, learning_rate: Adam iterations, walkers per step, step size.
+        sweeps_per_step: Metropolis sweeps on |ψ_HF|² between steps.
+    Returns:
+        ``(params, losses)`` with the loss of every step (NumPy array).
+    """
+    if isinstance(n_steps, bool) or not isinstance(n_steps, int) or n_steps < 1:
+        raise ValueError(f"n_steps must be a positive integer, got {n_steps!r}")
+    system = hf.orbitals.system
+    sampler = ElectronSampler(system, n_chains=n_walkers, burn_in=0, equilibrate=50)
+    hf_log = lambda x: hf.state.apply({}, x)
+    k_init, k_run = jax.random.split(key)
+    walkers = sampler.init(k_init, hf_log)
+    opt = optax.adam(learning_rate)
+    opt_state = opt.init(params)
+    target = hf.orbitals
+
+    @jax.jit
+    def step(carry, k):
+        params, opt_state, walkers = carry
+        _, _, walkers, _ = sampler.sample(k, walkers, hf_log, sweeps_per_step)
+        loss, grad = jax.value_and_grad(lambda p: orbital_loss(model, p, target, walkers.x))(params)
+        updates, opt_state = opt.update(grad, opt_state, params)
+        return (optax.apply_updates(params, updates), opt_state, walkers), loss
+
+    carry = (params, opt_state, walkers)
+    losses = []
+    for k in jax.random.split(k_run, n_steps):
+        carry, loss = step(carry, k)
+        losses.append(loss)
+    return carry[0], np.asarray(jnp.stack(losses))
