@@ -150,7 +150,7 @@ def main() -> None:
          pl.sampling.TemperingSampler(space, n_chains, betas=betas), rbm),
         ("gibbs", "block Gibbs (h, h' | v), (v | h, h'), one update per sample",
          pl.sampling.BlockGibbsSampler(space, n_chains), rbm),
-        ("direct", "exact autoregressive draws (ChainRuleState)", pl.sampling.DirectSampler(space, n_chains), ar),
+        ("direct", "exact autoregressive draws (ChainRuleState)", pl.sampling.ChainRuleSampler(space, n_chains), ar),
     ]
     system = {"model": "two_mode_state", "lattice": "chain", "extent": [n], "pbc": False, "K": coupling,
               "state": "|psi|^2 ~ exp(-K sum x_i x_i+1), own construction", "observable": "staggered magnetisation"}

@@ -21,7 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import psiloom as pl
-from psiloom.sampling import DirectSampler
+from psiloom.sampling import ChainRuleSampler
 from psiloom.states import BoundState, ChainRuleState
 
 
@@ -126,7 +126,7 @@ def chi_square_pvalue(samples, space, probs):
 def test_direct_samples_follow_born_rule_and_are_independent(n_sites, total_sz, phase):
     space = pl.spaces.SpinSpace(n_sites, total_sz=total_sz)
     state = make_state(n_sites, 3, phase_features=phase, total_sz=total_sz, seed=7)
-    sampler = DirectSampler(space, n_chains=64)
+    sampler = ChainRuleSampler(space, n_chains=64)
     chains = sampler.init(jax.random.PRNGKey(0), state)
     xs, logs, chains, acc = jax.jit(sampler.sample, static_argnums=3)(jax.random.PRNGKey(1), chains, state, 256)
     assert xs.shape == (256, 64, n_sites) and float(acc) == 1.0
@@ -148,18 +148,18 @@ def test_direct_sampler_validation():
     state = make_state(4)
     key = jax.random.PRNGKey(0)
     with pytest.raises(ValueError, match="BoundState"):
-        DirectSampler(space, 4).init(key, lambda x: state(x))
+        ChainRuleSampler(space, 4).init(key, lambda x: state(x))
     with pytest.raises(ValueError, match="total_sz"):
-        DirectSampler(pl.spaces.SpinSpace(4, total_sz=0), 4).init(key, state)
+        ChainRuleSampler(pl.spaces.SpinSpace(4, total_sz=0), 4).init(key, state)
     with pytest.raises(ValueError, match="sites"):
-        DirectSampler(pl.spaces.SpinSpace(5), 4).init(key, state)
+        ChainRuleSampler(pl.spaces.SpinSpace(5), 4).init(key, state)
     with pytest.raises(ValueError, match="n_chains"):
-        DirectSampler(space, 0)
+        ChainRuleSampler(space, 0)
     with pytest.raises(ValueError, match="n_samples"):
         state.apply_method("sample", key, 0)
     rbm = pl.states.RBM()
     with pytest.raises(ValueError, match="sample"):
-        DirectSampler(space, 4).init(key, BoundState(rbm, rbm.init(key, jnp.ones((1, 4)))))
+        ChainRuleSampler(space, 4).init(key, BoundState(rbm, rbm.init(key, jnp.ones((1, 4)))))
 
 
 @given(features=st.integers(-3, -1))
@@ -185,7 +185,7 @@ def test_stochastic_reconfiguration_with_direct_sampling_lowers_tfim_energy():
     exact = pl.exact.tfim_ring_energy(n, 1.0, h)
     model = ChainRuleState(features=4, init_scale=0.05)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.1))
-    search = pl.train.GroundStateSearch(model, hamiltonian, DirectSampler(space, 16), opt, n_samples=512)
+    search = pl.train.GroundStateSearch(model, hamiltonian, ChainRuleSampler(space, 16), opt, n_samples=512)
     state, history = search.run(25, key=jax.random.PRNGKey(0), progress=False)
     energy, error = history["energy"], history["error"]
     assert energy[0] > -4.6

@@ -46,13 +46,11 @@ def test_jax_molecular_orbitals_match_pyscf(lih_hf):
 
 def test_pretraining_pulls_orbitals_toward_hartree_fock(lih_hf):
     model = el.slater_jastrow(LIH, n_det=2, neural_jastrow=False)
-    x = LIH.random(jax.random.PRNGKey(1), 64)
-    params = jax.jit(model.init)(jax.random.PRNGKey(2), x[:1])
-    before = float(jax.jit(lambda p: pretrain.orbital_loss(model, p, lih_hf.orbitals, x))(params))
+    params = jax.jit(model.init)(jax.random.PRNGKey(2), LIH.random(jax.random.PRNGKey(1), 1))
     params, losses = pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(3), n_steps=60,
-                                                n_walkers=64, learning_rate=1e-2)
-    after = float(jax.jit(lambda p: pretrain.orbital_loss(model, p, lih_hf.orbitals, x))(params))
+                                                n_walkers=64, learning_rate=3e-2)
     assert np.all(np.isfinite(losses))
-    assert after < 0.5 * before
+    # the misfit on walkers from |ψ_HF|² falls by well over a factor of 5 (observed ~15)
+    assert losses[-5:].mean() < 0.2 * losses[:3].mean()
     with pytest.raises(ValueError, match="n_steps"):
         pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(3), n_steps=0)

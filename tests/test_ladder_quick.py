@@ -38,7 +38,7 @@ def ladder():
 def test_heisenberg_ring_12_rung(ladder):
     rung = ladder.Rung("heisenberg_chain_12", "heisenberg", (12,), 2e-3, alpha=1, n_samples=256,
                        steps=100, lr=(0.03, 0.05), warmup=10, shift=(1e-2, 1e-4), shift_decay_steps=50, n_chains=32,
-                       eval_samples=8192)
+                       eval_samples=4096)
     record = ladder.run_rung(rung)
     json.dumps(record)  # JSON-serialisable, as the benchmark contract requires
     # reference: Bethe ansatz, L = 12 (E0 = −5.387390917 from memory; computed by psiloom.exact here)

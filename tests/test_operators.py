@@ -339,7 +339,7 @@ def test_four_site_ring_is_minus_two_J(J):
     assert e0_sector == pytest.approx(-2.0 * J, abs=1e-12)
 
 
-@pytest.mark.parametrize("L", [4, 6, 8, 10, 12])
+@pytest.mark.parametrize("L", [4, 6, 8, 10, 12, 16])
 def test_heisenberg_ring_ed_matches_bethe_ansatz(L):
     # Bethe 1931: ground state of the ring, S^z = 0 sector (where the singlet lives)
     e0, _ = exact.ground_state(heisenberg(lattices.chain(L), 1.0, sign_rule=True), SpinSpace(L, total_sz=0))

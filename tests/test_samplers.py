@@ -199,6 +199,9 @@ def test_mixture_rejects_malformed_components():
         mixture([("flip", 1.0)])
     with pytest.raises(ValueError, match="pairs"):
         mixture([single_flip])
+    # a mixture that flips single spins cannot serve a fixed-magnetisation space
+    with pytest.raises(ValueError, match="single_flip"):
+        MetropolisSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=mixture([(pair_exchange, 0.5), (single_flip, 0.5)]))
 
 
 # --------------------------------------------------------------------------- validation
@@ -248,6 +251,9 @@ def test_geometric_ladder():
         geometric_betas(3, 1.5)
     with pytest.raises(ValueError, match="single_flip"):
         TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=single_flip)
+    with pytest.raises(ValueError, match="single_flip"):  # also hidden inside a mixture
+        TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=mixture([(pair_exchange, 0.5), (single_flip, 0.5)]))
+    TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=mixture([(pair_exchange, 1.0)]))
 
 
 # --------------------------------------------------------------------------- stuck chains and R̂

@@ -194,7 +194,7 @@ def test_assertion_helpers_can_fail():
     # a state of the sector k = (π, π), B2, odd is not in the sector k = 0, A1, even
     wrong = sym.sector(_SQ_GROUP, (0, 0), "A1", 1)
     with pytest.raises(AssertionError, match="violated"):
-        assert_covariant(_SQ_MODEL, _SQ_VARS, _SQ_GROUP, wrong.characters, x * 0 + np.tile([1, -1], 8))
+        assert_covariant(_SQ_MODEL, _SQ_VARS, _SQ_GROUP, wrong.characters, _SQ_FREE[None])
 
 
 @pytest.mark.parametrize(

@@ -1,10 +1,10 @@
 """Samplers: Metropolis kernels over many chains and their proposal moves, block Gibbs for
 RBMs, parallel tempering, and direct sampling of autoregressive trial states."""
 
-from psiloom.sampling.direct import DirectInfo, DirectSampler
+from psiloom.sampling.direct import ChainRuleSampler, DrawInfo
 from psiloom.sampling.gibbs import BlockGibbsSampler, GibbsInfo, RBMWeights, gibbs_update, rbm_weights
 from psiloom.sampling.metropolis import ChainState, MetropolisSampler, StepInfo, metropolis_step
-from psiloom.sampling.moves import bond_exchange, mixture, pair_exchange, single_flip
+from psiloom.sampling.moves import bond_exchange, changes_magnetisation, mixture, pair_exchange, single_flip
 from psiloom.sampling.tempering import (
     TemperingInfo,
     TemperingSampler,
@@ -16,9 +16,9 @@ from psiloom.sampling.tempering import (
 
 __all__ = [
     "ChainState", "MetropolisSampler", "StepInfo", "metropolis_step", "bond_exchange",
-    "pair_exchange", "single_flip", "mixture",
+    "pair_exchange", "single_flip", "mixture", "changes_magnetisation",
     "BlockGibbsSampler", "GibbsInfo", "RBMWeights", "gibbs_update", "rbm_weights",
     "TemperingSampler", "TemperingState", "TemperingInfo", "geometric_betas", "replica_exchange",
     "tempered_metropolis_step",
-    "DirectSampler", "DirectInfo",
+    "ChainRuleSampler", "DrawInfo",
 ]

@@ -5,7 +5,7 @@ p(x) = Π_i p(x_i | x_<i) (see :mod:`psiloom.states.autoregressive`), drawing x_
 given x_0, and so on yields exact and mutually independent samples of |ψ|²: there is no
 burn-in, no rejection, and the integrated autocorrelation time is exactly 1.
 
-:class:`DirectSampler` follows the same protocol as the Markov-chain samplers so that the
+:class:`ChainRuleSampler` follows the same protocol as the Markov-chain samplers so that the
 training loop and every optimiser use it unchanged: the "chains" are just the columns of the
 sample array. The ``log_amplitude`` argument must be a :class:`psiloom.states.BoundState` of a
 model with a ``sample(key, n_samples)`` method (e.g. :class:`psiloom.states.ChainRuleState`).
@@ -23,11 +23,11 @@ from psiloom.spaces import SpinSpace
 from psiloom.states.bound import BoundState
 
 
-class DirectInfo(NamedTuple):
+class DrawInfo(NamedTuple):
     accepted: jax.Array  # (n_chains,) always True: every draw is a new independent sample
 
 
-class DirectSampler:
+class ChainRuleSampler:
     """Exact independent draws from an autoregressive trial state, ``n_chains`` per row.
 
     Args:
@@ -73,10 +73,10 @@ class DirectSampler:
         return ChainState(state.x, log_amplitude(state.x))
 
     def step(self, key: jax.Array, state: ChainState, log_amplitude: BoundState):
-        """A fresh independent draw for every chain: ``(state, DirectInfo)``."""
+        """A fresh independent draw for every chain: ``(state, DrawInfo)``."""
         log_amplitude = self._check(log_amplitude)
         x = self._draw(key, log_amplitude, self.n_chains)
-        return ChainState(x, log_amplitude(x)), DirectInfo(jnp.ones((self.n_chains,), bool))
+        return ChainState(x, log_amplitude(x)), DrawInfo(jnp.ones((self.n_chains,), bool))
 
     def sample(self, key: jax.Array, state: ChainState, log_amplitude: BoundState, n_per_chain: int):
         """``n_per_chain · n_chains`` independent draws, shaped ``(n_per_chain, n_chains, N)``.

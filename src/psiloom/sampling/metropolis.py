@@ -34,7 +34,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
+from psiloom.sampling.moves import Move, bond_exchange, changes_magnetisation, pair_exchange, single_flip
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -131,7 +131,7 @@ class MetropolisSampler:
                 move = bond_exchange(bonds) if bonds is not None else pair_exchange
             else:
                 move = single_flip
-        elif move is single_flip and space.constrained:
+        elif space.constrained and changes_magnetisation(move):  # single_flip, also inside a mixture
             raise ValueError(
                 f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
                 "use an exchange move"

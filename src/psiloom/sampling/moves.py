@@ -120,3 +120,13 @@ def mixture(components) -> Move:
 
     propose.components = tuple(zip(moves, probs))
     return propose
+
+
+def changes_magnetisation(move: Move) -> bool:
+    """Whether ``move`` is (or mixes in) :func:`single_flip`, the move here that changes Σ x.
+
+    Samplers use it to refuse such moves on a fixed-magnetisation space; moves written
+    elsewhere are assumed to know their own constraints."""
+    if move is single_flip:
+        return True
+    return any(changes_magnetisation(m) for m, _ in getattr(move, "components", ()))

@@ -39,7 +39,7 @@ import numpy as np
 
 from psiloom.reduce import sample_mean, sample_sum
 from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
-from psiloom.sampling.moves import Move, bond_exchange, pair_exchange, single_flip
+from psiloom.sampling.moves import Move, bond_exchange, changes_magnetisation, pair_exchange, single_flip
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -192,7 +192,7 @@ class TemperingSampler:
                 move = bond_exchange(bonds) if bonds is not None else pair_exchange
             else:
                 move = single_flip
-        elif move is single_flip and space.constrained:
+        elif space.constrained and changes_magnetisation(move):
             raise ValueError(
                 f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
                 "use an exchange move"

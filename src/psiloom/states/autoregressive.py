@@ -6,9 +6,9 @@ p(x) = Π_i p(x_i | x_<i). :class:`ChainRuleState` models each conditional direc
     p(x_i = +1 | x_<i) = σ(ℓ_i(x_<i)),        σ(z) = 1 / (1 + e^{−z}),
     log ψ(x) = ½ log p(x)  (+ i φ(x) with the optional phase),
 
-so Σ_x |ψ(x)|² = 1 holds by construction (Sharir, Levine, Wies, Carleo & Shashua,
-PRL 124, 020503 (2020) introduced autoregressive trial states for VMC) and configurations can
-be drawn exactly, one site after the other, without a Markov chain.
+so Σ_x |ψ(x)|² = 1 holds by construction and configurations can be drawn exactly, one site
+after the other, without a Markov chain (autoregressive trial states for VMC: Sharir, Levine,
+Wies, Carleo & Shashua, PRL 124, 020503 (2020), from memory).
 
 The logit of site i reads only the sites before it, through a strictly lower-triangular
 ("causal") summary of our own design with ``d = features`` hidden units per site:
@@ -125,7 +125,7 @@ class ChainRuleState(TrialState):
         param_dtype: parameter dtype (default float64 with x64 enabled, else float32).
 
     Besides ``log ψ``, bound instances offer ``sample(key, n_samples)`` (exact draws, used by
-    :class:`psiloom.sampling.DirectSampler`), ``log_probability(x)`` and ``logits(x)``.
+    :class:`psiloom.sampling.ChainRuleSampler`), ``log_probability(x)`` and ``logits(x)``.
     """
 
     features: int = 4

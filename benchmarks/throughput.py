@@ -1,0 +1,235 @@
+"""Throughput benchmark: fast amplitude updates, SR solvers and the RBM amplitude kernel.
+
+Every comparison is measured in the same run (``ratio`` = baseline time / measured time, so a
+ratio above 1 means faster than the baseline), on the CPU this runs on:
+
+1. Metropolis sweep (N proposals per chain) for an RBM (α = 2) on the Heisenberg ring L = 100
+   (Sᶻ = 0 sector, nearest-neighbour exchange moves): fast updates of the cached θ = xW + b and
+   1 ± tanh θ per chain vs full re-evaluation of log ψ(x') for every proposal. Target ≥ 10×.
+2. Local energies of the same system: fast per-connection updates vs full re-evaluation.
+3. SR solve with parameters P ≥ 8 × samples n: sample-space solve (n×n system) vs dense
+   parameter-space Cholesky (P×P), both through ``stochastic_reconfiguration`` on the same
+   fixed Jacobian X (so only the linear algebra is timed). Target ≥ 5×.
+4. Achieved GFLOP/s of the batched RBM amplitude (2·B·N·M flops of the θ = xW product counted)
+   vs a plain ``x @ W`` of the same shape. Target ≥ 0.5 of it.
+
+Times are wall-clock, best of several repetitions after compilation (OpenBLAS limited to one
+thread unless OPENBLAS_NUM_THREADS is set: see the note at the import). Prints one JSON line per
+measurement and a summary line last (../shared/BENCHMARKS.md); progress goes to stderr.
+``--quick`` uses fewer repetitions and smaller SR/batch sizes (< 60 s on two cores).
+"""
+
+from __future__ import annotations
+
+import os
+
+# LAPACK (Cholesky, triangular solves) runs in scipy's OpenBLAS; on a small shared machine its
+# spinning worker threads slow each call 10× or more. One thread, set before anything loads it.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import time  # noqa: E402
+
+import jax  # noqa: E402
+
+jax.config.update("jax_enable_x64", True)
+
+import jax.numpy as jnp  # noqa: E402
+import numpy as np  # noqa: E402
+
+import psiloom as pl  # noqa: E402
+from psiloom.states import RBM, bind_amplitude  # noqa: E402
+from _common import Timer, emit, lattice_system, parse_args, progress, summary  # noqa: E402
+
+L = 100
+ALPHA = 2
+
+
+def best_time(fn, *args, repeat: int = 5, number: int = 1) -> float:
+    """Best wall-clock seconds of ``number`` calls of ``fn(*args)`` over ``repeat`` trials
+    (after one untimed call that compiles)."""
+    jax.block_until_ready(fn(*args))
+    best = float("inf")
+    for _ in range(repeat):
+        start = time.perf_counter()
+        for _ in range(number):
+            out = fn(*args)
+        jax.block_until_ready(out)
+        best = min(best, (time.perf_counter() - start) / number)
+    return best
+
+
+def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
+    model = RBM(alpha=ALPHA, init_scale=scale)
+    space = pl.spaces.SpinSpace(n_sites, total_sz=0)
+    variables = model.init(jax.random.PRNGKey(key), space.random(jax.random.PRNGKey(key), 1))
+    return model, variables, space
+
+
+def metropolis(n_chains: int, repeat: int) -> dict:
+    with Timer() as timer:
+        lattice = pl.lattices.chain(L)
+        model, variables, space = _rbm(L)
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds)
+        times = {}
+        for fast in (True, False):
+            amp = bind_amplitude(model, variables, fast=fast)
+            chains = sampler.init(jax.random.PRNGKey(1), amp)
+
+            def one_sweep(v, chains, key, fast=fast):
+                return sampler.sample(key, chains, bind_amplitude(model, v, fast=fast), 1)[2]
+
+            times[fast] = best_time(jax.jit(one_sweep), variables, chains, jax.random.PRNGKey(2), repeat=repeat,
+                                    number=3)
+            progress(f"metropolis n_chains={n_chains} fast={fast}: {times[fast] * 1e3:.2f} ms/sweep")
+    return {
+        "benchmark": "throughput",
+        "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
+        "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "sampler": "Metropolis nn-exchange, Sz=0",
+                   "n_chains": n_chains, "sweep": f"{L} proposals per chain",
+                   "baseline": "full re-evaluation of log psi per proposal"},
+        "metric": "metropolis_sweep_seconds",
+        "value": times[True],
+        "unit": "s/sweep",
+        "baseline": times[False],
+        "ratio": times[False] / times[True],
+        "target_ratio": 10.0,
+        "seconds": timer.seconds,
+        "n_params": pl.states.count_real_parameters(variables),
+    }
+
+
+def local_energy(n_samples: int, repeat: int) -> dict:
+    with Timer() as timer:
+        lattice = pl.lattices.chain(L)
+        model, variables, space = _rbm(L)
+        hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+        x = space.random(jax.random.PRNGKey(3), n_samples)
+        times, values = {}, {}
+        for fast in (True, False):
+            fn = jax.jit(lambda v, x, fast=fast: hamiltonian.local_energy(bind_amplitude(model, v, fast=fast), x))
+            times[fast] = best_time(fn, variables, x, repeat=repeat)
+            values[fast] = np.asarray(fn(variables, x))
+            progress(f"local energy fast={fast}: {times[fast] * 1e3:.2f} ms for {n_samples} samples")
+        agreement = float(np.max(np.abs(values[True] - values[False])) / np.max(np.abs(values[False])))
+    return {
+        "benchmark": "throughput",
+        "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
+        "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "n_samples": n_samples,
+                   "n_connections": hamiltonian.n_connections,
+                   "baseline": "full re-evaluation of log psi on every connected configuration",
+                   "max_rel_difference": agreement},
+        "metric": "local_energy_seconds",
+        "value": times[True],
+        "unit": "s/batch",
+        "baseline": times[False],
+        "ratio": times[False] / times[True],
+        "seconds": timer.seconds,
+        "n_params": pl.states.count_real_parameters(variables),
+    }
+
+
+class _FixedGeometry:
+    """The part of :class:`psiloom.optimize.SampleGeometry` the SR solvers read, with the
+    Jacobian computed beforehand, so that only the linear algebra is timed."""
+
+    def __init__(self, x, residual, n_samples):
+        self._x, self._residual = x, residual
+        self.n_samples = n_samples
+        self.complex_output = False
+
+    def jacobian(self):
+        return self._x
+
+    def residual(self):
+        return self._residual
+
+
+def sr_solve(n_sites: int, n_samples: int, repeat: int) -> dict:
+    with Timer() as timer:
+        lattice = pl.lattices.chain(n_sites)
+        model, variables, space = _rbm(n_sites, scale=0.05)
+        hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+        x = space.random(jax.random.PRNGKey(4), n_samples)
+        e_loc = hamiltonian.local_energy(bind_amplitude(model, variables), x)
+        geometry = pl.optimize.SampleGeometry(model.apply, variables, x, e_loc)
+        jac, res = jax.block_until_ready((geometry.jacobian(), geometry.residual()))
+        _, grad = pl.optimize.energy_gradient(model.apply, variables, x, e_loc)
+        n_params = jac.shape[1]
+        times, deltas = {}, {}
+        for solver in ("sample_space", "dense"):
+            sr = pl.optimize.stochastic_reconfiguration(shift=1e-3, solver=solver)
+            state = sr.init(variables)
+
+            def solve(grad, state, jac, res, sr=sr):
+                out, _ = sr.update(grad, state, geometry=_FixedGeometry(jac, res, n_samples))
+                return pl.optimize.ravel_real(out)[0]
+
+            fn = jax.jit(solve)
+            times[solver] = best_time(fn, grad, state, jac, res, repeat=repeat)
+            deltas[solver] = np.asarray(fn(grad, state, jac, res))
+            progress(f"SR {solver}: P={n_params}, n={n_samples}: {times[solver] * 1e3:.1f} ms")
+        agreement = float(np.linalg.norm(deltas["sample_space"] - deltas["dense"]) / np.linalg.norm(deltas["dense"]))
+    return {
+        "benchmark": "throughput",
+        "system": lattice_system("heisenberg", "chain", [n_sites], True, "spin", J=1.0),
+        "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "n_params": n_params, "n_samples": n_samples,
+                   "params_per_sample": n_params / n_samples, "shift": 1e-3,
+                   "baseline": "dense P x P Cholesky solve", "relative_difference_of_updates": agreement},
+        "metric": "sr_solve_seconds",
+        "value": times["sample_space"],
+        "unit": "s/solve",
+        "baseline": times["dense"],
+        "ratio": times["dense"] / times["sample_space"],
+        "target_ratio": 5.0,
+        "samples_per_step": n_samples,
+        "seconds": timer.seconds,
+        "n_params": n_params,
+    }
+
+
+def amplitude_gflops(batch: int, repeat: int) -> dict:
+    with Timer() as timer:
+        model, variables, space = _rbm(L)
+        x = space.random(jax.random.PRNGKey(5), batch)
+        kernel = variables["params"]["kernel"]
+        flops = 2.0 * batch * kernel.shape[0] * kernel.shape[1]
+        t_rbm = best_time(jax.jit(model.apply), variables, x, repeat=repeat, number=5)
+        t_matmul = best_time(jax.jit(jnp.matmul), x, kernel, repeat=repeat, number=5)
+        progress(f"RBM amplitude B={batch}: {flops / t_rbm / 1e9:.2f} GFLOP/s; matmul {flops / t_matmul / 1e9:.2f}")
+    return {
+        "benchmark": "throughput",
+        "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
+        "method": {"trial_state": f"RBM alpha={ALPHA} (real), float64", "batch": batch,
+                   "shape": [batch, int(kernel.shape[0]), int(kernel.shape[1])],
+                   "flops_counted": "2*B*N*M (the x @ W product only)",
+                   "baseline": "jnp.matmul(x, W) of the same shape"},
+        "metric": "rbm_amplitude_gflops",
+        "value": flops / t_rbm / 1e9,
+        "unit": "GFLOP/s",
+        "baseline": flops / t_matmul / 1e9,
+        "ratio": t_matmul / t_rbm,
+        "target_ratio": 0.5,
+        "seconds": timer.seconds,
+        "n_params": pl.states.count_real_parameters(variables),
+    }
+
+
+def main() -> None:
+    args = parse_args("throughput", "fast updates, SR solvers and amplitude throughput")
+    repeat = 3 if args.quick else 7
+    records = []
+    for n_chains in ((16, 64) if args.quick else (16, 64, 256)):
+        records.append(emit(metropolis(n_chains, repeat)))
+    records.append(emit(local_energy(256 if args.quick else 1024, repeat)))
+    # P = N + αN + αN² ≥ 8 n
+    records.append(emit(sr_solve(44, 500, repeat) if args.quick else sr_solve(64, 1024, repeat)))
+    records.append(emit(amplitude_gflops(2048 if args.quick else 8192, repeat)))
+    targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']}]" if "n_chains" in r["method"] else ""):
+               {"ratio": r["ratio"], "target": r.get("target_ratio"),
+                "met": None if r.get("target_ratio") is None else bool(r["ratio"] >= r["target_ratio"])}
+               for r in records}
+    summary(records, benchmark="throughput", quick=bool(args.quick), ratios=targets)
+
+
+if __name__ == "__main__":
+    main()
