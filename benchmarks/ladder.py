@@ -195,14 +195,14 @@ FULL = [
 # with margin above what they reach), not the full-mode targets.
 QUICK = [
     Rung("tfim_chain_16", "tfim", (16,), 1e-3, alpha=1, n_samples=512, n_chains=32, steps=150, lr=(0.03, 0.05),
-         warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=8192, couplings={"J": 1.0, "h": 1.0}),
+         warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096, couplings={"J": 1.0, "h": 1.0}),
     Rung("heisenberg_chain_20", "heisenberg", (20,), 2e-3, alpha=1, n_samples=512, n_chains=32, steps=150,
-         lr=(0.03, 0.05), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=8192),
-    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 1e-2, alpha=2, n_samples=512, n_chains=32, steps=200,
-         lr=(0.03, 0.06), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=100, eval_samples=8192),
+         lr=(0.03, 0.05), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096),
+    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 1e-2, alpha=2, n_samples=512, n_chains=32, steps=150,
+         lr=(0.03, 0.06), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096),
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 6e-2, alpha=1, complex_params=True, sign_rule=False, n_samples=512,
-         n_chains=32, steps=200, lr=(0.05, 0.1), warmup=20, shift=(3e-2, 1e-3), shift_decay_steps=100,
-         eval_samples=8192, couplings={"J2": 0.5}),
+         n_chains=32, steps=150, lr=(0.05, 0.1), warmup=20, shift=(3e-2, 1e-3), shift_decay_steps=80,
+         eval_samples=4096, couplings={"J2": 0.5}),
 ]
 
 

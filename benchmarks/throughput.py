@@ -222,7 +222,7 @@ def main() -> None:
         records.append(emit(metropolis(n_chains, repeat)))
     records.append(emit(local_energy(256 if args.quick else 1024, repeat)))
     # P = N + αN + αN² ≥ 8 n
-    records.append(emit(sr_solve(44, 500, repeat) if args.quick else sr_solve(64, 1024, repeat)))
+    records.append(emit(sr_solve(32, 256, repeat) if args.quick else sr_solve(64, 1024, repeat)))
     records.append(emit(amplitude_gflops(2048 if args.quick else 8192, repeat)))
     targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']}]" if "n_chains" in r["method"] else ""):
                {"ratio": r["ratio"], "target": r.get("target_ratio"),

@@ -22,19 +22,27 @@ def test_samples_reproduce_hydrogenic_moments(move):
     # Bethe & Salpeter). Tolerance: 4 autocorrelation-corrected standard errors.
     sampler = el.ElectronSampler(SYSTEM, n_chains=64, move=move, step_size=3.0, burn_in=20, equilibrate=20)
 
+    hamiltonian = el.CoulombHamiltonian(SYSTEM)
+
     @jax.jit
     def run(key):
         k0, k1 = jax.random.split(key)
         state = sampler.init(k0, LOG_PSI)
-        return sampler.sample(k1, state, LOG_PSI, 150)
+        xs, logs, state, acceptance = sampler.sample(k1, state, LOG_PSI, 150)
+        return xs, logs, state, acceptance, el.energy_components(hamiltonian, LOG_PSI, xs)
 
-    xs, logs, state, acceptance = run(jax.random.PRNGKey(7))
+    xs, logs, state, acceptance, parts = run(jax.random.PRNGKey(7))
     assert xs.shape == (150, 64, 2, 3) and logs.shape == (150, 64)
     np.testing.assert_allclose(np.asarray(logs), np.asarray(LOG_PSI(xs)), atol=1e-12)
     r = jnp.linalg.norm(xs, axis=-1)  # (T, C, 2)
     for values, exact in [(jnp.mean(r, axis=-1), 1.5 / Z), (jnp.mean(r * r, axis=-1), 3.0 / Z**2)]:
         est = stats.estimate(values)
         assert abs(float(est.mean) - exact) < 4 * float(est.error), (move, float(est.mean), float(est.error))
+    # Exact expectation values in this product state (first-order perturbation theory of the
+    # helium-like ion, textbook): <T> = Z², <V_en> = −2Z², <V_ee> = 5Z/8, E = −Z² + 5Z/8.
+    for est, exact in [(parts.kinetic, Z**2), (parts.electron_nuclear, -2 * Z**2),
+                       (parts.electron_electron, 5 * Z / 8), (parts.total, -Z**2 + 5 * Z / 8)]:
+        assert abs(float(est.mean) - exact) < 4 * float(est.error), (move, float(est.mean), float(est.error), exact)
     # the step size was adapted from 3 bohr toward 50 % acceptance (common practice)
     assert 0.4 < float(acceptance) < 0.6
     assert float(state.step_size) < 3.0

@@ -92,7 +92,7 @@ def _apply(x, sites, new_values):
 
 
 @pytest.mark.parametrize("complex_params", [False, True])
-@settings(max_examples=20)
+@settings(max_examples=15)
 @given(change=_changes())
 def test_fast_ratio_equals_rbm_formula(complex_params, change):
     x, sites, new_values = change

@@ -23,6 +23,7 @@ from psiloom.electrons.features import MomentMixer
 from psiloom.electrons.hamiltonian import CoulombHamiltonian, EnergyParts, kinetic_energy, potential_energy
 from psiloom.electrons.jastrow import CuspJastrow, NeuralJastrow
 from psiloom.electrons.laplacian import forward_laplacian, hessian_laplacian, value_grad_laplacian
+from psiloom.electrons.observables import EnergyComponents, energy_components, evaluate_components
 from psiloom.electrons.orbitals import NeuralOrbitals, SlaterTypeOrbitals
 from psiloom.electrons.sampler import ElectronSampler, WalkerState
 from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, molecule
@@ -31,7 +32,7 @@ __all__ = [
     "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "SlaterJastrow",
     "neural_slater_jastrow", "signed_log_det", "signed_log_sum_exp", "slater_jastrow", "MomentMixer",
     "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
-    "NeuralJastrow", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "NeuralOrbitals",
+    "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "NeuralOrbitals",
     "SlaterTypeOrbitals", "ElectronSampler", "WalkerState", "BOHR_PER_ANGSTROM", "Molecule", "atom",
     "molecule",
 ]

@@ -139,11 +139,19 @@ class Molecule:
                 e += self.charges[i] * self.charges[j] / np.linalg.norm(self.positions[i] - self.positions[j])
         return float(e)
 
+    @property
+    def formula(self) -> str:
+        """Chemical formula in order of first appearance, e.g. "H2", "LiH"."""
+        counts: dict[str, int] = {}
+        for s in self.symbols:
+            counts[s] = counts.get(s, 0) + 1
+        return "".join(s + (str(c) if c > 1 else "") for s, c in counts.items())
+
     def describe(self) -> dict:
         """The benchmark-contract ``system`` object (positions in bohr)."""
         return {
             "model": "molecule",
-            "name": "".join(self.symbols) if self.n_nuclei > 1 else self.symbols[0],
+            "name": self.formula,
             "atoms": [[s, [float(c) for c in p]] for s, p in zip(self.symbols, self.positions)],
             "units": "bohr",
             "n_up": self.n_up,

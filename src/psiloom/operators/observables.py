@@ -263,7 +263,7 @@ def _z_string_average(k: int, n: int, n_up: int | None) -> float:
     n_down = n - n_up
     total_ = comb(n, n_down)
     acc = 0
-    for j in range(0, k + 1):  # j of the k sites down
+    for j in range(max(0, n_down - (n - k)), min(k, n_down) + 1):  # j of the k sites down
         acc += (-1) ** j * comb(k, j) * comb(n - k, n_down - j)
     return acc / total_
 

@@ -163,9 +163,9 @@ class MetropolisSampler:
         return self._step(key, state, log_amplitude, fast)
 
     def _sweep(self, key, state, log_amplitude, fast=None):
-        """``self.sweep`` proposals per chain. The random numbers of the whole sweep (move keys,
-        acceptance uniforms) are drawn before the loop: on CPU every random-number call inside
-        a loop body costs more than a fast update itself."""
+        """``self.sweep`` proposals per chain. The move keys and acceptance uniforms of the whole
+        sweep are drawn before the loop (two random-number calls instead of two per proposal,
+        which matters on CPU once proposals are cheap)."""
         move = self.move
         k_moves, k_acc = jax.random.split(key)
         keys = jax.random.split(k_moves, self.sweep)

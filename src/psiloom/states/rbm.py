@@ -18,11 +18,12 @@ Fast updates (:mod:`psiloom.states.fast`). Changing spins at sites ``s_k`` by
 The cache of a configuration holds ``θ`` and ``u^±`` (the latter computed without
 cancellation as 2/(1 + e^{∓2θ})); ``e^{±d_j}`` is a product of rows of the tables
 ``exp(±2W)`` computed once per parameter set. An update therefore costs O(K·M)
-multiplications plus one logarithm per eight hidden units — no exponential per unit — and
-the cache follows exactly: ``θ' = θ + d`` and ``u^±' = u^± e^{±d} / r`` with ``r`` the
-per-unit ratio above (so that ``u⁺' + u⁻' = 2``). For real parameters every term is
-positive, so the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the
-sites of one change distinct; the tables overflow only for ``|W| > 354``.
+multiplications and one logarithm per eight hidden units (two in 32-bit precision), with no
+exponential per unit, and the cache follows exactly: ``θ' = θ + d`` and
+``u^±' = u^± e^{±d} / r`` with ``r`` the per-unit ratio above (so that ``u⁺' + u⁻' = 2``).
+For real parameters every term is positive, so the ratio carries no cancellation at any
+``|θ|``. Spins must be ±1 and the sites of one change distinct; the tables overflow only for
+``|W| > 354`` (float64).
 """
 
 from __future__ import annotations
@@ -143,7 +144,8 @@ class RBM(TrialState):
             if e_plus is None:  # K = 0: nothing changes
                 return delta, cache
             ratio = 0.5 * (cache.plus * e_plus + cache.minus * e_minus)  # cosh(θ + d) / cosh θ
-            delta = delta + log_product(ratio)
+            # 8 factors per logarithm in 64-bit (overflow needs mean |d| > 88), 2 in 32-bit (> 44)
+            delta = delta + log_product(ratio, block=8 if jnp.finfo(ratio.dtype).bits == 64 else 2)
             inv = 1.0 / ratio
             new = RBMCache(cache.theta + d_theta, cache.plus * e_plus * inv, cache.minus * e_minus * inv)
             return delta, new

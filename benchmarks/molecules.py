@@ -1,0 +1,188 @@
+"""Benchmark: ground-state energies of small atoms and molecules by VMC with determinant trial states.
+
+Systems (fixed nuclei, bohr, hartree): He, H₂ (R = 1.4), Li, LiH (R = 3.015), Be, compared with
+the exact non-relativistic energies of ../shared/REFERENCES.md (from memory).
+
+``--quick``: Slater–Jastrow states (Slater-type orbitals, cusp + neural Jastrow), short runs;
+the He line is the headline (target: within 5 mHa in under 2 minutes on two CPU cores).
+Full mode: neural-orbital multi-determinant states (``neural_slater_jastrow``), Hartree-Fock
+pretraining when PySCF is installed, long runs (targets of issue 6: He ≤ 0.1 mHa in ≤ 10 min;
+H₂ ≤ 0.3, Li ≤ 1, LiH ≤ 1.6 mHa in ≤ 60 min; Be ≤ 3 mHa).
+
+For every system one energy line (energy from a separate evaluation pass) and one throughput line
+(walker-steps per second of the full optimisation step: sampling, local energy, gradient and SR);
+then throughput lines comparing the Laplacian implementations (own forward Laplacian, jvp of the
+gradient, and the optional ``folx`` package) on one system; a summary line last. JSON on stdout,
+progress on stderr (../shared/BENCHMARKS.md).
+
+Options: ``--systems He,Li`` to run a subset; ``--laplacian`` to choose the Laplacian used in
+training (default: forward).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import time
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+import jax.numpy as jnp  # noqa: E402
+import numpy as np  # noqa: E402
+import optax  # noqa: E402
+
+import psiloom as pl  # noqa: E402
+from psiloom import electrons as el  # noqa: E402
+from _common import Timer, emit, parse_args, progress, relative_error, summary  # noqa: E402
+
+# name: (system, exact energy, source)
+SYSTEMS = {
+    "He": (el.atom("He"), -2.903724377, "Pekeris 1959 / Drake (from memory)"),
+    "H2": (el.molecule([("H", (0, 0, 0)), ("H", (1.4, 0, 0))]), -1.1744757, "Kolos & Wolniewicz 1968 (from memory)"),
+    "Li": (el.atom("Li"), -7.47806032, "Puchalski & Pachucki (from memory)"),
+    "LiH": (el.molecule([("Li", (0, 0, 0)), ("H", (3.015, 0, 0))]), -8.070548, "Cencek & Rychlewski (from memory)"),
+    "Be": (el.atom("Be"), -14.667356, "Komasa et al. (from memory)"),
+}
+HF_LIMIT = {"He": -2.8616800, "H2": -1.1336296, "Li": -7.4327257, "LiH": -7.987352, "Be": -14.5730230}
+
+QUICK = {
+    "He": dict(state="slater_jastrow", n_det=1, steps=120, n_samples=512, lr=0.05, eval_samples=8192),
+    "H2": dict(state="slater_jastrow", n_det=1, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
+    "Li": dict(state="slater_jastrow", n_det=1, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
+    "LiH": dict(state="slater_jastrow", n_det=1, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
+    "Be": dict(state="slater_jastrow", n_det=2, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
+}
+FULL = {
+    "He": dict(state="neural", n_det=1, steps=1500, n_samples=1024, lr=0.05, eval_samples=65536),
+    "H2": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
+    "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
+    "LiH": dict(state="neural", n_det=4, steps=3000, n_samples=1024, lr=0.05, eval_samples=65536),
+    "Be": dict(state="neural", n_det=4, steps=3000, n_samples=1024, lr=0.05, eval_samples=65536),
+}
+N_CHAINS = 64
+
+
+def build_state(system, cfg):
+    if cfg["state"] == "neural":
+        return el.neural_slater_jastrow(system, n_det=cfg["n_det"])
+    return el.slater_jastrow(system, n_det=cfg["n_det"], neural_jastrow=True)
+
+
+def maybe_pretrain(name, model, system, key, quick):
+    """Hartree-Fock pretraining of the orbitals (full mode, PySCF present)."""
+    if quick or importlib.util.find_spec("pyscf") is None:
+        return None, "none"
+    from psiloom.electrons import pretrain
+
+    hf = pretrain.hartree_fock(system, basis="cc-pvdz")
+    params = jax.jit(model.init)(key, system.random(key, 1))
+    params, losses = pretrain.pretrain_orbitals(model, params, hf, key, n_steps=500, n_walkers=512, learning_rate=1e-2)
+    progress(f"{name}: HF (cc-pVDZ) {hf.energy:.6f}; pretraining loss {losses[0]:.3g} -> {losses[-1]:.3g}")
+    return params, f"PySCF UHF/RHF cc-pVDZ, 500 Adam steps (E_HF = {hf.energy:.6f})"
+
+
+def run_system(name, cfg, laplacian, quick, seed=0):
+    system, exact, source = SYSTEMS[name]
+    key = jax.random.PRNGKey(seed)
+    with Timer() as timer:
+        model = build_state(system, cfg)
+        params, pretrained = maybe_pretrain(name, model, system, key, quick)
+        sampler = el.ElectronSampler(system, n_chains=N_CHAINS, sweep=5, burn_in=1, equilibrate=100)
+        lr = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
+        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
+        search = pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
+                                            optimizer, n_samples=cfg["n_samples"], energy_clip=5.0)
+        state = search.init(key, params=params)
+        state, history = search.run(cfg["steps"], state=state, progress=progress, print_every=50)
+        parts, acceptance = el.evaluate_components(search, state, cfg["eval_samples"], burn_in_sweeps=10)
+    estimate = parts.total
+    energy, error = float(np.real(estimate.mean)), float(estimate.error)
+    step_seconds = np.median(history["seconds"][1:]) if len(history) > 1 else float("nan")
+    progress(f"{name}: E = {energy:.6f} ± {error:.6f} (exact {exact}, error {1e3 * (energy - exact):+.2f} mHa) "
+             f"in {timer.seconds:.0f} s")
+    n_params = search.n_parameters(state)
+    method = {
+        "trial_state": f"{cfg['state']} n_det={cfg['n_det']}",
+        "sampler": f"Metropolis all-electron Gaussian, {N_CHAINS} walkers, sweep 5, adaptive step",
+        "optimizer": f"SR (auto solver, shift 1e-3) + sgd {cfg['lr'] / 5}->{cfg['lr']}, energy clip 5",
+        "laplacian": laplacian, "pretraining": pretrained, "tau": float(estimate.tau),
+        "rhat": float(estimate.rhat), "acceptance": acceptance, "variance": float(estimate.variance),
+        "kinetic": float(parts.kinetic.mean), "kinetic_error": float(parts.kinetic.error),
+        "potential": float(parts.potential.mean), "potential_error": float(parts.potential.error),
+        "virial_ratio": float(parts.virial_ratio),
+        "hartree_fock_limit": HF_LIMIT[name],
+    }
+    record = emit({
+        "benchmark": "molecules", "system": system.describe(), "method": method,
+        "energy": energy, "error_bar": error, "reference": exact, "reference_source": source,
+        "rel_error": relative_error(energy, exact), "abs_error_mha": abs(energy - exact) * 1e3,
+        "seconds": timer.seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"],
+        "walkers": N_CHAINS, "n_params": n_params,
+    })
+    throughput = emit({
+        "benchmark": "molecules", "system": system.describe(), "method": {"trial_state": method["trial_state"],
+                                                                         "laplacian": laplacian},
+        "metric": "walker_steps_per_second", "value": cfg["n_samples"] / step_seconds,
+        "unit": "walker-steps/s (one optimisation step per walker: 5 Metropolis moves, local energy, gradient, SR)",
+        "seconds": float(step_seconds) * len(history), "n_params": n_params,
+    })
+    return record, throughput, model, state.params
+
+
+def laplacian_comparison(name, model, params, n_walkers=256, repeats=5):
+    """Local-energy throughput of each Laplacian implementation (compilation excluded)."""
+    system = SYSTEMS[name][0]
+    x = system.random(jax.random.PRNGKey(3), n_walkers, width=0.7)
+    methods = ["hessian", "forward"] + (["folx"] if importlib.util.find_spec("folx") else [])
+    rates, values = {}, {}
+    for m in methods:
+        h = el.CoulombHamiltonian(system, laplacian=m)
+        fn = jax.jit(lambda p, y: h.local_energy(lambda z: model.apply(p, z), y))
+        values[m] = np.asarray(fn(params, x))
+        start = time.perf_counter()
+        for _ in range(repeats):
+            fn(params, x).block_until_ready()
+        rates[m] = n_walkers * repeats / (time.perf_counter() - start)
+        progress(f"{name}: local energy via {m}: {rates[m]:.0f} configurations/s")
+    records = []
+    for m in methods:
+        agree = float(np.max(np.abs(values[m] - values["hessian"])))
+        records.append(emit({
+            "benchmark": "molecules", "system": system.describe(),
+            "method": {"trial_state": "final trained state", "laplacian": m, "max_abs_diff_vs_hessian": agree},
+            "metric": "local_energy_throughput", "value": rates[m], "unit": "configurations/s",
+            "ratio": rates[m] / rates["hessian"], "baseline": "hessian (jvp of the gradient)",
+            "seconds": n_walkers * repeats / rates[m],
+        }))
+    return records
+
+
+def main() -> None:
+    def extra(parser):
+        parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS))
+        parser.add_argument("--laplacian", default="forward", choices=list(el.laplacian.METHODS))
+
+    args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
+    names = [n.strip() for n in args.systems.split(",") if n.strip()]
+    unknown = [n for n in names if n not in SYSTEMS]
+    if unknown:
+        raise SystemExit(f"unknown systems {unknown}; available: {', '.join(SYSTEMS)}")
+    configs = QUICK if args.quick else FULL
+    records, compare_with = [], None
+    for name in names:
+        progress(f"{name}: {configs[name]}")
+        record, throughput, model, params = run_system(name, configs[name], args.laplacian, args.quick)
+        records += [record, throughput]
+        if compare_with is None or name == "LiH":
+            compare_with = (name, model, params)
+    if compare_with is not None:
+        records += laplacian_comparison(*compare_with)
+    energy_records = [r for r in records if "energy" in r]
+    summary(energy_records, benchmark="molecules", quick=args.quick, n_lines=len(records) + 1,
+            max_abs_error_mha=max((r["abs_error_mha"] for r in energy_records), default=None),
+            errors_mha={r["system"]["name"]: r["abs_error_mha"] for r in energy_records})
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,77 @@
+"""Energy components with error bars: kinetic, potential and the virial ratio.
+
+From samples x of |ψ|² (``(n_time, n_chains, N, 3)``) the local energy parts of
+:class:`~psiloom.electrons.CoulombHamiltonian` are averaged chain-wise with
+:func:`psiloom.stats.estimate` (autocorrelation-corrected errors):
+
+    ⟨T⟩, ⟨V_en⟩, ⟨V_ee⟩, ⟨V⟩ = ⟨V_en⟩ + ⟨V_ee⟩ + V_NN, ⟨E⟩ = ⟨T⟩ + ⟨V⟩ (hartree),
+
+and the virial ratio −⟨V⟩/⟨T⟩, which equals 2 for any exact eigenstate of an atom (virial
+theorem for Coulomb systems) and for molecules at equilibrium geometry only approximately
+(the nuclear forces vanish only at the exact equilibrium distance).
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import jax
+
+from psiloom import stats
+from psiloom.electrons.hamiltonian import CoulombHamiltonian
+
+
+class EnergyComponents(NamedTuple):
+    total: stats.Estimate
+    kinetic: stats.Estimate
+    potential: stats.Estimate
+    electron_nuclear: stats.Estimate
+    electron_electron: stats.Estimate
+    virial_ratio: float  # −⟨V⟩ / ⟨T⟩
+
+
+def energy_components(hamiltonian: CoulombHamiltonian, log_amp_fn, samples, chunk: int | None = None) -> EnergyComponents:
+    """Estimates of the energy parts over ``samples`` of shape ``(n_time, n_chains, N, 3)``."""
+    if samples.ndim != 4:
+        raise ValueError(f"samples must have shape (n_time, n_chains, n_electrons, 3), got {samples.shape}")
+    t, c = samples.shape[:2]
+    parts = hamiltonian.local_energy_parts(log_amp_fn, samples.reshape(t * c, *samples.shape[2:]), chunk)
+    shaped = lambda v: v.reshape(t, c)
+    kinetic = stats.estimate(shaped(parts.kinetic))
+    potential = stats.estimate(shaped(parts.potential))
+    return EnergyComponents(
+        total=stats.estimate(shaped(parts.total)),
+        kinetic=kinetic,
+        potential=potential,
+        electron_nuclear=stats.estimate(shaped(parts.electron_nuclear)),
+        electron_electron=stats.estimate(shaped(parts.electron_electron)),
+        virial_ratio=-potential.mean / kinetic.mean,
+    )
+
+
+def evaluate_components(search, state, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 10,
+                        chunk: int | None = None) -> tuple[EnergyComponents, float]:
+    """A separate evaluation pass of a :class:`psiloom.train.GroundStateSearch` at fixed parameters.
+
+    Continues the search's chains from ``state``, discards ``burn_in_sweeps`` sweeps and stores
+    ``n_samples`` (rounded up to a multiple of the number of chains). Returns
+    ``(EnergyComponents, acceptance)``.
+    """
+    if isinstance(n_samples, bool) or not isinstance(n_samples, int) or n_samples < 1:
+        raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
+    sampler, model, hamiltonian = search.sampler, search.model, search.hamiltonian
+    n_per_chain = -(-n_samples // sampler.n_chains)
+    key = jax.random.fold_in(state.key, 11) if key is None else key
+
+    @jax.jit
+    def run(params, chains, key):
+        log_amp = lambda x: model.apply(params, x)
+        chains = sampler.refresh(chains, log_amp)
+        k_burn, k_run = jax.random.split(key)
+        if burn_in_sweeps:
+            _, _, chains, _ = sampler.sample(k_burn, chains, log_amp, burn_in_sweeps)
+        xs, _, _, acceptance = sampler.sample(k_run, chains, log_amp, n_per_chain)
+        return energy_components(hamiltonian, log_amp, xs, chunk), acceptance
+
+    components, acceptance = run(state.params, state.chains, key)
+    return components, float(acceptance)
