@@ -16,16 +16,21 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
 Times are wall-clock, best of several repetitions after compilation (OpenBLAS limited to one
 thread unless OPENBLAS_NUM_THREADS is set: see the note at the import). Prints one JSON line per
 measurement and a summary line last (../shared/BENCHMARKS.md); progress goes to stderr.
-``--quick`` uses fewer repetitions and smaller SR/batch sizes (< 60 s on two cores).
+``--quick`` uses fewer repetitions and smaller SR/batch sizes (< 60 s on two cores);
+``--single-thread`` runs XLA on one thread (steadier numbers on a busy machine).
 """
 
 from __future__ import annotations
 
 import os
+import sys
 
 # LAPACK (Cholesky, triangular solves) runs in scipy's OpenBLAS; on a small shared machine its
 # spinning worker threads slow each call 10× or more. One thread, set before anything loads it.
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+if "--single-thread" in sys.argv:  # XLA reads its flags when the backend starts
+    os.environ["XLA_FLAGS"] = (os.environ.get("XLA_FLAGS", "")
+                               + " --xla_cpu_multi_thread_eigen=false intra_op_parallelism_threads=1")
 
 import time  # noqa: E402
 
@@ -44,18 +49,33 @@ L = 100
 ALPHA = 2
 
 
-def best_time(fn, *args, repeat: int = 5, number: int = 1) -> float:
+CPU_TIMES: dict[str, float] = {}  # process CPU seconds of the last best_time call per label
+
+
+def best_time(fn, *args, repeat: int = 5, number: int = 1, label: str | None = None) -> float:
     """Best wall-clock seconds of ``number`` calls of ``fn(*args)`` over ``repeat`` trials
-    (after one untimed call that compiles)."""
+    (after one untimed call that compiles). The best process CPU time per call is kept in
+    ``CPU_TIMES[label]``: with ``--single-thread`` it measures the work itself and is far less
+    sensitive than wall time to other processes on a shared machine."""
     jax.block_until_ready(fn(*args))
-    best = float("inf")
+    best, best_cpu = float("inf"), float("inf")
     for _ in range(repeat):
-        start = time.perf_counter()
+        start, start_cpu = time.perf_counter(), time.process_time()
         for _ in range(number):
             out = fn(*args)
         jax.block_until_ready(out)
         best = min(best, (time.perf_counter() - start) / number)
+        best_cpu = min(best_cpu, (time.process_time() - start_cpu) / number)
+    if label is not None:
+        CPU_TIMES[label] = best_cpu
     return best
+
+
+def _cpu_fields(measured: str, baseline: str) -> dict:
+    """CPU-time version of a time comparison: seconds of process time (all threads of this
+    process), ``cpu_ratio`` = baseline / measured."""
+    return {"cpu_value": CPU_TIMES[measured], "cpu_baseline": CPU_TIMES[baseline],
+            "cpu_ratio": CPU_TIMES[baseline] / CPU_TIMES[measured]}
 
 
 def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
@@ -79,7 +99,7 @@ def metropolis(n_chains: int, repeat: int) -> dict:
                 return sampler.sample(key, chains, bind_amplitude(model, v, fast=fast), 1)[2]
 
             times[fast] = best_time(jax.jit(one_sweep), variables, chains, jax.random.PRNGKey(2), repeat=repeat,
-                                    number=3)
+                                    number=3, label=f"sweep{fast}")
             progress(f"metropolis n_chains={n_chains} fast={fast}: {times[fast] * 1e3:.2f} ms/sweep")
     return {
         "benchmark": "throughput",
@@ -92,6 +112,7 @@ def metropolis(n_chains: int, repeat: int) -> dict:
         "unit": "s/sweep",
         "baseline": times[False],
         "ratio": times[False] / times[True],
+        **_cpu_fields("sweepTrue", "sweepFalse"),
         "target_ratio": 10.0,
         "seconds": timer.seconds,
         "n_params": pl.states.count_real_parameters(variables),
@@ -107,7 +128,7 @@ def local_energy(n_samples: int, repeat: int) -> dict:
         times, values = {}, {}
         for fast in (True, False):
             fn = jax.jit(lambda v, x, fast=fast: hamiltonian.local_energy(bind_amplitude(model, v, fast=fast), x))
-            times[fast] = best_time(fn, variables, x, repeat=repeat)
+            times[fast] = best_time(fn, variables, x, repeat=repeat, label=f"eloc{fast}")
             values[fast] = np.asarray(fn(variables, x))
             progress(f"local energy fast={fast}: {times[fast] * 1e3:.2f} ms for {n_samples} samples")
         agreement = float(np.max(np.abs(values[True] - values[False])) / np.max(np.abs(values[False])))
@@ -123,6 +144,7 @@ def local_energy(n_samples: int, repeat: int) -> dict:
         "unit": "s/batch",
         "baseline": times[False],
         "ratio": times[False] / times[True],
+        **_cpu_fields("elocTrue", "elocFalse"),
         "seconds": timer.seconds,
         "n_params": pl.states.count_real_parameters(variables),
     }
@@ -165,7 +187,7 @@ def sr_solve(n_sites: int, n_samples: int, repeat: int) -> dict:
                 return pl.optimize.ravel_real(out)[0]
 
             fn = jax.jit(solve)
-            times[solver] = best_time(fn, grad, state, jac, res, repeat=repeat)
+            times[solver] = best_time(fn, grad, state, jac, res, repeat=min(repeat, 3), label=solver)
             deltas[solver] = np.asarray(fn(grad, state, jac, res))
             progress(f"SR {solver}: P={n_params}, n={n_samples}: {times[solver] * 1e3:.1f} ms")
         agreement = float(np.linalg.norm(deltas["sample_space"] - deltas["dense"]) / np.linalg.norm(deltas["dense"]))
@@ -180,6 +202,7 @@ def sr_solve(n_sites: int, n_samples: int, repeat: int) -> dict:
         "unit": "s/solve",
         "baseline": times["dense"],
         "ratio": times["dense"] / times["sample_space"],
+        **_cpu_fields("sample_space", "dense"),
         "target_ratio": 5.0,
         "samples_per_step": n_samples,
         "seconds": timer.seconds,
@@ -193,8 +216,8 @@ def amplitude_gflops(batch: int, repeat: int) -> dict:
         x = space.random(jax.random.PRNGKey(5), batch)
         kernel = variables["params"]["kernel"]
         flops = 2.0 * batch * kernel.shape[0] * kernel.shape[1]
-        t_rbm = best_time(jax.jit(model.apply), variables, x, repeat=repeat, number=5)
-        t_matmul = best_time(jax.jit(jnp.matmul), x, kernel, repeat=repeat, number=5)
+        t_rbm = best_time(jax.jit(model.apply), variables, x, repeat=repeat, number=5, label="rbm")
+        t_matmul = best_time(jax.jit(jnp.matmul), x, kernel, repeat=repeat, number=5, label="matmul")
         progress(f"RBM amplitude B={batch}: {flops / t_rbm / 1e9:.2f} GFLOP/s; matmul {flops / t_matmul / 1e9:.2f}")
     return {
         "benchmark": "throughput",
@@ -208,6 +231,9 @@ def amplitude_gflops(batch: int, repeat: int) -> dict:
         "unit": "GFLOP/s",
         "baseline": flops / t_matmul / 1e9,
         "ratio": t_matmul / t_rbm,
+        "cpu_value": flops / CPU_TIMES["rbm"] / 1e9,
+        "cpu_baseline": flops / CPU_TIMES["matmul"] / 1e9,
+        "cpu_ratio": CPU_TIMES["matmul"] / CPU_TIMES["rbm"],
         "target_ratio": 0.5,
         "seconds": timer.seconds,
         "n_params": pl.states.count_real_parameters(variables),
@@ -215,7 +241,9 @@ def amplitude_gflops(batch: int, repeat: int) -> dict:
 
 
 def main() -> None:
-    args = parse_args("throughput", "fast updates, SR solvers and amplitude throughput")
+    args = parse_args("throughput", "fast updates, SR solvers and amplitude throughput",
+                      extra=lambda p: p.add_argument("--single-thread", action="store_true",
+                                                     help="run XLA on one thread"))
     repeat = 3 if args.quick else 7
     records = []
     for n_chains in ((16, 64) if args.quick else (16, 64, 256)):
@@ -223,12 +251,13 @@ def main() -> None:
     records.append(emit(local_energy(256 if args.quick else 1024, repeat)))
     # P = N + αN + αN² ≥ 8 n
     records.append(emit(sr_solve(32, 256, repeat) if args.quick else sr_solve(64, 1024, repeat)))
-    records.append(emit(amplitude_gflops(2048 if args.quick else 8192, repeat)))
+    records.append(emit(amplitude_gflops(2048 if args.quick else 4096, repeat)))
     targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']}]" if "n_chains" in r["method"] else ""):
-               {"ratio": r["ratio"], "target": r.get("target_ratio"),
+               {"ratio": r["ratio"], "cpu_ratio": r["cpu_ratio"], "target": r.get("target_ratio"),
                 "met": None if r.get("target_ratio") is None else bool(r["ratio"] >= r["target_ratio"])}
                for r in records}
-    summary(records, benchmark="throughput", quick=bool(args.quick), ratios=targets)
+    summary(records, benchmark="throughput", quick=bool(args.quick), single_thread=bool(args.single_thread),
+            ratios=targets)
 
 
 if __name__ == "__main__":

@@ -11,8 +11,9 @@ stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
 """
 
 from psiloom import batching, exact, lattices, operators, optimize, plotting, reduce, sampling, spaces, states, stats, symmetry, train
+from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 
 __version__ = "0.1.0"
 
 __all__ = ["batching", "exact", "lattices", "operators", "optimize", "plotting", "reduce", "sampling", "spaces", "states",
-           "stats", "symmetry", "train", "__version__"]
+           "stats", "symmetry", "train", "electrons", "__version__"]

@@ -20,15 +20,23 @@ gradient, stochastic reconfiguration and training loop work on these modules unc
 
 from __future__ import annotations
 
-import flax.linen as nn
 import jax.numpy as jnp
 
+from psiloom.states.base import TrialState
 
-class ElectronState(nn.Module):
-    """Base class: ``__call__(x) = log|ψ(x)|`` for ``x`` of shape ``(..., n_electrons, 3)``."""
+
+class ElectronState(TrialState):
+    """Base class: ``__call__(x) = log|ψ(x)|`` for ``x`` of shape ``(..., n_electrons, 3)``.
+
+    A :class:`psiloom.states.TrialState` whose batch reshaping keeps the last *two* axes.
+    """
 
     def __call__(self, x):
         return self.sign_and_log(x)[1]
+
+    def log_amplitude(self, x):
+        """log|ψ| of a batch ``(n_samples, n_electrons, 3)``."""
+        return self.signed_log_amplitude(x)[1]
 
     def sign_and_log(self, x):
         """``(sign ψ, log|ψ|)`` with the leading shape of ``x``."""

@@ -67,8 +67,8 @@ def hessian_laplacian(f: Callable, x: jax.Array):
     x = jnp.asarray(x)
     shape, d = x.shape, x.size
     flat = lambda v: f(v.reshape(shape))
-    value, grad = jax.value_and_grad(flat)(x.reshape(-1))
-    _, hvp = jax.linearize(jax.grad(flat), x.reshape(-1))
+    value = flat(x.reshape(-1))
+    grad, hvp = jax.linearize(jax.grad(flat), x.reshape(-1))
     eye = jnp.eye(d, dtype=x.dtype)
     columns = jax.vmap(hvp)(eye)  # row k = H e_k
     return value, grad.reshape(shape), jnp.trace(columns)

@@ -90,7 +90,8 @@ class ElectronSampler:
             raise ValueError(f"system must be a psiloom.electrons.Molecule, got {type(system).__name__}")
         if move not in MOVES:
             raise ValueError(f"unknown move {move!r}; available: {', '.join(MOVES)}")
-        if not (isinstance(step_size, (int, float)) and step_size > 0):
+        if isinstance(step_size, bool) or not isinstance(step_size, (int, float, np.integer, np.floating)) \
+                or not step_size > 0:
             raise ValueError(f"step_size must be a positive number (bohr), got {step_size!r}")
         if not 0.0 < float(target_acceptance) < 1.0:
             raise ValueError(f"target_acceptance must lie in (0, 1), got {target_acceptance!r}")

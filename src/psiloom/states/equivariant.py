@@ -79,8 +79,10 @@ class GroupLift(nn.Module):
         dtype = self.param_dtype or default_real_dtype()
         kernel = self.param("kernel", nn.initializers.variance_scaling(self.init_scale, "fan_in", "normal"),
                             (group.n_sites, d), dtype)
-        seen = group.orbit(x)[:, group.inverses(), :]  # (B, G, N): g⁻¹·x
-        out = seen.astype(dtype) @ kernel
+        # Σ_i K_id (g⁻¹·x)_i = Σ_j x_j s_g K[g⁻¹(j), d]: gather the kernel (N, G, D) rather
+        # than the images of every configuration
+        tied = kernel[jnp.asarray(group.perms.T)] * jnp.asarray(group.flips, dtype=dtype)[None, :, None]
+        out = jnp.einsum("bj,jgd->bgd", x.astype(dtype), tied)
         if self.use_bias:
             out = out + self.param("bias", nn.initializers.zeros, (d,), dtype)
         return out

@@ -73,8 +73,12 @@ class TranslationInvariantRBM(TrialState):
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
         init = nn.initializers.normal(self.init_scale / np.sqrt(len(group)))
         filters = self.param("filters", init, (n, int(self.alpha)), dtype)
-        seen = group.orbit(x)  # (B, G, N): g·x for every g
-        theta = seen.astype(dtype) @ filters  # (B, G, α)
+        # θ_{f,g} = Σ_i w_f[i] (g·x)_i = Σ_j x_j s_g w_f[g(j)]: gather the weights (N, G, α)
+        # once instead of the images of every configuration (B, G, N)
+        images = jnp.asarray(group.images.T)  # (N, G): g(j)
+        signs = jnp.asarray(group.flips, dtype=dtype)
+        tied = filters[images] * signs[None, :, None]  # (N, G, α)
+        theta = jnp.einsum("bj,jgf->bgf", x.astype(dtype), tied)  # (B, G, α)
         if self.hidden_bias:
             theta = theta + self.param("hidden_bias", init, (int(self.alpha),), dtype)
         out = jnp.sum(log_two_cosh(theta), axis=(1, 2))
