@@ -26,11 +26,14 @@ def _config(system, seed):
     return np.random.default_rng(seed).normal(scale=1.2, size=(system.n_electrons, 3))
 
 
-@pytest.fixture(scope="module")
-def neural_be():
-    model = el.neural_slater_jastrow(BE, n_det=2, width=4, channels=2, layers=1, jastrow_width=4)
-    params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(0), jnp.zeros((1, 4, 3))))
-    return model, params, jax.jit(lambda x: model.apply(params, x, method=model.sign_and_log))
+# Slater-Jastrow Be (cusp Jastrow) and the feature network, shared by several tests
+_SJ_BE_MODEL = el.slater_jastrow(BE, neural_jastrow=False)
+_SJ_BE_PARAMS = jax.jit(_SJ_BE_MODEL.init)(jax.random.PRNGKey(2), jnp.zeros((1, 4, 3)))
+_SJ_BE_APPLY = jax.jit(lambda p, x: _SJ_BE_MODEL.apply(p, x, method=_SJ_BE_MODEL.sign_and_log))
+
+_FEATURE_NET = el.MomentMixer(BE, width=8, channels=4, layers=2)
+_FEATURE_PARAMS = jax.jit(_FEATURE_NET.init)(jax.random.PRNGKey(4), jnp.zeros((1, 4, 3)))
+_FEATURES = jax.jit(_FEATURE_NET.apply)
 
 
 @pytest.fixture(scope="module")
@@ -41,13 +44,22 @@ def neural_li():
     return model, params
 
 
+@pytest.fixture(scope="module")
+def neural_li_sign_log(neural_li):
+    model, params = neural_li
+    return jax.jit(lambda x: model.apply(params, x, method=model.sign_and_log))
+
+
 # ----------------------------------------------------------------------------- antisymmetry
-@given(st.integers(0, 2**31 - 1), st.sampled_from([(0, 1), (2, 3)]))
-def test_same_spin_exchange_flips_sign(neural_be, seed, pair):
+@given(st.integers(0, 2**31 - 1), st.sampled_from(["neural Li up", "Slater-Jastrow Be down"]))
+def test_same_spin_exchange_flips_sign(neural_li_sign_log, seed, case):
     # Pauli principle: ψ is antisymmetric under exchanging two same-spin electrons (exact).
-    _, _, sign_log = neural_be
-    x = _config(BE, seed)
-    i, j = pair
+    if case == "neural Li up":
+        system, sign_log, (i, j) = LI, neural_li_sign_log, (0, 1)
+    else:
+        params = _perturbed(_SJ_BE_PARAMS)
+        system, sign_log, (i, j) = BE, (lambda x: _SJ_BE_APPLY(params, x)), (2, 3)
+    x = _config(system, seed)
     swapped = x.copy()
     swapped[[i, j]] = x[[j, i]]
     s0, l0 = sign_log(x)
@@ -77,11 +89,6 @@ def test_closed_shell_spin_block_exchange(seed):
     assert abs(float(_SJ_BE_APPLY(params, one)[1]) - float(l0)) > 1e-8
 
 
-_SJ_BE_MODEL = el.slater_jastrow(BE, neural_jastrow=False)
-_SJ_BE_PARAMS = jax.jit(_SJ_BE_MODEL.init)(jax.random.PRNGKey(2), jnp.zeros((1, 4, 3)))
-_SJ_BE_APPLY = jax.jit(lambda p, x: _SJ_BE_MODEL.apply(p, x, method=_SJ_BE_MODEL.sign_and_log))
-
-
 def test_spin_factorised_form_matches_explicit_determinants():
     # |ψ| = |det Φ↑| |det Φ↓| e^{J} computed independently with numpy determinants.
     model = el.SlaterJastrow(el.SlaterTypeOrbitals(LI), (el.CuspJastrow(LI),))
@@ -102,19 +109,13 @@ def test_spin_factorised_form_matches_explicit_determinants():
 @given(st.integers(0, 2**31 - 1), st.permutations(range(2)), st.permutations(range(2)))
 def test_features_are_permutation_equivariant(seed, perm_up, perm_down):
     # Relabelling electrons within each spin group relabels the feature rows identically.
-    net = el.MomentMixer(BE, width=8, channels=4, layers=2)
     params = _perturbed(_FEATURE_PARAMS)
     x = _config(BE, seed)
     order = np.concatenate([np.asarray(perm_up), 2 + np.asarray(perm_down)])
     h = _FEATURES(params, x[None])[0]
     h_perm = _FEATURES(params, x[order][None])[0]
     np.testing.assert_allclose(np.asarray(h_perm), np.asarray(h)[order], atol=1e-12)
-    assert net.width == h.shape[-1]
-
-
-_FEATURE_NET = el.MomentMixer(BE, width=8, channels=4, layers=2)
-_FEATURE_PARAMS = _FEATURE_NET.init(jax.random.PRNGKey(4), jnp.zeros((1, 4, 3)))
-_FEATURES = jax.jit(_FEATURE_NET.apply)
+    assert h.shape == (4, _FEATURE_NET.width)
 
 
 # ----------------------------------------------------------------------------- exact solutions
@@ -268,14 +269,13 @@ def test_bad_configurations_raise():
         el.CoulombHamiltonian(LI).local_energy(lambda y: jnp.zeros(y.shape[0]), jnp.zeros((2, 2, 3)))
 
 
-def test_single_configuration_and_batch_shapes(neural_li):
-    model, params = neural_li
+def test_single_configuration_and_batch_shapes(neural_li_sign_log):
     x = jnp.asarray(_config(LI, 7))
-    apply = jax.jit(model.apply)
-    single = apply(params, x)
-    batch = apply(params, jnp.stack([x, x])[None])
-    assert single.shape == () and batch.shape == (1, 2)
+    sign, single = neural_li_sign_log(x)
+    signs, batch = neural_li_sign_log(jnp.stack([x, x])[None])
+    assert single.shape == () and sign.shape == () and batch.shape == (1, 2) and signs.shape == (1, 2)
     assert float(batch[0, 1]) == pytest.approx(float(single), abs=1e-12)
+    assert float(signs[0, 0]) == float(sign) and abs(float(sign)) == 1.0
 
 
 def test_basis_normalisation_by_quadrature():
