@@ -16,7 +16,7 @@ gradient, and the optional ``folx`` package) on one system; a summary line last.
 progress on stderr (../shared/BENCHMARKS.md).
 
 Options: ``--systems He,Li`` to run a subset; ``--laplacian`` to choose the Laplacian used in
-training (default: forward).
+training (default: forward); ``--scale`` to shorten runs for a smoke test.
 """
 
 from __future__ import annotations
@@ -162,6 +162,8 @@ def main() -> None:
     def extra(parser):
         parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS))
         parser.add_argument("--laplacian", default="forward", choices=list(el.laplacian.METHODS))
+        parser.add_argument("--scale", type=float, default=1.0,
+                            help="multiply optimisation steps and evaluation samples (smoke tests)")
 
     args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
     names = [n.strip() for n in args.systems.split(",") if n.strip()]
@@ -169,6 +171,9 @@ def main() -> None:
     if unknown:
         raise SystemExit(f"unknown systems {unknown}; available: {', '.join(SYSTEMS)}")
     configs = QUICK if args.quick else FULL
+    if args.scale != 1.0:
+        configs = {k: dict(v, steps=max(2, int(v["steps"] * args.scale)),
+                           eval_samples=max(N_CHAINS, int(v["eval_samples"] * args.scale))) for k, v in configs.items()}
     records, compare_with = [], None
     for name in names:
         progress(f"{name}: {configs[name]}")

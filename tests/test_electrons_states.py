@@ -28,11 +28,11 @@ def _config(system, seed):
 
 # Slater-Jastrow Be (cusp Jastrow) and the feature network, shared by several tests
 _SJ_BE_MODEL = el.slater_jastrow(BE, neural_jastrow=False)
-_SJ_BE_PARAMS = jax.jit(_SJ_BE_MODEL.init)(jax.random.PRNGKey(2), jnp.zeros((1, 4, 3)))
+_SJ_BE_PARAMS = _perturbed(jax.jit(_SJ_BE_MODEL.init)(jax.random.PRNGKey(2), jnp.zeros((1, 4, 3))))
 _SJ_BE_APPLY = jax.jit(lambda p, x: _SJ_BE_MODEL.apply(p, x, method=_SJ_BE_MODEL.sign_and_log))
 
 _FEATURE_NET = el.MomentMixer(BE, width=8, channels=4, layers=2)
-_FEATURE_PARAMS = jax.jit(_FEATURE_NET.init)(jax.random.PRNGKey(4), jnp.zeros((1, 4, 3)))
+_FEATURE_PARAMS = _perturbed(jax.jit(_FEATURE_NET.init)(jax.random.PRNGKey(4), jnp.zeros((1, 4, 3))))
 _FEATURES = jax.jit(_FEATURE_NET.apply)
 
 
@@ -57,7 +57,7 @@ def test_same_spin_exchange_flips_sign(neural_li_sign_log, seed, case):
     if case == "neural Li up":
         system, sign_log, (i, j) = LI, neural_li_sign_log, (0, 1)
     else:
-        params = _perturbed(_SJ_BE_PARAMS)
+        params = jax.tree_util.tree_map(jnp.copy, _SJ_BE_PARAMS)
         system, sign_log, (i, j) = BE, (lambda x: _SJ_BE_APPLY(params, x)), (2, 3)
     x = _config(system, seed)
     swapped = x.copy()
@@ -74,7 +74,7 @@ def test_closed_shell_spin_block_exchange(seed):
     # Jastrow (a singlet, e.g. Be 1s²2s²): exchanging the up block with the down block of
     # positions leaves ψ unchanged, since ψ = det Φ(r↑) det Φ(r↓) e^{J} is symmetric in the
     # two blocks (textbook property of the restricted spin-factorised form).
-    params = _perturbed(_SJ_BE_PARAMS)
+    params = jax.tree_util.tree_map(jnp.copy, _SJ_BE_PARAMS)
     orb = params["params"]["orbitals"]
     params["params"]["orbitals"]["coeff_down"] = orb["coeff_up"]
     x = _config(BE, seed)
@@ -109,7 +109,7 @@ def test_spin_factorised_form_matches_explicit_determinants():
 @given(st.integers(0, 2**31 - 1), st.permutations(range(2)), st.permutations(range(2)))
 def test_features_are_permutation_equivariant(seed, perm_up, perm_down):
     # Relabelling electrons within each spin group relabels the feature rows identically.
-    params = _perturbed(_FEATURE_PARAMS)
+    params = _FEATURE_PARAMS
     x = _config(BE, seed)
     order = np.concatenate([np.asarray(perm_up), 2 + np.asarray(perm_down)])
     h = _FEATURES(params, x[None])[0]

@@ -231,3 +231,16 @@ def test_square_4x4_sectors():
     vals_t, _ = sym.sector_eigenpairs(ham, space, sym.sector(_SQ_GROUP, (np.pi, np.pi), "A1", -1))
     assert vals_t[0] == pytest.approx(e_triplet, abs=1e-9)
     assert e_triplet > e_gs + 0.5
+
+
+@settings(max_examples=40)
+@given(k=st.floats(-10.0, 10.0, allow_nan=False), n=st.integers(-8, 8))
+def test_only_lattice_momenta_are_accepted(k, n):
+    # on a ring of L sites the translation characters exp(−ikt) form a representation of the
+    # cyclic group Z_L only for k = 2πn/L (textbook); anything else must be refused by name
+    ring = pl.lattices.chain(6)
+    group = sym.translations(ring)
+    sym.sector(group, (2 * np.pi * n / 6,)).check_representation()
+    if abs(np.exp(6j * k) - 1) > 1e-6:
+        with pytest.raises(ValueError, match="not a lattice momentum"):
+            sym.characters(group, (k,))

@@ -1,0 +1,113 @@
+"""Benchmark: Heisenberg square lattices with a symmetric trial state.
+
+H = J Σ_⟨ij⟩ S_i·S_j (S = σ/2, J = 1), periodic L × L, total Sᶻ = 0, Marshall sign rule.
+Trial state: a translation-invariant RBM (α filters shared over the L² translations) projected
+onto the A1 sector of the point group C4v — and, in full mode, onto spin-flip-even states —
+with psiloom.states.Symmetrized, so the state lies in the sector k = 0, A1 (p = +1) of the
+ground state. Optimised by stochastic reconfiguration.
+
+References: 4×4 — exact diagonalisation in the same symmetry sector (psiloom.symmetry), which
+also equals −11.2284832 (REFERENCES.md, from memory); 6×6 — −0.678872 J per site (Schulz, Ziman
+& Poilblanc 1996, from memory).
+
+Targets (issue 5): rel. error ≤ 5e-5 (4×4) and ≤ 5e-4 (6×6) in ≤ 30 min on two CPU cores.
+``--quick`` (< 2 min on two cores) runs short optimisations of both sizes; its errors are far
+above the targets. Prints one JSON line per system and a summary line last (../shared/BENCHMARKS.md).
+"""
+
+from __future__ import annotations
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+import numpy as np  # noqa: E402
+import optax  # noqa: E402
+
+import psiloom as pl  # noqa: E402
+from psiloom import symmetry as sym  # noqa: E402
+from _common import Timer, emit, lattice_system, parse_args, progress, relative_error, summary  # noqa: E402
+
+#: Schulz, Ziman & Poilblanc 1996 (from memory), energy per site of the 6×6 Heisenberg model.
+E_6X6_PER_SITE = -0.678872
+
+
+def reference_energy(size: int) -> tuple[float, str]:
+    if size == 4:
+        lat = pl.lattices.square(4)
+        space = pl.spaces.SpinSpace(16, total_sz=0)
+        ham = pl.operators.heisenberg(lat, sign_rule=True)
+        sector = sym.sector(sym.product(sym.space_group(lat), sym.spin_flip(lat)), (0, 0), "A1", 1)
+        vals, _ = sym.sector_eigenpairs(ham, space, sector)
+        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.symmetry); -11.2284832 from memory"
+    if size == 6:
+        return E_6X6_PER_SITE * 36, "Schulz, Ziman & Poilblanc 1996 (from memory)"
+    raise ValueError(f"no reference for {size}x{size}")
+
+
+def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, spin_flip: bool,
+        learning_rate: float, seed: int = 0) -> dict:
+    with Timer() as timer:
+        lat = pl.lattices.square(size)
+        space = pl.spaces.SpinSpace(size * size, total_sz=0)
+        ham = pl.operators.heisenberg(lat, sign_rule=True)
+        point = sym.point_group(lat)
+        if spin_flip:
+            point = sym.product(point, sym.spin_flip(lat))
+        sector = sym.sector(point, None, "A1", 1)
+        model = pl.states.Symmetrized(pl.states.TranslationInvariantRBM(lat, alpha=alpha), sector)
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lat.bonds, burn_in=2)
+        decay = optax.cosine_decay_schedule(learning_rate, n_steps, alpha=0.2)
+        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(decay))
+        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer, n_samples=n_samples)
+        progress(f"{size}x{size}: {len(point)} projected elements, alpha={alpha}, {n_steps} steps")
+        state, _ = search.run(n_steps, key=jax.random.PRNGKey(seed), progress=progress, print_every=25)
+        estimate, acceptance = search.evaluate(state, eval_samples, burn_in_sweeps=4)
+        reference, source = reference_energy(size)
+    energy = float(np.real(estimate.mean))
+    return {
+        "benchmark": "symmetric",
+        "system": lattice_system("heisenberg", "square", [size, size], True, "spin", J=1.0),
+        "method": {
+            "trial_state": f"Symmetrized(TranslationInvariantRBM alpha={alpha}) onto {point.name} A1"
+                           + (" p=+1" if spin_flip else ""),
+            "sampler": "Metropolis nn-exchange, 16 chains",
+            "optimizer": f"SR shift 1e-3 + sgd cosine {learning_rate}->{0.2 * learning_rate}",
+            "tau": float(estimate.tau), "rhat": float(estimate.rhat), "acceptance": acceptance,
+        },
+        "energy": energy,
+        "error_bar": float(estimate.error),
+        "reference": reference,
+        "reference_source": source,
+        "rel_error": relative_error(energy, reference),
+        "seconds": timer.seconds,
+        "steps": n_steps,
+        "samples_per_step": n_samples,
+        "n_params": search.n_parameters(state),
+    }
+
+
+def main() -> None:
+    def extra(parser):
+        parser.add_argument("--only", choices=("4x4", "6x6"), default=None, help="run one size only")
+
+    args = parse_args("symmetric", "Heisenberg square lattices with a symmetric trial state", extra=extra)
+    if args.quick:
+        plans = {"4x4": dict(size=4, alpha=2, n_steps=120, n_samples=512, eval_samples=8192, spin_flip=False,
+                             learning_rate=0.05),
+                 "6x6": dict(size=6, alpha=2, n_steps=30, n_samples=512, eval_samples=4096, spin_flip=False,
+                             learning_rate=0.05)}
+    else:
+        plans = {"4x4": dict(size=4, alpha=4, n_steps=600, n_samples=1024, eval_samples=65536, spin_flip=True,
+                             learning_rate=0.05),
+                 "6x6": dict(size=6, alpha=4, n_steps=600, n_samples=1024, eval_samples=32768, spin_flip=True,
+                             learning_rate=0.05)}
+    records = []
+    for name, plan in plans.items():
+        if args.only in (None, name):
+            records.append(emit(run(**plan)))
+    summary(records, benchmark="symmetric", quick=args.quick)
+
+
+if __name__ == "__main__":
+    main()
