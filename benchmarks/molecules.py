@@ -54,7 +54,7 @@ QUICK = {
     "Be": dict(state="slater_jastrow", n_det=2, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
 }
 FULL = {
-    "He": dict(state="neural", n_det=1, steps=1500, n_samples=1024, lr=0.05, eval_samples=65536),
+    "He": dict(state="neural", n_det=1, steps=1000, n_samples=1024, lr=0.05, eval_samples=262144),
     "H2": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
     "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
     "LiH": dict(state="neural", n_det=4, steps=3000, n_samples=1024, lr=0.05, eval_samples=65536),

@@ -9,12 +9,8 @@ by σˣ (which swaps up and down) before the Kronecker product.
 
 from __future__ import annotations
 
-import functools
-import math
-
 import numpy as np
 import pytest
-import scipy.linalg
 from hypothesis import given
 from hypothesis import strategies as st
 

@@ -11,7 +11,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 import pytest
-from hypothesis import assume, given, settings
+from hypothesis import assume, given
 from hypothesis import strategies as st
 
 import psiloom as pl
@@ -89,7 +89,7 @@ def test_rbm_equals_explicit_sum_over_hidden_units(complex_params, alpha, biases
 
 def test_rbm_parameter_count():
     model = RBM(alpha=2, complex_params=True)
-    v = init_parameters(model, SpinSpace(5), jax.random.PRNGKey(0))
+    v = jax.eval_shape(model.init, jax.random.PRNGKey(0), jax.ShapeDtypeStruct((1, 5), jnp.float64))
     # N·M + M + N complex numbers, each two real parameters
     assert count_real_parameters(v) == 2 * (5 * 10 + 10 + 5)
 
@@ -277,7 +277,8 @@ def test_input_size_mismatch_raises_naming_sizes(model, n_params, n_space):
 
 def test_ground_state_search_init_rejects_foreign_parameters():
     model = RBM(alpha=1.0)
-    params = init_parameters(model, SpinSpace(6), jax.random.PRNGKey(0))
+    shapes = jax.eval_shape(model.init, jax.random.PRNGKey(0), jax.ShapeDtypeStruct((1, 6), jnp.float64))
+    params = jax.tree_util.tree_map(lambda s: np.zeros(s.shape, s.dtype), shapes)
     lat = pl.lattices.chain(8)
     sampler = pl.sampling.MetropolisSampler(SpinSpace(8), n_chains=4)
     run = pl.train.GroundStateSearch(model, pl.operators.transverse_field_ising(lat), sampler, optax.sgd(0.1),

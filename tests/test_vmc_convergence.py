@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import jax
 import optax
+import pytest
 
 import psiloom as pl
 
@@ -48,6 +49,7 @@ def check(energy, error, exact, tolerance):
     assert energy >= exact - 5 * error  # variational principle: no energy below E0 beyond noise
 
 
+@pytest.mark.slow
 def test_heisenberg_ring_16_reaches_bethe_energy():
     lat = pl.lattices.chain(L)
     space = pl.spaces.SpinSpace(L, total_sz=0)
@@ -57,6 +59,7 @@ def test_heisenberg_ring_16_reaches_bethe_energy():
     check(energy, error, exact, tolerance=1e-3)
 
 
+@pytest.mark.slow
 def test_tfim_ring_16_at_critical_field_reaches_free_fermion_energy():
     lat = pl.lattices.chain(L)
     space = pl.spaces.SpinSpace(L)

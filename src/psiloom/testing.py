@@ -115,15 +115,17 @@ def assert_covariant(model, variables, group, characters, x, elements=None, atol
     chi = np.asarray(characters, dtype=complex).reshape(-1)
     if chi.shape != (len(group),):
         raise ValueError(f"need one character per group element ({len(group)}), got {chi.shape}")
-    elements = range(len(group)) if elements is None else np.atleast_1d(elements)
-    before = log_amplitudes(model, variables, x)
-    for g in elements:
-        g = int(g)
-        if not 0 <= g < len(group):
-            raise ValueError(f"element index {g} outside the group of order {len(group)}")
-        after = log_amplitudes(model, variables, group.act(x, g))
-        expected = np.full(len(x), np.log(np.conj(chi[g])))
-        _compare(before, after, expected, atol, floor, scale, f"covariance ψ(g·x) = χ(g)* ψ(x) for g={g}")
+    elements = np.arange(len(group)) if elements is None else np.atleast_1d(np.asarray(elements, dtype=np.int64))
+    if np.any((elements < 0) | (elements >= len(group))):
+        raise ValueError(f"element indices {elements.tolist()} outside the group of order {len(group)}")
+    # one evaluation of the model on x and all its images (shape (1 + n_elements) · B)
+    images = np.concatenate([x] + [group.act(x, int(g)) for g in elements])
+    logs = log_amplitudes(model, variables, images).reshape(1 + len(elements), len(x))
+    before = logs[0]
+    for k, g in enumerate(elements):
+        expected = np.full(len(x), np.log(np.conj(chi[int(g)])))
+        _compare(before, logs[k + 1], expected, atol, floor, scale,
+                 f"covariance ψ(g·x) = χ(g)* ψ(x) for g={int(g)}")
 
 
 def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e-8, floor: float = 25.0,

@@ -173,4 +173,4 @@ class ElectronSampler:
             return st, (st.x, st.log_amp, acc)
 
         state, (xs, logs, acc) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
-        return xs, logs, state, jnp.mean(acc)
+        return xs, logs, state, sample_mean(acc)
