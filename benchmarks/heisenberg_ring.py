@@ -25,7 +25,8 @@ def run(n_sites: int, alpha: float, n_steps: int, n_samples: int, n_chains: int,
         hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
         sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, burn_in=4)
         optimizer = optax.chain(
-            pl.optimize.stochastic_reconfiguration(shift=1e-3, solver=solver),
+            pl.optimize.stochastic_reconfiguration(
+            shift=optax.exponential_decay(0.1, 1, 0.9, end_value=1e-3), solver=solver),
             optax.sgd(optax.linear_schedule(0.02, 0.06, 60)),
         )
         search = pl.train.GroundStateSearch(pl.states.RBM(alpha=alpha), hamiltonian, sampler, optimizer,

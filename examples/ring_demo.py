@@ -27,7 +27,8 @@ def main(n_sites: int = 20, n_steps: int = 300, seed: int = 0) -> float:
     model = pl.states.RBM(alpha=2)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lattice.bonds, burn_in=4)
     optimizer = optax.chain(
-        pl.optimize.stochastic_reconfiguration(shift=1e-3),
+        pl.optimize.stochastic_reconfiguration(
+            shift=optax.exponential_decay(0.1, 1, 0.9, end_value=1e-3)),
         optax.sgd(optax.linear_schedule(0.02, 0.06, 60)),
     )
     search = pl.train.GroundStateSearch(model, hamiltonian, sampler, optimizer, n_samples=1024)
