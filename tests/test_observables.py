@@ -8,7 +8,6 @@ vector within k·σ (fixed seeds). Exact operators are built independently from
 
 import functools
 
-import flax.linen as nn
 import jax
 import jax.numpy as jnp
 import numpy as np

@@ -49,7 +49,6 @@ vectors span exactly the states with ``ψ(g·x) = χ(g)* ψ(x)``.
 
 from __future__ import annotations
 
-import cmath
 import math
 from collections import deque
 from dataclasses import dataclass, field
