@@ -26,7 +26,6 @@ from __future__ import annotations
 import json
 import os
 import pickle
-import sys
 import tempfile
 import time
 from dataclasses import dataclass, field

@@ -98,7 +98,7 @@ class SlaterTypeOrbitals(nn.Module):
         c_up, c_dn = self.coefficients if self.coefficients is not None else aufbau_guess(sys_, basis)
         zetas = nn.softplus(self.param("exponents", lambda k: jnp.asarray(_inverse_softplus([f.zeta for f in basis]), dtype)))
         chi = evaluate_basis(x, sys_, basis, zetas)  # (B, N, K)
-        nu, nd = sys_.n_up, sys_.n_down
+        nu = sys_.n_up
 
         def coeff_init(start):
             start = jnp.asarray(start, dtype)

@@ -34,7 +34,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom.sampling.moves import Move, bond_exchange, changes_magnetisation, pair_exchange, single_flip
+from psiloom.sampling.moves import Move, choose_move
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -126,17 +126,7 @@ class MetropolisSampler:
         self.n_chains = _positive_int("n_chains", n_chains)
         self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
         self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
-        if move is None:
-            if space.constrained:
-                move = bond_exchange(bonds) if bonds is not None else pair_exchange
-            else:
-                move = single_flip
-        elif space.constrained and changes_magnetisation(move):  # single_flip, also inside a mixture
-            raise ValueError(
-                f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
-                "use an exchange move"
-            )
-        self.move = move
+        self.move = move = choose_move(space, move, bonds)
         self._step = metropolis_step(move)
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:

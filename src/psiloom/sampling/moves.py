@@ -130,3 +130,19 @@ def changes_magnetisation(move: Move) -> bool:
     if move is single_flip:
         return True
     return any(changes_magnetisation(m) for m, _ in getattr(move, "components", ()))
+
+
+def choose_move(space, move: Move | None = None, bonds=None) -> Move:
+    """The move a sampler uses on ``space``: ``move`` itself after checking that it keeps a
+    fixed magnetisation, or the default — single flips for an unconstrained space,
+    nearest-neighbour exchange over ``bonds`` (any-pair exchange without bonds) otherwise."""
+    if move is None:
+        if space.constrained:
+            return bond_exchange(bonds) if bonds is not None else pair_exchange
+        return single_flip
+    if space.constrained and changes_magnetisation(move):  # single_flip, also inside a mixture
+        raise ValueError(
+            f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
+            "use an exchange move"
+        )
+    return move

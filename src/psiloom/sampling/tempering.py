@@ -39,7 +39,7 @@ import numpy as np
 
 from psiloom.reduce import sample_mean, sample_sum
 from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
-from psiloom.sampling.moves import Move, bond_exchange, changes_magnetisation, pair_exchange, single_flip
+from psiloom.sampling.moves import Move, choose_move
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -187,17 +187,7 @@ class TemperingSampler:
         self.n_replicas = len(self.betas)
         self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
         self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
-        if move is None:
-            if space.constrained:
-                move = bond_exchange(bonds) if bonds is not None else pair_exchange
-            else:
-                move = single_flip
-        elif space.constrained and changes_magnetisation(move):
-            raise ValueError(
-                f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
-                "use an exchange move"
-            )
-        self.move = move
+        self.move = move = choose_move(space, move, bonds)
         self._metropolis = tempered_metropolis_step(move, self.betas)
         self._exchange = replica_exchange(self.betas)
 
