@@ -4,8 +4,10 @@ Every comparison is measured in the same run (``ratio`` = baseline time / measur
 ratio above 1 means faster than the baseline), on the CPU this runs on:
 
 1. Metropolis sweep (N proposals per chain) for an RBM (α = 2) on the Heisenberg ring L = 100
-   (Sᶻ = 0 sector, nearest-neighbour exchange moves): fast updates of the cached θ = xW + b and
-   1 ± tanh θ per chain vs full re-evaluation of log ψ(x') for every proposal. Target ≥ 10×.
+   (Sᶻ = 0 sector, nearest-neighbour exchange moves): fast updates of the cached e^{±θ} per
+   chain vs full re-evaluation of log ψ(x') for every proposal, in both proposal orders
+   (``random``: an independent bond per chain; ``sequential``: the bonds in turn, the same in
+   every chain, so the RBM's tables need no per-chain gather). Target ≥ 10×.
 2. Local energies of the same system: fast per-connection updates vs full re-evaluation.
 3. SR solve with parameters P ≥ 8 × samples n: sample-space solve (n×n system) vs dense
    parameter-space Cholesky (P×P), both through ``stochastic_reconfiguration`` on the same
@@ -85,11 +87,11 @@ def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
     return model, variables, space
 
 
-def metropolis(n_chains: int, repeat: int) -> dict:
+def metropolis(n_chains: int, repeat: int, order: str) -> dict:
     with Timer() as timer:
         lattice = pl.lattices.chain(L)
         model, variables, space = _rbm(L)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds)
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
         times = {}
         for fast in (True, False):
             amp = bind_amplitude(model, variables, fast=fast)
@@ -100,12 +102,12 @@ def metropolis(n_chains: int, repeat: int) -> dict:
 
             times[fast] = best_time(jax.jit(one_sweep), variables, chains, jax.random.PRNGKey(2), repeat=repeat,
                                     number=3, label=f"sweep{fast}")
-            progress(f"metropolis n_chains={n_chains} fast={fast}: {times[fast] * 1e3:.2f} ms/sweep")
+            progress(f"metropolis n_chains={n_chains} order={order} fast={fast}: {times[fast] * 1e3:.2f} ms/sweep")
     return {
         "benchmark": "throughput",
         "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
         "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "sampler": "Metropolis nn-exchange, Sz=0",
-                   "n_chains": n_chains, "sweep": f"{L} proposals per chain",
+                   "n_chains": n_chains, "order": order, "sweep": f"{L} proposals per chain",
                    "baseline": "full re-evaluation of log psi per proposal"},
         "metric": "metropolis_sweep_seconds",
         "value": times[True],
@@ -246,13 +248,15 @@ def main() -> None:
                                                      help="run XLA on one thread"))
     repeat = 3 if args.quick else 7
     records = []
-    for n_chains in ((16, 64) if args.quick else (16, 64, 256)):
-        records.append(emit(metropolis(n_chains, repeat)))
+    for order in ("random", "sequential"):
+        for n_chains in ((16, 64) if args.quick else (16, 64, 256)):
+            records.append(emit(metropolis(n_chains, repeat, order)))
     records.append(emit(local_energy(256 if args.quick else 1024, repeat)))
     # P = N + αN + αN² ≥ 8 n
     records.append(emit(sr_solve(32, 256, repeat) if args.quick else sr_solve(64, 1024, repeat)))
     records.append(emit(amplitude_gflops(2048 if args.quick else 4096, repeat)))
-    targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']}]" if "n_chains" in r["method"] else ""):
+    targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']},order={r['method']['order']}]"
+                              if "n_chains" in r["method"] else ""):
                {"ratio": r["ratio"], "cpu_ratio": r["cpu_ratio"], "target": r.get("target_ratio"),
                 "met": None if r.get("target_ratio") is None else bool(r["ratio"] >= r["target_ratio"])}
                for r in records}

@@ -104,10 +104,20 @@ def test_fast_ratio_equals_rbm_formula(complex_params, change):
     expected = _numpy_log_psi(variables, x_new) - _numpy_log_psi(variables, x)
     diff = _wrap_phase(np.asarray(delta) - expected)
     assert np.max(np.abs(diff)) < 1e-11 * (1.0 + np.max(np.abs(expected)))
-    # the cache follows: it equals the cache computed from scratch at x'
-    fresh = _fresh_cache(model, variables, jnp.asarray(x_new))
-    for got, want in zip(cache, fresh):
-        np.testing.assert_allclose(np.asarray(got), np.asarray(want), rtol=1e-11, atol=1e-12)
+    # the cache follows x' (see _assert_cache_of)
+    _assert_cache_of(cache, _fresh_cache(model, variables, jnp.asarray(x_new)), rtol=1e-11)
+
+
+def _assert_cache_of(cache, fresh, rtol):
+    """The carried cache describes the same θ as a fresh one: (P, Q) ∝ (e^{θ}, e^{−θ}) with the same
+    per-unit scale, so the normalised pairs agree, and Λ = Σ_j log(P_j + Q_j) (phase mod 2π)."""
+    for cache_of in (cache, fresh):
+        lam = np.sum(np.log(np.asarray(cache_of.plus + cache_of.minus)), axis=-1)
+        assert np.max(np.abs(_wrap_phase(np.asarray(cache_of.log_norm) - lam))) < 1e-11 * (1 + np.max(np.abs(lam)))
+    for part in ("plus", "minus"):
+        got = np.asarray(getattr(cache, part) / (cache.plus + cache.minus))
+        want = np.asarray(getattr(fresh, part) / (fresh.plus + fresh.minus))
+        np.testing.assert_allclose(got, want, rtol=rtol, atol=rtol)
 
 
 def test_fast_ratio_with_large_weights_and_shared_sites():
@@ -143,13 +153,16 @@ def test_generic_states_take_the_generic_path():
 
 
 # ----------------------------------------------------------------------------- Metropolis
-@pytest.mark.parametrize("constrained, complex_params", [(False, False), (True, True)])
-def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params):
+@pytest.mark.parametrize("constrained, complex_params, order",
+                         [(False, False, "random"), (True, True, "random"), (True, False, "sequential"),
+                          (False, True, "sequential")])
+def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params, order):
     lat = pl.lattices.chain(12)
     space = pl.spaces.SpinSpace(12, total_sz=0 if constrained else None)
     model = RBM(alpha=1, complex_params=complex_params, init_scale=0.3)
     variables = model.init(jax.random.PRNGKey(2), space.random(jax.random.PRNGKey(0), 1))
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None,
+                                            order=order)
     runs = {}
     for fast in (True, False):
         amp = bind_amplitude(model, variables, fast=fast)
@@ -163,9 +176,7 @@ def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params)
     diff = _wrap_phase(np.asarray(logs_f) - np.asarray(logs_g))
     assert np.max(np.abs(diff)) < 1e-11
     # after many accepted updates the carried cache still equals a fresh one
-    fresh = _fresh_cache(model, variables, end_f.x)
-    for got, want in zip(end_f.cache, fresh):
-        np.testing.assert_allclose(np.asarray(got), np.asarray(want), rtol=1e-10, atol=1e-11)
+    _assert_cache_of(end_f.cache, _fresh_cache(model, variables, end_f.x), rtol=1e-10)
 
 
 # ----------------------------------------------------------------------------- local energies

@@ -22,7 +22,15 @@ from hypothesis import strategies as st
 from scipy.stats import binomtest, chisquare
 
 from psiloom import lattices
-from psiloom.sampling import MetropolisSampler, bond_exchange, metropolis_step, pair_exchange, single_flip
+from psiloom.sampling import (
+    MetropolisSampler,
+    bond_exchange,
+    metropolis_step,
+    ordered_exchange,
+    ordered_flips,
+    pair_exchange,
+    single_flip,
+)
 from psiloom.spaces import SpinSpace, codes
 from psiloom.states import RBM
 
@@ -145,18 +153,20 @@ def goodness_of_fit(samples: np.ndarray, space: SpinSpace, probabilities: np.nda
 
 
 @pytest.mark.parametrize(
-    "name,n_sites,total_sz,move",
+    "name,n_sites,total_sz,move,order",
     [
-        ("single-flip", 8, None, None),
-        ("bond-exchange", 10, 0, "bonds"),
-        ("pair-exchange", 8, 1, "pairs"),
+        ("single-flip", 8, None, None, "random"),
+        ("bond-exchange", 10, 0, "bonds", "random"),
+        ("pair-exchange", 8, 1, "pairs", "random"),
+        ("sequential-flip", 8, None, None, "sequential"),
+        ("sequential-exchange", 10, 0, "bonds", "sequential"),
     ],
 )
-def test_histogram_converges_to_psi_squared(name, n_sites, total_sz, move):
+def test_histogram_converges_to_psi_squared(name, n_sites, total_sz, move, order):
     space = SpinSpace(n_sites, total_sz=total_sz)
     log_amp = rbm_state(n_sites, 3, 0.25)
     mv = {None: None, "bonds": bond_exchange(lattices.chain(n_sites).bonds), "pairs": pair_exchange}[move]
-    sampler = MetropolisSampler(space, n_chains=6000, move=mv, burn_in=30)
+    sampler = MetropolisSampler(space, n_chains=6000, move=mv, burn_in=30, order=order)
     samples = final_configurations(sampler, log_amp, seed=7)
     log_psi = np.asarray(log_amp(jnp.asarray(space.all_states())))
     target = np.exp(2 * (log_psi - log_psi.max()))
@@ -232,6 +242,34 @@ def test_constant_amplitude_accepts_everything():
     xs, _, _, acc = jax.jit(lambda k, s: sampler.sample(k, s, flat, 3))(jax.random.PRNGKey(1), state)
     assert float(acc) == 1.0
     assert np.all(space.contains(np.asarray(xs).reshape(-1, 6)))
+
+
+@given(st.integers(0, 40))
+def test_ordered_moves_visit_their_table_in_every_chain(position):
+    x = SpinSpace(6).random(jax.random.PRNGKey(position), 5)
+    bonds = lattices.chain(6).bonds
+    x_new, sites = ordered_exchange(bonds)(position, x)
+    i, j = bonds[position % len(bonds)]
+    assert sites.shape == (2,) and tuple(np.asarray(sites)) == (i, j)
+    expected = np.asarray(x).copy()
+    expected[:, [i, j]] = expected[:, [j, i]]
+    np.testing.assert_array_equal(np.asarray(x_new), expected)
+    x_flip, site = ordered_flips(6)(position, x)
+    expected = np.asarray(x).copy()
+    expected[:, position % 6] *= -1
+    np.testing.assert_array_equal(np.asarray(x_flip), expected)
+    assert int(site[0]) == position % 6
+
+
+def test_sequential_order_needs_an_orderable_move():
+    with pytest.raises(ValueError, match="order='sequential'"):
+        MetropolisSampler(SpinSpace(4, total_sz=0), order="sequential")  # pair exchange by default
+    with pytest.raises(ValueError, match="'diagonal'"):
+        MetropolisSampler(SpinSpace(4), order="diagonal")
+    ordered = MetropolisSampler(SpinSpace(4, total_sz=0), bonds=lattices.chain(4).bonds, order="sequential")
+    assert ordered.ordered.kind == "exchange" and ordered.ordered.n_positions == 4
+    # an ordered move given to a random-order sampler falls back to its randomised version
+    assert MetropolisSampler(SpinSpace(4), move=ordered_flips(4)).move is single_flip
 
 
 def test_default_moves():

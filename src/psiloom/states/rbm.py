@@ -10,20 +10,25 @@ so ``log ψ(x) = a·x + Σ_j log(2 cosh θ_j)``. With complex parameters ψ carr
 ``w = ±z`` chosen so that ``Re w ≥ 0``.
 
 Fast updates (:mod:`psiloom.states.fast`). Changing spins at sites ``s_k`` by
-``δ_k = x'_{s_k} − x_{s_k} ∈ {0, ±2}`` shifts ``θ`` by ``d = Σ_k δ_k W_{s_k}``, and
+``δ_k = x'_{s_k} − x_{s_k} ∈ {0, ±2}`` shifts ``θ`` by ``d = Σ_k δ_k W_{s_k}``. The cache of a
+configuration holds, per hidden unit, two positive weights proportional to ``e^{±θ_j}``,
 
-    ψ(x')/ψ(x) = exp(a·(x' − x)) Π_j cosh(θ_j + d_j) / cosh θ_j
-               = exp(a·(x' − x)) Π_j ½ [u⁺_j e^{d_j} + u⁻_j e^{−d_j}],   u^± = 1 ± tanh θ .
+    P_j = c_j e^{θ_j},   Q_j = c_j e^{−θ_j}     (any c_j > 0, so P_j + Q_j ∝ cosh θ_j),
 
-The cache of a configuration holds ``θ`` and ``u^±`` (the latter computed without
-cancellation as 2/(1 + e^{∓2θ})); ``e^{±d_j}`` is a product of rows of the tables
-``exp(±2W)`` computed once per parameter set. An update therefore costs O(K·M)
-multiplications and one logarithm per eight hidden units (two in 32-bit precision), with no
-exponential per unit, and the cache follows exactly: ``θ' = θ + d`` and
-``u^±' = u^± e^{±d} / r`` with ``r`` the per-unit ratio above (so that ``u⁺' + u⁻' = 2``).
-For real parameters every term is positive, so the ratio carries no cancellation at any
-``|θ|``. Spins must be ±1 and the sites of one change distinct; the tables overflow only for
-``|W| > 354`` (float64).
+and, per sample, ``Λ = Σ_j log(P_j + Q_j)``. Since ``P_j + Q_j`` for ``θ + d`` is
+``P_j e^{d_j} + Q_j e^{−d_j}`` with the same ``c_j``,
+
+    log ψ(x') − log ψ(x) = a·(x' − x) + Σ_j log(P_j e^{d_j} + Q_j e^{−d_j}) − Λ ,
+
+and the cache follows by multiplication alone: ``P' = P e^{d}``, ``Q' = Q e^{−d}``,
+``Λ' = Σ_j log(P'_j + Q'_j)``. ``e^{±d_j}`` is a product of rows of the tables ``exp(±2W)``
+computed once per parameter set, so an update costs O(K·M) multiplications and one logarithm
+per eight hidden units (two in 32-bit precision): no exponential and no division per unit.
+``init`` starts from ``c_j = 1/cosh θ_j`` (``P = 1 + tanh θ``, ``Q = 1 − tanh θ``, computed
+without cancellation); afterwards ``P + Q = 2 cosh θ / cosh θ₀`` stays within ``e^{±|θ − θ₀|}``
+of 2, so nothing drifts however long a chain runs. For real parameters every term is
+positive: the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the sites
+of one change distinct; the tables overflow only for ``|W| > 354`` (float64).
 """
 
 from __future__ import annotations
@@ -45,11 +50,11 @@ def log_two_cosh(z):
 
 
 class RBMCache(NamedTuple):
-    """Per-sample cache of the RBM fast updates (leading axis: samples)."""
+    """Per-sample cache of the RBM fast updates (leading axis: samples); see the module docstring."""
 
-    theta: jax.Array  # (n, M) hidden pre-activations θ = xW + b
-    plus: jax.Array  # (n, M) 1 + tanh θ
-    minus: jax.Array  # (n, M) 1 − tanh θ
+    plus: jax.Array  # (n, M) P = c e^{θ}
+    minus: jax.Array  # (n, M) Q = c e^{−θ}
+    log_norm: jax.Array  # (n,) Λ = Σ_j log(P_j + Q_j)
 
 
 def _one_plus_minus_tanh(theta):
@@ -116,21 +121,23 @@ class RBM(TrialState):
         rise = jnp.exp(2.0 * kernel)  # e^{d} for a spin going −1 → +1 (δ = +2)
         fall = jnp.exp(-2.0 * kernel)  # e^{d} for a spin going +1 → −1 (δ = −2)
 
+        log_block = 8 if jnp.finfo(jnp.real(kernel).dtype).bits == 64 else 2
+
         def init(x):
             theta = x.astype(kernel.dtype) @ kernel
             if hidden is not None:
                 theta = theta + hidden
-            return RBMCache(theta, *_one_plus_minus_tanh(theta))
+            plus, minus = _one_plus_minus_tanh(theta)
+            return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
 
         def update(x, cache: RBMCache, sites, new_values):
             sites = jnp.asarray(sites)
             valid = sites >= 0
             idx = jnp.where(valid, sites, 0)
             dv = jnp.where(valid, new_values - values_at(x, sites), 0).astype(x.dtype)  # (n, K)
-            w_rows, up_rows, down_rows = kernel[idx], rise[idx], fall[idx]  # (K, M) or (n, K, M)
+            up_rows, down_rows = rise[idx], fall[idx]  # (K, M) shared sites, or (n, K, M)
             e_plus = e_minus = None
-            d_theta = jnp.zeros_like(cache.theta)
-            delta = jnp.zeros(dv.shape[:1], cache.theta.dtype)
+            delta = jnp.zeros(dv.shape[:1], cache.plus.dtype)
             for k in range(dv.shape[1]):
                 up = (dv[:, k] > 0)[:, None]
                 down = (dv[:, k] < 0)[:, None]
@@ -138,16 +145,13 @@ class RBM(TrialState):
                 f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
                 e_plus = f_plus if e_plus is None else e_plus * f_plus
                 e_minus = f_minus if e_minus is None else e_minus * f_minus
-                d_theta = d_theta + dv[:, k, None] * w_rows[..., k, :]
                 if visible is not None:
                     delta = delta + dv[:, k] * visible[idx[..., k]]
             if e_plus is None:  # K = 0: nothing changes
                 return delta, cache
-            ratio = 0.5 * (cache.plus * e_plus + cache.minus * e_minus)  # cosh(θ + d) / cosh θ
+            plus, minus = cache.plus * e_plus, cache.minus * e_minus
             # 8 factors per logarithm in 64-bit (overflow needs mean |d| > 88), 2 in 32-bit (> 44)
-            delta = delta + log_product(ratio, block=8 if jnp.finfo(ratio.dtype).bits == 64 else 2)
-            inv = 1.0 / ratio
-            new = RBMCache(cache.theta + d_theta, cache.plus * e_plus * inv, cache.minus * e_minus * inv)
-            return delta, new
+            log_norm = log_product(plus + minus, block=log_block)
+            return delta + (log_norm - cache.log_norm), RBMCache(plus, minus, log_norm)
 
         return FastUpdates(init, update)
