@@ -47,6 +47,7 @@ class Rung:
     extent: tuple[int, ...]
     target: float  # relative-error target
     alpha: float = 1.0
+    state: str = "rbm"  # "rbm" (dense) | "invariant_rbm" (weights shared over space group × spin flip)
     complex_params: bool = False
     sign_rule: bool = True
     n_samples: int = 1024
@@ -54,6 +55,7 @@ class Rung:
     steps: int = 300
     lr: tuple[float, float] = (0.02, 0.05)  # linear warm-up from lr[0] to lr[1] over warmup steps
     warmup: int = 50
+    lr_final: float = 1.0  # after the warm-up, cosine decay to lr[1] * lr_final (1: constant)
     shift: tuple[float, float] = (1e-2, 1e-4)  # exponential decay of the SR diagonal shift
     shift_decay_steps: int = 200
     solver: str = "auto"
@@ -61,6 +63,28 @@ class Rung:
     time_limit: float | None = None  # seconds for the whole rung; training stops in time for evaluation
     couplings: dict = field(default_factory=dict)
     seed: int = 0
+    order: str = "random"  # Metropolis proposal order ("sequential": systematic scan)
+
+
+def trial_state(rung: Rung, lattice):
+    """The rung's trial state: a dense RBM, or an RBM with weights shared over the lattice's space
+    group and the global spin flip (:class:`psiloom.states.TranslationInvariantRBM`; the ground
+    states of these rungs are invariant under that group: TFIM by Perron-Frobenius with the Z2
+    symmetry, Heisenberg in the Marshall-rotated basis where the ground state is positive)."""
+    if rung.state == "rbm":
+        return pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params)
+    if rung.state == "invariant_rbm":
+        group = pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
+        return pl.states.TranslationInvariantRBM(group, alpha=int(rung.alpha), complex_params=rung.complex_params)
+    raise ValueError(f"unknown trial state {rung.state!r}")
+
+
+def describe_state(rung: Rung, lattice) -> str:
+    kind = " complex" if rung.complex_params else " real"
+    if rung.state == "rbm":
+        return f"RBM alpha={rung.alpha}" + kind
+    group = pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
+    return f"TranslationInvariantRBM over {group.name} ({len(group)} elements), alpha={int(rung.alpha)}" + kind
 
 
 def build(rung: Rung):
@@ -76,11 +100,11 @@ def build(rung: Rung):
         J, h = rung.couplings.get("J", 1.0), rung.couplings.get("h", 1.0)
         ham = pl.operators.transverse_field_ising(lat, J, h)
         space = pl.spaces.SpinSpace(n)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, burn_in=4)
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, burn_in=4, order=rung.order)
         ref = pl.exact.tfim_ring_energy(n, J, h)
         source = "free fermions (Pfeuty 1970), exact for the periodic ring"
         system = lattice_system("tfim", lattice_name, rung.extent, True, "pauli", J=J, h=h)
-        return ham, sampler, ref, source, system
+        return ham, sampler, ref, source, system, lat
     space = pl.spaces.SpinSpace(n, total_sz=0)
     if rung.model == "heisenberg":
         ham = pl.operators.heisenberg(lat, sign_rule=rung.sign_rule)
@@ -93,7 +117,7 @@ def build(rung: Rung):
         bonds = np.concatenate([lat.bonds, lat.next_bonds])
     else:
         raise ValueError(f"unknown model {rung.model!r}")
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, bonds=bonds, burn_in=4)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, bonds=bonds, burn_in=4, order=rung.order)
     if lattice_name == "chain":
         ref = pl.exact.heisenberg_ring_energy(n)
         source = "Bethe ansatz (Bethe 1931), solved numerically"
@@ -104,11 +128,14 @@ def build(rung: Rung):
     else:
         ref = SANDVIK_1997_PER_SITE * n
         source = "Sandvik 1997 stochastic series expansion QMC, -0.671549(4)/site (from memory)"
-    return ham, sampler, ref, source, system
+    return ham, sampler, ref, source, system, lat
 
 
 def optimizer(rung: Rung):
     lr = optax.linear_schedule(rung.lr[0], rung.lr[1], max(1, rung.warmup))
+    if rung.lr_final != 1.0:
+        decay = optax.cosine_decay_schedule(rung.lr[1], max(1, rung.steps - rung.warmup), alpha=rung.lr_final)
+        lr = optax.join_schedules([lr, decay], [max(1, rung.warmup)])
     s0, s1 = rung.shift
     shift = optax.exponential_decay(s0, max(1, rung.shift_decay_steps), s1 / s0, end_value=s1) if s0 != s1 else s0
     return optax.chain(pl.optimize.stochastic_reconfiguration(shift=shift, solver=rung.solver), optax.sgd(lr))
@@ -117,8 +144,8 @@ def optimizer(rung: Rung):
 def run_rung(rung: Rung) -> dict:
     progress(f"--- rung {rung.name}")
     with Timer() as timer:
-        ham, sampler, ref, source, system = build(rung)
-        model = pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params)
+        ham, sampler, ref, source, system, lattice = build(rung)
+        model = trial_state(rung, lattice)
         search = pl.train.GroundStateSearch(model, ham, sampler, optimizer(rung), n_samples=rung.n_samples)
         state = search.init(jax.random.PRNGKey(rung.seed))
         n_params = search.n_parameters(state)
@@ -150,11 +177,13 @@ def run_rung(rung: Rung) -> dict:
         "rung": rung.name,
         "system": system,
         "method": {
-            "trial_state": f"RBM alpha={rung.alpha}" + (" complex" if rung.complex_params else " real"),
+            "trial_state": describe_state(rung, lattice),
             "sign_rule": rung.sign_rule if rung.model != "tfim" else None,
-            "sampler": f"Metropolis {'single flip' if rung.model == 'tfim' else 'exchange'}, {rung.n_chains} chains",
+            "sampler": f"Metropolis {'single flip' if rung.model == 'tfim' else 'exchange'}, {rung.n_chains} chains, "
+                       f"{rung.order} order",
             "optimizer": f"SR ({solver}), shift {rung.shift[0]:g}->{rung.shift[1]:g}, "
-                         f"sgd lr {rung.lr[0]:g}->{rung.lr[1]:g}",
+                         f"sgd lr {rung.lr[0]:g}->{rung.lr[1]:g}"
+                         + (f"->{rung.lr[1] * rung.lr_final:g} (cosine)" if rung.lr_final != 1.0 else ""),
             "eval_samples": rung.eval_samples,
             "tau": float(estimate.tau),
             "rhat": float(estimate.rhat),
@@ -176,19 +205,24 @@ def run_rung(rung: Rung) -> dict:
 
 
 FULL = [
-    Rung("tfim_chain_40", "tfim", (40,), 1e-5, alpha=2, n_samples=2048, steps=800, lr=(0.02, 0.05),
-         shift=(1e-2, 1e-5), shift_decay_steps=400, eval_samples=131072, couplings={"J": 1.0, "h": 1.0}),
-    Rung("heisenberg_chain_40", "heisenberg", (40,), 1e-4, alpha=2, n_samples=2048, steps=800,
-         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=131072),
-    Rung("heisenberg_chain_100", "heisenberg", (100,), 1e-4, alpha=1, n_samples=1024, steps=2000,
-         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=65536, time_limit=600.0),
-    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 2e-4, alpha=2, n_samples=2048, steps=600,
-         shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=131072),
+    Rung("tfim_chain_40", "tfim", (40,), 1e-5, alpha=4, state="invariant_rbm", n_samples=2048, steps=1000,
+         lr=(0.02, 0.05), lr_final=0.1, shift=(1e-2, 1e-4), shift_decay_steps=300, eval_samples=131072,
+         order="sequential", couplings={"J": 1.0, "h": 1.0}),
+    Rung("heisenberg_chain_40", "heisenberg", (40,), 1e-4, alpha=4, state="invariant_rbm", n_samples=2048,
+         steps=1000, lr=(0.02, 0.05), lr_final=0.1, shift=(1e-2, 1e-4), shift_decay_steps=300,
+         eval_samples=131072, order="sequential"),
+    Rung("heisenberg_chain_100", "heisenberg", (100,), 1e-4, alpha=2, state="invariant_rbm", n_samples=1024,
+         steps=2000, lr=(0.02, 0.05), lr_final=0.1, shift=(1e-2, 1e-4), shift_decay_steps=300,
+         eval_samples=65536, time_limit=600.0, order="sequential"),
+    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 2e-4, alpha=4, state="invariant_rbm", n_samples=2048,
+         steps=600, lr=(0.01, 0.02), lr_final=0.2, shift=(1e-2, 1e-4), shift_decay_steps=300,
+         eval_samples=131072, order="sequential"),
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, complex_params=True, sign_rule=False,
          n_samples=2048, steps=1500, lr=(0.05, 0.08), warmup=50, shift=(3e-2, 1e-3), shift_decay_steps=600,
          eval_samples=131072, couplings={"J2": 0.5}),
-    Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=1, n_samples=1024, steps=5000,
-         shift=(1e-2, 1e-4), shift_decay_steps=500, eval_samples=65536, time_limit=3600.0),
+    Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=1, state="invariant_rbm", n_samples=1024,
+         steps=5000, lr=(0.01, 0.02), lr_final=0.2, shift=(1e-2, 1e-4), shift_decay_steps=500, eval_samples=65536,
+         time_limit=3600.0, order="sequential"),
 ]
 
 # Reduced sizes and short runs. Their targets are sanity bounds for these short runs (chosen

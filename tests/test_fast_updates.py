@@ -279,3 +279,32 @@ def test_training_with_fast_path_equals_generic_path():
     for a, b in zip(jax.tree_util.tree_leaves(state_f.params), jax.tree_util.tree_leaves(state_g.params)):
         np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-9, atol=1e-12)
     assert state_f.chains.cache is not None and state_g.chains.cache is None
+
+
+# ----------------------------------------------------------------------------- tied-weight RBM
+@pytest.mark.parametrize("with_flips, complex_params", [(False, True), (True, False)])
+def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_params):
+    """The weight-shared RBM reuses the dense RBM's fast updates on its tied kernel: local energies
+    and a whole Metropolis chain agree with full re-evaluation."""
+    lat = pl.lattices.chain(10)
+    group = pl.symmetry.translations(lat)
+    if with_flips:
+        group = pl.symmetry.product(pl.symmetry.space_group(lat), pl.symmetry.spin_flip(lat))
+    model = pl.states.TranslationInvariantRBM(group, alpha=2, complex_params=complex_params, init_scale=1.0)
+    space = pl.spaces.SpinSpace(10, total_sz=0)
+    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
+    assert fast_updates_of(bind_amplitude(model, variables)) is not None
+    ham = pl.operators.heisenberg(lat, sign_rule=False)
+    x = space.random(jax.random.PRNGKey(5), 16)
+    fast = ham.local_energy(bind_amplitude(model, variables), x)
+    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
+    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=1e-11, atol=1e-11)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=6, bonds=lat.bonds, order="sequential")
+    runs = {}
+    for use_fast in (True, False):
+        amp = bind_amplitude(model, variables, fast=use_fast)
+        runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp, 6)
+    np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
+    assert 0.05 < float(runs[False][3]) < 0.95
+    diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
+    assert np.max(np.abs(diff)) < 1e-10

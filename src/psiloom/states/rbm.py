@@ -115,43 +115,55 @@ class RBM(TrialState):
         """Fast-update functions (see the module docstring); call via
         ``model.apply(variables, method="fast_updates")`` or :func:`psiloom.states.bind_amplitude`."""
         params = self.variables["params"]
-        kernel = params["kernel"]
-        hidden = params.get("hidden_bias") if self.hidden_bias else None
-        visible = params.get("visible_bias") if self.visible_bias else None
-        rise = jnp.exp(2.0 * kernel)  # e^{d} for a spin going −1 → +1 (δ = +2)
-        fall = jnp.exp(-2.0 * kernel)  # e^{d} for a spin going +1 → −1 (δ = −2)
+        return rbm_fast_updates(
+            params["kernel"],
+            params.get("hidden_bias") if self.hidden_bias else None,
+            params.get("visible_bias") if self.visible_bias else None,
+        )
 
-        log_block = 8 if jnp.finfo(jnp.real(kernel).dtype).bits == 64 else 2
 
-        def init(x):
-            theta = x.astype(kernel.dtype) @ kernel
-            if hidden is not None:
-                theta = theta + hidden
-            plus, minus = _one_plus_minus_tanh(theta)
-            return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
+def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates:
+    """Fast updates of ``log ψ(x) = a·x + Σ_j log 2cosh θ_j``, ``θ = xW + b`` (module docstring).
 
-        def update(x, cache: RBMCache, sites, new_values):
-            sites = jnp.asarray(sites)
-            valid = sites >= 0
-            idx = jnp.where(valid, sites, 0)
-            dv = jnp.where(valid, new_values - values_at(x, sites), 0).astype(x.dtype)  # (n, K)
-            up_rows, down_rows = rise[idx], fall[idx]  # (K, M) shared sites, or (n, K, M)
-            e_plus = e_minus = None
-            delta = jnp.zeros(dv.shape[:1], cache.plus.dtype)
-            for k in range(dv.shape[1]):
-                up = (dv[:, k] > 0)[:, None]
-                down = (dv[:, k] < 0)[:, None]
-                f_plus = jnp.where(up, up_rows[..., k, :], jnp.where(down, down_rows[..., k, :], 1.0))
-                f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
-                e_plus = f_plus if e_plus is None else e_plus * f_plus
-                e_minus = f_minus if e_minus is None else e_minus * f_minus
-                if visible is not None:
-                    delta = delta + dv[:, k] * visible[idx[..., k]]
-            if e_plus is None:  # K = 0: nothing changes
-                return delta, cache
-            plus, minus = cache.plus * e_plus, cache.minus * e_minus
-            # 8 factors per logarithm in 64-bit (overflow needs mean |d| > 88), 2 in 32-bit (> 44)
-            log_norm = log_product(plus + minus, block=log_block)
-            return delta + (log_norm - cache.log_norm), RBMCache(plus, minus, log_norm)
+    ``kernel`` W: (N, M); ``hidden_bias`` b: (M,) or None; ``visible_bias`` a: (N,) or None.
+    Any trial state that is an RBM with tied or structured weights (e.g.
+    :class:`~psiloom.states.TranslationInvariantRBM`) can build its effective ``W`` and reuse
+    these functions.
+    """
+    rise = jnp.exp(2.0 * kernel)  # e^{d} for a spin going −1 → +1 (δ = +2)
+    fall = jnp.exp(-2.0 * kernel)  # e^{d} for a spin going +1 → −1 (δ = −2)
+    hidden, visible = hidden_bias, visible_bias
+    log_block = 8 if jnp.finfo(jnp.real(kernel).dtype).bits == 64 else 2
 
-        return FastUpdates(init, update)
+    def init(x):
+        theta = x.astype(kernel.dtype) @ kernel
+        if hidden is not None:
+            theta = theta + hidden
+        plus, minus = _one_plus_minus_tanh(theta)
+        return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
+
+    def update(x, cache: RBMCache, sites, new_values):
+        sites = jnp.asarray(sites)
+        valid = sites >= 0
+        idx = jnp.where(valid, sites, 0)
+        dv = jnp.where(valid, new_values - values_at(x, sites), 0).astype(x.dtype)  # (n, K)
+        up_rows, down_rows = rise[idx], fall[idx]  # (K, M) shared sites, or (n, K, M)
+        e_plus = e_minus = None
+        delta = jnp.zeros(dv.shape[:1], cache.plus.dtype)
+        for k in range(dv.shape[1]):
+            up = (dv[:, k] > 0)[:, None]
+            down = (dv[:, k] < 0)[:, None]
+            f_plus = jnp.where(up, up_rows[..., k, :], jnp.where(down, down_rows[..., k, :], 1.0))
+            f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
+            e_plus = f_plus if e_plus is None else e_plus * f_plus
+            e_minus = f_minus if e_minus is None else e_minus * f_minus
+            if visible is not None:
+                delta = delta + dv[:, k] * visible[idx[..., k]]
+        if e_plus is None:  # K = 0: nothing changes
+            return delta, cache
+        plus, minus = cache.plus * e_plus, cache.minus * e_minus
+        # 8 factors per logarithm in 64-bit (overflow needs mean |d| > 88), 2 in 32-bit (> 44)
+        log_norm = log_product(plus + minus, block=log_block)
+        return delta + (log_norm - cache.log_norm), RBMCache(plus, minus, log_norm)
+
+    return FastUpdates(init, update)

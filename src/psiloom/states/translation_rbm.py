@@ -12,6 +12,11 @@ lattice this is the translation-invariant RBM (Carleo & Troyer 2017): ``α|G|`` 
 only ``α N + α + 1`` parameters, against ``α N² + α N + N`` for a dense RBM with the same hidden
 density. The single visible bias ``a`` multiplies the total magnetisation (invariant under
 permutations; with spin flips in the group it is fixed at zero).
+
+Fast updates (:mod:`psiloom.states.fast`): the state is a dense RBM with the tied kernel
+``W[j, (g, f)] = s_g w_f[g(j)]`` (N × α|G|), so it reuses the RBM's fast-update functions on
+that kernel; Metropolis proposals and local energies then cost O(K·α|G|) per change instead of
+a full O(N·α|G|) evaluation.
 """
 
 from __future__ import annotations
@@ -24,7 +29,8 @@ import flax.linen as nn
 
 from psiloom.lattices import Lattice
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
-from psiloom.states.rbm import log_two_cosh
+from psiloom.states.fast import FastUpdates
+from psiloom.states.rbm import log_two_cosh, rbm_fast_updates
 from psiloom.symmetry import SymmetryGroup, translations
 
 __all__ = ["TranslationInvariantRBM"]
@@ -73,11 +79,7 @@ class TranslationInvariantRBM(TrialState):
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
         init = nn.initializers.normal(self.init_scale / np.sqrt(len(group)))
         filters = self.param("filters", init, (n, int(self.alpha)), dtype)
-        # θ_{f,g} = Σ_i w_f[i] (g·x)_i = Σ_j x_j s_g w_f[g(j)]: gather the weights (N, G, α)
-        # once instead of the images of every configuration (B, G, N)
-        images = jnp.asarray(group.images.T)  # (N, G): g(j)
-        signs = jnp.asarray(group.flips, dtype=dtype)
-        tied = filters[images] * signs[None, :, None]  # (N, G, α)
+        tied = self._tied_kernel(filters, group)  # (N, G, α)
         theta = jnp.einsum("bj,jgf->bgf", x.astype(dtype), tied)  # (B, G, α)
         if self.hidden_bias:
             theta = theta + self.param("hidden_bias", init, (int(self.alpha),), dtype)
@@ -87,3 +89,23 @@ class TranslationInvariantRBM(TrialState):
             out = out + a * jnp.sum(x, axis=-1).astype(dtype)
         return out
 
+    @staticmethod
+    def _tied_kernel(filters, group: SymmetryGroup):
+        """``W[j, g, f] = s_g w_f[g(j)]``, so that θ_{f,g} = Σ_i w_f[i] (g·x)_i = Σ_j x_j W[j, g, f]
+        (the weights are gathered once instead of the images of every configuration)."""
+        images = jnp.asarray(group.images.T)  # (N, G): g(j)
+        signs = jnp.asarray(group.flips, dtype=filters.dtype)
+        return filters[images] * signs[None, :, None]
+
+    def fast_updates(self) -> FastUpdates:
+        """Fast updates through the equivalent dense RBM (see the module docstring)."""
+        params = self.variables["params"]
+        group = self._group()
+        tied = self._tied_kernel(params["filters"], group)
+        n, n_group, alpha = tied.shape
+        hidden = visible = None
+        if self.hidden_bias:
+            hidden = jnp.broadcast_to(params["hidden_bias"], (n_group, alpha)).reshape(-1)
+        if "visible_bias" in params:
+            visible = jnp.full((n,), params["visible_bias"])
+        return rbm_fast_updates(tied.reshape(n, n_group * alpha), hidden, visible)
