@@ -47,7 +47,9 @@ class Rung:
     extent: tuple[int, ...]
     target: float  # relative-error target
     alpha: float = 1.0
-    state: str = "rbm"  # "rbm" (dense) | "invariant_rbm" (weights shared over space group × spin flip)
+    # "rbm" (dense) | "invariant_rbm" (weights shared over space group × spin flip) |
+    # "symmetrized" (translation-invariant RBM projected onto the point group × spin flip, A1, p = +1)
+    state: str = "rbm"
     complex_params: bool = False
     sign_rule: bool = True
     n_samples: int = 1024
@@ -66,16 +68,30 @@ class Rung:
     order: str = "random"  # Metropolis proposal order ("sequential": systematic scan)
 
 
+def _invariance_group(lattice):
+    return pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
+
+
+def _projection_sector(lattice):
+    point = pl.symmetry.product(pl.symmetry.point_group(lattice), pl.symmetry.spin_flip(lattice))
+    return pl.symmetry.sector(point, None, "A1", 1)
+
+
 def trial_state(rung: Rung, lattice):
-    """The rung's trial state: a dense RBM, or an RBM with weights shared over the lattice's space
-    group and the global spin flip (:class:`psiloom.states.TranslationInvariantRBM`; the ground
-    states of these rungs are invariant under that group: TFIM by Perron-Frobenius with the Z2
-    symmetry, Heisenberg in the Marshall-rotated basis where the ground state is positive)."""
+    """The rung's trial state. Besides a dense RBM: an RBM with weights shared over the space group
+    and the global spin flip (:class:`psiloom.states.TranslationInvariantRBM`, with fast
+    updates), or a translation-invariant RBM projected onto the A1, spin-flip-even sector of the
+    point group (:class:`psiloom.states.Symmetrized`). The ground states of these rungs lie in
+    that sector: TFIM by Perron-Frobenius and its Z2 symmetry, Heisenberg in the Marshall-rotated
+    basis, where the ground state is positive and every lattice symmetry maps it to itself."""
     if rung.state == "rbm":
         return pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params)
     if rung.state == "invariant_rbm":
-        group = pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
-        return pl.states.TranslationInvariantRBM(group, alpha=int(rung.alpha), complex_params=rung.complex_params)
+        return pl.states.TranslationInvariantRBM(_invariance_group(lattice), alpha=int(rung.alpha),
+                                                 complex_params=rung.complex_params)
+    if rung.state == "symmetrized":
+        base = pl.states.TranslationInvariantRBM(lattice, alpha=int(rung.alpha), complex_params=rung.complex_params)
+        return pl.states.Symmetrized(base, _projection_sector(lattice))
     raise ValueError(f"unknown trial state {rung.state!r}")
 
 
@@ -83,8 +99,12 @@ def describe_state(rung: Rung, lattice) -> str:
     kind = " complex" if rung.complex_params else " real"
     if rung.state == "rbm":
         return f"RBM alpha={rung.alpha}" + kind
-    group = pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
-    return f"TranslationInvariantRBM over {group.name} ({len(group)} elements), alpha={int(rung.alpha)}" + kind
+    if rung.state == "invariant_rbm":
+        group = _invariance_group(lattice)
+        return f"TranslationInvariantRBM over {group.name} ({len(group)} elements), alpha={int(rung.alpha)}" + kind
+    sector = _projection_sector(lattice)
+    return (f"Symmetrized(TranslationInvariantRBM alpha={int(rung.alpha)}{kind}) onto A1, p=+1 of the point group "
+            f"x spin flip ({len(sector.group)} elements)")
 
 
 def build(rung: Rung):
@@ -146,7 +166,10 @@ def run_rung(rung: Rung) -> dict:
     with Timer() as timer:
         ham, sampler, ref, source, system, lattice = build(rung)
         model = trial_state(rung, lattice)
-        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer(rung), n_samples=rung.n_samples)
+        # chunk bounds the memory of the evaluation pass of projected states (|G| images per connection)
+        chunk = 1024 if rung.state == "symmetrized" else None
+        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer(rung), n_samples=rung.n_samples,
+                                            chunk=chunk)
         state = search.init(jax.random.PRNGKey(rung.seed))
         n_params = search.n_parameters(state)
         rows = rung.n_samples * (2 if rung.complex_params else 1)
@@ -214,9 +237,9 @@ FULL = [
     Rung("heisenberg_chain_100", "heisenberg", (100,), 1e-4, alpha=2, state="invariant_rbm", n_samples=1024,
          steps=2000, lr=(0.02, 0.05), lr_final=0.1, shift=(1e-2, 1e-4), shift_decay_steps=300,
          eval_samples=65536, time_limit=600.0, order="sequential"),
-    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 2e-4, alpha=4, state="invariant_rbm", n_samples=2048,
-         steps=600, lr=(0.01, 0.02), lr_final=0.2, shift=(1e-2, 1e-4), shift_decay_steps=300,
-         eval_samples=131072, order="sequential"),
+    Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 2e-4, alpha=4, state="symmetrized", n_samples=1024,
+         n_chains=16, steps=600, lr=(0.005, 0.05), warmup=50, lr_final=0.2, shift=(1e-2, 1e-3),
+         shift_decay_steps=100, eval_samples=65536),
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, complex_params=True, sign_rule=False,
          n_samples=2048, steps=1500, lr=(0.05, 0.08), warmup=50, shift=(3e-2, 1e-3), shift_decay_steps=600,
          eval_samples=131072, couplings={"J2": 0.5}),

@@ -26,6 +26,7 @@ from psiloom.states import (
     count_real_parameters,
     init_parameters,
     log_two_cosh,
+    sum_log_two_cosh,
 )
 
 
@@ -118,6 +119,25 @@ def test_log_two_cosh_is_stable_for_large_arguments(z):
     # the derivative tanh z stays finite too
     if np.isrealobj(z):
         assert float(jax.grad(log_two_cosh)(jnp.asarray(z))) == pytest.approx(np.sign(z))
+
+
+@given(st.lists(st.floats(-800, 800), min_size=1, max_size=40), st.integers(1, 3))
+def test_sum_log_two_cosh_matches_elementwise_sum(values, rows):
+    """The real-valued sum equals Σ log(2 cosh z) computed term by term with
+    NumPy, log(2cosh z) = |z| + log1p(e^{−2|z|}), at any |z|; its gradient is tanh z."""
+    z = np.tile(np.asarray(values), (rows, 1)) * np.linspace(1.0, 0.5, rows)[:, None]
+    expected = np.sum(np.abs(z) + np.log1p(np.exp(-2.0 * np.abs(z))), axis=-1)
+    got = np.asarray(sum_log_two_cosh(jnp.asarray(z)))
+    np.testing.assert_allclose(got, expected, rtol=1e-13, atol=1e-12)
+    grad = np.asarray(jax.grad(lambda t: jnp.sum(sum_log_two_cosh(t)))(jnp.asarray(z)))
+    np.testing.assert_allclose(grad, np.tanh(z), rtol=1e-12, atol=1e-12)
+    # a tuple of trailing axes sums them together; complex input takes the elementwise path
+    cube = jnp.asarray(z)[:, :, None] * jnp.array([1.0, -0.5])
+    np.testing.assert_allclose(np.asarray(sum_log_two_cosh(cube, axis=(1, 2))),
+                               np.sum(np.abs(cube) + np.log1p(np.exp(-2 * np.abs(cube))), axis=(1, 2)), rtol=1e-13)
+    zc = jnp.asarray(z) + 0.3j
+    np.testing.assert_allclose(np.asarray(sum_log_two_cosh(zc)), np.asarray(jnp.sum(log_two_cosh(zc), axis=-1)),
+                               rtol=1e-13)
 
 
 # --------------------------------------------------------------------------- Jastrow, products

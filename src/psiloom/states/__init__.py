@@ -20,7 +20,7 @@ from psiloom.states.fast import (
 from psiloom.states.feedforward import FeedForward
 from psiloom.states.jastrow import TwoBodyJastrow
 from psiloom.states.product import ProductState
-from psiloom.states.rbm import RBM, RBMCache, log_two_cosh, rbm_fast_updates
+from psiloom.states.rbm import RBM, RBMCache, log_two_cosh, rbm_fast_updates, sum_log_two_cosh
 from psiloom.states.symmetric import Symmetrized
 from psiloom.states.translation_rbm import TranslationInvariantRBM
 from psiloom.states.equivariant import GroupConv, GroupConvNet, GroupLift
@@ -28,7 +28,7 @@ from psiloom.states.equivariant import GroupConv, GroupConvNet, GroupLift
 __all__ = [
     "TrialState", "check_input_size", "count_real_parameters", "default_complex_dtype",
     "default_real_dtype", "init_parameters", "FeedForward", "TwoBodyJastrow", "ProductState",
-    "RBM", "log_two_cosh", "BoundState", "ChainRuleState",
+    "RBM", "log_two_cosh", "sum_log_two_cosh", "BoundState", "ChainRuleState",
     "BoundAmplitude", "FastUpdates", "bind_amplitude", "fast_updates_of", "supports_fast_updates", "RBMCache", "rbm_fast_updates",
     "Symmetrized", "TranslationInvariantRBM", "GroupConv", "GroupConvNet", "GroupLift",
 ]

@@ -49,6 +49,19 @@ def log_two_cosh(z):
     return w + jnp.log1p(jnp.exp(-2.0 * w))
 
 
+def sum_log_two_cosh(z, axis=-1):
+    """``Σ log(2 cosh z)`` over ``axis`` (an int or a tuple of axes).
+
+    For real ``z`` it sums ``|z| + log1p(e^{−2|z|})`` without the branch of
+    :func:`log_two_cosh` (about 1.5× faster on CPU, where this elementwise part, not the
+    ``x @ W`` product, dominates an RBM evaluation); complex ``z`` takes :func:`log_two_cosh`.
+    """
+    if jnp.iscomplexobj(z):
+        return jnp.sum(log_two_cosh(z), axis=axis)
+    a = jnp.abs(z)
+    return jnp.sum(a, axis=axis) + jnp.sum(jnp.log1p(jnp.exp(-2.0 * a)), axis=axis)
+
+
 class RBMCache(NamedTuple):
     """Per-sample cache of the RBM fast updates (leading axis: samples); see the module docstring."""
 
@@ -105,7 +118,7 @@ class RBM(TrialState):
     @nn.compact
     def log_amplitude(self, x):
         theta = self.hidden_preactivation(x)
-        out = jnp.sum(log_two_cosh(theta), axis=-1)
+        out = sum_log_two_cosh(theta, axis=-1)
         if self.visible_bias:
             a = self.param("visible_bias", nn.initializers.normal(self.init_scale), (x.shape[-1],), self._dtype())
             out = out + x.astype(a.dtype) @ a

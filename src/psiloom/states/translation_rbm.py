@@ -30,7 +30,7 @@ import flax.linen as nn
 from psiloom.lattices import Lattice
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates
-from psiloom.states.rbm import log_two_cosh, rbm_fast_updates
+from psiloom.states.rbm import rbm_fast_updates, sum_log_two_cosh
 from psiloom.symmetry import SymmetryGroup, translations
 
 __all__ = ["TranslationInvariantRBM"]
@@ -83,7 +83,7 @@ class TranslationInvariantRBM(TrialState):
         theta = jnp.einsum("bj,jgf->bgf", x.astype(dtype), tied)  # (B, G, α)
         if self.hidden_bias:
             theta = theta + self.param("hidden_bias", init, (int(self.alpha),), dtype)
-        out = jnp.sum(log_two_cosh(theta), axis=(1, 2))
+        out = sum_log_two_cosh(theta, axis=(1, 2))
         if self.visible_bias and not np.any(group.flips < 0):
             a = self.param("visible_bias", init, (), dtype)
             out = out + a * jnp.sum(x, axis=-1).astype(dtype)
