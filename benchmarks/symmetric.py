@@ -57,8 +57,15 @@ def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, 
         sector = sym.sector(point, None, "A1", 1)
         model = pl.states.Symmetrized(pl.states.TranslationInvariantRBM(lat, alpha=alpha), sector)
         sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lat.bonds, burn_in=2)
-        decay = optax.cosine_decay_schedule(learning_rate, n_steps, alpha=0.2)
-        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(decay))
+        # gentle start (common practice): the learning rate rises over 50 steps while the SR shift
+        # decays from 1e-2 to 1e-3; from a near-uniform state a full step at once can lock the
+        # chains into a few configurations. Then a cosine decay to 0.2 × learning_rate.
+        warmup = min(50, max(1, n_steps // 4))
+        schedule = optax.join_schedules(
+            [optax.linear_schedule(0.1 * learning_rate, learning_rate, warmup),
+             optax.cosine_decay_schedule(learning_rate, max(1, n_steps - warmup), alpha=0.2)], [warmup])
+        shift = optax.exponential_decay(1e-2, 100, 0.1, end_value=1e-3)
+        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=shift), optax.sgd(schedule))
         # chunk bounds the memory of the long evaluation pass (|G| images of every connection)
         search = pl.train.GroundStateSearch(model, ham, sampler, optimizer, n_samples=n_samples, chunk=1024)
         progress(f"{size}x{size}: {len(point)} projected elements, alpha={alpha}, {n_steps} steps")
@@ -73,7 +80,8 @@ def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, 
             "trial_state": f"Symmetrized(TranslationInvariantRBM alpha={alpha}) onto {point.name} A1"
                            + (" p=+1" if spin_flip else ""),
             "sampler": "Metropolis nn-exchange, 16 chains",
-            "optimizer": f"SR shift 1e-3 + sgd cosine {learning_rate}->{0.2 * learning_rate}",
+            "optimizer": f"SR shift 1e-2->1e-3 + sgd warm-up {0.1 * learning_rate:g}->{learning_rate} then cosine "
+                         f"->{0.2 * learning_rate:g}",
             "tau": float(estimate.tau), "rhat": float(estimate.rhat), "acceptance": acceptance,
         },
         "energy": energy,
