@@ -13,7 +13,7 @@ Full-mode rungs (targets are relative errors; a time limit, where given, include
 | Heisenberg ring L=40                | Bethe ansatz (Bethe 1931)                    | 1e-4 | weight-shared RBM α=4 |
 | Heisenberg ring L=100               | Bethe ansatz                                 | 1e-4 in 10 min | weight-shared RBM α=2 |
 | Heisenberg 4×4 PBC                  | exact diagonalisation (Sᶻ = 0)               | 2e-4 | symmetrized translation-invariant RBM α=4 |
-| J1-J2 4×4 PBC, J2 = 0.5 (frustrated) | exact diagonalisation (Sᶻ = 0)              | 2e-3 | complex RBM α=2, Marshall basis as prior |
+| J1-J2 4×4 PBC, J2 = 0.5 (frustrated) | exact diagonalisation (Sᶻ = 0)              | 2e-3 | complex weight-shared RBM α=2, Marshall basis as prior |
 | Heisenberg 10×10 PBC                | −0.671549(4)/site, Sandvik 1997 QMC (from memory) | 1e-3 in 60 min | weight-shared RBM α=1 |
 
 "Weight-shared" is :class:`psiloom.states.TranslationInvariantRBM` over the space group × spin
@@ -246,10 +246,10 @@ FULL = [
          n_chains=16, steps=600, lr=(0.005, 0.05), warmup=50, lr_final=0.2, shift=(1e-2, 1e-3),
          shift_decay_steps=100, eval_samples=65536),
     # Marshall's sign rule is not exact at J2 = 0.5 J1; it serves as a prior (the basis in which the
-    # complex RBM starts), and the phases the RBM learns correct it
-    Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=2, complex_params=True, sign_rule=True,
-         n_samples=1024, steps=1000, lr=(0.005, 0.03), warmup=100, lr_final=0.2, shift=(3e-2, 1e-3),
-         shift_decay_steps=300, eval_samples=131072, order="sequential", couplings={"J2": 0.5}),
+    # complex state starts), and the phases the state learns correct it
+    Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=2, state="invariant_rbm", complex_params=True,
+         sign_rule=True, n_samples=1024, n_chains=16, steps=400, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
+         shift=(1e-2, 1e-3), shift_decay_steps=100, eval_samples=16384, couplings={"J2": 0.5}),
     Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=1, state="invariant_rbm", n_samples=1024,
          steps=5000, lr=(0.01, 0.02), lr_final=0.2, shift=(1e-2, 1e-4), shift_decay_steps=500, eval_samples=65536,
          time_limit=3600.0, order="sequential"),
