@@ -28,7 +28,7 @@ position 0 in every call.
 
 Fast updates: when ``log_amplitude`` is a bound trial state implementing the protocol of
 :mod:`psiloom.states.fast` (e.g. the RBM), the chain state also carries the per-chain cache
-(for the RBM θ = xW + b and 1 ± tanh θ) and each proposal costs O(K·M) for the K sites the
+(for the RBM the weights e^{±θ} of every hidden unit) and each proposal costs O(K·M) for the K sites the
 move changed, instead of a full O(N·M) evaluation. The random numbers are drawn exactly as
 on the generic path, so both paths produce the same chain for the same key (to rounding of
 the log-ratios). The cached log-amplitude is then accumulated, ``log ψ(x') = log ψ(x) + Δ``;
