@@ -145,13 +145,12 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
     """
     rise = jnp.exp(2.0 * kernel)  # e^{d} for a spin going −1 → +1 (δ = +2)
     fall = jnp.exp(-2.0 * kernel)  # e^{d} for a spin going +1 → −1 (δ = −2)
-    hidden, visible = hidden_bias, visible_bias
     log_block = 8 if jnp.finfo(jnp.real(kernel).dtype).bits == 64 else 2
 
     def init(x):
         theta = x.astype(kernel.dtype) @ kernel
-        if hidden is not None:
-            theta = theta + hidden
+        if hidden_bias is not None:
+            theta = theta + hidden_bias
         plus, minus = _one_plus_minus_tanh(theta)
         return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
 
@@ -170,8 +169,8 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
             f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
             e_plus = f_plus if e_plus is None else e_plus * f_plus
             e_minus = f_minus if e_minus is None else e_minus * f_minus
-            if visible is not None:
-                delta = delta + dv[:, k] * visible[idx[..., k]]
+            if visible_bias is not None:
+                delta = delta + dv[:, k] * visible_bias[idx[..., k]]
         if e_plus is None:  # K = 0: nothing changes
             return delta, cache
         plus, minus = cache.plus * e_plus, cache.minus * e_minus
