@@ -308,3 +308,48 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
     assert 0.05 < float(runs[False][3]) < 0.95
     diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
     assert np.max(np.abs(diff)) < 1e-10
+
+
+# ----------------------------------------------------------------------------- projected states
+@pytest.mark.parametrize(
+    "base_kind, sector_kind, parity",
+    [("invariant", "A1", 1), ("invariant", "B1", None), ("rbm", "momentum", None), ("rbm", "A1", -1)],
+)
+def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
+    """The projection of a state with fast updates has them too: local energies and whole
+    Metropolis chains agree with full re-evaluation of Σ_g χ(g) ψ(g·x) (real and complex sums)."""
+    lat = pl.lattices.square(3)
+    if base_kind == "invariant":
+        base = pl.states.TranslationInvariantRBM(lat, alpha=2, init_scale=1.0)
+    else:
+        base = RBM(alpha=1, complex_params=True, init_scale=0.3)
+    if sector_kind == "momentum":
+        sector = pl.symmetry.sector(pl.symmetry.translations(lat), (2 * np.pi / 3, 0.0))
+    else:
+        sector = pl.symmetry.sector(pl.symmetry.point_group(lat), None, sector_kind)
+    model = pl.states.Symmetrized(base, sector, spin_parity=parity)
+    space = pl.spaces.SpinSpace(9, total_sz=0.5)
+    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
+    assert fast_updates_of(bind_amplitude(model, variables)) is not None
+    ham = pl.operators.heisenberg(lat, sign_rule=False)
+    x = space.random(jax.random.PRNGKey(5), 12)
+    fast = ham.local_energy(bind_amplitude(model, variables), x)
+    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
+    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=1e-10, atol=1e-10)
+    for order in ("random", "sequential"):
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=lat.bonds, order=order)
+        runs = {}
+        for use_fast in (True, False):
+            amp = bind_amplitude(model, variables, fast=use_fast)
+            runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp, 5)
+        np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
+        assert 0.05 < float(runs[False][3]) < 0.95
+        diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
+        assert np.max(np.abs(diff)) < 1e-9
+
+
+def test_symmetrized_without_base_fast_path_takes_generic_path():
+    lat = pl.lattices.chain(6)
+    model = pl.states.Symmetrized(pl.states.TwoBodyJastrow(), pl.symmetry.translations(lat))
+    variables = model.init(jax.random.PRNGKey(0), pl.spaces.SpinSpace(6).random(jax.random.PRNGKey(1), 1))
+    assert fast_updates_of(bind_amplitude(model, variables)) is None

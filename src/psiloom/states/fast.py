@@ -7,9 +7,10 @@ sites of ``x``. A trial state that can evaluate
 
 in less than a full evaluation implements **one** extra method,
 
-    def fast_updates(self) -> FastUpdates
+    def fast_updates(self) -> FastUpdates | None
 
-reached through ``model.apply(variables, method="fast_updates")``. It returns two pure
+(``None`` when the state cannot offer them for its current configuration, e.g. a wrapper whose
+wrapped state has no fast path), reached through ``model.apply(variables, method="fast_updates")``. It returns two pure
 functions closed over whatever the state precomputes from its parameters (once per parameter
 set, e.g. once per optimisation step):
 
@@ -101,9 +102,11 @@ def fast_updates_of(log_amplitude) -> FastUpdates | None:
     if not supports_fast_updates(log_amplitude.model):
         return None
     out = log_amplitude.apply_method("fast_updates")
+    if out is None:
+        return None
     if not isinstance(out, FastUpdates):
         raise TypeError(
-            f"{type(log_amplitude.model).__name__}.fast_updates must return FastUpdates(init, update), "
+            f"{type(log_amplitude.model).__name__}.fast_updates must return FastUpdates(init, update) or None, "
             f"got {type(out).__name__}"
         )
     return out

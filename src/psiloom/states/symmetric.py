@@ -23,9 +23,19 @@ amplitude that a Metropolis chain never moves to.
 
 The output is real when the base output is real and all characters (and the parity) are +1;
 otherwise it is complex (a real base state projected onto a sector with signs acquires signs).
+
+Fast updates (:mod:`psiloom.states.fast`): when ``base`` has them, so does the projection.
+With ``(g·x)_j = f_g x_{g⁻¹(j)}``, changing ``x`` at site ``i`` to ``v`` changes the image
+``g·x`` at the single site ``g(i)`` to ``f_g v``. The cache keeps, per sample, the base cache
+of every image and the terms ``l_g = log ψ(g·x)``; an update moves each image through the
+base's own update (``O(|G|·K·M)`` for an RBM-like base with ``M`` hidden units, instead of
+``O(|G|·N·M)`` for a new evaluation), adds the base's Δ to each ``l_g`` and takes the weighted
+log-sum-exp again.
 """
 
 from __future__ import annotations
+
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -33,9 +43,18 @@ import numpy as np
 import flax.linen as nn
 
 from psiloom.states.base import TrialState
+from psiloom.states.fast import FastUpdates, supports_fast_updates
 from psiloom.symmetry import Sector, SymmetryGroup
 
-__all__ = ["Symmetrized", "log_sum_exp_weighted"]
+__all__ = ["Symmetrized", "SymmetrizedCache", "log_sum_exp_weighted"]
+
+
+class SymmetrizedCache(NamedTuple):
+    """Per-sample cache of :class:`Symmetrized` fast updates (leading axis: samples)."""
+
+    base: Any  # the base state's cache of all images, leaves shaped (n, |G|, ...)
+    terms: jax.Array  # (n, |G|) l_g = log ψ_base(g·x)
+    log_amplitude: jax.Array  # (n,) log ψ_χ(x) + log |G|
 
 
 def log_sum_exp_weighted(log_terms, log_weights=None, axis: int = -1):
@@ -86,25 +105,81 @@ class Symmetrized(TrialState):
             return Sector(self.sector, np.ones(len(self.sector)), "invariant")
         raise ValueError(f"sector must be a Sector or a SymmetryGroup, got {self.sector!r}")
 
-    def log_amplitude(self, x):
+    def _elements(self):
+        """``(images (E, N) with images[e, i] = e(i), flips (E,), characters (E,))`` of the
+        projected elements: the group's, followed by their spin-flipped copies with
+        ``spin_parity``."""
         sec = self._sector()
         if self.spin_parity not in (None, 1, -1):
             raise ValueError(f"spin_parity must be None, +1 or -1, got {self.spin_parity!r}")
         group = sec.group
-        b, n = x.shape
-        if n != group.n_sites:
-            raise ValueError(f"configurations have {n} sites, the group acts on {group.n_sites}")
-        chi = np.asarray(sec.characters)
-        images = group.orbit(x)  # (B, G, N)
+        images, flips, chi = group.images, np.asarray(group.flips), np.asarray(sec.characters)
         if self.spin_parity is not None:
-            images = jnp.concatenate([images, -images], axis=1)
+            images = np.concatenate([images, images])
+            flips = np.concatenate([flips, -flips])
             chi = np.concatenate([chi, chi * self.spin_parity])
-        g = images.shape[1]
-        logs = self.base(images.reshape(b * g, n)).reshape(b, g)
-        trivial = np.all(np.abs(chi - 1) < 1e-14)
-        if trivial:
-            log_w = None
-        else:
-            log_w = jnp.asarray(np.log(chi.astype(complex)))  # log|χ| = 0; phase arg χ
+        return images, flips, chi
+
+    @staticmethod
+    def _log_weights(chi):
+        """``log χ`` as complex weights, or None when every character is 1."""
+        if np.all(np.abs(chi - 1) < 1e-14):
+            return None
+        return jnp.asarray(np.log(chi.astype(complex)))  # log|χ| = 0; phase arg χ
+
+    def log_amplitude(self, x):
+        images, flips, chi = self._elements()
+        b, n = x.shape
+        if n != images.shape[1]:
+            raise ValueError(f"configurations have {n} sites, the group acts on {images.shape[1]}")
+        orbit = self._sector().group.orbit(x)  # (B, G, N)
+        if self.spin_parity is not None:
+            orbit = jnp.concatenate([orbit, -orbit], axis=1)
+        g = orbit.shape[1]
+        logs = self.base(orbit.reshape(b * g, n)).reshape(b, g)
+        log_w = self._log_weights(chi)
+        if log_w is not None:
             logs = logs.astype(jnp.result_type(logs.dtype, jnp.complex64))
         return log_sum_exp_weighted(logs, log_w, axis=1) - np.log(g)
+
+    def fast_updates(self) -> FastUpdates | None:
+        """Fast updates through the base state's (module docstring); ``None`` without them."""
+        if not supports_fast_updates(self.base):
+            return None
+        images, flips, chi = self._elements()
+        base = self.base.clone(parent=None)
+        base_vars = {col: tree["base"] for col, tree in self.variables.items() if "base" in tree}
+        base_fast = base.apply(base_vars, method="fast_updates")
+        if base_fast is None:
+            return None
+        images_tab = jnp.asarray(images)
+        gather = jnp.asarray(np.argsort(images, axis=1))  # g⁻¹(j): (g·x)_j = f_g x[g⁻¹(j)]
+        signs = jnp.asarray(flips)
+        log_w = self._log_weights(chi)
+
+        def orbit(x):
+            return x[:, gather] * signs[None, :, None].astype(x.dtype)  # (n, E, N)
+
+        def combine(terms):
+            if log_w is not None:
+                terms = terms.astype(jnp.result_type(terms.dtype, jnp.complex64))
+            return log_sum_exp_weighted(terms, log_w, axis=1)
+
+        def init(x):
+            images = orbit(x)  # (n, E, N)
+            terms = jax.vmap(lambda y: base.apply(base_vars, y), in_axes=1, out_axes=1)(images)
+            cache = jax.vmap(base_fast.init, in_axes=1, out_axes=1)(images)
+            return SymmetrizedCache(cache, terms, combine(terms))
+
+        def update(x, cache: SymmetrizedCache, sites, new_values):
+            sites = jnp.asarray(sites)
+            # sites shared by all samples (K,) stay shared within each image: (E, K); else (E, n, K)
+            moved = jnp.where(sites >= 0, images_tab[:, jnp.where(sites >= 0, sites, 0)], -1)
+            values = signs[:, None, None].astype(new_values.dtype) * new_values[None]  # (E, n, K)
+            one_image = jax.vmap(base_fast.update, in_axes=(1, 1, 0, 0), out_axes=(1, 1))
+            delta, base_cache = one_image(orbit(x), cache.base, moved, values)
+            terms = cache.terms + delta.astype(cache.terms.dtype)  # (n, E)
+            total = combine(terms)
+            return total - cache.log_amplitude, SymmetrizedCache(base_cache, terms, total)
+
+        return FastUpdates(init, update)
