@@ -114,7 +114,7 @@ def main() -> None:
     else:
         plans = {"4x4": dict(size=4, alpha=4, n_steps=600, n_samples=1024, eval_samples=65536, spin_flip=True,
                              learning_rate=0.05),
-                 "6x6": dict(size=6, alpha=4, n_steps=600, n_samples=1024, eval_samples=32768, spin_flip=True,
+                 "6x6": dict(size=6, alpha=8, n_steps=600, n_samples=1024, eval_samples=32768, spin_flip=True,
                              learning_rate=0.05)}
     for plan in plans.values():
         for key, value in (("alpha", args.alpha), ("n_steps", args.steps), ("n_samples", args.samples)):
