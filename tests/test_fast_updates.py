@@ -282,6 +282,29 @@ def test_training_with_fast_path_equals_generic_path():
 
 
 # ----------------------------------------------------------------------------- tied-weight RBM
+def _assert_fast_equals_generic(model, lattice, space, orders, n_chains, n_per_chain, tol):
+    """Heisenberg local energies and whole Metropolis chains (one per proposal order) of
+    ``model`` agree between the fast and the generic path; the chains really move."""
+    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
+    assert fast_updates_of(bind_amplitude(model, variables)) is not None
+    ham = pl.operators.heisenberg(lattice, sign_rule=False)
+    x = space.random(jax.random.PRNGKey(5), 12)
+    fast = ham.local_energy(bind_amplitude(model, variables), x)
+    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
+    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=tol, atol=tol)
+    for order in orders:
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
+        runs = {}
+        for use_fast in (True, False):
+            amp = bind_amplitude(model, variables, fast=use_fast)
+            runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp,
+                                            n_per_chain)
+        np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
+        assert 0.05 < float(runs[False][3]) < 0.95
+        diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
+        assert np.max(np.abs(diff)) < 10 * tol
+
+
 @pytest.mark.parametrize("with_flips, complex_params", [(False, True), (True, False)])
 def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_params):
     """The weight-shared RBM reuses the dense RBM's fast updates on its tied kernel: local energies
@@ -291,23 +314,7 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
     if with_flips:
         group = pl.symmetry.product(pl.symmetry.space_group(lat), pl.symmetry.spin_flip(lat))
     model = pl.states.TranslationInvariantRBM(group, alpha=2, complex_params=complex_params, init_scale=1.0)
-    space = pl.spaces.SpinSpace(10, total_sz=0)
-    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
-    assert fast_updates_of(bind_amplitude(model, variables)) is not None
-    ham = pl.operators.heisenberg(lat, sign_rule=False)
-    x = space.random(jax.random.PRNGKey(5), 16)
-    fast = ham.local_energy(bind_amplitude(model, variables), x)
-    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
-    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=1e-11, atol=1e-11)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=6, bonds=lat.bonds, order="sequential")
-    runs = {}
-    for use_fast in (True, False):
-        amp = bind_amplitude(model, variables, fast=use_fast)
-        runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp, 6)
-    np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
-    assert 0.05 < float(runs[False][3]) < 0.95
-    diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
-    assert np.max(np.abs(diff)) < 1e-10
+    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(10, total_sz=0), ("sequential",), 6, 6, 1e-11)
 
 
 # ----------------------------------------------------------------------------- projected states
@@ -328,24 +335,8 @@ def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     else:
         sector = pl.symmetry.sector(pl.symmetry.point_group(lat), None, sector_kind)
     model = pl.states.Symmetrized(base, sector, spin_parity=parity)
-    space = pl.spaces.SpinSpace(9, total_sz=0.5)
-    variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
-    assert fast_updates_of(bind_amplitude(model, variables)) is not None
-    ham = pl.operators.heisenberg(lat, sign_rule=False)
-    x = space.random(jax.random.PRNGKey(5), 12)
-    fast = ham.local_energy(bind_amplitude(model, variables), x)
-    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
-    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=1e-10, atol=1e-10)
-    for order in ("random", "sequential"):
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=lat.bonds, order=order)
-        runs = {}
-        for use_fast in (True, False):
-            amp = bind_amplitude(model, variables, fast=use_fast)
-            runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp, 5)
-        np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
-        assert 0.05 < float(runs[False][3]) < 0.95
-        diff = _wrap_phase(np.asarray(runs[True][1]) - np.asarray(runs[False][1]))
-        assert np.max(np.abs(diff)) < 1e-9
+    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, total_sz=0.5), ("random", "sequential"), 4, 5,
+                                1e-10)
 
 
 def test_symmetrized_without_base_fast_path_takes_generic_path():

@@ -166,9 +166,9 @@ class Symmetrized(TrialState):
             return log_sum_exp_weighted(terms, log_w, axis=1)
 
         def init(x):
-            images = orbit(x)  # (n, E, N)
-            terms = jax.vmap(lambda y: base.apply(base_vars, y), in_axes=1, out_axes=1)(images)
-            cache = jax.vmap(base_fast.init, in_axes=1, out_axes=1)(images)
+            seen = orbit(x)  # (n, E, N): every image g·x
+            terms = jax.vmap(lambda y: base.apply(base_vars, y), in_axes=1, out_axes=1)(seen)
+            cache = jax.vmap(base_fast.init, in_axes=1, out_axes=1)(seen)
             return SymmetrizedCache(cache, terms, combine(terms))
 
         def update(x, cache: SymmetrizedCache, sites, new_values):
