@@ -233,6 +233,21 @@ def test_square_4x4_sectors():
     assert e_triplet > e_gs + 0.5
 
 
+@pytest.mark.parametrize("sign_rule", [False, True])
+def test_frustrated_4x4_ground_state_sector(sign_rule):
+    # J1-J2 4×4 PBC at J2 = 0.5 J1: E0 = −0.528620 J1 per site (exact diagonalisation, e.g.
+    # Schulz, Ziman & Poilblanc 1996; from memory), in the sector k = 0, A1, even under spin flip.
+    # The accuracy ladder projects onto that sector in the Marshall-rotated basis, which keeps the
+    # characters on 4×4 (the sign (−1)^{N↑ on one sublattice} is translation invariant when N/2 is
+    # even): the sector ED equals the Lanczos value over the whole Sᶻ = 0 space in both bases.
+    space = pl.spaces.SpinSpace(16, total_sz=0)
+    ham = pl.operators.j1j2(_SQ, 1.0, 0.5, sign_rule=sign_rule)
+    e_gs, _ = pl.exact.ground_state(ham, space)
+    assert e_gs / 16 == pytest.approx(-0.528620, abs=2e-6)
+    vals, _ = sym.sector_eigenpairs(ham, space, sym.sector(_SQ_GROUP, (0, 0), "A1", 1))
+    assert vals[0] == pytest.approx(e_gs, abs=1e-9)
+
+
 @settings(max_examples=40)
 @given(k=st.floats(-10.0, 10.0, allow_nan=False), n=st.integers(-8, 8))
 def test_only_lattice_momenta_are_accepted(k, n):
