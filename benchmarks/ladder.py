@@ -249,7 +249,7 @@ FULL = [
     # Marshall's sign rule is not exact at J2 = 0.5 J1; it serves as a prior (the basis in which the
     # complex state starts), and the phases the state learns correct it
     # complex and projected: the ground state lies in k=0, A1, p=+1 in the Marshall-rotated basis
-    # (ED in that sector, psiloom.symmetry, equals the full ED value)
+    # (tests/test_symmetry.py::test_frustrated_4x4_ground_state_sector checks it against the full ED)
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, state="symmetrized", complex_params=True,
          sign_rule=True, n_samples=1024, n_chains=16, steps=800, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
          shift=(1e-2, 1e-3), shift_decay_steps=100, eval_samples=32768, couplings={"J2": 0.5},

@@ -2,7 +2,7 @@
 
 H = J Σ_⟨ij⟩ S_i·S_j (S = σ/2, J = 1), periodic L × L, total Sᶻ = 0, Marshall sign rule.
 Trial state: a translation-invariant RBM (α filters shared over the L² translations) projected
-onto the A1 sector of the point group C4v — and, in full mode for 4×4, onto spin-flip-even
+onto the A1 sector of the point group C4v — and, in full mode, onto spin-flip-even
 states — with psiloom.states.Symmetrized, so the state lies in the sector k = 0, A1 (p = +1) of the
 ground state. Optimised by stochastic reconfiguration.
 

@@ -106,19 +106,19 @@ class Symmetrized(TrialState):
         raise ValueError(f"sector must be a Sector or a SymmetryGroup, got {self.sector!r}")
 
     def _elements(self):
-        """``(images (E, N) with images[e, i] = e(i), flips (E,), characters (E,))`` of the
-        projected elements: the group's, followed by their spin-flipped copies with
-        ``spin_parity``."""
+        """``(perms (E, N) in gather form, flips (E,), characters (E,))`` of the projected
+        elements, ``(e·x)_j = flips[e] x[perms[e, j]]``: the group's, followed by their
+        spin-flipped copies with ``spin_parity``."""
         sec = self._sector()
         if self.spin_parity not in (None, 1, -1):
             raise ValueError(f"spin_parity must be None, +1 or -1, got {self.spin_parity!r}")
         group = sec.group
-        images, flips, chi = group.images, np.asarray(group.flips), np.asarray(sec.characters)
+        perms, flips, chi = group.perms, np.asarray(group.flips), np.asarray(sec.characters)
         if self.spin_parity is not None:
-            images = np.concatenate([images, images])
+            perms = np.concatenate([perms, perms])
             flips = np.concatenate([flips, -flips])
             chi = np.concatenate([chi, chi * self.spin_parity])
-        return images, flips, chi
+        return perms, flips, chi
 
     @staticmethod
     def _log_weights(chi):
@@ -127,49 +127,46 @@ class Symmetrized(TrialState):
             return None
         return jnp.asarray(np.log(chi.astype(complex)))  # log|χ| = 0; phase arg χ
 
-    def log_amplitude(self, x):
-        images, flips, chi = self._elements()
-        b, n = x.shape
-        if n != images.shape[1]:
-            raise ValueError(f"configurations have {n} sites, the group acts on {images.shape[1]}")
-        orbit = self._sector().group.orbit(x)  # (B, G, N)
-        if self.spin_parity is not None:
-            orbit = jnp.concatenate([orbit, -orbit], axis=1)
-        g = orbit.shape[1]
-        logs = self.base(orbit.reshape(b * g, n)).reshape(b, g)
-        log_w = self._log_weights(chi)
+    @staticmethod
+    def _images(x, perms, flips):
+        """Every image ``e·x`` of a batch ``x`` (n, N): shape (n, E, N)."""
+        return x[:, perms] * jnp.asarray(flips, dtype=x.dtype)[None, :, None]
+
+    @staticmethod
+    def _weighted_sum(terms, log_w):
+        """``log Σ_e χ_e exp(l_e)`` over axis 1 (complex when the weights are)."""
         if log_w is not None:
-            logs = logs.astype(jnp.result_type(logs.dtype, jnp.complex64))
-        return log_sum_exp_weighted(logs, log_w, axis=1) - np.log(g)
+            terms = terms.astype(jnp.result_type(terms.dtype, jnp.complex64))
+        return log_sum_exp_weighted(terms, log_w, axis=1)
+
+    def log_amplitude(self, x):
+        perms, flips, chi = self._elements()
+        b, n = x.shape
+        if n != perms.shape[1]:
+            raise ValueError(f"configurations have {n} sites, the group acts on {perms.shape[1]}")
+        g = perms.shape[0]
+        logs = self.base(self._images(x, perms, flips).reshape(b * g, n)).reshape(b, g)
+        return self._weighted_sum(logs, self._log_weights(chi)) - np.log(g)
 
     def fast_updates(self) -> FastUpdates | None:
         """Fast updates through the base state's (module docstring); ``None`` without them."""
         if not supports_fast_updates(self.base):
             return None
-        images, flips, chi = self._elements()
+        perms, flips, chi = self._elements()
         base = self.base.clone(parent=None)
         base_vars = {col: tree["base"] for col, tree in self.variables.items() if "base" in tree}
         base_fast = base.apply(base_vars, method="fast_updates")
         if base_fast is None:
             return None
-        images_tab = jnp.asarray(images)
-        gather = jnp.asarray(np.argsort(images, axis=1))  # g⁻¹(j): (g·x)_j = f_g x[g⁻¹(j)]
+        images_tab = jnp.asarray(np.argsort(perms, axis=1))  # e(i): where site i goes
         signs = jnp.asarray(flips)
         log_w = self._log_weights(chi)
 
-        def orbit(x):
-            return x[:, gather] * signs[None, :, None].astype(x.dtype)  # (n, E, N)
-
-        def combine(terms):
-            if log_w is not None:
-                terms = terms.astype(jnp.result_type(terms.dtype, jnp.complex64))
-            return log_sum_exp_weighted(terms, log_w, axis=1)
-
         def init(x):
-            seen = orbit(x)  # (n, E, N): every image g·x
+            seen = self._images(x, perms, flips)  # (n, E, N)
             terms = jax.vmap(lambda y: base.apply(base_vars, y), in_axes=1, out_axes=1)(seen)
             cache = jax.vmap(base_fast.init, in_axes=1, out_axes=1)(seen)
-            return SymmetrizedCache(cache, terms, combine(terms))
+            return SymmetrizedCache(cache, terms, self._weighted_sum(terms, log_w))
 
         def update(x, cache: SymmetrizedCache, sites, new_values):
             sites = jnp.asarray(sites)
@@ -177,9 +174,9 @@ class Symmetrized(TrialState):
             moved = jnp.where(sites >= 0, images_tab[:, jnp.where(sites >= 0, sites, 0)], -1)
             values = signs[:, None, None].astype(new_values.dtype) * new_values[None]  # (E, n, K)
             one_image = jax.vmap(base_fast.update, in_axes=(1, 1, 0, 0), out_axes=(1, 1))
-            delta, base_cache = one_image(orbit(x), cache.base, moved, values)
+            delta, base_cache = one_image(self._images(x, perms, flips), cache.base, moved, values)
             terms = cache.terms + delta.astype(cache.terms.dtype)  # (n, E)
-            total = combine(terms)
+            total = self._weighted_sum(terms, log_w)
             return total - cache.log_amplitude, SymmetrizedCache(base_cache, terms, total)
 
         return FastUpdates(init, update)
