@@ -249,6 +249,35 @@ def test_uniform_state_local_energy_closed_form():
     np.testing.assert_allclose(np.asarray(e_loc), expected, rtol=0, atol=1e-12)
 
 
+@pytest.mark.parametrize("working_set, chunk", [(None, None), (None, 7), (1, None), (16 * 41 * 5, None)])
+def test_fast_local_energy_blocks_equal_one_generic_batch(monkeypatch, working_set, chunk):
+    """The fast path evaluates samples in blocks (a power of two sized by the cache, at most
+    ``chunk``) and connections CONNECTION_BLOCK at a time; any blocking, with padding of a batch
+    (37 samples) that no block size divides, gives the generic path's values."""
+    from psiloom.operators import local as local_module
+
+    if working_set is not None:
+        monkeypatch.setattr(local_module, "FAST_WORKING_SET", working_set)
+    lattice = pl.lattices.chain(10)
+    hamiltonian = pl.operators.heisenberg(lattice) + pl.operators.transverse_field_ising(lattice, 0.3, 0.7)
+    model = RBM(alpha=2, complex_params=True, init_scale=0.3)
+    space = pl.spaces.SpinSpace(lattice.n_sites)
+    variables = model.init(jax.random.PRNGKey(5), space.random(jax.random.PRNGKey(0), 1))
+    x = space.random(jax.random.PRNGKey(6), 37)
+    fast = jax.jit(lambda v, x: hamiltonian.local_energy(bind_amplitude(model, v), x, chunk=chunk))(variables, x)
+    generic = jax.jit(lambda v, x: hamiltonian.local_energy(bind_amplitude(model, v, fast=False), x))(variables, x)
+    scale = np.max(np.abs(np.asarray(generic)))
+    np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=0, atol=1e-12 * scale)
+    # the block size itself: the largest power of two within the working set (cache: 2·20 + 1
+    # numbers per sample for alpha=2 on 10 sites), never above the caller's chunk
+    per_sample = 2 * 20 + 1
+    fits = max(1, local_module.FAST_WORKING_SET // (local_module.CONNECTION_BLOCK * per_sample))
+    expected = 2 ** int(np.floor(np.log2(fits)))
+    assert local_module._fast_chunk(fast_updates_of(bind_amplitude(model, variables)), x) == expected
+    if working_set == 16 * 41 * 5:
+        assert expected == 4
+
+
 def test_flip_table_describes_the_connections():
     for hamiltonian, lattice, _ in _hamiltonians().values():
         x = pl.spaces.SpinSpace(lattice.n_sites).random(jax.random.PRNGKey(2), 5)
