@@ -347,9 +347,19 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
 
 
 # ----------------------------------------------------------------------------- projected states
+class _RBMNeedingConfigurations(RBM):
+    """An RBM whose fast updates offer no ``update_at`` (they need ``x`` itself): it sends the
+    projection down its other path, which rebuilds the images ``g·x``."""
+
+    def fast_updates(self):
+        full = super().fast_updates()
+        return pl.states.FastUpdates(full.init, full.update)
+
+
 @pytest.mark.parametrize(
     "base_kind, sector_kind, parity",
-    [("invariant", "A1", 1), ("invariant", "B1", None), ("rbm", "momentum", None), ("rbm", "A1", -1)],
+    [("invariant", "A1", 1), ("invariant", "B1", None), ("rbm", "momentum", None), ("rbm", "A1", -1),
+     ("rbm_needing_x", "A1", 1)],
 )
 def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     """The projection of a state with fast updates has them too: local energies and whole
@@ -357,13 +367,18 @@ def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     lat = pl.lattices.square(3)
     if base_kind == "invariant":
         base = pl.states.TranslationInvariantRBM(lat, alpha=2, init_scale=1.0)
-    else:
+    elif base_kind == "rbm":
         base = RBM(alpha=1, complex_params=True, init_scale=0.3)
+    else:
+        base = _RBMNeedingConfigurations(alpha=1, complex_params=True, init_scale=0.3)
     if sector_kind == "momentum":
         sector = pl.symmetry.sector(pl.symmetry.translations(lat), (2 * np.pi / 3, 0.0))
     else:
         sector = pl.symmetry.sector(pl.symmetry.point_group(lat), None, sector_kind)
     model = pl.states.Symmetrized(base, sector, spin_parity=parity)
+    variables = model.init(jax.random.PRNGKey(0), jnp.ones((1, 9)))
+    uses_old_values = fast_updates_of(bind_amplitude(model, variables)).update_at is not None
+    assert uses_old_values == (base_kind != "rbm_needing_x")
     _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, total_sz=0.5), ("random", "sequential"), 4, 5,
                                 1e-10)
 

@@ -23,6 +23,14 @@ set, e.g. once per optimisation step):
         ``delta``: (n,) Δ log ψ (complex for complex states, then defined modulo 2πi);
         ``new_cache``: the cache of x'.
 
+A third, optional function serves wrappers that know the old values at the changed sites
+without holding ``x`` itself (e.g. :class:`~psiloom.states.Symmetrized`, whose images
+``g·x`` would otherwise be rebuilt for every update):
+
+    update_at(old_values, cache, sites, new_values) -> (delta, new_cache)
+        the same as ``update`` with ``old_values`` (n, K) = the values of ``x`` at ``sites``;
+        ``None`` (the default) when the state needs ``x`` itself.
+
 Consumers never call the method themselves. They receive ``log ψ`` as a bound trial state
 (:class:`~psiloom.states.BoundState`, callable as ``x -> log ψ(x)``, which the training loop
 passes) and ask :func:`fast_updates_of` for the fast functions:
@@ -48,6 +56,7 @@ class FastUpdates(NamedTuple):
 
     init: Callable[[jax.Array], Any]
     update: Callable[[jax.Array, Any, jax.Array, jax.Array], tuple[jax.Array, Any]]
+    update_at: Callable[[jax.Array, Any, jax.Array, jax.Array], tuple[jax.Array, Any]] | None = None
 
 
 def supports_fast_updates(model) -> bool:

@@ -154,11 +154,11 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
         plus, minus = _one_plus_minus_tanh(theta)
         return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
 
-    def update(x, cache: RBMCache, sites, new_values):
+    def update_at(old_values, cache: RBMCache, sites, new_values):
         sites = jnp.asarray(sites)
         valid = sites >= 0
         idx = jnp.where(valid, sites, 0)
-        dv = jnp.where(valid, new_values - values_at(x, sites), 0).astype(x.dtype)  # (n, K)
+        dv = jnp.where(valid, new_values - old_values, 0).astype(old_values.dtype)  # (n, K)
         up_rows, down_rows = rise[idx], fall[idx]  # (K, M) shared sites, or (n, K, M)
         e_plus = e_minus = None
         delta = jnp.zeros(dv.shape[:1], cache.plus.dtype)
@@ -178,4 +178,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
         log_norm = log_product(plus + minus, block=log_block)
         return delta + (log_norm - cache.log_norm), RBMCache(plus, minus, log_norm)
 
-    return FastUpdates(init, update)
+    def update(x, cache: RBMCache, sites, new_values):
+        return update_at(values_at(x, sites), cache, sites, new_values)
+
+    return FastUpdates(init, update, update_at)

@@ -43,7 +43,7 @@ import numpy as np
 import flax.linen as nn
 
 from psiloom.states.base import TrialState
-from psiloom.states.fast import FastUpdates, supports_fast_updates
+from psiloom.states.fast import FastUpdates, supports_fast_updates, values_at
 from psiloom.symmetry import Sector, SymmetryGroup
 
 __all__ = ["Symmetrized", "SymmetrizedCache", "log_sum_exp_weighted"]
@@ -168,15 +168,30 @@ class Symmetrized(TrialState):
             cache = jax.vmap(base_fast.init, in_axes=1, out_axes=1)(seen)
             return SymmetrizedCache(cache, terms, self._weighted_sum(terms, log_w))
 
-        def update(x, cache: SymmetrizedCache, sites, new_values):
+        def moved_and_values(sites, new_values):
             sites = jnp.asarray(sites)
             # sites shared by all samples (K,) stay shared within each image: (E, K); else (E, n, K)
             moved = jnp.where(sites >= 0, images_tab[:, jnp.where(sites >= 0, sites, 0)], -1)
             values = signs[:, None, None].astype(new_values.dtype) * new_values[None]  # (E, n, K)
-            one_image = jax.vmap(base_fast.update, in_axes=(1, 1, 0, 0), out_axes=(1, 1))
-            delta, base_cache = one_image(self._images(x, perms, flips), cache.base, moved, values)
+            return moved, values
+
+        def combine(cache, delta, base_cache):
             terms = cache.terms + delta.astype(cache.terms.dtype)  # (n, E)
             total = self._weighted_sum(terms, log_w)
             return total - cache.log_amplitude, SymmetrizedCache(base_cache, terms, total)
 
-        return FastUpdates(init, update)
+        def update(x, cache: SymmetrizedCache, sites, new_values):
+            if base_fast.update_at is not None:
+                return update_at(values_at(x, sites), cache, sites, new_values)
+            moved, values = moved_and_values(sites, new_values)
+            one_image = jax.vmap(base_fast.update, in_axes=(1, 1, 0, 0), out_axes=(1, 1))
+            return combine(cache, *one_image(self._images(x, perms, flips), cache.base, moved, values))
+
+        def update_at(old_values, cache: SymmetrizedCache, sites, new_values):
+            # the image e.x holds f_e x_i at e(i): its old values are f_e times those of x
+            moved, values = moved_and_values(sites, new_values)
+            old = signs[:, None, None].astype(old_values.dtype) * old_values[None]  # (E, n, K)
+            one_image = jax.vmap(base_fast.update_at, in_axes=(0, 1, 0, 0), out_axes=(1, 1))
+            return combine(cache, *one_image(old, cache.base, moved, values))
+
+        return FastUpdates(init, update, update_at if base_fast.update_at is not None else None)
