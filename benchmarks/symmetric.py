@@ -68,8 +68,9 @@ def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, 
              optax.cosine_decay_schedule(learning_rate, max(1, n_steps - warmup), alpha=0.2)], [warmup])
         shift = optax.exponential_decay(1e-2, 100, 0.1, end_value=1e-3)
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=shift), optax.sgd(schedule))
-        # chunk bounds the memory of the long evaluation pass (|G| images of every connection)
-        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer, n_samples=n_samples, chunk=1024)
+        # per-sample log-derivatives in blocks of 64 samples (|G| images each); local energies
+        # block themselves (psiloom.operators.local)
+        search = pl.train.GroundStateSearch(model, ham, sampler, optimizer, n_samples=n_samples, chunk=64)
         progress(f"{size}x{size}: {len(point)} projected elements, alpha={alpha}, {n_steps} steps")
         state, _ = search.run(n_steps, key=jax.random.PRNGKey(seed), progress=progress, print_every=25)
         estimate, acceptance = search.evaluate(state, eval_samples, burn_in_sweeps=4)

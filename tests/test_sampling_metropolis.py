@@ -259,6 +259,14 @@ def test_ordered_moves_visit_their_table_in_every_chain(position):
     expected[:, position % 6] *= -1
     np.testing.assert_array_equal(np.asarray(x_flip), expected)
     assert int(site[0]) == position % 6
+    # the fast scan's view of the same proposals: its sites and the values written there
+    for move, moved in ((ordered_exchange(bonds), x_new), (ordered_flips(6), x_flip)):
+        at = np.asarray(move.sites_at(jnp.asarray([position, position + 7])))
+        assert at.shape == (2, move.table.shape[1])
+        written = np.asarray(x).copy()
+        written[:, at[0]] = np.asarray(move.proposed_values(x[:, at[0]]))
+        np.testing.assert_array_equal(written, np.asarray(moved))
+        np.testing.assert_array_equal(at[1], move.table[(position + 7) % move.n_positions])
 
 
 def test_sequential_order_needs_an_orderable_move():

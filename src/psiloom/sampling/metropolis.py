@@ -22,7 +22,8 @@ chain; ``order="sequential"`` visits the sites (single flips) or bonds (exchange
 order, the same in all chains (:class:`~psiloom.sampling.moves.OrderedMove`, a systematic
 scan). Both leave |ψ|² invariant; the sequential order is the faster one with fast updates,
 because every chain changes the same sites and the trial state's tables need no per-chain
-gather (about 2× on a 100-site RBM, ``benchmarks/throughput.py``). A sequential sweep continues
+gather (about 2× on a 100-site RBM, ``benchmarks/throughput.py``); on the fast path it reads
+and writes only the K changed sites of ``x`` instead of building every ``x'``. A sequential sweep continues
 the cycle across sweeps of one :meth:`MetropolisSampler.sample` call and restarts it at
 position 0 in every call.
 
@@ -83,6 +84,33 @@ def _transition(state: ChainState, x_new, sites, log_u, log_amplitude, fast):
     log_amp = jnp.where(accept, log_new, state.log_amp)
     cache = None if cache_new is None else _select(accept, cache_new, state.cache)
     return ChainState(x, log_amp, cache), StepInfo(accept, log_ratio)
+
+
+def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
+    """Scan body of a systematic scan on the fast path, fed the sites of each proposal.
+
+    The same transition as :func:`_transition`, without building ``x'``: the proposal touches
+    the K sites shared by all chains, so only their old and new values ``(n, K)`` are read,
+    and the accepted values are written back into ``x`` at those sites.
+    """
+    update = fast.update_at
+
+    def body(carry, draw):
+        st, acc = carry
+        sites, lu = draw
+        old = st.x[:, sites]  # (n, K)
+        new = move.proposed_values(old)
+        if update is not None:
+            delta, cache_new = update(old, st.cache, sites, new)
+        else:
+            delta, cache_new = fast.update(st.x, st.cache, sites, new)
+        accept = lu < 2.0 * jnp.real(delta)
+        x = st.x.at[:, sites].set(jnp.where(accept[:, None], new, old))
+        log_amp = jnp.where(accept, st.log_amp + delta, st.log_amp)
+        st = ChainState(x, log_amp, _select(accept, cache_new, st.cache))
+        return (st, acc + jnp.mean(accept.astype(jnp.float32))), None
+
+    return body
 
 
 def _uniform_dtype(state: ChainState):
@@ -192,6 +220,8 @@ class MetropolisSampler:
             st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
             return (st, acc + jnp.mean(info.accepted.astype(jnp.float32))), None
 
+        if self.ordered is not None and fast is not None and state.cache is not None:
+            body, draws = _ordered_fast_body(self.ordered, fast), self.ordered.sites_at(draws)
         (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.float32)), (draws, log_u))
         return state, acc / self.sweep
 

@@ -173,6 +173,15 @@ class OrderedMove:
         i, j = sites[0], sites[1]
         return x.at[:, i].set(x[:, j]).at[:, j].set(x[:, i]), sites
 
+    def sites_at(self, positions) -> jax.Array:
+        """The changed sites of proposals ``positions`` (any shape ``P``): int32 ``(*P, K)``."""
+        return jnp.asarray(self.table)[jnp.mod(positions, self.n_positions)]
+
+    def proposed_values(self, old: jax.Array) -> jax.Array:
+        """New values at the sites of one proposal from the old ones ``(n, K)``: ``−x_s`` for a
+        flip, the two values swapped for an exchange (what :meth:`__call__` writes into ``x``)."""
+        return -old if self.kind == "flip" else old[:, ::-1]
+
     def __repr__(self) -> str:
         return f"OrderedMove({self.kind}, {self.n_positions} positions)"
 

@@ -11,24 +11,26 @@ so ``log ψ(x) = a·x + Σ_j log(2 cosh θ_j)``. With complex parameters ψ carr
 
 Fast updates (:mod:`psiloom.states.fast`). Changing spins at sites ``s_k`` by
 ``δ_k = x'_{s_k} − x_{s_k} ∈ {0, ±2}`` shifts ``θ`` by ``d = Σ_k δ_k W_{s_k}``. The cache of a
-configuration holds, per hidden unit, two positive weights proportional to ``e^{±θ_j}``,
+configuration holds, per hidden unit, the pair
 
-    P_j = c_j e^{θ_j},   Q_j = c_j e^{−θ_j}     (any c_j > 0, so P_j + Q_j ∝ cosh θ_j),
+    p_j = 1 + tanh θ_j,   q_j = 1 − tanh θ_j     (p_j + q_j = 2, both in [0, 2]),
 
-and, per sample, ``Λ = Σ_j log(P_j + Q_j)``. Since ``P_j + Q_j`` for ``θ + d`` is
-``P_j e^{d_j} + Q_j e^{−d_j}`` with the same ``c_j``,
+computed without cancellation. With ``P = p e^{d}`` and ``Q = q e^{−d}``,
 
-    log ψ(x') − log ψ(x) = a·(x' − x) + Σ_j log(P_j e^{d_j} + Q_j e^{−d_j}) − Λ ,
+    r_j = (P_j + Q_j) / 2 = cosh(θ_j + d_j) / cosh θ_j ,
+    log ψ(x') − log ψ(x) = a·(x' − x) + Σ_j log r_j ,
 
-and the cache follows by multiplication alone: ``P' = P e^{d}``, ``Q' = Q e^{−d}``,
-``Λ' = Σ_j log(P'_j + Q'_j)``. ``e^{±d_j}`` is a product of rows of the tables ``exp(±2W)``
-computed once per parameter set, so an update costs O(K·M) multiplications and one logarithm
-per eight hidden units (two in 32-bit precision): no exponential and no division per unit.
-``init`` starts from ``c_j = 1/cosh θ_j`` (``P = 1 + tanh θ``, ``Q = 1 − tanh θ``, computed
-without cancellation); afterwards ``P + Q = 2 cosh θ / cosh θ₀`` stays within ``e^{±|θ − θ₀|}``
-of 2, so nothing drifts however long a chain runs. For real parameters every term is
-positive: the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the sites
-of one change distinct; the tables overflow only for ``|W| > 354`` (float64).
+and the cache of ``x'`` is ``(P/r, Q/r)``. ``e^{±d_j}`` is a product of rows of the tables
+``exp(±2W)`` computed once per parameter set, so an update costs O(K·M) multiplications, one
+reciprocal per unit and one logarithm per eight units (``log Π r`` over blocks; two units in
+32-bit precision): no exponential. Every quantity is relative to the current configuration:
+``r_j`` lies within ``e^{±|d_j|}`` of 1 however far a chain has moved since the cache was
+built, so a block of eight overflows only for ``|d| > 88`` (|W| ≳ 22) and the pair never
+leaves [0, 2]. (An unnormalised cache, ``P ∝ e^{θ}`` relative to the configuration where it
+was built, overflowed a block product once the chains of a trained 10×10 state had drifted
+far from it: that is why the pair is renormalised at every update.) For real parameters every
+term is positive: the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the
+sites of one change distinct; the tables overflow only for ``|W| > 354`` (float64).
 """
 
 from __future__ import annotations
@@ -65,9 +67,8 @@ def sum_log_two_cosh(z, axis=-1):
 class RBMCache(NamedTuple):
     """Per-sample cache of the RBM fast updates (leading axis: samples); see the module docstring."""
 
-    plus: jax.Array  # (n, M) P = c e^{θ}
-    minus: jax.Array  # (n, M) Q = c e^{−θ}
-    log_norm: jax.Array  # (n,) Λ = Σ_j log(P_j + Q_j)
+    plus: jax.Array  # (n, M) p = 1 + tanh θ
+    minus: jax.Array  # (n, M) q = 1 − tanh θ
 
 
 def _one_plus_minus_tanh(theta):
@@ -151,8 +152,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
         theta = x.astype(kernel.dtype) @ kernel
         if hidden_bias is not None:
             theta = theta + hidden_bias
-        plus, minus = _one_plus_minus_tanh(theta)
-        return RBMCache(plus, minus, log_product(plus + minus, block=log_block))
+        return RBMCache(*_one_plus_minus_tanh(theta))
 
     def update_at(old_values, cache: RBMCache, sites, new_values):
         sites = jnp.asarray(sites)
@@ -174,9 +174,9 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None) -> FastUpdates
         if e_plus is None:  # K = 0: nothing changes
             return delta, cache
         plus, minus = cache.plus * e_plus, cache.minus * e_minus
-        # 8 factors per logarithm in 64-bit (overflow needs mean |d| > 88), 2 in 32-bit (> 44)
-        log_norm = log_product(plus + minus, block=log_block)
-        return delta + (log_norm - cache.log_norm), RBMCache(plus, minus, log_norm)
+        ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
+        inverse = 1.0 / ratio
+        return delta + log_product(ratio, block=log_block), RBMCache(plus * inverse, minus * inverse)
 
     def update(x, cache: RBMCache, sites, new_values):
         return update_at(values_at(x, sites), cache, sites, new_values)
