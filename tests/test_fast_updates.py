@@ -115,16 +115,24 @@ def _assert_cache_of(cache, fresh, rtol):
                                    rtol=rtol, atol=rtol)
 
 
-def test_long_walk_with_large_weights_stays_finite_and_exact():
-    """A chain walking far from where its cache was built (every spin of 40 flipped in turn,
-    weights ~N(0, 10²), |θ| up to ~200): the summed Δ log ψ equals log ψ(−x) − log ψ(x) from the
-    amplitude formula (Carleo & Troyer 2017, Eq. 2, with log 2cosh θ = logaddexp(θ, −θ) in NumPy).
-    A cache kept relative to the starting configuration overflows here (blocks of eight factors
-    e^{|θ − θ₀|}); the per-update renormalised one stays in [0, 2]."""
+def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact():
+    """A chain walking far from where its cache was built: W = 3 u vᵀ (u, v of ±1) on 40 sites,
+    from a configuration with u·x = 0 (θ = 0) to x = u (|θ| = 120 for every hidden unit), one
+    flip at a time. The summed Δ log ψ equals log ψ(u) − log ψ(x₀) from the amplitude formula
+    (Carleo & Troyer 2017, Eq. 2, log 2cosh θ = logaddexp(θ, −θ) in NumPy). A cache kept relative
+    to the starting configuration (P ∝ e^{θ − θ₀}) overflows here: eight factors e^{120} per
+    logarithm exceed the float64 range; the per-update renormalised pair stays in [0, 2]."""
     n = 40
-    model = RBM(alpha=1, init_scale=10.0)
-    x0 = pl.spaces.SpinSpace(n).random(jax.random.PRNGKey(8), 4)
-    variables = model.init(jax.random.PRNGKey(9), x0[:1])
+    rng = np.random.default_rng(10)
+    u = rng.choice([-1.0, 1.0], n)
+    v = rng.choice([-1.0, 1.0], n)
+    x0 = u.copy()
+    x0[rng.permutation(n)[: n // 2]] *= -1  # u·x0 = 0
+    model = RBM(alpha=1)
+    variables = model.init(jax.random.PRNGKey(9), jnp.ones((1, n)))
+    params = {"kernel": 3.0 * np.outer(u, v), "hidden_bias": np.zeros(n), "visible_bias": np.zeros(n)}
+    variables = {"params": jax.tree_util.tree_map(jnp.asarray, params)}
+    path = jnp.asarray(np.flatnonzero(x0 != u))
 
     @jax.jit
     def walk(v, x):
@@ -136,23 +144,20 @@ def test_long_walk_with_large_weights_stays_finite_and_exact():
             delta, cache = fast.update(x, cache, sites, -x[:, sites])
             return (x.at[:, site].multiply(-1), cache, total + delta), None
 
-        (x, cache, total), _ = jax.lax.scan(flip, (x, fast.init(x), jnp.zeros(x.shape[0])), jnp.arange(n))
+        (x, cache, total), _ = jax.lax.scan(flip, (x, fast.init(x), jnp.zeros(x.shape[0])), path)
         return x, cache, total
 
-    x_end, cache, total = walk(variables, x0)
-    p = jax.tree_util.tree_map(np.asarray, variables["params"])
+    x_end, cache, total = walk(variables, jnp.asarray(x0)[None])
 
     def log_psi(x):
-        theta = x @ p["kernel"] + p["hidden_bias"]
-        return x @ p["visible_bias"] + np.sum(np.logaddexp(theta, -theta), axis=-1)
+        theta = x @ params["kernel"]
+        return np.sum(np.logaddexp(theta, -theta), axis=-1)
 
-    xn = np.asarray(x0)
-    theta0 = xn @ p["kernel"] + p["hidden_bias"]
-    assert np.max(np.abs(theta0)) > 100  # the walk really spans huge hidden fields
-    np.testing.assert_array_equal(np.asarray(x_end), -xn)
-    expected = log_psi(-xn) - log_psi(xn)
-    assert np.all(np.isfinite(np.asarray(total)))
-    np.testing.assert_allclose(np.asarray(total), expected, rtol=1e-10, atol=1e-8)
+    np.testing.assert_array_equal(np.asarray(x_end)[0], u)
+    assert np.min(np.abs(u @ params["kernel"])) == 120.0  # every hidden field ends at ±120
+    expected = log_psi(u) - log_psi(x0)
+    assert np.isfinite(float(total[0]))
+    np.testing.assert_allclose(float(total[0]), expected, rtol=1e-12)
     assert np.all((np.asarray(cache.plus) >= 0) & (np.asarray(cache.plus) <= 2))
 
 
