@@ -26,9 +26,9 @@ reciprocal per unit and one logarithm per eight units (``log Π r`` over blocks;
 32-bit precision): no exponential. Every quantity is relative to the current configuration:
 ``r_j`` lies within ``e^{±|d_j|}`` of 1 however far a chain has moved since the cache was
 built, so a block of eight overflows only for ``|d| > 88`` (|W| ≳ 22) and the pair never
-leaves [0, 2]. (An unnormalised cache, ``P ∝ e^{θ}`` relative to the configuration where it
-was built, overflowed a block product once the chains of a trained 10×10 state had drifted
-far from it: that is why the pair is renormalised at every update.) For real parameters every
+leaves [0, 2]. (A cache relative to the configuration where it was built, ``P ∝ e^{θ − θ₀}``,
+overflows a block product once a chain reaches much larger hidden fields than there; see
+``test_long_walk_to_huge_hidden_fields_stays_finite_and_exact``.) For real parameters every
 term is positive: the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the
 sites of one change distinct; the tables overflow only for ``|W| > 354`` (float64).
 """
