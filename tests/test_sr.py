@@ -372,3 +372,30 @@ def test_other_bad_options_rejected():
     params = {"w": jnp.zeros(3)}
     with pytest.raises(ValueError, match="geometry"):
         tx.update(params, tx.init(params), params)
+
+
+# ----------------------------------------------------------------------------- trust radius
+@pytest.mark.parametrize("solver", ["dense", "sample_space", "cg"])
+def test_metric_trust_radius_shortens_long_steps_only(solver):
+    """δ ← δ·min(1, r/‖δ‖_S), ‖δ‖_S = (δᵀSδ)^{1/2}, against the NumPy solve: a radius below
+    the step's length shortens it to exactly r in the metric (same direction); a radius above
+    it changes nothing."""
+    rng = np.random.default_rng(12)
+    x = rng.normal(size=(9, 6))
+    res = rng.normal(size=9)
+    shift = 1e-2
+    delta = numpy_sr(x, x.T @ res, shift)
+    length = np.sqrt(delta @ (x.T @ (x @ delta)))
+    kw = {"tol": 1e-14} if solver == "cg" else {}
+    for radius in (0.25 * length, 4.0 * length):
+        got, _ = apply_sr(solver, x, res, shift=shift, max_metric_norm=float(radius), **kw)
+        expected = delta * min(1.0, radius / length)
+        np.testing.assert_allclose(got, expected, rtol=1e-7 if solver == "cg" else 1e-10)
+    got_length = np.sqrt(got @ (x.T @ (x @ got)))
+    assert got_length == pytest.approx(length, rel=1e-7)  # the larger radius left it alone
+
+
+@given(bad=st.sampled_from([0.0, -1.0, float("nan"), "1", True]))
+def test_bad_trust_radius_rejected(bad):
+    with pytest.raises(ValueError, match="max_metric_norm"):
+        stochastic_reconfiguration(1e-3, max_metric_norm=bad)

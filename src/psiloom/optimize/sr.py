@@ -37,6 +37,14 @@ Solvers (the ``solver`` option; all give the same δ up to rounding or the CG to
 ``"auto"``
     ``"sample_space"`` when the parameters outnumber the rows of X, else ``"dense"`` (decided
     from static shapes at trace time).
+
+Trust radius (``max_metric_norm``, optional): a step whose length in the metric,
+‖δ‖_S = (δᵀ S δ)^{1/2}, exceeds a bound r is shortened to it, δ ← δ · r/‖δ‖_S (a trust region in
+the Fubini-Study metric; the direction is unchanged). To first order the step moves ψ by
+η‖δ‖_S in state space (η the learning rate), so r bounds that distance whatever one sample
+does. It matters when a chain first reaches a region the state weights enormously: measured on
+a 10×10 Heisenberg run (projected RBM, α = 4), one such chain made local energies of −8·10⁴, the
+step jumped from ~0.013 to 187 per parameter and the next energies were non-finite.
 """
 
 from __future__ import annotations
@@ -114,6 +122,7 @@ def stochastic_reconfiguration(
     atol: float = 0.0,
     maxiter: int | None = None,
     warm_start: bool = False,
+    max_metric_norm: float | None = None,
 ) -> optax.GradientTransformationExtraArgs:
     """Precondition the energy gradient with (S + ε I + ε_rel diag S)⁻¹ (see module docstring).
 
@@ -125,6 +134,8 @@ def stochastic_reconfiguration(
         tol, atol: CG stopping rule ‖S̃δ − F‖ ≤ max(tol·‖F‖, atol) (``"cg"`` only).
         maxiter: CG iteration cap (default: 10·P as in jax.scipy).
         warm_start: start CG from the previous δ (stored in the state).
+        max_metric_norm: optional trust radius r > 0: shorten δ to ‖δ‖_S = (δᵀSδ)^{1/2} ≤ r
+            (module docstring); ``None`` leaves δ as solved.
 
     The output replaces the gradient by δ (a pytree like ``params``; complex leaves in psiloom's
     convention Re + i Im); chain with ``optax.sgd(learning_rate)``.
@@ -141,6 +152,9 @@ def stochastic_reconfiguration(
     if maxiter is not None and (isinstance(maxiter, bool) or int(maxiter) != maxiter or maxiter < 1):
         raise ValueError(f"maxiter must be a positive integer or None, got {maxiter!r}")
     use_previous = warm_start and solver == "cg"
+    if max_metric_norm is not None and not (isinstance(max_metric_norm, (int, float))
+                                            and not isinstance(max_metric_norm, bool) and max_metric_norm > 0):
+        raise ValueError(f"max_metric_norm must be a positive number or None, got {max_metric_norm!r}")
 
     def init(params):
         previous = jnp.zeros_like(ravel_real(params)[0]) if use_previous else None
@@ -181,6 +195,11 @@ def stochastic_reconfiguration(
                 delta = _solve_sample_space_scalar(x, geometry.residual(), force, eps)
             else:
                 delta = _solve_sample_space_diag(x, geometry.residual(), force, lam)
+        if max_metric_norm is not None:
+            # ‖δ‖_S² = δᵀ Xᵀ X δ, from X when it is formed, else one application of S
+            norm2 = jnp.vdot(delta, geometry.s_operator()(delta)) if kind == "cg" else sample_sum((x @ delta) ** 2)
+            norm = jnp.sqrt(jnp.maximum(jnp.real(norm2), 0.0))
+            delta = delta * jnp.minimum(1.0, max_metric_norm / jnp.maximum(norm, jnp.finfo(norm.dtype).tiny))
         return unravel(delta.astype(g.dtype)), SRState(count=state.count + 1, previous=previous)
 
     return optax.GradientTransformationExtraArgs(init, update)
