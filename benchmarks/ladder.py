@@ -275,8 +275,9 @@ FULL = [
     # alpha=4 (32 chains, 1400 steps) was tried: variance 0.16-0.19 by step 150 (alpha=2: 0.31-0.39),
     # but at step 565 one chain climbed towards the Neel configuration (staggered |m| 0.72, log psi
     # 150 above every other sample, confirmed by full re-evaluation), local energies reached -8e4,
-    # the SR update jumped from 0.013 to 187 and the next step was non-finite. A bounded update
-    # (trust region) is needed before larger alpha can run to the end.
+    # the SR update jumped from 0.013 to 187 and the next step was non-finite. The SR trust radius
+    # (max_metric_norm=1) keeps such a run finite but does not remove the spike (E = -64.0 with
+    # variance 286 35 steps later): the spike must be kept from forming before alpha=4 can run.
     Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=2, state="symmetrized", n_samples=1024,
          n_chains=16, steps=1350, lr=(0.005, 0.04), warmup=50, lr_final=0.2, shift=(1e-2, 1e-3),
          shift_decay_steps=150, eval_samples=65536, time_limit=3600.0, order="sequential"),

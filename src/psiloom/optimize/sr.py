@@ -176,6 +176,7 @@ def stochastic_reconfiguration(
             kind = "sample_space" if force.shape[0] > rows else "dense"
 
         previous = state.previous
+        s_op = x = None
         if kind == "cg":
             s_op = geometry.s_operator()
             matvec = lambda v: s_op(v) + eps * v
@@ -197,7 +198,7 @@ def stochastic_reconfiguration(
                 delta = _solve_sample_space_diag(x, geometry.residual(), force, lam)
         if max_metric_norm is not None:
             # ‖δ‖_S² = δᵀ Xᵀ X δ, from X when it is formed, else one application of S
-            norm2 = jnp.vdot(delta, geometry.s_operator()(delta)) if kind == "cg" else sample_sum((x @ delta) ** 2)
+            norm2 = jnp.vdot(delta, s_op(delta)) if s_op is not None else sample_sum((x @ delta) ** 2)
             norm = jnp.sqrt(jnp.maximum(jnp.real(norm2), 0.0))
             delta = delta * jnp.minimum(1.0, max_metric_norm / jnp.maximum(norm, jnp.finfo(norm.dtype).tiny))
         return unravel(delta.astype(g.dtype)), SRState(count=state.count + 1, previous=previous)

@@ -81,9 +81,15 @@ def _transition(state: ChainState, x_new, sites, log_u, log_amplitude, fast):
         log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
     accept = log_u < log_ratio
     x = jnp.where(accept.reshape(accept.shape + (1,) * (x_new.ndim - 1)), x_new, state.x)
+    return _after(state, accept, x, log_new, cache_new), StepInfo(accept, log_ratio)
+
+
+def _after(state: ChainState, accept, x, log_new, cache_new) -> ChainState:
+    """The chain state after the acceptance decision: ``x`` (already chosen per chain), and the
+    log-amplitude and cache of the proposal where accepted, the old ones elsewhere."""
     log_amp = jnp.where(accept, log_new, state.log_amp)
     cache = None if cache_new is None else _select(accept, cache_new, state.cache)
-    return ChainState(x, log_amp, cache), StepInfo(accept, log_ratio)
+    return ChainState(x, log_amp, cache)
 
 
 def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
@@ -106,8 +112,7 @@ def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
             delta, cache_new = fast.update(st.x, st.cache, sites, new)
         accept = lu < 2.0 * jnp.real(delta)
         x = st.x.at[:, sites].set(jnp.where(accept[:, None], new, old))
-        log_amp = jnp.where(accept, st.log_amp + delta, st.log_amp)
-        st = ChainState(x, log_amp, _select(accept, cache_new, st.cache))
+        st = _after(st, accept, x, st.log_amp + delta, cache_new)
         return (st, acc + jnp.mean(accept.astype(jnp.float32))), None
 
     return body
