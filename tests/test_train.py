@@ -197,3 +197,62 @@ def test_hamiltonian_and_space_sizes_must_agree():
     sampler = pl.sampling.MetropolisSampler(SpinSpace(4), n_chains=2)
     with pytest.raises(ValueError, match="6 sites.*4"):
         GroundStateSearch(RBM(), pl.operators.heisenberg(pl.lattices.chain(6)), sampler, optax.sgd(0.1), n_samples=4)
+
+
+# ---------------------------------------------------------------- dispersed starts (evaluate)
+N_SPIKE = 60
+
+
+def spike_search(weight: float):
+    """A search over 60 unconstrained spins (TFIM ring) whose RBM (one hidden unit, all-up
+    direction u) has, with m = u·x/N,
+
+        log ψ = log 2cosh(wN(m − 0.7)) + wNm ≈ 0.7wN (m < 0.7),  2wNm − 0.7wN (m > 0.7):
+
+    flat over the bulk, rising steeply above m = 0.7. For w = 1 the all-up corner outweighs the
+    whole bulk by e^{N(1.2w − ln 2)} ≈ e^{30} in |ψ|², yet a chain started in the bulk reaches
+    m > 0.7 only against an entropy barrier of N(ln 2 − H((1 + 0.7)/2)) ≈ 16 nats (H the binary
+    entropy in nats): once per ~10^7 sweeps. w = 0 is a healthy (uniform) state."""
+    lat = pl.lattices.chain(N_SPIKE)
+    space = SpinSpace(N_SPIKE)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=8)
+    model = RBM(alpha=1.0 / N_SPIKE)
+    search = GroundStateSearch(model, pl.operators.transverse_field_ising(lat, J=1.0, h=0.5), sampler,
+                               optax.sgd(0.0), n_samples=64)
+    params = {"params": {"kernel": jnp.full((N_SPIKE, 1), weight),
+                         "hidden_bias": jnp.full((1,), -0.7 * N_SPIKE * weight),
+                         "visible_bias": jnp.full((N_SPIKE,), weight)}}
+    return search, search.init(jax.random.PRNGKey(3), params=params)
+
+
+def test_dispersed_starts_reveal_weight_the_training_chains_never_saw():
+    # Gelman & Rubin (Stat. Sci. 7, 457 (1992)): chains from overdispersed starting points expose
+    # parts of the distribution that chains from one region miss; R-hat threshold 1.01 common practice.
+    search, state = spike_search(1.0)
+    plain, _ = search.evaluate(state, 2048, burn_in_sweeps=20)
+    # the chains that continue from the random start stay in the flat bulk and agree with each other
+    assert float(plain.rhat) < 1.05 and not any("not mixed" in w for w in plain.warnings())
+    # flat bulk: ψ uniform there, so <σˣ> = 1 and <σᶻσᶻ> = 0 per bond: E = −hN = −30 (fluctuating by ~sqrt(N))
+    assert abs(float(np.real(plain.mean)) + 0.5 * N_SPIKE) < 5.0
+    up = np.ones((2, N_SPIKE))
+    dispersed, _ = search.evaluate(state, 2048, burn_in_sweeps=20, starts=up)
+    # two of eight chains start at the all-up corner and stay there (E_loc ≈ −N J = −60)
+    assert float(dispersed.rhat) > 1.5
+    assert any("not mixed" in w for w in dispersed.warnings())
+
+
+def test_dispersed_starts_relax_in_a_healthy_state():
+    search, state = spike_search(0.0)  # ψ uniform: a chain from the corner forgets it in a few sweeps
+    est, _ = search.evaluate(state, 2048, burn_in_sweeps=20, starts=np.ones((2, N_SPIKE)))
+    assert float(est.rhat) < 1.05
+
+
+@given(st.sampled_from(["shape", "rows", "value"]))
+def test_dispersed_starts_reject_bad_input(kind):
+    search, state = make_search(), None
+    state = search.init(jax.random.PRNGKey(0))
+    good = np.tile([1.0, -1.0], (1, L // 2))
+    bad = {"shape": np.ones((1, L + 1)), "rows": np.tile(good, (9, 1)),
+           "value": np.array([[1.0, 1.0, 1.0, -1.0, -1.0, 0.5]])}[kind]
+    with pytest.raises(ValueError, match="starts"):
+        search.evaluate(state, 64, starts=bad)
