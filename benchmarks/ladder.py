@@ -74,6 +74,7 @@ class Rung:
     order: str = "random"  # Metropolis proposal order ("sequential": systematic scan)
     late_samples: tuple[int, int] | None = None  # (from step, samples per step): more samples late in the run
     energy_clip: float | None = None  # width of the local-energy clipping fed to the gradient (None: off)
+    trust_radius: float | None = None  # SR step length bound in the metric, sqrt(δᵀSδ) (None: off)
 
 
 def _invariance_group(lattice):
@@ -166,7 +167,23 @@ def optimizer(rung: Rung):
         lr = optax.join_schedules([lr, decay], [max(1, rung.warmup)])
     s0, s1 = rung.shift
     shift = optax.exponential_decay(s0, max(1, rung.shift_decay_steps), s1 / s0, end_value=s1) if s0 != s1 else s0
-    return optax.chain(pl.optimize.stochastic_reconfiguration(shift=shift, solver=rung.solver), optax.sgd(lr))
+    sr = pl.optimize.stochastic_reconfiguration(shift=shift, solver=rung.solver, max_metric_norm=rung.trust_radius)
+    return optax.chain(sr, optax.sgd(lr))
+
+
+def dispersed_starts(rung: Rung, lattice):
+    """Starting configurations of two of the evaluation chains (dispersed starts, Gelman & Rubin
+    1992): the extreme configurations towards which a real RBM's convex log ψ rises — both fully
+    polarised states for the TFIM, both Néel states for the Heisenberg-type models. A healthy
+    state lets these chains relax to the bulk in the burn-in; a state with heavy weight there
+    keeps them and R̂ (in the JSON) rises above 1."""
+    if rung.model == "tfim":
+        up = np.ones(lattice.n_sites)
+        return np.stack([up, -up])
+    if lattice.is_bipartite and lattice.n_sites % 2 == 0:
+        neel = 1.0 - 2.0 * lattice.sublattice
+        return np.stack([neel, -neel])
+    return None
 
 
 def run_rung(rung: Rung) -> dict:
@@ -209,7 +226,8 @@ def run_rung(rung: Rung) -> dict:
             if rung.time_limit is not None and timer.elapsed + block * per_step + reserve > rung.time_limit:
                 progress(f"{rung.name}: stopping after {done} steps to stay within {rung.time_limit:.0f} s")
                 break
-        estimate, acceptance = search.evaluate(state, rung.eval_samples, burn_in_sweeps=8)
+        starts = dispersed_starts(rung, lattice)
+        estimate, acceptance = search.evaluate(state, rung.eval_samples, burn_in_sweeps=8, starts=starts)
     energy = float(np.real(estimate.mean))
     rel = relative_error(energy, ref)
     passed = rel <= rung.target and (rung.time_limit is None or timer.seconds <= rung.time_limit)
@@ -229,9 +247,11 @@ def run_rung(rung: Rung) -> dict:
                          + (f"->{rung.lr[1] * rung.lr_final:g} (cosine)" if rung.lr_final != 1.0 else ""),
             "samples_per_step_late": list(rung.late_samples) if rung.late_samples else None,
             "energy_clip": rung.energy_clip,
+            "trust_radius": rung.trust_radius,
             "eval_samples": rung.eval_samples,
             "tau": float(estimate.tau),
             "rhat": float(estimate.rhat),
+            "dispersed_starts": None if starts is None else ("polarised" if rung.model == "tfim" else "Neel"),
             "acceptance": acceptance,
         },
         "energy": energy,
@@ -272,15 +292,17 @@ FULL = [
          sign_rule=True, n_samples=1024, n_chains=16, steps=800, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
          shift=(1e-2, 1e-3), shift_decay_steps=100, eval_samples=32768, couplings={"J2": 0.5},
          order="sequential"),
-    # alpha=4 (32 chains, 1400 steps) was tried: variance 0.16-0.19 by step 150 (alpha=2: 0.31-0.39),
-    # but at step 565 one chain climbed towards the Neel configuration (staggered |m| 0.72, log psi
-    # 150 above every other sample, confirmed by full re-evaluation), local energies reached -8e4,
-    # the SR update jumped from 0.013 to 187 and the next step was non-finite. The SR trust radius
-    # (max_metric_norm=1) keeps such a run finite but does not remove the spike (E = -64.0 with
-    # variance 286 35 steps later): the spike must be kept from forming before alpha=4 can run.
-    Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=2, state="symmetrized", n_samples=1024,
-         n_chains=16, steps=1350, lr=(0.005, 0.04), warmup=50, lr_final=0.2, shift=(1e-2, 1e-3),
-         shift_decay_steps=150, eval_samples=65536, time_limit=3600.0, order="sequential"),
+    # alpha=2 (16 chains, 1350 steps, shift 1e-2 -> 1e-3): 1.83e-3 +- 0.04e-3 in 51 min.
+    # alpha=4 with the shift decaying to 1e-3: finite-sample SR steps 2-3x longer, and at step 566 a
+    # single update put a spike (log psi 920 against 750 in the bulk) on a configuration one chain
+    # had sampled; the next energies were non-finite. Neither clipping at 5 MAD nor the trust radius
+    # (max_metric_norm 0.5-1) stopped it in a replay from step 550; both from step 0 (clip 5, radius
+    # 1) slowed the descent (E = -23 at step 50 against -66.7). Holding the shift at 1e-2 did:
+    # 1400 steps, 1.08e-3 +- 0.04e-3 in 53 min,
+    # R-hat 1.000 (1.001 with two chains started at the Neel states).
+    Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=4, state="symmetrized", n_samples=1024,
+         n_chains=32, steps=1400, lr=(0.005, 0.04), warmup=50, lr_final=0.2, shift=(1e-2, 1e-2),
+         eval_samples=65536, time_limit=3600.0, order="sequential"),
 ]
 
 # Reduced sizes and short runs. Their targets are sanity bounds for these short runs (chosen

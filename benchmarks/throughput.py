@@ -115,6 +115,10 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
         "baseline": times[False],
         "ratio": times[False] / times[True],
         **_cpu_fields("sweepTrue", "sweepFalse"),
+        # cost per hidden unit per proposal and chain: the fast path's elementwise update of the
+        # cached pair against the full path's N multiply-adds plus one log 2cosh per unit
+        "ns_per_unit": {path: times[fast] / (L * n_chains * ALPHA * L) * 1e9
+                        for path, fast in (("fast", True), ("full", False))},
         "target_ratio": 10.0,
         "seconds": timer.seconds,
         "n_params": pl.states.count_real_parameters(variables),

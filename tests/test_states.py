@@ -88,6 +88,26 @@ def test_rbm_equals_explicit_sum_over_hidden_units(complex_params, alpha, biases
         assert log_psi.dtype == np.complex128
 
 
+_CONVEX_N = 6
+_convex_rbm_apply = jax.jit(RBM(alpha=2.0).apply)  # one compilation for all examples
+
+
+@given(st.integers(0, 2**31 - 1), st.floats(0.0, 1.0), st.floats(0.05, 2.0))
+def test_real_rbm_log_amplitude_is_convex(seed, lam, scale):
+    """log ψ of a real RBM, a·x + Σ_j log 2cosh(w_j·x + b_j), is a sum of convex functions of
+    affine forms of x, hence convex on R^N (Boyd & Vandenberghe, Convex Optimization, §3.2):
+    it cannot fall again towards extreme configurations, the reason ``evaluate(starts=...)``
+    exists. Checked as f(λx + (1−λ)y) ≤ λf(x) + (1−λ)f(y) at random real points."""
+    n, m = _CONVEX_N, 2 * _CONVEX_N
+    rng = np.random.default_rng(seed)
+    variables = {"params": {"kernel": scale * rng.normal(size=(n, m)), "hidden_bias": scale * rng.normal(size=m),
+                            "visible_bias": scale * rng.normal(size=n)}}
+    x, y = 3 * rng.normal(size=(1, n)), 3 * rng.normal(size=(1, n))
+    f = lambda z: float(_convex_rbm_apply(variables, jnp.asarray(z))[0])  # noqa: E731
+    chord = lam * f(x) + (1 - lam) * f(y)
+    assert f(lam * x + (1 - lam) * y) <= chord + 1e-9 * (1 + abs(chord))
+
+
 def test_rbm_parameter_count():
     model = RBM(alpha=2, complex_params=True)
     v = jax.eval_shape(model.init, jax.random.PRNGKey(0), jax.ShapeDtypeStruct((1, 5), jnp.float64))
