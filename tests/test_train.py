@@ -247,12 +247,19 @@ def test_dispersed_starts_relax_in_a_healthy_state():
     assert float(est.rhat) < 1.05
 
 
-@given(st.sampled_from(["shape", "rows", "value"]))
-def test_dispersed_starts_reject_bad_input(kind):
-    search, state = make_search(), None
-    state = search.init(jax.random.PRNGKey(0))
-    good = np.tile([1.0, -1.0], (1, L // 2))
-    bad = {"shape": np.ones((1, L + 1)), "rows": np.tile(good, (9, 1)),
-           "value": np.array([[1.0, 1.0, 1.0, -1.0, -1.0, 0.5]])}[kind]
-    with pytest.raises(ValueError, match="starts"):
-        search.evaluate(state, 64, starts=bad)
+@pytest.mark.parametrize("bad", [np.ones((1, L + 1)), np.ones((9, L)), np.ones((0, L)), np.ones((2, 2, L))],
+                         ids=["sites", "more-than-chains", "none", "ndim"])
+def test_dispersed_starts_reject_bad_shapes(search, start, bad):
+    with pytest.raises(ValueError, match=r"starts must have shape \(k, 6\)"):
+        search.evaluate(start, 64, starts=bad)
+
+
+@given(st.integers(0, L - 1), st.floats(allow_nan=True, allow_infinity=True).filter(lambda v: v not in (1.0, -1.0)))
+def test_dispersed_starts_reject_configurations_outside_the_space(search, start, site, value):
+    row = np.tile([1.0, -1.0], L // 2)
+    row[site] = value  # not a spin value
+    with pytest.raises(ValueError, match="starts row 1 is not a configuration"):
+        search.evaluate(start, 64, starts=np.stack([np.tile([-1.0, 1.0], L // 2), row]))
+    four_up = np.where(np.arange(L) <= L // 2, 1.0, -1.0)  # spins ±1 but total Sz = 1, not 0
+    with pytest.raises(ValueError, match="starts row 0 is not a configuration"):
+        search.evaluate(start, 64, starts=four_up)
