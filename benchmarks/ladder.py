@@ -293,14 +293,14 @@ FULL = [
          shift=(1e-2, 1e-3), shift_decay_steps=100, eval_samples=32768, couplings={"J2": 0.5},
          order="sequential"),
     # alpha=2 (16 chains, 1350 steps, shift 1e-2 -> 1e-3): 1.83e-3 +- 0.04e-3 in 51 min.
-    # alpha=4 with the shift decaying to 1e-3: finite-sample SR steps 2-3x longer, and at step 566 a
+    # alpha=4 with the shift decaying to 1e-3: finite-sample SR steps 2-3x longer, and at step 565 a
     # single update put a spike (log psi 920 against 750 in the bulk) on a configuration one chain
     # had sampled; the next energies were non-finite. Neither clipping at 5 MAD nor the trust radius
     # (max_metric_norm 0.5-1) stopped it in a replay from step 550; both from step 0 (clip 5, radius
     # 1) slowed the descent (E = -23 at step 50 against -66.7). Holding the shift at 1e-2 did:
-    # 1400 steps, 1.08e-3 +- 0.04e-3 in 53 min,
-    # R-hat 1.000 (1.001 with two chains started at the Neel states). The same with the learning rate
-    # decaying to 0.05 x instead of 0.2 x: 1.10e-3 +- 0.04e-3 in 52 min (R-hat 1.000 with Neel starts).
+    # 1400 steps, 1.08e-3 +- 0.04e-3 in 53 min, R-hat 1.000 (1.001 with two chains started at the
+    # Neel states). The same with the learning rate decaying to 0.05 x instead of 0.2 x: 1.10e-3
+    # +- 0.04e-3 in 52 min (R-hat 1.000 with Neel starts).
     Rung("heisenberg_square_10x10", "heisenberg", (10, 10), 1e-3, alpha=4, state="symmetrized", n_samples=1024,
          n_chains=32, steps=1400, lr=(0.005, 0.04), warmup=50, lr_final=0.2, shift=(1e-2, 1e-2),
          eval_samples=65536, time_limit=3600.0, order="sequential"),
