@@ -172,18 +172,18 @@ def optimizer(rung: Rung):
 
 
 def dispersed_starts(rung: Rung, lattice):
-    """Starting configurations of two of the evaluation chains (dispersed starts, Gelman & Rubin
-    1992): the extreme configurations towards which a real RBM's convex log ψ rises — both fully
-    polarised states for the TFIM, both Néel states for the Heisenberg-type models. A healthy
-    state lets these chains relax to the bulk in the burn-in; a state with heavy weight there
-    keeps them and R̂ (in the JSON) rises above 1."""
+    """``(label, configurations)`` for two of the evaluation chains (dispersed starts, Gelman &
+    Rubin 1992), or ``(None, None)``: the extreme configurations towards which a real RBM's convex
+    log ψ rises — both fully polarised states for the TFIM, both Néel states for the
+    Heisenberg-type models. A healthy state lets these chains relax to the bulk in the burn-in; a
+    state with heavy weight there keeps them and R̂ (in the JSON) rises above 1."""
     if rung.model == "tfim":
         up = np.ones(lattice.n_sites)
-        return np.stack([up, -up])
+        return "polarised", np.stack([up, -up])
     if lattice.is_bipartite and lattice.n_sites % 2 == 0:
         neel = 1.0 - 2.0 * lattice.sublattice
-        return np.stack([neel, -neel])
-    return None
+        return "Neel", np.stack([neel, -neel])
+    return None, None
 
 
 def run_rung(rung: Rung) -> dict:
@@ -226,7 +226,7 @@ def run_rung(rung: Rung) -> dict:
             if rung.time_limit is not None and timer.elapsed + block * per_step + reserve > rung.time_limit:
                 progress(f"{rung.name}: stopping after {done} steps to stay within {rung.time_limit:.0f} s")
                 break
-        starts = dispersed_starts(rung, lattice)
+        starts_label, starts = dispersed_starts(rung, lattice)
         estimate, acceptance = search.evaluate(state, rung.eval_samples, burn_in_sweeps=8, starts=starts)
     energy = float(np.real(estimate.mean))
     rel = relative_error(energy, ref)
@@ -251,7 +251,7 @@ def run_rung(rung: Rung) -> dict:
             "eval_samples": rung.eval_samples,
             "tau": float(estimate.tau),
             "rhat": float(estimate.rhat),
-            "dispersed_starts": None if starts is None else ("polarised" if rung.model == "tfim" else "Neel"),
+            "dispersed_starts": starts_label,
             "acceptance": acceptance,
         },
         "energy": energy,

@@ -260,6 +260,9 @@ def test_dispersed_starts_reject_configurations_outside_the_space(search, start,
     row[site] = value  # not a spin value
     with pytest.raises(ValueError, match="starts row 1 is not a configuration"):
         search.evaluate(start, 64, starts=np.stack([np.tile([-1.0, 1.0], L // 2), row]))
+
+
+def test_dispersed_starts_reject_the_wrong_magnetisation(search, start):
     four_up = np.where(np.arange(L) <= L // 2, 1.0, -1.0)  # spins ±1 but total Sz = 1, not 0
     with pytest.raises(ValueError, match="starts row 0 is not a configuration"):
         search.evaluate(start, 64, starts=four_up)
