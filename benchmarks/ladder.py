@@ -75,6 +75,7 @@ class Rung:
     late_samples: tuple[int, int] | None = None  # (from step, samples per step): more samples late in the run
     energy_clip: float | None = None  # width of the local-energy clipping fed to the gradient (None: off)
     trust_radius: float | None = None  # SR step length bound in the metric, sqrt(δᵀSδ) (None: off)
+    cache_float32: bool = False  # fast-update tables and caches in float32 (parameters stay float64)
 
 
 def _invariance_group(lattice):
@@ -93,13 +94,15 @@ def trial_state(rung: Rung, lattice):
     point group (:class:`psiloom.states.Symmetrized`). The ground states of these rungs lie in
     that sector: TFIM by Perron-Frobenius and its Z2 symmetry, Heisenberg in the Marshall-rotated
     basis, where the ground state is positive and every lattice symmetry maps it to itself."""
+    cache = jax.numpy.float32 if rung.cache_float32 else None
     if rung.state == "rbm":
-        return pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params)
+        return pl.states.RBM(alpha=rung.alpha, complex_params=rung.complex_params, cache_dtype=cache)
     if rung.state == "invariant_rbm":
         return pl.states.TranslationInvariantRBM(_invariance_group(lattice), alpha=int(rung.alpha),
-                                                 complex_params=rung.complex_params)
+                                                 complex_params=rung.complex_params, cache_dtype=cache)
     if rung.state == "symmetrized":
-        base = pl.states.TranslationInvariantRBM(lattice, alpha=int(rung.alpha), complex_params=rung.complex_params)
+        base = pl.states.TranslationInvariantRBM(lattice, alpha=int(rung.alpha), complex_params=rung.complex_params,
+                                                 cache_dtype=cache)
         return pl.states.Symmetrized(base, _projection_sector(lattice))
     raise ValueError(f"unknown trial state {rung.state!r}")
 
@@ -248,6 +251,7 @@ def run_rung(rung: Rung) -> dict:
             "samples_per_step_late": list(rung.late_samples) if rung.late_samples else None,
             "energy_clip": rung.energy_clip,
             "trust_radius": rung.trust_radius,
+            "cache_dtype": "float32" if rung.cache_float32 else "float64",
             "eval_samples": rung.eval_samples,
             "tau": float(estimate.tau),
             "rhat": float(estimate.rhat),

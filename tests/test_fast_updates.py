@@ -11,6 +11,7 @@ a few hundred ulps of the magnitudes involved).
 """
 
 import functools
+import re
 
 import jax
 import jax.numpy as jnp
@@ -115,7 +116,19 @@ def _assert_cache_of(cache, fresh, rtol):
                                    rtol=rtol, atol=rtol)
 
 
-def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact():
+# float32 caches (RBM(cache_dtype=jnp.float32)): every factor r_j = (p e^d + q e^-d)/2 carries a
+# few float32 roundings (table entry, cache entry, product, sum: 4 ε₃₂ relative), and log Π r sums
+# them over the M hidden units: |error of Δ log ψ| ≤ 4 M ε₃₂ + 4 ε₃₂ |Δ| in the worst case
+# (errors adding linearly; common practice for a rounding bound).
+EPS32 = float(np.finfo(np.float32).eps)
+
+
+def _float32_bound(n_units, magnitude):
+    return 4 * n_units * EPS32 + 4 * EPS32 * np.abs(magnitude)
+
+
+@pytest.mark.parametrize("cache_dtype, rtol", [(None, 1e-12), (jnp.float32, 40 * 4 * EPS32)])
+def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact(cache_dtype, rtol):
     """A chain walking far from where its cache was built: W = 3 u vᵀ (u, v of ±1) on 40 sites,
     from a configuration with u·x = 0 (θ = 0) to x = u (|θ| = 120 for every hidden unit), one
     flip at a time. The summed Δ log ψ equals log ψ(u) − log ψ(x₀) from the amplitude formula
@@ -128,7 +141,7 @@ def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact():
     v = rng.choice([-1.0, 1.0], n)
     x0 = u.copy()
     x0[rng.permutation(n)[: n // 2]] *= -1  # u·x0 = 0
-    model = RBM(alpha=1)
+    model = RBM(alpha=1, cache_dtype=cache_dtype)
     variables = model.init(jax.random.PRNGKey(9), jnp.ones((1, n)))
     params = {"kernel": 3.0 * np.outer(u, v), "hidden_bias": np.zeros(n), "visible_bias": np.zeros(n)}
     variables = {"params": jax.tree_util.tree_map(jnp.asarray, params)}
@@ -157,8 +170,50 @@ def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact():
     assert np.min(np.abs(u @ params["kernel"])) == 120.0  # every hidden field ends at ±120
     expected = log_psi(u) - log_psi(x0)
     assert np.isfinite(float(total[0]))
-    np.testing.assert_allclose(float(total[0]), expected, rtol=1e-12)
+    # 20 flips, each Δ computed with relative error ≤ 4·40 ε (float32 cache; see _float32_bound)
+    np.testing.assert_allclose(float(total[0]), expected, rtol=rtol)
     assert np.all((np.asarray(cache.plus) >= 0) & (np.asarray(cache.plus) <= 2))
+    assert cache.plus.dtype == (cache_dtype or jnp.float64)
+
+
+@pytest.mark.parametrize("complex_params", [False, True])
+@settings(max_examples=15)
+@given(change=_changes())
+def test_float32_cache_ratio_equals_rbm_formula(complex_params, change):
+    """With float32 tables and caches the ratios stay within the rounding bound of the amplitude
+    formula (Carleo & Troyer 2017, Eq. 2, in NumPy float64); Δ log ψ and the parameters stay
+    float64/complex128, the cache is float32/complex64."""
+    x, sites, new_values = change
+    model, variables = _MODELS_FLOAT32_CACHE[complex_params]
+    delta, cache = _fast_float32(complex_params, variables, jnp.asarray(x), jnp.asarray(sites),
+                                 jnp.asarray(new_values))
+    assert delta.dtype == (jnp.complex128 if complex_params else jnp.float64)
+    assert cache.plus.dtype == (jnp.complex64 if complex_params else jnp.float32)
+    expected = _numpy_log_psi(variables, _apply(x, sites, new_values)) - _numpy_log_psi(variables, x)
+    diff = np.abs(_wrap_phase(np.asarray(delta) - expected))
+    m = variables["params"]["kernel"].shape[1]
+    assert np.all(diff <= _float32_bound(m, expected)), (diff, _float32_bound(m, expected))
+
+
+_MODELS_FLOAT32_CACHE = {
+    flag: (RBM(alpha=2, complex_params=flag, init_scale=0.4, cache_dtype=jnp.float32), _MODELS[flag][1])
+    for flag in (False, True)
+}
+
+
+@functools.partial(jax.jit, static_argnums=0)
+def _fast_float32(complex_params, variables, x, sites, new_values):
+    fast = fast_updates_of(bind_amplitude(_MODELS_FLOAT32_CACHE[complex_params][0], variables))
+    return fast.update(x, fast.init(x), sites, new_values)
+
+
+@pytest.mark.parametrize("bad", ["float16", jnp.int32, "complex64", 3, "nonsense"])
+def test_bad_cache_dtype_is_named(bad):
+    x = jnp.ones((1, 4))
+    for model in (RBM(alpha=1, cache_dtype=bad),
+                  pl.states.TranslationInvariantRBM(pl.lattices.chain(4), alpha=1, cache_dtype=bad)):
+        with pytest.raises(ValueError, match=re.escape(f"cache_dtype must be float32, float64 or None, got {bad!r}")):
+            model.init(jax.random.PRNGKey(0), x)
 
 
 def test_fast_ratio_with_large_weights_and_shared_sites():
@@ -400,14 +455,18 @@ class _RBMNeedingConfigurations(RBM):
 @pytest.mark.parametrize(
     "base_kind, sector_kind, parity",
     [("invariant", "A1", 1), ("invariant", "B1", None), ("rbm", "momentum", None), ("rbm", "A1", -1),
-     ("rbm_needing_x", "A1", 1)],
+     ("rbm_needing_x", "A1", 1), ("invariant_float32_cache", "A1", 1)],
 )
 def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     """The projection of a state with fast updates has them too: local energies and whole
     Metropolis chains agree with full re-evaluation of Σ_g χ(g) ψ(g·x) (real and complex sums)."""
     lat = pl.lattices.square(3)
+    tol = 1e-10
     if base_kind == "invariant":
         base = pl.states.TranslationInvariantRBM(lat, alpha=2, init_scale=1.0)
+    elif base_kind == "invariant_float32_cache":
+        base = pl.states.TranslationInvariantRBM(lat, alpha=2, init_scale=1.0, cache_dtype=jnp.float32)
+        tol = _float32_bound(2 * 2 * 9 * 8, 1.0)  # 2 filters x 9 translations x 8 point-group x 2 flip images
     elif base_kind == "rbm":
         base = RBM(alpha=1, complex_params=True, init_scale=0.3)
     else:
@@ -421,7 +480,7 @@ def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     uses_old_values = fast_updates_of(bind_amplitude(model, variables)).update_at is not None
     assert uses_old_values == (base_kind != "rbm_needing_x")
     _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, total_sz=0.5), ("random", "sequential"), 4, 5,
-                                1e-10)
+                                tol)
 
 
 def test_symmetrized_without_base_fast_path_takes_generic_path():

@@ -30,7 +30,7 @@ import flax.linen as nn
 from psiloom.lattices import Lattice
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates
-from psiloom.states.rbm import rbm_fast_updates, sum_log_two_cosh
+from psiloom.states.rbm import rbm_fast_updates, resolve_cache_dtype, sum_log_two_cosh
 from psiloom.symmetry import SymmetryGroup, translations
 
 __all__ = ["TranslationInvariantRBM"]
@@ -51,6 +51,9 @@ class TranslationInvariantRBM(TrialState):
             their square and stochastic-reconfiguration steps (∝ 1/weight) become erratic, so
             the default (0.4, i.e. 0.1 for the 16 translations of a 4×4 lattice) is larger
             than a dense RBM's.
+        param_dtype: parameter dtype (default float64 with x64 enabled, else float32).
+        cache_dtype: precision of the fast-update tables and caches (``float32``, ``float64``
+            or ``None`` for the parameters'); see :mod:`psiloom.states.rbm`, "Cache precision".
     """
 
     symmetry: Any
@@ -60,6 +63,7 @@ class TranslationInvariantRBM(TrialState):
     hidden_bias: bool = True
     init_scale: float = 0.4
     param_dtype: Any = None
+    cache_dtype: Any = None
 
     def _group(self) -> SymmetryGroup:
         if isinstance(self.symmetry, SymmetryGroup):
@@ -77,6 +81,7 @@ class TranslationInvariantRBM(TrialState):
         if n != group.n_sites:
             raise ValueError(f"configurations have {n} sites, the group acts on {group.n_sites}")
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
+        resolve_cache_dtype(self.cache_dtype, dtype)  # a bad option fails here, not at the first sweep
         init = nn.initializers.normal(self.init_scale / np.sqrt(len(group)))
         filters = self.param("filters", init, (n, int(self.alpha)), dtype)
         tied = self._tied_kernel(filters, group)  # (N, G, α)
@@ -108,4 +113,4 @@ class TranslationInvariantRBM(TrialState):
             hidden = jnp.broadcast_to(params["hidden_bias"], (n_group, alpha)).reshape(-1)
         if "visible_bias" in params:
             visible = jnp.full((n,), params["visible_bias"])
-        return rbm_fast_updates(tied.reshape(n, n_group * alpha), hidden, visible)
+        return rbm_fast_updates(tied.reshape(n, n_group * alpha), hidden, visible, cache_dtype=self.cache_dtype)
