@@ -294,7 +294,8 @@ FULL = [
     # tried: 1000 steps, 2048 samples from step 600 and local energies clipped at 5 MAD gave
     # 2.61e-3 +- 0.23e-3 (energy variance still jumping between 0.02 and 0.22 late): no better
     # shift held at 1e-2 (was 1e-2 -> 1e-3 over 100 steps, 1.99e-3 +- 0.16e-3): 1.69e-3 +- 0.19e-3
-    # in 18 min, machine otherwise idle, Neel starts in the evaluation.
+    # in 18 min, machine otherwise idle, Neel starts in the evaluation. Seed 1 (to check it was not
+    # luck): 1.62e-3 +- 0.11e-3 in 18 min.
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, state="symmetrized", complex_params=True,
          sign_rule=True, n_samples=1024, n_chains=16, steps=800, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
          shift=(1e-2, 1e-2), eval_samples=32768, couplings={"J2": 0.5},

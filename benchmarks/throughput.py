@@ -9,7 +9,8 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
    (``random``: an independent bond per chain; ``sequential``: the bonds in turn, the same in
    every chain, so the RBM's tables need no per-chain gather). Target ≥ 10×, judged on the
    default (float64) cache; ``ratio_float32_cache`` reports the opt-in float32 cache as well.
-2. Local energies of the same system: fast per-connection updates vs full re-evaluation.
+2. Local energies of the same system: fast per-connection updates vs full re-evaluation (and
+   with the float32 cache, ``ratio_float32_cache``, with its largest relative deviation).
 3. SR solve with parameters P ≥ 8 × samples n: sample-space solve (n×n system) vs dense
    parameter-space Cholesky (P×P), both through ``stochastic_reconfiguration`` on the same
    fixed Jacobian X (so only the linear algebra is timed). Target ≥ 5×.
@@ -136,26 +137,30 @@ def local_energy(n_samples: int, repeat: int) -> dict:
         model, variables, space = _rbm(L)
         hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
         x = space.random(jax.random.PRNGKey(3), n_samples)
+        model32 = RBM(alpha=ALPHA, init_scale=model.init_scale, cache_dtype=jnp.float32)  # same parameters
         times, values = {}, {}
-        for fast in (True, False):
-            fn = jax.jit(lambda v, x, fast=fast: hamiltonian.local_energy(bind_amplitude(model, v, fast=fast), x))
-            times[fast] = best_time(fn, variables, x, repeat=repeat, label=f"eloc{fast}")
-            values[fast] = np.asarray(fn(variables, x))
-            progress(f"local energy fast={fast}: {times[fast] * 1e3:.2f} ms for {n_samples} samples")
-        agreement = float(np.max(np.abs(values[True] - values[False])) / np.max(np.abs(values[False])))
+        for path, m, fast in ((True, model, True), (False, model, False), ("float32", model32, True)):
+            fn = jax.jit(lambda v, x, m=m, fast=fast: hamiltonian.local_energy(bind_amplitude(m, v, fast=fast), x))
+            times[path] = best_time(fn, variables, x, repeat=repeat, label=f"eloc{path}")
+            values[path] = np.asarray(fn(variables, x))
+            progress(f"local energy fast={path}: {times[path] * 1e3:.2f} ms for {n_samples} samples")
+        scale = np.max(np.abs(values[False]))
+        agreement = float(np.max(np.abs(values[True] - values[False])) / scale)
+        agreement32 = float(np.max(np.abs(values["float32"] - values[False])) / scale)
     return {
         "benchmark": "throughput",
         "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
         "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "n_samples": n_samples,
                    "n_connections": hamiltonian.n_connections,
                    "baseline": "full re-evaluation of log psi on every connected configuration",
-                   "max_rel_difference": agreement},
+                   "max_rel_difference": agreement, "max_rel_difference_float32_cache": agreement32},
         "metric": "local_energy_seconds",
         "value": times[True],
         "unit": "s/batch",
         "baseline": times[False],
         "ratio": times[False] / times[True],
         **_cpu_fields("elocTrue", "elocFalse"),
+        "ratio_float32_cache": times[False] / times["float32"],  # opt-in float32 cache (see the sweep)
         "seconds": timer.seconds,
         "n_params": pl.states.count_real_parameters(variables),
     }
