@@ -82,8 +82,8 @@ def _cpu_fields(measured: str, baseline: str) -> dict:
             "cpu_ratio": CPU_TIMES[baseline] / CPU_TIMES[measured]}
 
 
-def _rbm(n_sites: int, key: int = 0, scale: float = 0.1, cache_dtype=None):
-    model = RBM(alpha=ALPHA, init_scale=scale, cache_dtype=cache_dtype)
+def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
+    model = RBM(alpha=ALPHA, init_scale=scale)
     space = pl.spaces.SpinSpace(n_sites, total_sz=0)
     variables = model.init(jax.random.PRNGKey(key), space.random(jax.random.PRNGKey(key), 1))
     return model, variables, space
