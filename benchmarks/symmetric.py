@@ -119,6 +119,8 @@ def main() -> None:
     else:
         plans = {"4x4": dict(size=4, alpha=4, n_steps=600, n_samples=1024, eval_samples=65536, spin_flip=True,
                              learning_rate=0.05),
+                 # 6x6 measured alone: float32 caches 4.0e-4 +- 0.6e-4 in 288 s; float64 caches (same
+                 # code, another run sharing the machine) 3.1e-4 +- 0.6e-4 in 682 s
                  "6x6": dict(size=6, alpha=8, n_steps=600, n_samples=1024, eval_samples=32768, spin_flip=True,
                              learning_rate=0.05, cache_float32=True)}
     for plan in plans.values():
