@@ -93,7 +93,7 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
     with Timer() as timer:
         lattice = pl.lattices.chain(L)
         model, variables, space = _rbm(L)
-        model32 = RBM(alpha=ALPHA, init_scale=model.init_scale, cache_dtype=jnp.float32)  # same parameters
+        model32 = model.clone(cache_dtype=jnp.float32)  # same parameters, float32 cache
         sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
         times = {}
         for path, m, fast in ((True, model, True), (False, model, False), ("float32", model32, True)):
@@ -137,7 +137,7 @@ def local_energy(n_samples: int, repeat: int) -> dict:
         model, variables, space = _rbm(L)
         hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
         x = space.random(jax.random.PRNGKey(3), n_samples)
-        model32 = RBM(alpha=ALPHA, init_scale=model.init_scale, cache_dtype=jnp.float32)  # same parameters
+        model32 = model.clone(cache_dtype=jnp.float32)  # same parameters, float32 cache
         times, values = {}, {}
         for path, m, fast in ((True, model, True), (False, model, False), ("float32", model32, True)):
             fn = jax.jit(lambda v, x, m=m, fast=fast: hamiltonian.local_energy(bind_amplitude(m, v, fast=fast), x))

@@ -176,6 +176,18 @@ def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact(cache_dtype, rto
     assert cache.plus.dtype == (cache_dtype or jnp.float64)
 
 
+_MODELS_FLOAT32_CACHE = {
+    flag: (RBM(alpha=2, complex_params=flag, init_scale=0.4, cache_dtype=jnp.float32), _MODELS[flag][1])
+    for flag in (False, True)
+}
+
+
+@functools.partial(jax.jit, static_argnums=0)
+def _fast_float32(complex_params, variables, x, sites, new_values):
+    fast = fast_updates_of(bind_amplitude(_MODELS_FLOAT32_CACHE[complex_params][0], variables))
+    return fast.update(x, fast.init(x), sites, new_values)
+
+
 @pytest.mark.parametrize("complex_params", [False, True])
 @settings(max_examples=15)
 @given(change=_changes())
@@ -193,18 +205,6 @@ def test_float32_cache_ratio_equals_rbm_formula(complex_params, change):
     diff = np.abs(_wrap_phase(np.asarray(delta) - expected))
     m = variables["params"]["kernel"].shape[1]
     assert np.all(diff <= _float32_bound(m, expected)), (diff, _float32_bound(m, expected))
-
-
-_MODELS_FLOAT32_CACHE = {
-    flag: (RBM(alpha=2, complex_params=flag, init_scale=0.4, cache_dtype=jnp.float32), _MODELS[flag][1])
-    for flag in (False, True)
-}
-
-
-@functools.partial(jax.jit, static_argnums=0)
-def _fast_float32(complex_params, variables, x, sites, new_values):
-    fast = fast_updates_of(bind_amplitude(_MODELS_FLOAT32_CACHE[complex_params][0], variables))
-    return fast.update(x, fast.init(x), sites, new_values)
 
 
 @pytest.mark.parametrize("bad", ["float16", jnp.int32, "complex64", 3, "nonsense"])
