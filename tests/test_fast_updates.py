@@ -251,28 +251,33 @@ def test_generic_states_take_the_generic_path():
 # ----------------------------------------------------------------------------- Metropolis
 @pytest.mark.parametrize("constrained, complex_params, order",
                          [(False, False, "random"), (True, True, "random"), (True, False, "sequential"),
-                          (False, True, "sequential")])
+                          (False, True, "sequential"), (True, False, "random"), (False, False, "sequential")])
 def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params, order):
+    """The JAX fast path, the compiled sweeps (real parameters) and full re-evaluation give the
+    same chain from the same key."""
     lat = pl.lattices.chain(12)
     space = pl.spaces.SpinSpace(12, total_sz=0 if constrained else None)
     model = RBM(alpha=1, complex_params=complex_params, init_scale=0.3)
     variables = model.init(jax.random.PRNGKey(2), space.random(jax.random.PRNGKey(0), 1))
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None,
-                                            order=order)
     runs = {}
-    for fast in (True, False):
+    for path, fast, compiled in (("compiled", True, True), ("jax", True, False), ("generic", False, False)):
+        sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None,
+                                                order=order, compiled_sweeps=compiled)
         amp = bind_amplitude(model, variables, fast=fast)
         state = sampler.init(jax.random.PRNGKey(7), amp)
         assert (state.cache is None) == (not fast)
-        runs[fast] = jax.jit(lambda s, k: sampler.sample(k, s, amp, 10))(state, jax.random.PRNGKey(8))
-    (xs_f, logs_f, end_f, acc_f), (xs_g, logs_g, end_g, acc_g) = runs[True], runs[False]
+        runs[path] = jax.jit(lambda s, k: sampler.sample(k, s, amp, 10))(state, jax.random.PRNGKey(8))
+    assert (fast_updates_of(bind_amplitude(model, variables)).sweeps is None) == complex_params
+    xs_g, logs_g, _, acc_g = runs["generic"]
     assert 0.05 < float(acc_g) < 0.95  # a chain that actually moves and rejects
-    np.testing.assert_array_equal(np.asarray(xs_f), np.asarray(xs_g))
-    assert float(acc_f) == float(acc_g)
-    diff = _wrap_phase(np.asarray(logs_f) - np.asarray(logs_g))
-    assert np.max(np.abs(diff)) < 1e-11
-    # after many accepted updates the carried cache still equals a fresh one
-    _assert_cache_of(end_f.cache, _fresh_cache(model, variables, end_f.x), rtol=1e-10)
+    for path in ("compiled", "jax"):
+        xs_f, logs_f, end_f, acc_f = runs[path]
+        np.testing.assert_array_equal(np.asarray(xs_f), np.asarray(xs_g))
+        assert float(acc_f) == float(acc_g)
+        diff = _wrap_phase(np.asarray(logs_f) - np.asarray(logs_g))
+        assert np.max(np.abs(diff)) < 1e-11
+        # after many accepted updates the carried cache still equals a fresh one
+        _assert_cache_of(end_f.cache, _fresh_cache(model, variables, end_f.x), rtol=1e-10)
 
 
 # ----------------------------------------------------------------------------- local energies

@@ -32,7 +32,7 @@ from psiloom.sampling import (
     single_flip,
 )
 from psiloom.spaces import SpinSpace, codes
-from psiloom.states import RBM
+from psiloom.states import RBM, bind_amplitude, fast_updates_of
 
 seeds = st.integers(0, 2**31 - 1)
 
@@ -111,7 +111,9 @@ def test_bond_exchange_rejects_sites_outside_configuration():
 
 
 @functools.lru_cache(maxsize=None)
-def rbm_state(n_sites: int, seed: int, scale: float):
+def rbm_state(n_sites: int, seed: int, scale: float, bound: bool = False):
+    """log ψ of an RBM with random parameters: a plain function (generic path), or with
+    ``bound`` the bound state (fast updates and, on the CPU, compiled sweeps)."""
     model = RBM(alpha=1.0)
 
     @jax.jit
@@ -121,6 +123,8 @@ def rbm_state(n_sites: int, seed: int, scale: float):
         return jax.tree_util.tree_map(lambda a: scale * jax.random.normal(k2, a.shape), v)
 
     variables = make(jax.random.PRNGKey(seed))
+    if bound:
+        return bind_amplitude(model, variables)
     return jax.jit(lambda x: model.apply(variables, x))
 
 
@@ -160,11 +164,15 @@ def goodness_of_fit(samples: np.ndarray, space: SpinSpace, probabilities: np.nda
         ("pair-exchange", 8, 1, "pairs", "random"),
         ("sequential-flip", 8, None, None, "sequential"),
         ("sequential-exchange", 10, 0, "bonds", "sequential"),
+        ("compiled-flip", 8, None, None, "random"),
+        ("compiled-sequential-exchange", 10, 0, "bonds", "sequential"),
     ],
 )
 def test_histogram_converges_to_psi_squared(name, n_sites, total_sz, move, order):
     space = SpinSpace(n_sites, total_sz=total_sz)
-    log_amp = rbm_state(n_sites, 3, 0.25)
+    log_amp = rbm_state(n_sites, 3, 0.25, bound=name.startswith("compiled"))
+    if name.startswith("compiled"):  # the compiled sweep kernel, checked against |ψ|² itself
+        assert fast_updates_of(log_amp).sweeps is not None
     mv = {None: None, "bonds": bond_exchange(lattices.chain(n_sites).bonds), "pairs": pair_exchange}[move]
     sampler = MetropolisSampler(space, n_chains=6000, move=mv, burn_in=30, order=order)
     samples = final_configurations(sampler, log_amp, seed=7)

@@ -23,7 +23,13 @@ order, the same in all chains (:class:`~psiloom.sampling.moves.OrderedMove`, a s
 scan). Both leave |ψ|² invariant; the sequential order is the faster one with fast updates,
 because every chain changes the same sites and the trial state's tables need no per-chain
 gather (about 2× on a 100-site RBM, ``benchmarks/throughput.py``); on the fast path it reads
-and writes only the K changed sites of ``x`` instead of building every ``x'``. A sequential sweep continues
+and writes only the K changed sites of ``x`` instead of building every ``x'``.
+
+Compiled sweeps: a trial state that offers a compiled sweep kernel (the real RBM on the CPU,
+:mod:`psiloom.states.rbm_sweep`) runs all sweeps of a :meth:`MetropolisSampler.sample` call
+in it, in one host call, when the move is single flips or a bond exchange (either order): the
+proposals and uniforms are drawn in JAX exactly as on the JAX path and passed in, so both give
+the same chains (``compiled_sweeps=False`` keeps the JAX loop). A sequential sweep continues
 the cycle across sweeps of one :meth:`MetropolisSampler.sample` call and restarts it at
 position 0 in every call.
 
@@ -44,7 +50,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom.sampling.moves import Move, OrderedMove, choose_move, ordered_version
+from psiloom.sampling.moves import Move, OrderedMove, choose_move, draw_entries, entry_table, ordered_version
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -113,7 +119,7 @@ def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
         accept = lu < 2.0 * jnp.real(delta)
         x = st.x.at[:, sites].set(jnp.where(accept[:, None], new, old))
         st = _after(st, accept, x, st.log_amp + delta, cache_new)
-        return (st, acc + jnp.mean(accept.astype(jnp.float32))), None
+        return (st, acc + jnp.sum(accept, dtype=jnp.int32)), None
 
     return body
 
@@ -163,10 +169,14 @@ class MetropolisSampler:
         order: ``"random"`` (independent proposals per chain) or ``"sequential"`` (a systematic
             scan over the sites or bonds, the same in every chain; needs single flips or a bond
             exchange, or an :class:`~psiloom.sampling.moves.OrderedMove`). See the module docstring.
+        compiled_sweeps: run the sweeps of :meth:`sample` through the trial state's compiled sweep
+            kernel where it offers one (the RBM with real parameters on the CPU:
+            :mod:`psiloom.states.rbm_sweep`) and the move is single flips or a bond exchange (in
+            either order); ``False`` keeps every proposal in JAX. Both give the same chains.
     """
 
     def __init__(self, space: SpinSpace, n_chains: int = 16, move: Move | None = None, bonds=None,
-                 sweep: int | None = None, burn_in: int = 0, order: str = "random"):
+                 sweep: int | None = None, burn_in: int = 0, order: str = "random", compiled_sweeps: bool = True):
         self.space = space
         self.n_chains = _positive_int("n_chains", n_chains)
         self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
@@ -174,11 +184,16 @@ class MetropolisSampler:
         if order not in ("random", "sequential"):
             raise ValueError(f"order must be 'random' or 'sequential', got {order!r}")
         self.order = order
+        if not isinstance(compiled_sweeps, bool):
+            raise ValueError(f"compiled_sweeps must be True or False, got {compiled_sweeps!r}")
+        self.compiled_sweeps = compiled_sweeps
         if isinstance(move, OrderedMove) and order == "random":
             move = move.random
         move = choose_move(space, move, bonds)
         self.ordered = ordered_version(move, space.n_sites) if order == "sequential" else None
         self.move = move.random if isinstance(move, OrderedMove) else move
+        # proposals a compiled sweep kernel can draw itself: a fixed table of flips or exchanges
+        self._entry_table = entry_table(self.ordered if self.ordered is not None else self.move, space.n_sites)
         self._step = metropolis_step(self.move)
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
@@ -205,7 +220,7 @@ class MetropolisSampler:
         return self._step(key, state, log_amplitude, fast)
 
     def _sweep(self, key, state, log_amplitude, fast=None, start=0):
-        """``self.sweep`` proposals per chain. The move keys and acceptance uniforms of the whole
+        """``self.sweep`` proposals per chain: ``(state, number of accepted proposals)``. The move keys and acceptance uniforms of the whole
         sweep are drawn before the loop (two random-number calls instead of two per proposal,
         which matters on CPU once proposals are cheap). A sequential sweep makes proposals
         ``start, start + 1, …`` of the ordered move."""
@@ -223,12 +238,39 @@ class MetropolisSampler:
             k, lu = draw
             x_new, sites = move(k, st.x)
             st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
-            return (st, acc + jnp.mean(info.accepted.astype(jnp.float32))), None
+            return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
 
         if self.ordered is not None and fast is not None and state.cache is not None:
             body, draws = _ordered_fast_body(self.ordered, fast), self.ordered.sites_at(draws)
-        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.float32)), (draws, log_u))
-        return state, acc / self.sweep
+        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.int32)), (draws, log_u))
+        return state, acc
+
+    def _compiled_sample(self, k_burn, k_run, state: ChainState, fast: FastUpdates, n_per_chain: int):
+        """:meth:`sample` through the trial state's compiled sweeps (one call for all sweeps), with
+        the random numbers of the JAX path: the same keys per sweep, the same proposals and
+        uniforms (see :meth:`_sweep`)."""
+        keys = jax.random.split(k_run, n_per_chain)
+        if self.burn_in:
+            keys = jnp.concatenate([jax.random.split(k_burn, self.burn_in), keys])
+        n_sweeps, n_chains = self.burn_in + n_per_chain, state.x.shape[0]
+        shape, dtype = (self.sweep, n_chains), _uniform_dtype(state)
+        k_moves, k_acc = jnp.moveaxis(jax.vmap(jax.random.split)(keys), 1, 0)
+        log_u = jax.vmap(lambda k: jnp.log(jax.random.uniform(k, shape, dtype=dtype)))(k_acc)
+        table, kind = self._entry_table
+        if self.ordered is not None:
+            positions = (jnp.arange(n_sweeps, dtype=jnp.int32)[:, None] * self.sweep
+                         + jnp.arange(self.sweep, dtype=jnp.int32))[:, :, None]
+        else:
+            draw = jax.vmap(lambda k: draw_entries(k, n_chains, len(table)))
+            positions = jax.vmap(lambda k: draw(jax.random.split(k, self.sweep)))(k_moves)
+        xs, logs, cache, counts = fast.sweeps(state.x, state.cache, state.log_amp, table, positions, log_u,
+                                              1 if kind == "flip" else 2)
+        state = ChainState(xs[-1], logs[-1], cache)
+        return xs[self.burn_in:], logs[self.burn_in:], state, self._acceptance(counts[self.burn_in:], n_chains)
+
+    def _acceptance(self, counts, n_chains: int):
+        """Fraction of accepted proposals (float32) from the accepted counts of the stored sweeps."""
+        return jnp.sum(counts).astype(jnp.float32) / jnp.float32(counts.shape[0] * self.sweep * n_chains)
 
     def sample(self, key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
         """Burn in, then store ``n_per_chain`` samples per chain, one sweep apart.
@@ -242,6 +284,9 @@ class MetropolisSampler:
         fast = fast_updates_of(log_amplitude)
         state = self._with_cache(state, fast, recompute=False)
         k_burn, k_run = jax.random.split(key)
+        if (self.compiled_sweeps and self._entry_table is not None and fast is not None
+                and fast.sweeps is not None and state.cache is not None):
+            return self._compiled_sample(k_burn, k_run, state, fast, n_per_chain)
         if self.burn_in:
             def burn(st, draw):
                 k, i = draw
@@ -256,4 +301,4 @@ class MetropolisSampler:
 
         state, (xs, logs, acc) = jax.lax.scan(collect, state, (jax.random.split(k_run, n_per_chain),
                                                                jnp.arange(n_per_chain)))
-        return xs, logs, state, jnp.mean(acc)
+        return xs, logs, state, self._acceptance(acc, state.x.shape[0])

@@ -19,10 +19,16 @@ import numpy as np
 Move = Callable[[jax.Array, jax.Array], tuple[jax.Array, jax.Array]]
 
 
+def draw_entries(key: jax.Array, n_chains: int, n_entries: int) -> jax.Array:
+    """The entry (site or bond index) each chain proposes in :func:`single_flip` and
+    :func:`bond_exchange` moves: ``(n_chains,)`` int, uniform over ``range(n_entries)``."""
+    return jax.random.randint(key, (n_chains,), 0, n_entries)
+
+
 def single_flip(key: jax.Array, x: jax.Array):
     """Flip one uniformly chosen spin per chain (changes the magnetisation by ±1)."""
     c, n = x.shape
-    site = jax.random.randint(key, (c,), 0, n)
+    site = draw_entries(key, c, n)
     rows = jnp.arange(c)
     return x.at[rows, site].multiply(-1), site[:, None].astype(jnp.int32)
 
@@ -44,7 +50,7 @@ def bond_exchange(bonds) -> Move:
     def propose(key: jax.Array, x: jax.Array):
         if int(bonds.max()) >= x.shape[1]:
             raise ValueError(f"bond site {int(bonds.max())} outside the {x.shape[1]}-site configuration")
-        k = jax.random.randint(key, (x.shape[0],), 0, len(bonds))
+        k = draw_entries(key, x.shape[0], len(bonds))
         i, j = table[k, 0], table[k, 1]
         return _swap(x, i, j), jnp.stack([i, j], axis=1)
 
@@ -210,6 +216,20 @@ def ordered_version(move: Move, n_sites: int) -> OrderedMove:
         f"order='sequential' needs single_flip or a bond_exchange move (or an OrderedMove), got {move!r}; "
         "use order='random' for other moves"
     )
+
+
+def entry_table(move: Move, n_sites: int):
+    """``(table, kind)`` of a move whose proposals pick one entry of a fixed table uniformly per
+    chain (by :func:`draw_entries`) or in a fixed order: ``table`` (P, K) int sites, ``kind``
+    ``"flip"`` (K = 1) or ``"exchange"`` (K = 2); ``None`` for other moves (e.g.
+    :func:`pair_exchange`, whose choice depends on ``x``, or a mixture)."""
+    if isinstance(move, OrderedMove):
+        return move.table, move.kind
+    if move is single_flip:
+        return np.arange(n_sites, dtype=np.int32)[:, None], "flip"
+    if getattr(move, "bonds", None) is not None:
+        return move.bonds, "exchange"
+    return None
 
 
 def choose_move(space, move: Move | None = None, bonds=None) -> Move:

@@ -31,6 +31,19 @@ without holding ``x`` itself (e.g. :class:`~psiloom.states.Symmetrized`, whose i
         the same as ``update`` with ``old_values`` (n, K) = the values of ``x`` at ``sites``;
         ``None`` (the default) when the state needs ``x`` itself.
 
+A fourth, optional function runs whole Metropolis sweeps at once (a compiled kernel, e.g.
+:mod:`psiloom.states.rbm_sweep`):
+
+    sweeps(x, cache, log_amp, table, positions, log_u, kind) -> (xs, log_amps, cache, accepted)
+        ``table`` (P, K): a NumPy array of the sites of the P possible proposals (K = ``kind`` =
+        1 for flips, 2 for exchanges of the two sites' values); ``positions`` (n_sweeps, S, n) or
+        (n_sweeps, S, 1): the entries proposed in turn (mod P) in every chain; ``log_u``
+        (n_sweeps, S, n): log of the acceptance uniforms; ``xs`` (n_sweeps, n, n_sites) and
+        ``log_amps`` (n_sweeps, n): the chains after every sweep; ``cache``: that of ``xs[-1]``;
+        ``accepted`` (n_sweeps,) int: the accepted proposals per sweep. The chains must be those
+        that ``update`` with the Metropolis rule produces from the same numbers.
+        ``None`` (the default) when the state offers no such kernel.
+
 Consumers never call the method themselves. They receive ``log ψ`` as a bound trial state
 (:class:`~psiloom.states.BoundState`, callable as ``x -> log ψ(x)``, which the training loop
 passes) and ask :func:`fast_updates_of` for the fast functions:
@@ -57,6 +70,7 @@ class FastUpdates(NamedTuple):
     init: Callable[[jax.Array], Any]
     update: Callable[[jax.Array, Any, jax.Array, jax.Array], tuple[jax.Array, Any]]
     update_at: Callable[[jax.Array, Any, jax.Array, jax.Array], tuple[jax.Array, Any]] | None = None
+    sweeps: Callable[..., tuple[jax.Array, jax.Array, Any, jax.Array]] | None = None
 
 
 def supports_fast_updates(model) -> bool:

@@ -44,6 +44,10 @@ statistical errors of 1e-4 or more. The cache is rebuilt from θ in the paramete
 whenever ``init`` runs (every optimisation step), so the rounding of a chain's successive
 updates accumulates only over one step's sweeps. In float32 the tables overflow for
 ``|W| > 44``. It is an opt-in: the default keeps the parameters' precision.
+
+Compiled sweeps. For real parameters on the CPU the fast updates also carry a compiled
+systematic-scan sweep (:mod:`psiloom.states.rbm_sweep`, the same update in one Numba loop
+nest), which :class:`~psiloom.sampling.MetropolisSampler` uses for ``order="sequential"``.
 """
 
 from __future__ import annotations
@@ -55,6 +59,7 @@ import jax.numpy as jnp
 import flax.linen as nn
 
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+from psiloom.states import rbm_sweep
 from psiloom.states.fast import FastUpdates, log_product, values_at
 
 
@@ -220,4 +225,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
     def update(x, cache: RBMCache, sites, new_values):
         return update_at(values_at(x, sites), cache, sites, new_values)
 
-    return FastUpdates(init, update, update_at)
+    sweeps = None
+    if not jnp.iscomplexobj(kernel) and rbm_sweep.available():
+        sweeps = rbm_sweep.make_sweeps(kernel, visible_bias, rise, fall)
+    return FastUpdates(init, update, update_at, sweeps)
