@@ -49,6 +49,7 @@ FLIP, EXCHANGE = 1, 2  # proposal kinds = number of changed sites K
 
 _LOG2 = math.log(2.0)
 _LOW, _HIGH = 2.0 ** -300, 2.0 ** 300
+_CHAIN_BLOCK = 8  # chains per parallel task (they share the factor rows of each proposal)
 _TABLE_ENTRIES = 1 << 22  # per-position factor rows kept up to 2 x 4M entries (64 MiB in float64)
 
 
@@ -109,72 +110,81 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
     n_sweeps, n_steps = positions.shape[:2]
     shared = 1 if positions.shape[2] == 1 else 0  # one position per step for all chains
     accepted_per_chain = np.zeros((n_sweeps, n_chains), np.int64)
-    for c in numba.prange(n_chains):  # chains are independent: one thread per block of chains
+    n_blocks = (n_chains + _CHAIN_BLOCK - 1) // _CHAIN_BLOCK
+    # chains are independent: blocks of chains run in parallel; within a block all chains make
+    # proposal t before any makes t + 1, so a factor row is read once per block, not per chain
+    for block in numba.prange(n_blocks):
+        first = np.int64(block) * _CHAIN_BLOCK  # (a prange index is unsigned: keep arithmetic signed)
+        last = min(first + _CHAIN_BLOCK, n_chains)
         ratio = np.empty(m, plus.dtype)
-        chain = np.int64(c)  # (a prange index is unsigned: keep index arithmetic signed)
-        column = (1 - shared) * chain  # this chain's column of positions
-        pc = plus[c]
-        qc = minus[c]
-        xc = x[c]
+        # per-block accumulators (no cache line shared with another thread's chains)
+        block_log_amp = log_amp[first:last].copy()
+        block_accepted = np.zeros(last - first, np.int64)
         for s in range(n_sweeps):
-            n_accepted = 0
+            block_accepted[:] = 0
             for t in range(n_steps):
-                k = positions[s, t, column] % n_positions
-                i = table[k, 0]
-                j = table[k, kind - 1]
-                xi = xc[i]
-                xj = xc[j]
-                if kind == EXCHANGE and xi == xj:  # null move: Δ = 0, always accepted
-                    n_accepted += 1
-                    continue
-                if precomputed:
-                    row = k
-                else:
-                    row = chain
-                    _fill_factors(fwd_p, fwd_q, row, i, j, rise, fall, kind)
-                bias_fwd = -2.0 * bias[i] if kind == FLIP else 2.0 * (bias[j] - bias[i])
-                if xi > 0:
-                    ep = fwd_p[row]
-                    em = fwd_q[row]
-                    delta = bias_fwd
-                else:
-                    ep = fwd_q[row]
-                    em = fwd_p[row]
-                    delta = -bias_fwd
-                for u in range(m):  # 2 r_j = P_j + Q_j (a vectorised loop)
-                    ratio[u] = pc[u] * ep[u] + qc[u] * em[u]
-                prod = 1.0
-                exponent = 0
-                for b in range(0, n_full, group):
-                    a0 = a1 = a2 = a3 = 1.0  # float64 accumulators, independent for pipelining
-                    for u in range(b, b + group, 4):
-                        a0 *= ratio[u]
-                        a1 *= ratio[u + 1]
-                        a2 *= ratio[u + 2]
-                        a3 *= ratio[u + 3]
-                    prod *= (a0 * a1) * (a2 * a3)
-                    if not _LOW < prod < _HIGH:  # renormalise (exact: a power of two)
-                        prod, e = math.frexp(prod)
-                        exponent += e
-                for u in range(n_full, m):
-                    prod, e = math.frexp(prod * ratio[u])
-                    exponent += e
-                delta += math.log(prod) + (exponent - m) * _LOG2  # the (P + Q) / 2 halves: -m log 2
-                if log_u[s, t, c] < 2.0 * delta:
-                    n_accepted += 1
-                    for u in range(m):  # (p, q) <- (2P, 2Q) / (P + Q)
-                        inverse = 2.0 / ratio[u]
-                        pc[u] = pc[u] * ep[u] * inverse
-                        qc[u] = qc[u] * em[u] * inverse
-                    log_amp[c] += delta
-                    if kind == FLIP:
-                        xc[i] = -xi
+                for chain in range(first, last):
+                    k = positions[s, t, (1 - shared) * chain] % n_positions
+                    i = table[k, 0]
+                    j = table[k, kind - 1]
+                    xc = x[chain]
+                    xi = xc[i]
+                    xj = xc[j]
+                    if kind == EXCHANGE and xi == xj:  # null move: Δ = 0, always accepted
+                        block_accepted[chain - first] += 1
+                        continue
+                    if precomputed:
+                        row = k
                     else:
-                        xc[i] = xj
-                        xc[j] = xi
-            xs[s, c] = xc
-            log_amps[s, c] = log_amp[c]
-            accepted_per_chain[s, c] = n_accepted
+                        row = chain
+                        _fill_factors(fwd_p, fwd_q, row, i, j, rise, fall, kind)
+                    bias_fwd = -2.0 * bias[i] if kind == FLIP else 2.0 * (bias[j] - bias[i])
+                    if xi > 0:
+                        ep = fwd_p[row]
+                        em = fwd_q[row]
+                        delta = bias_fwd
+                    else:
+                        ep = fwd_q[row]
+                        em = fwd_p[row]
+                        delta = -bias_fwd
+                    pc = plus[chain]
+                    qc = minus[chain]
+                    for u in range(m):  # 2 r_j = P_j + Q_j (a vectorised loop)
+                        ratio[u] = pc[u] * ep[u] + qc[u] * em[u]
+                    prod = 1.0
+                    exponent = 0
+                    for b in range(0, n_full, group):
+                        a0 = a1 = a2 = a3 = 1.0  # float64 accumulators, independent for pipelining
+                        for u in range(b, b + group, 4):
+                            a0 *= ratio[u]
+                            a1 *= ratio[u + 1]
+                            a2 *= ratio[u + 2]
+                            a3 *= ratio[u + 3]
+                        prod *= (a0 * a1) * (a2 * a3)
+                        if not _LOW < prod < _HIGH:  # renormalise (exact: a power of two)
+                            prod, e = math.frexp(prod)
+                            exponent += e
+                    for u in range(n_full, m):
+                        prod, e = math.frexp(prod * ratio[u])
+                        exponent += e
+                    delta += math.log(prod) + (exponent - m) * _LOG2  # the (P + Q) / 2 halves: -m log 2
+                    if log_u[s, t, chain] < 2.0 * delta:
+                        block_accepted[chain - first] += 1
+                        for u in range(m):  # (p, q) <- (2P, 2Q) / (P + Q)
+                            inverse = 2.0 / ratio[u]
+                            pc[u] = pc[u] * ep[u] * inverse
+                            qc[u] = qc[u] * em[u] * inverse
+                        block_log_amp[chain - first] += delta
+                        if kind == FLIP:
+                            xc[i] = -xi
+                        else:
+                            xc[i] = xj
+                            xc[j] = xi
+            for chain in range(first, last):
+                xs[s, chain] = x[chain]
+                log_amps[s, chain] = block_log_amp[chain - first]
+                accepted_per_chain[s, chain] = block_accepted[chain - first]
+        log_amp[first:last] = block_log_amp
     for s in range(n_sweeps):
         accepted[s] = accepted_per_chain[s].sum()
 
