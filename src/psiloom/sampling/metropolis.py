@@ -220,8 +220,8 @@ class MetropolisSampler:
         return self._step(key, state, log_amplitude, fast)
 
     def _sweep(self, key, state, log_amplitude, fast=None, start=0):
-        """``self.sweep`` proposals per chain: ``(state, number of accepted proposals)``. The move keys and acceptance uniforms of the whole
-        sweep are drawn before the loop (two random-number calls instead of two per proposal,
+        """``self.sweep`` proposals per chain: ``(state, number of accepted proposals)``. The move
+        keys and acceptance uniforms of the whole sweep are drawn before the loop (two random-number calls instead of two per proposal,
         which matters on CPU once proposals are cheap). A sequential sweep makes proposals
         ``start, start + 1, …`` of the ordered move."""
         k_moves, k_acc = jax.random.split(key)

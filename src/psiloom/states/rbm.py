@@ -45,9 +45,9 @@ whenever ``init`` runs (every optimisation step), so the rounding of a chain's s
 updates accumulates only over one step's sweeps. In float32 the tables overflow for
 ``|W| > 44``. It is an opt-in: the default keeps the parameters' precision.
 
-Compiled sweeps. For real parameters on the CPU the fast updates also carry a compiled
-systematic-scan sweep (:mod:`psiloom.states.rbm_sweep`, the same update in one Numba loop
-nest), which :class:`~psiloom.sampling.MetropolisSampler` uses for ``order="sequential"``.
+Compiled sweeps. For real parameters on the CPU the fast updates also carry compiled
+Metropolis sweeps (:mod:`psiloom.states.rbm_sweep`, the same update in one Numba loop nest),
+which :class:`~psiloom.sampling.MetropolisSampler` uses for single flips and bond exchanges.
 """
 
 from __future__ import annotations

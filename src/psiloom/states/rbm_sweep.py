@@ -1,4 +1,4 @@
-"""Compiled systematic-scan Metropolis sweeps for RBM-family trial states (CPU).
+"""Compiled Metropolis sweeps for RBM-family trial states (CPU).
 
 A Metropolis sweep makes ``S`` proposals in turn in every chain; on the fast path each costs
 O(M) per chain (:mod:`psiloom.states.rbm`). Expressed in JAX, every proposal is a handful of
@@ -19,13 +19,15 @@ proposal (an exchange of two equal spins) costs nothing; and ``Σ_j log r_j`` is
 per chain and proposal — the factors are multiplied in groups whose product cannot overflow
 (``4R ≤ 32`` factors ``2 r_j``, each within ``2e^{±d_max}``, with ``4R(d_max + log 2) ≤ 400``;
 ``d_max`` bounds the ``|d_j|`` any proposal can produce) and the running product is renormalised
-by its binary exponent (``frexp``, exact) whenever it leaves ``2^{±300}``. The products are accumulated in float64 also
-for a float32 cache.
+by its binary exponent (``frexp``, exact) whenever it leaves ``2^{±300}``. The products are
+accumulated in float64 also for a float32 cache. Chains run in parallel blocks of eight; the
+chains of a block make proposal t before any makes t + 1, so the factor rows of a proposal
+(precomputed for every entry of the move's table) are read once per block.
 
-It serves the systematic scan (:class:`~psiloom.sampling.moves.OrderedMove`: the same site
-flip or bond exchange in every chain per proposal) with real parameters; the sampler falls
-back to the JAX path for everything else (complex parameters, random proposal order, a
-non-CPU backend, or Numba absent). Both give the same chain for the same random numbers to
+It serves moves that pick an entry of a fixed table (single flips, bond exchanges; random or
+sequential order, :func:`~psiloom.sampling.moves.entry_table`) with real parameters; the
+sampler falls back to the JAX path for everything else (complex parameters, moves such as
+pair exchange or mixtures, a non-CPU backend, or Numba absent). Both give the same chain for the same random numbers to
 rounding of the log-ratios (``tests/test_compiled_sweep.py``). The random numbers are drawn
 in JAX and passed in: the kernel itself is deterministic. All sweeps of one
 :meth:`~psiloom.sampling.MetropolisSampler.sample` call go to the kernel in one host call.
