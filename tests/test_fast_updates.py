@@ -251,7 +251,7 @@ def test_generic_states_take_the_generic_path():
 # ----------------------------------------------------------------------------- Metropolis
 @pytest.mark.parametrize("constrained, complex_params, order",
                          [(False, False, "random"), (True, True, "random"), (True, False, "sequential"),
-                          (False, True, "sequential"), (True, False, "random"), (False, False, "sequential")])
+                          (False, True, "sequential")])
 def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params, order):
     """The JAX fast path, the compiled sweeps (real parameters) and full re-evaluation give the
     same chain from the same key."""

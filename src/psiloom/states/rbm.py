@@ -30,7 +30,11 @@ leaves [0, 2]. (A cache relative to the configuration where it was built, ``P �
 overflows a block product once a chain reaches much larger hidden fields than there; see
 ``test_long_walk_to_huge_hidden_fields_stays_finite_and_exact``.) For real parameters every
 term is positive: the ratio carries no cancellation at any ``|θ|``. Spins must be ±1 and the
-sites of one change distinct; the tables overflow only for ``|W| > 354`` (float64).
+sites of one change distinct; the tables overflow only for ``|W| > 354`` (float64). The smaller
+member of the pair, ~2e^{−2|θ|}, underflows once ``|θ| > 354`` (float64; ~44 in float32), and a
+later change of sign of θ_j then loses it: the updates are exact while every |θ_j| a chain
+visits stays below that (measured: a 10-site RBM with |W| up to 120 reached |θ| ≈ 500 and both
+fast paths went wrong by 122 in log ψ; ``init`` rebuilds the pair every step).
 
 Cache precision (``cache_dtype``). The tables and the cache may be held in float32 while the
 parameters, full evaluations and everything downstream stay in float64: the update streams the
