@@ -221,11 +221,10 @@ class MetropolisSampler:
 
     def _sweep(self, key, state, log_amplitude, fast=None, start=0):
         """``self.sweep`` proposals per chain: ``(state, number of accepted proposals)``. The move
-        keys and acceptance uniforms of the whole sweep are drawn before the loop (two random-number calls instead of two per proposal,
-        which matters on CPU once proposals are cheap). A sequential sweep makes proposals
-        ``start, start + 1, …`` of the ordered move."""
-        k_moves, k_acc = jax.random.split(key)
-        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
+        keys and acceptance uniforms of the whole sweep are drawn before the loop (two
+        random-number calls instead of two per proposal, which matters on CPU once proposals are
+        cheap). A sequential sweep makes proposals ``start, start + 1, …`` of the ordered move."""
+        k_moves, log_u = self._sweep_randomness(key, state)
         if self.ordered is not None:
             move = self.ordered
             draws = jnp.asarray(start, jnp.int32) + jnp.arange(self.sweep, dtype=jnp.int32)
@@ -245,6 +244,13 @@ class MetropolisSampler:
         (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.int32)), (draws, log_u))
         return state, acc
 
+    def _sweep_randomness(self, key, state: ChainState):
+        """The random numbers of one sweep from its key: the key of the move draws and
+        ``log u`` (sweep, n_chains) of the acceptance uniforms (both paths use this)."""
+        k_moves, k_acc = jax.random.split(key)
+        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
+        return k_moves, log_u
+
     def _compiled_sample(self, k_burn, k_run, state: ChainState, fast: FastUpdates, n_per_chain: int):
         """:meth:`sample` through the trial state's compiled sweeps (one call for all sweeps), with
         the random numbers of the JAX path: the same keys per sweep, the same proposals and
@@ -253,9 +259,7 @@ class MetropolisSampler:
         if self.burn_in:
             keys = jnp.concatenate([jax.random.split(k_burn, self.burn_in), keys])
         n_sweeps, n_chains = self.burn_in + n_per_chain, state.x.shape[0]
-        shape, dtype = (self.sweep, n_chains), _uniform_dtype(state)
-        k_moves, k_acc = jnp.moveaxis(jax.vmap(jax.random.split)(keys), 1, 0)
-        log_u = jax.vmap(lambda k: jnp.log(jax.random.uniform(k, shape, dtype=dtype)))(k_acc)
+        k_moves, log_u = jax.vmap(lambda k: self._sweep_randomness(k, state))(keys)
         table, kind = self._entry_table
         if self.ordered is not None:
             positions = (jnp.arange(n_sweeps, dtype=jnp.int32)[:, None] * self.sweep

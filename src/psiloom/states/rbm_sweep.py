@@ -88,9 +88,9 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
     """In place: ``n_sweeps = len(positions)`` sweeps of ``S = positions.shape[1]`` proposals in
     every chain, proposal ``(s, t)`` of chain ``c`` flipping site ``table[positions[s, t, c], 0]``
     (``kind`` 1) or swapping the values at the two sites ``table[positions[s, t, c]]`` (``kind``
-    2); ``positions`` (n_sweeps, S, n_chains), or (n_sweeps, S, 1) for the same in all chains. After sweep
-    ``s`` the configurations and log-amplitudes go to ``xs[s]``, ``log_amps[s]`` and the number
-    of accepted proposals (null ones included) to ``accepted[s]``."""
+    2); ``positions`` (n_sweeps, S, n_chains), or (n_sweeps, S, 1) for the same in all chains.
+    After sweep ``s`` the configurations and log-amplitudes go to ``xs[s]``, ``log_amps[s]`` and
+    the number of accepted proposals (null ones included) to ``accepted[s]``."""
     n_chains, m = plus.shape
     n_positions = table.shape[0]
     # groups of 4R factors 2r_j, each within 2e^{±d_max}: |log group| ≤ 4R(d_max + log 2) ≤ 400,
@@ -212,14 +212,13 @@ def make_sweeps(kernel, visible_bias, rise, fall):
     accepted)``, the ``sweeps`` function of :class:`~psiloom.states.FastUpdates`: ``table``
     (P, K) a NumPy int array of the sites of the P possible proposals (K = ``kind`` = 1 flips,
     2 exchanges); ``positions`` (n_sweeps, S, n_chains) the entries of ``table`` proposed in turn
-    (taken mod P), or (n_sweeps, S, 1) for the same entries in every chain; ``log_u`` (n_sweeps, S, n_chains) the logarithms of the acceptance uniforms;
-    ``xs`` (n_sweeps, n_chains, N) and ``log_amps`` (n_sweeps, n_chains) the chains after every
-    sweep, ``cache`` that of ``xs[-1]``, ``accepted`` (n_sweeps,) int32 the accepted proposals
-    (null ones included) per sweep. Usable inside ``jax.jit``: one host call for all sweeps (a host callback
-    costs ~0.1-0.3 ms here, more than one sweep of a small state).
+    (taken mod P), or (n_sweeps, S, 1) for the same entries in every chain; ``log_u``
+    (n_sweeps, S, n_chains) the logarithms of the acceptance uniforms; ``xs`` (n_sweeps, n_chains,
+    N) and ``log_amps`` (n_sweeps, n_chains) the chains after every sweep, ``cache`` that of
+    ``xs[-1]`` (the input cache's type), ``accepted`` (n_sweeps,) int32 the accepted proposals
+    (null ones included) per sweep. Usable inside ``jax.jit``: one host call for all sweeps (a
+    host callback costs ~0.1-0.5 ms here, more than one sweep of a small state).
     """
-    from psiloom.states.rbm import RBMCache  # the cache type (rbm imports this module)
-
     bias = jnp.zeros(kernel.shape[0], kernel.dtype) if visible_bias is None else visible_bias
     d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
     bias_and_bound = jnp.concatenate([bias, d_max[None]]).astype(kernel.dtype)
@@ -243,6 +242,6 @@ def make_sweeps(kernel, visible_bias, rise, fall):
         xs, log_amps, plus, minus, accepted = jax.pure_callback(
             lambda *a: _host_sweeps(kind, table, *a), shapes, x, cache.plus, cache.minus, log_amp, positions, log_u,
             tables, bias_and_bound, vmap_method="sequential")
-        return xs, log_amps, RBMCache(plus, minus), accepted
+        return xs, log_amps, cache._replace(plus=plus, minus=minus), accepted
 
     return sweeps
