@@ -139,7 +139,7 @@ def main() -> None:
     key = jax.random.PRNGKey(0)
     # exact draws: every chain starts in equilibrium
     start = jax.jit(lambda v, k: ar.model.apply(v, k, n_chains, method="sample"))(ar.variables, jax.random.PRNGKey(1))
-    exchange = pl.sampling.mixture([(pl.sampling.bond_exchange(lattice.bonds), 0.5), (pl.sampling.single_flip, 0.5)])
+    exchange = pl.sampling.Mixture((pl.sampling.BondExchange(lattice.bonds), pl.sampling.single_flip), (0.5, 0.5))
     methods = [
         ("single_flip", "Metropolis, single flips, one sweep (N proposals) per sample",
          pl.sampling.MetropolisSampler(space, n_chains), rbm),

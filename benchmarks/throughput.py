@@ -8,7 +8,7 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
    chain vs full re-evaluation of log ψ(x') for every proposal, in both proposal orders
    (``random``: an independent bond per chain; ``sequential``: the bonds in turn, the same in
    every chain). Both paths run as the library runs them by default: the fast path through the
-   compiled sweeps (:mod:`psiloom.states.rbm_sweep`), the full path as an XLA loop; each timed
+   compiled sweeps (:mod:`psiloom.sampling.compiled`), the full path as an XLA loop; each timed
    call of ``sample`` makes ``SWEEPS_PER_CALL`` sweeps (the compiled path's host call costs a
    fixed ~0.2-1 ms per call; ``ratio_one_sweep_per_call`` shows the cost of one sweep per call).
    Target ≥ 10×, judged on the default (float64) cache. Also reported: the same fast update as a
@@ -50,7 +50,7 @@ import jax.numpy as jnp  # noqa: E402
 import numpy as np  # noqa: E402
 
 import psiloom as pl  # noqa: E402
-from psiloom.states import RBM, bind_amplitude  # noqa: E402
+from psiloom.states import RBM, BoundState  # noqa: E402
 from _common import Timer, emit, lattice_system, parse_args, progress, summary  # noqa: E402
 
 L = 100
@@ -107,11 +107,11 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
         for path, (m, fast, compiled, n_sweeps) in paths.items():
             sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order,
                                                     compiled_sweeps=compiled)
-            amp = bind_amplitude(m, variables, fast=fast)
+            amp = BoundState(m, variables, fast=fast)
             chains = sampler.init(jax.random.PRNGKey(1), amp)
 
             def sweeps(v, chains, key, m=m, fast=fast, sampler=sampler, n_sweeps=n_sweeps):
-                return sampler.sample(key, chains, bind_amplitude(m, v, fast=fast), n_sweeps)[2]
+                return sampler.sample(key, chains, BoundState(m, v, fast=fast), n_sweeps)[2]
 
             times[path] = best_time(jax.jit(sweeps), variables, chains, jax.random.PRNGKey(2), repeat=repeat,
                                     number=3, label=f"sweep{path}") / n_sweeps
@@ -123,7 +123,7 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
         "method": {"trial_state": f"RBM alpha={ALPHA} (real)", "sampler": "Metropolis nn-exchange, Sz=0",
                    "n_chains": n_chains, "order": order, "sweep": f"{L} proposals per chain",
                    "sweeps_per_sample_call": SWEEPS_PER_CALL,
-                   "fast_path": "compiled sweeps (rbm_sweep), float64 cache",
+                   "fast_path": "compiled sweeps (sampling.compiled), float64 cache",
                    "baseline": "full re-evaluation of log psi per proposal"},
         "metric": "metropolis_sweep_seconds",
         "value": times[True],
@@ -157,7 +157,7 @@ def local_energy(n_samples: int, repeat: int) -> dict:
         model32 = model.clone(cache_dtype=jnp.float32)  # same parameters, float32 cache
         times, values = {}, {}
         for path, m, fast in ((True, model, True), (False, model, False), ("float32", model32, True)):
-            fn = jax.jit(lambda v, x, m=m, fast=fast: hamiltonian.local_energy(bind_amplitude(m, v, fast=fast), x))
+            fn = jax.jit(lambda v, x, m=m, fast=fast: hamiltonian.local_energy(BoundState(m, v, fast=fast), x))
             times[path] = best_time(fn, variables, x, repeat=repeat, label=f"eloc{path}")
             values[path] = np.asarray(fn(variables, x))
             progress(f"local energy fast={path}: {times[path] * 1e3:.2f} ms for {n_samples} samples")
@@ -205,7 +205,7 @@ def sr_solve(n_sites: int, n_samples: int, repeat: int) -> dict:
         model, variables, space = _rbm(n_sites, scale=0.05)
         hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
         x = space.random(jax.random.PRNGKey(4), n_samples)
-        e_loc = hamiltonian.local_energy(bind_amplitude(model, variables), x)
+        e_loc = hamiltonian.local_energy(BoundState(model, variables), x)
         geometry = pl.optimize.SampleGeometry(model.apply, variables, x, e_loc)
         jac, res = jax.block_until_ready((geometry.jacobian(), geometry.residual()))
         _, grad = pl.optimize.energy_gradient(model.apply, variables, x, e_loc)

@@ -1,4 +1,4 @@
-"""Compiled Metropolis sweeps of the RBM (psiloom.states.rbm_sweep).
+"""Compiled Metropolis sweeps of the RBM (psiloom.sampling.compiled).
 
 References: the RBM amplitude ψ(x) = e^{a·x} Π_j 2cosh(θ_j), θ = xW + b (Carleo & Troyer,
 Science 355, 602 (2017), Eq. 2), evaluated here straight from the formula with NumPy; the
@@ -16,10 +16,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import psiloom as pl
-from psiloom.states import RBM, bind_amplitude, fast_updates_of
-from psiloom.states import rbm_sweep
+from psiloom.sampling import compiled
+from psiloom.states import RBM, BoundState, fast_updates_of
 
-pytestmark = pytest.mark.skipif(not rbm_sweep.available(), reason="compiled sweeps need Numba and the CPU backend")
+pytestmark = pytest.mark.skipif(not compiled.available(), reason="compiled sweeps need Numba and the CPU backend")
 
 EPS32 = float(np.finfo(np.float32).eps)
 
@@ -45,7 +45,7 @@ def _run(space, model, variables, order, compiled, n_chains=6, n_per_chain=5, bu
     sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, order=order, burn_in=burn_in,
                                             bonds=lattice.bonds if space.constrained else None,
                                             compiled_sweeps=compiled)
-    amp = bind_amplitude(model, variables)
+    amp = BoundState(model, variables)
     state = sampler.init(jax.random.PRNGKey(seed), amp)
     return jax.jit(lambda s, k: sampler.sample(k, s, amp, n_per_chain))(state, jax.random.PRNGKey(seed + 1))
 
@@ -108,7 +108,7 @@ def test_translation_invariant_rbm_uses_compiled_sweeps():
     space = pl.spaces.SpinSpace(10, total_sz=0)
     model = pl.states.TranslationInvariantRBM(pl.symmetry.translations(lattice), alpha=2, init_scale=0.5)
     variables = model.init(jax.random.PRNGKey(1), space.random(jax.random.PRNGKey(2), 1))
-    assert fast_updates_of(bind_amplitude(model, variables)).sweeps is not None
+    assert fast_updates_of(BoundState(model, variables)).dense_rbm is not None
     a = _run(space, model, variables, "sequential", True)
     b = _run(space, model, variables, "sequential", False)
     np.testing.assert_array_equal(np.asarray(a[0]), np.asarray(b[0]))
@@ -120,8 +120,8 @@ def test_moves_without_an_entry_table_keep_the_jax_path():
     """Pair exchange picks its sites from x, so a kernel cannot draw them: the JAX path runs."""
     space, model, variables = _setup(8, True, 0.3, 2)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=4, move=pl.sampling.pair_exchange)
-    assert pl.sampling.moves.entry_table(sampler.move, 8) is None
-    amp = bind_amplitude(model, variables)
+    assert sampler.move.entry_table(8) is None
+    amp = BoundState(model, variables)
     xs, logs, _, _ = sampler.sample(jax.random.PRNGKey(0), sampler.init(jax.random.PRNGKey(1), amp), amp, 3)
     np.testing.assert_allclose(np.asarray(logs), _numpy_log_psi(variables["params"], np.asarray(xs)), atol=1e-11)
 
@@ -130,7 +130,7 @@ def test_sample_vmaps_over_keys():
     """The host call is vmappable (one kernel call per batch entry)."""
     space, model, variables = _setup(8, False, 0.3, 2)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=4, order="sequential")
-    amp = bind_amplitude(model, variables)
+    amp = BoundState(model, variables)
     state = sampler.init(jax.random.PRNGKey(1), amp)
     keys = jax.random.split(jax.random.PRNGKey(2), 3)
     xs = jax.vmap(lambda k: sampler.sample(k, state, amp, 2)[0])(keys)
@@ -140,19 +140,19 @@ def test_sample_vmaps_over_keys():
 
 def test_bad_inputs_are_refused():
     space, model, variables = _setup(6, False, 0.3, 2)
-    fast = fast_updates_of(bind_amplitude(model, variables))
+    fast = fast_updates_of(BoundState(model, variables))
     x = space.random(jax.random.PRNGKey(0), 3)
     cache, log_amp = fast.init(x), model.apply(variables, x)
     log_u = jnp.zeros((1, 2, 3))
     positions = jnp.zeros((1, 2, 1), jnp.int32)
-    with pytest.raises(ValueError, match="kind=3"):
-        fast.sweeps(x, cache, log_amp, np.zeros((6, 1), int), positions, log_u, 3)
-    with pytest.raises(ValueError, match="kind=2"):
-        fast.sweeps(x, cache, log_amp, np.zeros((6, 1), int), positions, log_u, 2)
+    with pytest.raises(ValueError, match="kind='diagonal'"):
+        compiled.run_sweeps(fast.dense_rbm, x, cache, log_amp, np.zeros((6, 1), int), positions, log_u, "diagonal")
+    with pytest.raises(ValueError, match="kind='exchange'"):
+        compiled.run_sweeps(fast.dense_rbm, x, cache, log_amp, np.zeros((6, 1), int), positions, log_u, "exchange")
     with pytest.raises(ValueError, match="outside the 6-site"):
-        fast.sweeps(x, cache, log_amp, np.array([[0], [6]]), positions, log_u, 1)
+        compiled.run_sweeps(fast.dense_rbm, x, cache, log_amp, np.array([[0], [6]]), positions, log_u, "flip")
     with pytest.raises(ValueError, match=r"positions must have shape"):
-        fast.sweeps(x, cache, log_amp, np.arange(6)[:, None], jnp.zeros((1, 2, 2), jnp.int32), log_u, 1)
+        compiled.run_sweeps(fast.dense_rbm, x, cache, log_amp, np.arange(6)[:, None], jnp.zeros((1, 2, 2), jnp.int32), log_u, "flip")
     for bad in ("yes", 1, None):
         with pytest.raises(ValueError, match="compiled_sweeps must be True or False"):
             pl.sampling.MetropolisSampler(space, compiled_sweeps=bad)
@@ -162,5 +162,5 @@ def test_complex_rbm_offers_no_compiled_sweeps():
     space = pl.spaces.SpinSpace(6)
     model = RBM(alpha=1, complex_params=True)
     variables = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(1), 1))
-    fast = fast_updates_of(bind_amplitude(model, variables))
-    assert fast is not None and fast.sweeps is None
+    fast = fast_updates_of(BoundState(model, variables))
+    assert fast is not None and fast.dense_rbm is None

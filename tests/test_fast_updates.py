@@ -23,7 +23,8 @@ from hypothesis import strategies as st
 
 import psiloom as pl
 from psiloom.sampling import ChainState
-from psiloom.states import RBM, bind_amplitude, fast_updates_of
+from psiloom.states import RBM, BoundState, fast_updates_of
+from psiloom.states.fast import values_at
 
 N_SITES, N_BATCH, K_SITES = 10, 6, 3
 
@@ -45,19 +46,19 @@ _MODELS = {flag: _model(flag) for flag in (False, True)}
 
 @jax.jit
 def _fast_real(variables, x, sites, new_values):
-    fast = fast_updates_of(bind_amplitude(_MODELS[False][0], variables))
-    return fast.update(x, fast.init(x), sites, new_values)
+    fast = fast_updates_of(BoundState(_MODELS[False][0], variables))
+    return fast.update(values_at(x, sites), fast.init(x), sites, new_values)
 
 
 @jax.jit
 def _fast_complex(variables, x, sites, new_values):
-    fast = fast_updates_of(bind_amplitude(_MODELS[True][0], variables))
-    return fast.update(x, fast.init(x), sites, new_values)
+    fast = fast_updates_of(BoundState(_MODELS[True][0], variables))
+    return fast.update(values_at(x, sites), fast.init(x), sites, new_values)
 
 
 @functools.partial(jax.jit, static_argnums=0)
 def _fresh_cache(model, variables, x):
-    return fast_updates_of(bind_amplitude(model, variables)).init(x)
+    return fast_updates_of(BoundState(model, variables)).init(x)
 
 
 def _numpy_log_psi(variables, x):
@@ -149,12 +150,12 @@ def test_long_walk_to_huge_hidden_fields_stays_finite_and_exact(cache_dtype, rto
 
     @jax.jit
     def walk(v, x):
-        fast = fast_updates_of(bind_amplitude(model, v))
+        fast = fast_updates_of(BoundState(model, v))
 
         def flip(carry, site):
             x, cache, total = carry
             sites = jnp.reshape(site, (1,))
-            delta, cache = fast.update(x, cache, sites, -x[:, sites])
+            delta, cache = fast.update(x[:, sites], cache, sites, -x[:, sites])
             return (x.at[:, site].multiply(-1), cache, total + delta), None
 
         (x, cache, total), _ = jax.lax.scan(flip, (x, fast.init(x), jnp.zeros(x.shape[0])), path)
@@ -184,8 +185,8 @@ _MODELS_FLOAT32_CACHE = {
 
 @functools.partial(jax.jit, static_argnums=0)
 def _fast_float32(complex_params, variables, x, sites, new_values):
-    fast = fast_updates_of(bind_amplitude(_MODELS_FLOAT32_CACHE[complex_params][0], variables))
-    return fast.update(x, fast.init(x), sites, new_values)
+    fast = fast_updates_of(BoundState(_MODELS_FLOAT32_CACHE[complex_params][0], variables))
+    return fast.update(values_at(x, sites), fast.init(x), sites, new_values)
 
 
 @pytest.mark.parametrize("complex_params", [False, True])
@@ -225,8 +226,8 @@ def test_fast_ratio_with_large_weights_and_shared_sites():
 
     @jax.jit
     def change(v, x):
-        fast = fast_updates_of(bind_amplitude(model, v))
-        return fast.update(x, fast.init(x), sites, -x[:, jnp.array([4, 0, 7])])[0]
+        fast = fast_updates_of(BoundState(model, v))
+        return fast.update(x[:, jnp.array([4, 0, 7])], fast.init(x), sites, -x[:, jnp.array([4, 0, 7])])[0]
 
     delta = change(variables, x)
     x_new = np.asarray(x).copy()
@@ -240,9 +241,9 @@ def test_generic_states_take_the_generic_path():
     jastrow = pl.states.TwoBodyJastrow()
     x = pl.spaces.SpinSpace(6).random(jax.random.PRNGKey(0), 2)
     variables = jastrow.init(jax.random.PRNGKey(1), x)
-    assert fast_updates_of(bind_amplitude(jastrow, variables)) is None
+    assert fast_updates_of(BoundState(jastrow, variables)) is None
     rbm, rbm_vars = _MODELS[False]
-    assert fast_updates_of(bind_amplitude(rbm, rbm_vars, fast=False)) is None
+    assert fast_updates_of(BoundState(rbm, rbm_vars, fast=False)) is None
     assert fast_updates_of(pl.states.BoundState(rbm, rbm_vars)) is not None
     assert fast_updates_of(lambda x: rbm.apply(rbm_vars, x)) is None  # a plain function
     assert ChainState(x, jnp.zeros(2)).cache is None  # old two-field construction still works
@@ -263,11 +264,11 @@ def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params,
     for path, fast, compiled in (("compiled", True, True), ("jax", True, False), ("generic", False, False)):
         sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None,
                                                 order=order, compiled_sweeps=compiled)
-        amp = bind_amplitude(model, variables, fast=fast)
+        amp = BoundState(model, variables, fast=fast)
         state = sampler.init(jax.random.PRNGKey(7), amp)
         assert (state.cache is None) == (not fast)
         runs[path] = jax.jit(lambda s, k: sampler.sample(k, s, amp, 10))(state, jax.random.PRNGKey(8))
-    assert (fast_updates_of(bind_amplitude(model, variables)).sweeps is None) == complex_params
+    assert (fast_updates_of(BoundState(model, variables)).dense_rbm is None) == complex_params
     xs_g, logs_g, _, acc_g = runs["generic"]
     assert 0.05 < float(acc_g) < 0.95  # a chain that actually moves and rejects
     for path in ("compiled", "jax"):
@@ -307,8 +308,8 @@ def test_fast_local_energy_equals_generic(name, complex_params):
 
     @jax.jit
     def both(v, x):
-        fast = hamiltonian.local_energy(bind_amplitude(model, v), x, chunk=16)
-        generic = hamiltonian.local_energy(bind_amplitude(model, v, fast=False), x)
+        fast = hamiltonian.local_energy(BoundState(model, v), x, chunk=16)
+        generic = hamiltonian.local_energy(BoundState(model, v, fast=False), x)
         return fast, generic
 
     fast, generic = both(variables, x)
@@ -324,7 +325,7 @@ def test_fast_local_energy_gives_the_variational_energy_exactly():
     model = RBM(alpha=1, complex_params=True, init_scale=0.4)
     variables = model.init(jax.random.PRNGKey(11), space.random(jax.random.PRNGKey(0), 1))
     states = jnp.asarray(space.all_states())
-    e_loc = jax.jit(lambda v, x: hamiltonian.local_energy(bind_amplitude(model, v), x, chunk=128))(variables, states)
+    e_loc = jax.jit(lambda v, x: hamiltonian.local_energy(BoundState(model, v), x, chunk=128))(variables, states)
     e_loc = np.asarray(e_loc)
     psi = np.exp(_numpy_log_psi(variables, np.asarray(states)))  # NumPy amplitude (Carleo & Troyer Eq. 2)
     weights = np.abs(psi) ** 2
@@ -343,7 +344,7 @@ def test_uniform_state_local_energy_closed_form():
     variables = jax.tree_util.tree_map(jnp.zeros_like, variables)
     x = space.random(jax.random.PRNGKey(1), 25)
     tfim = pl.operators.transverse_field_ising(lattice, 1.3, 0.6)
-    e_loc = jax.jit(lambda v, x: tfim.local_energy(bind_amplitude(model, v), x))(variables, x)
+    e_loc = jax.jit(lambda v, x: tfim.local_energy(BoundState(model, v), x))(variables, x)
     xn = np.asarray(x)
     bonds = np.asarray(lattice.bonds)
     expected = -1.3 * np.sum(xn[:, bonds[:, 0]] * xn[:, bonds[:, 1]], axis=1) - 0.6 * lattice.n_sites
@@ -365,8 +366,8 @@ def test_fast_local_energy_blocks_equal_one_generic_batch(monkeypatch, working_s
     space = pl.spaces.SpinSpace(lattice.n_sites)
     variables = model.init(jax.random.PRNGKey(5), space.random(jax.random.PRNGKey(0), 1))
     x = space.random(jax.random.PRNGKey(6), 37)
-    fast = jax.jit(lambda v, x: hamiltonian.local_energy(bind_amplitude(model, v), x, chunk=chunk))(variables, x)
-    generic = jax.jit(lambda v, x: hamiltonian.local_energy(bind_amplitude(model, v, fast=False), x))(variables, x)
+    fast = jax.jit(lambda v, x: hamiltonian.local_energy(BoundState(model, v), x, chunk=chunk))(variables, x)
+    generic = jax.jit(lambda v, x: hamiltonian.local_energy(BoundState(model, v, fast=False), x))(variables, x)
     scale = np.max(np.abs(np.asarray(generic)))
     np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=0, atol=1e-12 * scale)
     # the block size itself: the largest power of two within the working set (cache: 2·20 + 1
@@ -374,7 +375,7 @@ def test_fast_local_energy_blocks_equal_one_generic_batch(monkeypatch, working_s
     per_sample = 2 * 20 + 1
     fits = max(1, local_module.FAST_WORKING_SET // (local_module.CONNECTION_BLOCK * per_sample))
     expected = 2 ** int(np.floor(np.log2(fits)))
-    assert local_module._fast_chunk(fast_updates_of(bind_amplitude(model, variables)), x) == expected
+    assert local_module._fast_chunk(fast_updates_of(BoundState(model, variables)), x) == expected
     if working_set == 16 * 41 * 5:
         assert expected == 4
 
@@ -424,17 +425,17 @@ def _assert_fast_equals_generic(model, lattice, space, orders, n_chains, n_per_c
     """Heisenberg local energies and whole Metropolis chains (one per proposal order) of
     ``model`` agree between the fast and the generic path; the chains really move."""
     variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
-    assert fast_updates_of(bind_amplitude(model, variables)) is not None
+    assert fast_updates_of(BoundState(model, variables)) is not None
     ham = pl.operators.heisenberg(lattice, sign_rule=False)
     x = space.random(jax.random.PRNGKey(5), 12)
-    fast = ham.local_energy(bind_amplitude(model, variables), x)
-    generic = ham.local_energy(bind_amplitude(model, variables, fast=False), x)
+    fast = ham.local_energy(BoundState(model, variables), x)
+    generic = ham.local_energy(BoundState(model, variables, fast=False), x)
     np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=tol, atol=tol)
     for order in orders:
         sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
         runs = {}
         for use_fast in (True, False):
-            amp = bind_amplitude(model, variables, fast=use_fast)
+            amp = BoundState(model, variables, fast=use_fast)
             runs[use_fast] = sampler.sample(jax.random.PRNGKey(6), sampler.init(jax.random.PRNGKey(7), amp), amp,
                                             n_per_chain)
         np.testing.assert_array_equal(np.asarray(runs[True][0]), np.asarray(runs[False][0]))
@@ -456,19 +457,10 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
 
 
 # ----------------------------------------------------------------------------- projected states
-class _RBMNeedingConfigurations(RBM):
-    """An RBM whose fast updates offer no ``update_at`` (they need ``x`` itself): it sends the
-    projection down its other path, which rebuilds the images ``g·x``."""
-
-    def fast_updates(self):
-        full = super().fast_updates()
-        return pl.states.FastUpdates(full.init, full.update)
-
-
 @pytest.mark.parametrize(
     "base_kind, sector_kind, parity",
     [("invariant", "A1", 1), ("invariant", "B1", None), ("rbm", "momentum", None), ("rbm", "A1", -1),
-     ("rbm_needing_x", "A1", 1), ("invariant_float32_cache", "A1", 1)],
+     ("invariant_float32_cache", "A1", 1)],
 )
 def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     """The projection of a state with fast updates has them too: local energies and whole
@@ -480,18 +472,15 @@ def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     elif base_kind == "invariant_float32_cache":
         base = pl.states.TranslationInvariantRBM(lat, alpha=2, init_scale=1.0, cache_dtype=jnp.float32)
         tol = _float32_bound(2 * 2 * 9 * 8, 1.0)  # 2 filters x 9 translations x 8 point-group x 2 flip images
-    elif base_kind == "rbm":
-        base = RBM(alpha=1, complex_params=True, init_scale=0.3)
     else:
-        base = _RBMNeedingConfigurations(alpha=1, complex_params=True, init_scale=0.3)
+        base = RBM(alpha=1, complex_params=True, init_scale=0.3)
     if sector_kind == "momentum":
         sector = pl.symmetry.sector(pl.symmetry.translations(lat), (2 * np.pi / 3, 0.0))
     else:
         sector = pl.symmetry.sector(pl.symmetry.point_group(lat), None, sector_kind)
     model = pl.states.Symmetrized(base, sector, spin_parity=parity)
     variables = model.init(jax.random.PRNGKey(0), jnp.ones((1, 9)))
-    uses_old_values = fast_updates_of(bind_amplitude(model, variables)).update_at is not None
-    assert uses_old_values == (base_kind != "rbm_needing_x")
+    assert fast_updates_of(BoundState(model, variables)) is not None
     _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, total_sz=0.5), ("random", "sequential"), 4, 5,
                                 tol)
 
@@ -500,4 +489,4 @@ def test_symmetrized_without_base_fast_path_takes_generic_path():
     lat = pl.lattices.chain(6)
     model = pl.states.Symmetrized(pl.states.TwoBodyJastrow(), pl.symmetry.translations(lat))
     variables = model.init(jax.random.PRNGKey(0), pl.spaces.SpinSpace(6).random(jax.random.PRNGKey(1), 1))
-    assert fast_updates_of(bind_amplitude(model, variables)) is None
+    assert fast_updates_of(BoundState(model, variables)) is None

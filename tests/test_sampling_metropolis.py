@@ -23,16 +23,15 @@ from scipy.stats import binomtest, chisquare
 
 from psiloom import lattices
 from psiloom.sampling import (
+    BondExchange,
     MetropolisSampler,
-    bond_exchange,
+    SingleFlip,
     metropolis_step,
-    ordered_exchange,
-    ordered_flips,
     pair_exchange,
     single_flip,
 )
 from psiloom.spaces import SpinSpace, codes
-from psiloom.states import RBM, bind_amplitude, fast_updates_of
+from psiloom.states import RBM, BoundState, fast_updates_of
 
 seeds = st.integers(0, 2**31 - 1)
 
@@ -51,7 +50,7 @@ def random_configs(seed: int, n_chains: int, n_sites: int, polarised_rows: bool 
 N_MOVE = 9
 CHAINS = 12
 ring = lattices.chain(N_MOVE)
-_bond_move = bond_exchange(ring.bonds)
+_bond_move = BondExchange(ring.bonds)
 moves = {
     "single_flip": jax.jit(single_flip),
     "bond_exchange": jax.jit(_bond_move),
@@ -100,11 +99,36 @@ def test_single_flip_changes_one_site_and_magnetisation_by_two(seed, key):
 
 
 def test_bond_exchange_rejects_sites_outside_configuration():
-    move = bond_exchange([[0, 12]])
+    move = BondExchange([[0, 12]])
     with pytest.raises(ValueError, match="12"):
         move(jax.random.PRNGKey(0), jnp.ones((2, 5)))
-    with pytest.raises(ValueError, match="at least one bond"):
-        bond_exchange(np.zeros((0, 2)))
+    with pytest.raises(ValueError, match="at least one entry"):
+        BondExchange(np.zeros((0, 2)))
+
+
+@given(bonds=st.lists(st.tuples(st.integers(-12, 12), st.integers(-12, 12)), min_size=1, max_size=5),
+       n_sites=st.integers(2, 10), sampler=st.sampled_from(["metropolis", "tempering"]))
+def test_bad_bonds_raise_naming_them(bonds, n_sites, sampler):
+    """Negative, out-of-range or self-paired bond sites are refused up front, naming a bad bond
+    (a negative site once wrapped around on the JAX path but counted as padding on the fast
+    path: two different, both wrong, distributions)."""
+    from psiloom.sampling import TemperingSampler
+
+    make = MetropolisSampler if sampler == "metropolis" else TemperingSampler
+    bad = [b for b in bonds if min(b) < 0 or max(b) >= n_sites or b[0] == b[1]]
+    for space in (SpinSpace(n_sites), SpinSpace(n_sites, total_sz=0 if n_sites % 2 == 0 else 0.5)):
+        if bad:
+            with pytest.raises(ValueError) as err:
+                make(space, 2, bonds=bonds)
+            assert any(str(list(b)) in str(err.value) for b in bad)
+        else:
+            made = make(space, 2, bonds=bonds)
+            if space.constrained:
+                assert made.move == BondExchange(bonds)
+    if bad:
+        with pytest.raises(ValueError):
+            BondExchange(bonds).check(n_sites)
+            BondExchange(bonds).ordered(n_sites).check(n_sites)
 
 
 # --------------------------------------------------------------------------- convergence to |ψ|²
@@ -124,7 +148,7 @@ def rbm_state(n_sites: int, seed: int, scale: float, bound: bool = False):
 
     variables = make(jax.random.PRNGKey(seed))
     if bound:
-        return bind_amplitude(model, variables)
+        return BoundState(model, variables)
     return jax.jit(lambda x: model.apply(variables, x))
 
 
@@ -172,8 +196,8 @@ def test_histogram_converges_to_psi_squared(name, n_sites, total_sz, move, order
     space = SpinSpace(n_sites, total_sz=total_sz)
     log_amp = rbm_state(n_sites, 3, 0.25, bound=name.startswith("compiled"))
     if name.startswith("compiled"):  # the compiled sweep kernel, checked against |ψ|² itself
-        assert fast_updates_of(log_amp).sweeps is not None
-    mv = {None: None, "bonds": bond_exchange(lattices.chain(n_sites).bonds), "pairs": pair_exchange}[move]
+        assert fast_updates_of(log_amp).dense_rbm is not None
+    mv = {None: None, "bonds": BondExchange(lattices.chain(n_sites).bonds), "pairs": pair_exchange}[move]
     sampler = MetropolisSampler(space, n_chains=6000, move=mv, burn_in=30, order=order)
     samples = final_configurations(sampler, log_amp, seed=7)
     log_psi = np.asarray(log_amp(jnp.asarray(space.all_states())))
@@ -256,25 +280,25 @@ def test_constant_amplitude_accepts_everything():
 def test_ordered_moves_visit_their_table_in_every_chain(position):
     x = SpinSpace(6).random(jax.random.PRNGKey(position), 5)
     bonds = lattices.chain(6).bonds
-    x_new, sites = ordered_exchange(bonds)(position, x)
+    x_new, sites = BondExchange(bonds).ordered(0)(position, x)
     i, j = bonds[position % len(bonds)]
     assert sites.shape == (2,) and tuple(np.asarray(sites)) == (i, j)
     expected = np.asarray(x).copy()
     expected[:, [i, j]] = expected[:, [j, i]]
     np.testing.assert_array_equal(np.asarray(x_new), expected)
-    x_flip, site = ordered_flips(6)(position, x)
+    x_flip, site = SingleFlip().ordered(6)(position, x)
     expected = np.asarray(x).copy()
     expected[:, position % 6] *= -1
     np.testing.assert_array_equal(np.asarray(x_flip), expected)
     assert int(site[0]) == position % 6
     # the fast scan's view of the same proposals: its sites and the values written there
-    for move, moved in ((ordered_exchange(bonds), x_new), (ordered_flips(6), x_flip)):
+    for move, moved in ((BondExchange(bonds).ordered(0), x_new), (SingleFlip().ordered(6), x_flip)):
         at = np.asarray(move.sites_at(jnp.asarray([position, position + 7])))
-        assert at.shape == (2, move.table.shape[1])
+        assert at.shape == (2, move.array.shape[1])
         written = np.asarray(x).copy()
         written[:, at[0]] = np.asarray(move.proposed_values(x[:, at[0]]))
         np.testing.assert_array_equal(written, np.asarray(moved))
-        np.testing.assert_array_equal(at[1], move.table[(position + 7) % move.n_positions])
+        np.testing.assert_array_equal(at[1], move.array[(position + 7) % move.n_positions])
 
 
 def test_sequential_order_needs_an_orderable_move():
@@ -285,12 +309,12 @@ def test_sequential_order_needs_an_orderable_move():
     ordered = MetropolisSampler(SpinSpace(4, total_sz=0), bonds=lattices.chain(4).bonds, order="sequential")
     assert ordered.ordered.kind == "exchange" and ordered.ordered.n_positions == 4
     # an ordered move given to a random-order sampler falls back to its randomised version
-    assert MetropolisSampler(SpinSpace(4), move=ordered_flips(4)).move is single_flip
+    assert MetropolisSampler(SpinSpace(4), move=SingleFlip().ordered(4)).move == single_flip
 
 
 def test_default_moves():
-    assert MetropolisSampler(SpinSpace(4)).move is single_flip
-    assert MetropolisSampler(SpinSpace(4, total_sz=0)).move is pair_exchange
+    assert MetropolisSampler(SpinSpace(4)).move == single_flip
+    assert MetropolisSampler(SpinSpace(4, total_sz=0)).move == pair_exchange
     assert MetropolisSampler(SpinSpace(4, total_sz=0)).sweep == 4
 
 

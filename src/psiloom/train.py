@@ -43,7 +43,6 @@ from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.sampling.metropolis import ChainState
 from psiloom.states.base import check_input_size, count_real_parameters
 from psiloom.states.bound import BoundState
-from psiloom.states.fast import BoundAmplitude
 
 
 class NonFiniteError(FloatingPointError):
@@ -219,7 +218,7 @@ class GroundStateSearch:
     def _bind(self, params) -> BoundState:
         """``log ψ`` at ``params`` as a callable that still knows its model (samplers may read
         it; fast-update paths use it unless ``fast=False``)."""
-        return BoundAmplitude(self.model, params, fast=self.fast)
+        return BoundState(self.model, params, fast=self.fast)
 
     # The four phases of a step (composed by _step_impl, timed one by one by profile_step).
     def _sampling_phase(self, key, params, chains, n_per_chain):

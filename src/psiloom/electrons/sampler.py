@@ -5,7 +5,9 @@ Proposals are symmetric Gaussian displacements (bohr):
     all-electron move:   x' = x + σ ξ,          ξ ~ N(0, 1)^{N×3}
     one-electron move:   r_i' = r_i + σ ξ_i      (electron i; the others stay)
 
-accepted with probability min(1, |ψ(x')/ψ(x)|²) = min(1, exp(2 [log|ψ(x')| − log|ψ(x)|])).
+accepted with probability min(1, |ψ(x')/ψ(x)|²) = min(1, exp(2 [log|ψ(x')| − log|ψ(x)|])) by
+the acceptance step every psiloom sampler shares (:func:`psiloom.sampling.base.metropolis_accept`);
+burn-in and collection run through :func:`psiloom.sampling.base.burn_in_and_collect`.
 
 The step size σ is part of the chain state. During burn-in sweeps it is adapted toward a
 target acceptance rate (default 0.5, common practice) by σ ← σ · exp(a − a*), a the acceptance
@@ -28,6 +30,8 @@ import numpy as np
 
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
+from psiloom.sampling import base
+from psiloom.sampling.base import burn_in_and_collect, scan_sweeps
 
 LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 MOVES = ("all", "one")
@@ -55,9 +59,7 @@ def metropolis_update(key, state: WalkerState, log_amplitude: LogAmplitudeFn, el
     log_new = log_amplitude(x_new)
     log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
     u = jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype)
-    accept = jnp.log(u) < log_ratio
-    x = jnp.where(accept[:, None, None], x_new, state.x)
-    log_amp = jnp.where(accept, log_new, state.log_amp)
+    (x, log_amp), accept = base.metropolis_accept(jnp.log(u), log_ratio, (x_new, log_new), (state.x, state.log_amp))
     return WalkerState(x, log_amp, state.step_size), StepInfo(accept, log_ratio)
 
 
@@ -129,15 +131,15 @@ class ElectronSampler:
         (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), state.x.dtype)), (keys, jnp.arange(self.sweep)))
         return state, acc / self.sweep
 
-    def _adaptive_sweeps(self, key, state, log_amplitude, n_sweeps):
-        target = self.target_acceptance
-
-        def body(st, k):
-            st, acc = self._sweep(k, st, log_amplitude)
-            sigma = jnp.clip(st.step_size * jnp.exp(acc - target), 1e-3, 10.0)
+    def _adaptive_sweep(self, log_amplitude):
+        """``sweep(key, state, index)``: one sweep, then σ ← σ · exp(a − a*) from its acceptance a
+        (clipped to [1e-3, 10] bohr)."""
+        def sweep(key, state, index=None):
+            st, acc = self._sweep(key, state, log_amplitude)
+            sigma = jnp.clip(st.step_size * jnp.exp(acc - self.target_acceptance), 1e-3, 10.0)
             return WalkerState(st.x, st.log_amp, sigma), acc
 
-        return jax.lax.scan(body, state, jax.random.split(key, n_sweeps))
+        return sweep
 
     # ------------------------------------------------------------------ interface
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
@@ -147,7 +149,8 @@ class ElectronSampler:
             x = self.system.random(k_pos, self.n_chains, self.init_width)
             state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
             if self.equilibrate:
-                state, _ = self._adaptive_sweeps(k_eq, state, log_amplitude, self.equilibrate)
+                state, _ = scan_sweeps(self._adaptive_sweep(log_amplitude), state,
+                                       jax.random.split(k_eq, self.equilibrate))
             return state
 
         # compiled as one program (also when called outside jit, as GroundStateSearch.init does)
@@ -164,13 +167,7 @@ class ElectronSampler:
         acceptance averaged over the stored part.
         """
         n_per_chain = _integer("n_per_chain", n_per_chain, 1)
-        k_burn, k_run = jax.random.split(key)
-        if self.burn_in:
-            state, _ = self._adaptive_sweeps(k_burn, state, log_amplitude, self.burn_in)
-
-        def collect(st, k):
-            st, acc = self._sweep(k, st, log_amplitude)
-            return st, (st.x, st.log_amp, acc)
-
-        state, (xs, logs, acc) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
+        state, (xs, logs, acc) = burn_in_and_collect(
+            key, state, lambda k, st, i: self._sweep(k, st, log_amplitude), self.burn_in, n_per_chain,
+            lambda st, acc: (st.x, st.log_amp, acc), burn_sweep=self._adaptive_sweep(log_amplitude))
         return xs, logs, state, sample_mean(acc)

@@ -67,8 +67,8 @@ def _fast_local_block(fast: FastUpdates, operator, x):
     cache = fast.init(x)
 
     def one_connection(sites):  # the same K sites flipped in every sample
-        flipped = -x[:, jnp.where(sites >= 0, sites, 0)]
-        return fast.update(x, cache, sites, flipped)[0]
+        old = x[:, jnp.where(sites >= 0, sites, 0)]
+        return fast.update(old, cache, sites, -old)[0]
 
     # blocks of CONNECTION_BLOCK connections, vectorised inside a block (module docstring)
     delta = jax.lax.map(one_connection, table, batch_size=min(CONNECTION_BLOCK, table.shape[0])).T  # (B, G)

@@ -1,16 +1,23 @@
 """Samplers: Metropolis kernels over many chains and their proposal moves, block Gibbs for
-RBMs, parallel tempering, and direct sampling of autoregressive trial states."""
+RBMs, parallel tempering, and direct sampling of autoregressive trial states.
 
+Layout: ``base`` (the :class:`Sampler` interface, the shared acceptance step and burn-in /
+collection driver), ``moves`` (typed proposal moves), ``metropolis``, ``tempering``,
+``gibbs``, ``direct``, and ``compiled`` (Numba sweeps fed a state's plain RBM arrays)."""
+
+from psiloom.sampling.base import Sampler, burn_in_and_collect, metropolis_accept
 from psiloom.sampling.direct import ChainRuleSampler, DrawInfo
 from psiloom.sampling.gibbs import BlockGibbsSampler, GibbsInfo, RBMWeights, gibbs_update, rbm_weights
 from psiloom.sampling.metropolis import ChainState, MetropolisSampler, StepInfo, metropolis_step
 from psiloom.sampling.moves import (
+    BondExchange,
+    GlobalFlip,
+    Mixture,
+    Move,
     OrderedMove,
-    bond_exchange,
-    changes_magnetisation,
-    mixture,
-    ordered_exchange,
-    ordered_flips,
+    PairExchange,
+    SingleFlip,
+    global_flip,
     pair_exchange,
     single_flip,
 )
@@ -24,9 +31,10 @@ from psiloom.sampling.tempering import (
 )
 
 __all__ = [
-    "ChainState", "MetropolisSampler", "StepInfo", "metropolis_step", "bond_exchange",
-    "pair_exchange", "single_flip", "mixture", "changes_magnetisation", "OrderedMove", "ordered_flips",
-    "ordered_exchange",
+    "Sampler", "metropolis_accept", "burn_in_and_collect",
+    "ChainState", "MetropolisSampler", "StepInfo", "metropolis_step",
+    "Move", "SingleFlip", "BondExchange", "PairExchange", "GlobalFlip", "Mixture", "OrderedMove",
+    "single_flip", "pair_exchange", "global_flip",
     "BlockGibbsSampler", "GibbsInfo", "RBMWeights", "gibbs_update", "rbm_weights",
     "TemperingSampler", "TemperingState", "TemperingInfo", "geometric_betas", "replica_exchange",
     "tempered_metropolis_step",

@@ -9,6 +9,10 @@ performs one proposal per chain with the Metropolis acceptance
 
     A(x → x') = min(1, |ψ(x')/ψ(x)|²) = min(1, exp(2 Re[log ψ(x') − log ψ(x)])).
 
+The proposal is built here; the acceptance itself is the one step shared by every sampler,
+:func:`psiloom.sampling.base.metropolis_accept`, and the burn-in / collection loop is
+:func:`psiloom.sampling.base.burn_in_and_collect`.
+
 :class:`MetropolisSampler` bundles a move with chain counts, burn-in and thinning (a *sweep*
 of ``n_sites`` proposals between stored samples by default). Chains persist between
 optimisation steps: after a parameter update call :meth:`MetropolisSampler.refresh` to
@@ -25,8 +29,8 @@ because every chain changes the same sites and the trial state's tables need no 
 gather (about 2× on a 100-site RBM, ``benchmarks/throughput.py``); on the fast path it reads
 and writes only the K changed sites of ``x`` instead of building every ``x'``.
 
-Compiled sweeps: a trial state that offers a compiled sweep kernel (the real RBM on the CPU,
-:mod:`psiloom.states.rbm_sweep`) runs all sweeps of a :meth:`MetropolisSampler.sample` call
+Compiled sweeps: a trial state that hands out its plain RBM arrays (the real RBM and its
+weight-shared variants; ``FastUpdates.dense_rbm``) runs, on the CPU, all sweeps of a :meth:`MetropolisSampler.sample` call
 in it, in one host call, when the move is single flips or a bond exchange (either order): the
 proposals and uniforms are drawn in JAX exactly as on the JAX path and passed in, so both give
 the same chains (``compiled_sweeps=False`` keeps the JAX loop). A sequential sweep continues
@@ -50,11 +54,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom.sampling.moves import Move, OrderedMove, choose_move, draw_entries, entry_table, ordered_version
+from psiloom.sampling import base, compiled
+from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect, sweep_keys
+from psiloom.sampling.moves import Move, OrderedMove, choose_move, draw_entries
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
-
-LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 
 
 class ChainState(NamedTuple):
@@ -68,34 +72,34 @@ class StepInfo(NamedTuple):
     log_ratio: jax.Array  # (n_chains,) 2 Re[log ψ(x') − log ψ(x)]
 
 
-def _select(accept, new, old):
-    """Per-chain choice between two pytrees with the chain axis leading."""
-    return jax.tree_util.tree_map(
-        lambda a, b: jnp.where(accept.reshape(accept.shape + (1,) * (a.ndim - 1)), a, b), new, old
-    )
+def attach_cache(x, cache, fast: FastUpdates | None, recompute: bool = True):
+    """The fast-update cache a chain state of ``x`` (sample axis leading) should carry: ``None``
+    on the generic path, ``fast.init(x)`` when asked to ``recompute`` or missing, else ``cache``."""
+    if fast is None:
+        return None
+    if recompute or cache is None:
+        return fast.init(x)
+    return cache
+
+
+def proposal_log_amp(x, log_amp, cache, x_new, sites, log_amplitude: LogAmplitudeFn, fast: FastUpdates | None):
+    """``(Δ, log ψ(x'), cache of x')`` of proposals ``x_new`` that changed ``sites``: from the
+    fast-update cache when there is one, else by evaluating ψ(x') in full (cache ``None``)."""
+    if fast is not None and cache is not None:
+        delta, cache_new = fast.update(values_at(x, sites), cache, sites, values_at(x_new, sites))
+        return delta, log_amp + delta, cache_new
+    log_new = log_amplitude(x_new)
+    return log_new - log_amp, log_new, None
 
 
 def _transition(state: ChainState, x_new, sites, log_u, log_amplitude, fast):
     """Accept or reject the proposals ``x_new`` (changed ``sites``) given ``log u`` per chain."""
-    if fast is not None and state.cache is not None:
-        delta, cache_new = fast.update(state.x, state.cache, sites, values_at(x_new, sites))
-        log_new = state.log_amp + delta
-        log_ratio = 2.0 * jnp.real(delta)
-    else:
-        cache_new = None
-        log_new = log_amplitude(x_new)
-        log_ratio = 2.0 * jnp.real(log_new - state.log_amp)
-    accept = log_u < log_ratio
-    x = jnp.where(accept.reshape(accept.shape + (1,) * (x_new.ndim - 1)), x_new, state.x)
-    return _after(state, accept, x, log_new, cache_new), StepInfo(accept, log_ratio)
-
-
-def _after(state: ChainState, accept, x, log_new, cache_new) -> ChainState:
-    """The chain state after the acceptance decision: ``x`` (already chosen per chain), and the
-    log-amplitude and cache of the proposal where accepted, the old ones elsewhere."""
-    log_amp = jnp.where(accept, log_new, state.log_amp)
-    cache = None if cache_new is None else _select(accept, cache_new, state.cache)
-    return ChainState(x, log_amp, cache)
+    delta, log_new, cache_new = proposal_log_amp(state.x, state.log_amp, state.cache, x_new, sites,
+                                                 log_amplitude, fast)
+    log_ratio = 2.0 * jnp.real(delta)
+    current = state if cache_new is not None else state._replace(cache=None)
+    new, accepted = base.metropolis_accept(log_u, log_ratio, ChainState(x_new, log_new, cache_new), current)
+    return new, StepInfo(accepted, log_ratio)
 
 
 def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
@@ -105,21 +109,17 @@ def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
     the K sites shared by all chains, so only their old and new values ``(n, K)`` are read,
     and the accepted values are written back into ``x`` at those sites.
     """
-    update = fast.update_at
 
     def body(carry, draw):
         st, acc = carry
         sites, lu = draw
         old = st.x[:, sites]  # (n, K)
         new = move.proposed_values(old)
-        if update is not None:
-            delta, cache_new = update(old, st.cache, sites, new)
-        else:
-            delta, cache_new = fast.update(st.x, st.cache, sites, new)
-        accept = lu < 2.0 * jnp.real(delta)
-        x = st.x.at[:, sites].set(jnp.where(accept[:, None], new, old))
-        st = _after(st, accept, x, st.log_amp + delta, cache_new)
-        return (st, acc + jnp.sum(accept, dtype=jnp.int32)), None
+        delta, cache_new = fast.update(old, st.cache, sites, new)
+        (values, log_amp, cache), accepted = base.metropolis_accept(
+            lu, 2.0 * jnp.real(delta), (new, st.log_amp + delta, cache_new), (old, st.log_amp, st.cache))
+        st = ChainState(st.x.at[:, sites].set(values), log_amp, cache)
+        return (st, acc + jnp.sum(accepted, dtype=jnp.int32)), None
 
     return body
 
@@ -160,18 +160,20 @@ class MetropolisSampler:
     Args:
         space: the configuration space (its magnetisation constraint picks the default move).
         n_chains: number of independent chains (the batch of one proposal).
-        move: a proposal ``(key, x) -> (x', sites)``; default single flips for an unconstrained space,
-            nearest-neighbour exchange over ``bonds`` (or any-pair exchange without bonds)
-            for a fixed-magnetisation space.
-        bonds: pairs for the exchange move (e.g. ``lattice.bonds``).
+        move: a :class:`~psiloom.sampling.Move` (e.g. ``single_flip``, ``BondExchange(bonds)``,
+            ``Mixture((single_flip, global_flip), (0.9, 0.1))``); default single flips for an
+            unconstrained space, nearest-neighbour exchange over ``bonds`` (or any-pair exchange
+            without bonds) for a fixed-magnetisation space.
+        bonds: pairs for the exchange move (e.g. ``lattice.bonds``), checked against the space
+            (``ValueError`` naming bonds with negative or out-of-range sites).
         sweep: proposals between stored samples (default ``n_sites``).
         burn_in: sweeps discarded at the start of every :meth:`sample` call.
         order: ``"random"`` (independent proposals per chain) or ``"sequential"`` (a systematic
             scan over the sites or bonds, the same in every chain; needs single flips or a bond
-            exchange, or an :class:`~psiloom.sampling.moves.OrderedMove`). See the module docstring.
-        compiled_sweeps: run the sweeps of :meth:`sample` through the trial state's compiled sweep
-            kernel where it offers one (the RBM with real parameters on the CPU:
-            :mod:`psiloom.states.rbm_sweep`) and the move is single flips or a bond exchange (in
+            exchange, or an :class:`~psiloom.sampling.OrderedMove`). See the module docstring.
+        compiled_sweeps: run the sweeps of :meth:`sample` through the compiled kernel of
+            :mod:`psiloom.sampling.compiled` where the state hands out its RBM arrays (the RBM
+            with real parameters, on the CPU) and the move is single flips or a bond exchange (in
             either order); ``False`` keeps every proposal in JAX. Both give the same chains.
     """
 
@@ -187,36 +189,26 @@ class MetropolisSampler:
         if not isinstance(compiled_sweeps, bool):
             raise ValueError(f"compiled_sweeps must be True or False, got {compiled_sweeps!r}")
         self.compiled_sweeps = compiled_sweeps
-        if isinstance(move, OrderedMove) and order == "random":
-            move = move.random
         move = choose_move(space, move, bonds)
-        self.ordered = ordered_version(move, space.n_sites) if order == "sequential" else None
-        self.move = move.random if isinstance(move, OrderedMove) else move
+        self.ordered = move.ordered(space.n_sites) if order == "sequential" else None
+        self.move = move.randomised() if isinstance(move, OrderedMove) else move
         # proposals a compiled sweep kernel can draw itself: a fixed table of flips or exchanges
-        self._entry_table = entry_table(self.ordered if self.ordered is not None else self.move, space.n_sites)
+        self._entry_table = (self.ordered or self.move).entry_table(space.n_sites)
         self._step = metropolis_step(self.move)
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
         """Random valid starting configurations, their log-amplitudes (and fast-update cache)."""
         x = self.space.random(key, self.n_chains)
-        return self._with_cache(ChainState(x, log_amplitude(x)), fast_updates_of(log_amplitude))
+        return ChainState(x, log_amplitude(x), attach_cache(x, None, fast_updates_of(log_amplitude)))
 
     def refresh(self, state: ChainState, log_amplitude: LogAmplitudeFn) -> ChainState:
         """Recompute the cached log-amplitudes and fast-update cache (after the parameters changed)."""
-        return self._with_cache(ChainState(state.x, log_amplitude(state.x)), fast_updates_of(log_amplitude))
-
-    @staticmethod
-    def _with_cache(state: ChainState, fast: FastUpdates | None, recompute: bool = True) -> ChainState:
-        if fast is None:
-            return state._replace(cache=None)
-        if recompute or state.cache is None:
-            return state._replace(cache=fast.init(state.x))
-        return state
+        return ChainState(state.x, log_amplitude(state.x), attach_cache(state.x, None, fast_updates_of(log_amplitude)))
 
     def step(self, key, state: ChainState, log_amplitude: LogAmplitudeFn):
         """One proposal per chain: ``(state, StepInfo)`` (fast path when available)."""
         fast = fast_updates_of(log_amplitude)
-        state = self._with_cache(state, fast, recompute=False)
+        state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
         return self._step(key, state, log_amplitude, fast)
 
     def _sweep(self, key, state, log_amplitude, fast=None, start=0):
@@ -251,13 +243,12 @@ class MetropolisSampler:
         log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
         return k_moves, log_u
 
-    def _compiled_sample(self, k_burn, k_run, state: ChainState, fast: FastUpdates, n_per_chain: int):
-        """:meth:`sample` through the trial state's compiled sweeps (one call for all sweeps), with
-        the random numbers of the JAX path: the same keys per sweep, the same proposals and
-        uniforms (see :meth:`_sweep`)."""
-        keys = jax.random.split(k_run, n_per_chain)
-        if self.burn_in:
-            keys = jnp.concatenate([jax.random.split(k_burn, self.burn_in), keys])
+    def _compiled_sample(self, key, state: ChainState, fast: FastUpdates, n_per_chain: int):
+        """:meth:`sample` through the compiled sweeps (one call for all sweeps), with the random
+        numbers of the JAX path: the same keys per sweep (:func:`~psiloom.sampling.base.sweep_keys`),
+        the same proposals and uniforms (see :meth:`_sweep`)."""
+        burn_keys, keep_keys = sweep_keys(key, self.burn_in, n_per_chain)
+        keys = jnp.concatenate([burn_keys, keep_keys]) if self.burn_in else keep_keys
         n_sweeps, n_chains = self.burn_in + n_per_chain, state.x.shape[0]
         k_moves, log_u = jax.vmap(lambda k: self._sweep_randomness(k, state))(keys)
         table, kind = self._entry_table
@@ -267,14 +258,18 @@ class MetropolisSampler:
         else:
             draw = jax.vmap(lambda k: draw_entries(k, n_chains, len(table)))
             positions = jax.vmap(lambda k: draw(jax.random.split(k, self.sweep)))(k_moves)
-        xs, logs, cache, counts = fast.sweeps(state.x, state.cache, state.log_amp, table, positions, log_u,
-                                              1 if kind == "flip" else 2)
+        xs, logs, cache, counts = compiled.run_sweeps(fast.dense_rbm, state.x, state.cache, state.log_amp, table,
+                                                      positions, log_u, kind)
         state = ChainState(xs[-1], logs[-1], cache)
         return xs[self.burn_in:], logs[self.burn_in:], state, self._acceptance(counts[self.burn_in:], n_chains)
 
     def _acceptance(self, counts, n_chains: int):
         """Fraction of accepted proposals (float32) from the accepted counts of the stored sweeps."""
         return jnp.sum(counts).astype(jnp.float32) / jnp.float32(counts.shape[0] * self.sweep * n_chains)
+
+    def _uses_compiled_sweeps(self, fast: FastUpdates | None, state: ChainState) -> bool:
+        return (self.compiled_sweeps and self._entry_table is not None and fast is not None
+                and fast.dense_rbm is not None and state.cache is not None and compiled.available())
 
     def sample(self, key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
         """Burn in, then store ``n_per_chain`` samples per chain, one sweep apart.
@@ -285,24 +280,14 @@ class MetropolisSampler:
         ``log_amplitude`` offers them (see the module docstring).
         """
         n_per_chain = _positive_int("n_per_chain", n_per_chain)
-        fast = fast_updates_of(log_amplitude)
-        state = self._with_cache(state, fast, recompute=False)
-        k_burn, k_run = jax.random.split(key)
-        if (self.compiled_sweeps and self._entry_table is not None and fast is not None
-                and fast.sweeps is not None and state.cache is not None):
-            return self._compiled_sample(k_burn, k_run, state, fast, n_per_chain)
-        if self.burn_in:
-            def burn(st, draw):
-                k, i = draw
-                return self._sweep(k, st, log_amplitude, fast, i * self.sweep)[0], None
+        fast = fast_updates_of(log_amplitude)  # asked once per call
+        state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
+        if self._uses_compiled_sweeps(fast, state):
+            return self._compiled_sample(key, state, fast, n_per_chain)
 
-            state, _ = jax.lax.scan(burn, state, (jax.random.split(k_burn, self.burn_in), jnp.arange(self.burn_in)))
+        def sweep(k, st, i):
+            return self._sweep(k, st, log_amplitude, fast, i * self.sweep)
 
-        def collect(st, draw):
-            k, i = draw
-            st, acc = self._sweep(k, st, log_amplitude, fast, (self.burn_in + i) * self.sweep)
-            return st, (st.x, st.log_amp, acc)
-
-        state, (xs, logs, acc) = jax.lax.scan(collect, state, (jax.random.split(k_run, n_per_chain),
-                                                               jnp.arange(n_per_chain)))
+        state, (xs, logs, acc) = burn_in_and_collect(key, state, sweep, self.burn_in, n_per_chain,
+                                                     lambda st, acc: (st.x, st.log_amp, acc))
         return xs, logs, state, self._acceptance(acc, state.x.shape[0])

@@ -1,36 +1,47 @@
 """Symmetric proposal moves for Metropolis sampling of spin configurations.
 
-A move is a pure function ``propose(key, x) -> (x', sites)`` acting on a batch of chains
-``x`` of shape ``(n_chains, n_sites)`` (one independent proposal per chain). ``sites`` has
-shape ``(n_chains, K)`` (K fixed per move) and lists the sites whose value may have changed,
-padded with −1; fast-update trial states use it to update cached quantities in O(K) instead
-of re-evaluating ψ. All moves here are symmetric, T(x→x') = T(x'→x), so the Metropolis
-acceptance is min(1, |ψ(x')/ψ(x)|²).
+A move is a small immutable object (a frozen dataclass, hashable, registered with JAX as a
+static pytree so it can be closed over or passed through ``jax.jit``) that proposes
+
+    move(key, x) -> (x', sites)
+
+for a batch of chains ``x`` of shape ``(n_chains, n_sites)`` (one independent proposal per
+chain). ``sites`` has shape ``(n_chains, K)`` (``K = move.width(n_sites)``, fixed per move) and
+lists the sites whose value may have changed, padded with −1; fast-update trial states use it
+to update cached quantities in O(K) instead of re-evaluating ψ. Every move here is symmetric,
+T(x→x') = T(x'→x), so the Metropolis acceptance is min(1, |ψ(x')/ψ(x)|²).
+
+Besides proposing, a move says explicitly what the samplers need to know about it:
+
+* ``conserves_magnetisation`` and :meth:`Move.keeps_sector` — whether it may serve a
+  fixed-magnetisation space;
+* :meth:`Move.check` — its sites lie inside an ``n_sites`` configuration (``ValueError``);
+* :meth:`Move.entry_table` — ``(table, kind)`` when every proposal picks one row of a fixed
+  table of sites, uniformly per chain (:func:`draw_entries`): compiled sweeps draw from it;
+* :meth:`Move.ordered` — its systematic-scan version (:class:`OrderedMove`), or ``ValueError``.
+
+Moves: :data:`single_flip` (:class:`SingleFlip`), :class:`BondExchange`, :data:`pair_exchange`
+(:class:`PairExchange`), :data:`global_flip` (:class:`GlobalFlip`), :class:`Mixture` of any of
+them, and :class:`OrderedMove` (fixed order, the same in every chain). A new move subclasses
+:class:`Move` as a frozen dataclass and registers it with :func:`jax.tree_util.register_static`.
 """
 
 from __future__ import annotations
 
-from typing import Callable
+import dataclasses
+from typing import Any, ClassVar
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
-Move = Callable[[jax.Array, jax.Array], tuple[jax.Array, jax.Array]]
+FLIP, EXCHANGE = "flip", "exchange"  # kinds of entry tables: one site flipped, two sites swapped
 
 
 def draw_entries(key: jax.Array, n_chains: int, n_entries: int) -> jax.Array:
-    """The entry (site or bond index) each chain proposes in :func:`single_flip` and
-    :func:`bond_exchange` moves: ``(n_chains,)`` int, uniform over ``range(n_entries)``."""
+    """The entry (site or bond index) each chain proposes in :class:`SingleFlip` and
+    :class:`BondExchange` moves: ``(n_chains,)`` int, uniform over ``range(n_entries)``."""
     return jax.random.randint(key, (n_chains,), 0, n_entries)
-
-
-def single_flip(key: jax.Array, x: jax.Array):
-    """Flip one uniformly chosen spin per chain (changes the magnetisation by ±1)."""
-    c, n = x.shape
-    site = draw_entries(key, c, n)
-    rows = jnp.arange(c)
-    return x.at[rows, site].multiply(-1), site[:, None].astype(jnp.int32)
 
 
 def _swap(x, i, j):
@@ -39,210 +50,362 @@ def _swap(x, i, j):
     return x.at[rows, i].set(xj).at[rows, j].set(xi)
 
 
-def bond_exchange(bonds) -> Move:
-    """Swap the two spins of a uniformly chosen bond (e.g. the nearest-neighbour bonds of a
-    lattice); conserves the magnetisation. A bond with equal spins gives a null move."""
-    bonds = np.asarray(bonds, dtype=np.int32).reshape(-1, 2)
-    if len(bonds) == 0:
-        raise ValueError("bond_exchange needs at least one bond")
-    table = jnp.asarray(bonds)
+def site_table(table, width: int, what: str) -> tuple[tuple[int, ...], ...]:
+    """``table`` as a tuple of ``width``-tuples of site indices (hashable), checked: integers,
+    at least one row, no negative site and no row repeating a site (``ValueError`` naming them)."""
+    try:
+        arr = np.asarray(table)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{what} must be an array of site indices, got {table!r}") from err
+    if arr.size == 0:
+        raise ValueError(f"{what} needs at least one entry, got {table!r}")
+    if arr.dtype == bool or not (np.issubdtype(arr.dtype, np.integer)
+                                 or (np.issubdtype(arr.dtype, np.floating) and np.all(arr == np.round(arr)))):
+        raise ValueError(f"{what} must hold integer site indices, got {table!r}")
+    if arr.size % width:
+        raise ValueError(f"{what} must have rows of {width} sites, got shape {arr.shape}")
+    arr = arr.astype(np.int64).reshape(-1, width)
+    bad = arr[np.any(arr < 0, axis=1)]
+    if len(bad):
+        raise ValueError(f"{what} has negative site indices: {bad.tolist()}")
+    if width == 2:
+        same = arr[arr[:, 0] == arr[:, 1]]
+        if len(same):
+            raise ValueError(f"{what} pairs a site with itself: {same.tolist()}")
+    return tuple(tuple(int(s) for s in row) for row in arr)
 
-    def propose(key: jax.Array, x: jax.Array):
-        if int(bonds.max()) >= x.shape[1]:
-            raise ValueError(f"bond site {int(bonds.max())} outside the {x.shape[1]}-site configuration")
-        k = draw_entries(key, x.shape[0], len(bonds))
+
+def _check_table(table, n_sites: int, what: str):
+    arr = np.asarray(table)
+    bad = arr[np.any(arr >= n_sites, axis=1)]
+    if len(bad):
+        raise ValueError(f"{what} touches sites outside the {n_sites}-site configuration: {bad.tolist()}")
+
+
+class Move:
+    """Base of the proposal moves (see the module docstring). Subclasses are frozen dataclasses."""
+
+    conserves_magnetisation: ClassVar[bool] = False
+
+    def __call__(self, key: jax.Array, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+        raise NotImplementedError
+
+    def width(self, n_sites: int) -> int:
+        """K: the number of columns of ``sites``."""
+        raise NotImplementedError
+
+    def keeps_sector(self, space) -> bool:
+        """Whether every proposal stays in ``space`` (its fixed magnetisation, if any)."""
+        return not space.constrained or self.conserves_magnetisation
+
+    def check(self, n_sites: int) -> None:
+        """Raise ``ValueError`` unless every proposal stays within ``n_sites`` sites."""
+
+    def entry_table(self, n_sites: int) -> tuple[np.ndarray, str] | None:
+        """``(table (P, K) int64, kind)`` when each proposal picks a row of ``table`` uniformly
+        per chain by :func:`draw_entries` (kind ``"flip"``: K = 1; ``"exchange"``: K = 2, the two
+        values swapped); ``None`` when the choice depends on ``x`` or mixes moves."""
+        return None
+
+    def ordered(self, n_sites: int) -> OrderedMove:
+        """The systematic-scan version of this move (the same table visited in order)."""
+        raise ValueError(
+            f"order='sequential' needs single flips or a bond exchange (or an OrderedMove), got {self!r}; "
+            "use order='random' for other moves"
+        )
+
+
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class SingleFlip(Move):
+    """Flip one uniformly chosen spin per chain (changes the magnetisation by ±1)."""
+
+    def __call__(self, key, x):
+        c, n = x.shape
+        site = draw_entries(key, c, n)
+        return x.at[jnp.arange(c), site].multiply(-1), site[:, None].astype(jnp.int32)
+
+    def width(self, n_sites):
+        return 1
+
+    def entry_table(self, n_sites):
+        return np.arange(n_sites, dtype=np.int64)[:, None], FLIP
+
+    def ordered(self, n_sites):
+        return OrderedMove(np.arange(n_sites)[:, None], FLIP)
+
+
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class BondExchange(Move):
+    """Swap the two spins of a uniformly chosen bond (e.g. the nearest-neighbour bonds of a
+    lattice); conserves the magnetisation. A bond with equal spins gives a null move.
+
+    ``bonds``: pairs of distinct, non-negative site indices (any array-like of shape (B, 2));
+    kept as a tuple of pairs. Sites beyond the configuration are refused by :meth:`check`
+    (the samplers call it with their space) and when proposing.
+    """
+
+    bonds: Any
+    conserves_magnetisation: ClassVar[bool] = True
+
+    def __post_init__(self):
+        object.__setattr__(self, "bonds", site_table(self.bonds, 2, "bond_exchange bonds"))
+
+    @property
+    def array(self) -> np.ndarray:
+        return np.asarray(self.bonds, dtype=np.int64)
+
+    def __call__(self, key, x):
+        self.check(x.shape[1])
+        table = jnp.asarray(self.array, jnp.int32)
+        k = draw_entries(key, x.shape[0], len(self.bonds))
         i, j = table[k, 0], table[k, 1]
         return _swap(x, i, j), jnp.stack([i, j], axis=1)
 
-    propose.bonds = bonds
-    return propose
+    def width(self, n_sites):
+        return 2
+
+    def check(self, n_sites):
+        _check_table(self.array, n_sites, "bond_exchange bonds")
+
+    def entry_table(self, n_sites):
+        return self.array, EXCHANGE
+
+    def ordered(self, n_sites):
+        return OrderedMove(self.array, EXCHANGE)
+
+    def __repr__(self):
+        return f"BondExchange({len(self.bonds)} bonds)"
 
 
-def pair_exchange(key: jax.Array, x: jax.Array):
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class PairExchange(Move):
     """Swap a uniformly chosen up spin with a uniformly chosen down spin (any distance);
     conserves the magnetisation and is symmetric because the numbers of up and down spins are
     fixed. A fully polarised chain is left unchanged."""
-    k_up, k_down = jax.random.split(key)
-    up = x > 0
-    # uniform choice among the True entries: argmax of masked uniform noise
-    u_up = jnp.where(up, jax.random.uniform(k_up, x.shape), -1.0)
-    u_dn = jnp.where(~up, jax.random.uniform(k_down, x.shape), -1.0)
-    i, j = jnp.argmax(u_up, axis=1), jnp.argmax(u_dn, axis=1)
-    polarised = jnp.all(up, axis=1) | jnp.all(~up, axis=1)
-    sites = jnp.where(polarised[:, None], -1, jnp.stack([i, j], axis=1)).astype(jnp.int32)
-    return jnp.where(polarised[:, None], x, _swap(x, i, j)), sites
+
+    conserves_magnetisation: ClassVar[bool] = True
+
+    def __call__(self, key, x):
+        k_up, k_down = jax.random.split(key)
+        up = x > 0
+        # uniform choice among the True entries: argmax of masked uniform noise
+        u_up = jnp.where(up, jax.random.uniform(k_up, x.shape), -1.0)
+        u_dn = jnp.where(~up, jax.random.uniform(k_down, x.shape), -1.0)
+        i, j = jnp.argmax(u_up, axis=1), jnp.argmax(u_dn, axis=1)
+        polarised = jnp.all(up, axis=1) | jnp.all(~up, axis=1)
+        sites = jnp.where(polarised[:, None], -1, jnp.stack([i, j], axis=1)).astype(jnp.int32)
+        return jnp.where(polarised[:, None], x, _swap(x, i, j)), sites
+
+    def width(self, n_sites):
+        return 2
 
 
-def mixture(components) -> Move:
-    """A move that applies, independently in every chain, component ``k`` with probability p_k.
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class GlobalFlip(Move):
+    """Flip every spin, x → −x (deterministic, an involution, hence symmetric).
 
-    ``components`` is a sequence of ``(move, probability)`` pairs; the probabilities must be
-    positive and sum to one. The proposal kernel is the mixture
+    On its own it is not ergodic; mixed with local moves (:class:`Mixture`) it lets a chain jump
+    between the two mirror-image modes of |ψ|² in the ordered phase of the transverse-field
+    Ising model, where local flips cross between them only through improbable domain walls.
+    It negates the magnetisation, so it keeps only the ``total_sz = 0`` sector. All ``N`` sites
+    change: on the fast path its update costs about one full evaluation.
+    """
+
+    def __call__(self, key, x):
+        c, n = x.shape
+        return -x, jnp.broadcast_to(jnp.arange(n, dtype=jnp.int32), (c, n))
+
+    def width(self, n_sites):
+        return n_sites
+
+    def keeps_sector(self, space):
+        return not space.constrained or space.total_sz == 0
+
+
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class Mixture(Move):
+    """Apply, independently in every chain, ``components[k]`` with probability ``weights[k]``.
+
+    The proposal kernel is the mixture
 
         T(x → x') = Σ_k p_k T_k(x → x'),
 
     which is symmetric whenever every T_k is symmetric and the p_k do not depend on x, so the
     Metropolis acceptance stays min(1, |ψ(x')/ψ(x)|²) (Hastings 1970; Tierney 1994). The
-    mixture conserves the magnetisation only if every component does.
+    mixture keeps a sector only if every component does.
 
     Every component is evaluated on the whole batch and each chain keeps the one it drew, so a
     step costs the sum of the component costs (moves are cheap next to evaluating ψ). The
     ``sites`` arrays of the components are padded with −1 to a common width K = max_k K_k.
     """
-    try:
-        pairs = [(move, prob) for move, prob in components]
-    except (TypeError, ValueError) as err:
-        raise ValueError(f"mixture expects a sequence of (move, probability) pairs, got {components!r}") from err
-    if not pairs:
-        raise ValueError("mixture needs at least one (move, probability) pair")
-    moves = []
-    probs = []
-    for move, prob in pairs:
-        if not callable(move):
-            raise ValueError(f"mixture component {move!r} is not a move (a callable (key, x) -> (x', sites))")
-        try:
-            p = float(prob)
-        except (TypeError, ValueError) as err:
-            raise ValueError(f"mixture probability {prob!r} is not a number") from err
-        if not np.isfinite(p) or p <= 0.0:
-            raise ValueError(f"mixture probabilities must be finite and > 0, got {prob!r}")
-        moves.append(move)
-        probs.append(p)
-    total = float(np.sum(probs))
-    if abs(total - 1.0) > 1e-9:
-        raise ValueError(f"mixture probabilities must sum to 1, got {probs} (sum {total})")
-    log_probs = jnp.log(jnp.asarray(probs))
 
-    def propose(key: jax.Array, x: jax.Array):
-        k_pick, *k_moves = jax.random.split(key, len(moves) + 1)
-        outs = [move(k, x) for move, k in zip(moves, k_moves)]
+    components: tuple
+    weights: tuple
+
+    def __post_init__(self):
+        try:
+            moves, weights = tuple(self.components), tuple(self.weights)
+        except TypeError as err:
+            raise ValueError(f"Mixture takes a sequence of moves and one of weights, got {self.components!r}, "
+                             f"{self.weights!r}") from err
+        if not moves:
+            raise ValueError("Mixture needs at least one component")
+        if len(moves) != len(weights):
+            raise ValueError(f"Mixture needs one weight per component, got {len(moves)} moves and weights {weights!r}")
+        for move in moves:
+            if not isinstance(move, Move):
+                raise ValueError(f"Mixture component {move!r} is not a move (a psiloom.sampling.Move)")
+        probs = []
+        for w in weights:
+            try:
+                p = float(w)
+            except (TypeError, ValueError) as err:
+                raise ValueError(f"Mixture weight {w!r} is not a number") from err
+            if not np.isfinite(p) or p <= 0.0:
+                raise ValueError(f"Mixture weights must be finite and > 0, got {w!r}")
+            probs.append(p)
+        total = float(np.sum(probs))
+        if abs(total - 1.0) > 1e-9:
+            raise ValueError(f"Mixture weights must sum to 1, got {probs} (sum {total})")
+        object.__setattr__(self, "components", moves)
+        object.__setattr__(self, "weights", tuple(probs))
+
+    @property
+    def conserves_magnetisation(self) -> bool:  # type: ignore[override]
+        return all(m.conserves_magnetisation for m in self.components)
+
+    def keeps_sector(self, space):
+        return all(m.keeps_sector(space) for m in self.components)
+
+    def check(self, n_sites):
+        for m in self.components:
+            m.check(n_sites)
+
+    def width(self, n_sites):
+        return max(m.width(n_sites) for m in self.components)
+
+    def __call__(self, key, x):
+        k_pick, *k_moves = jax.random.split(key, len(self.components) + 1)
+        outs = [move(k, x) for move, k in zip(self.components, k_moves)]
         width = max(sites.shape[1] for _, sites in outs)
         proposals = jnp.stack([xp for xp, _ in outs])  # (n_moves, C, N)
         sites = jnp.stack([
             jnp.pad(s.astype(jnp.int32), ((0, 0), (0, width - s.shape[1])), constant_values=-1) for _, s in outs
         ])  # (n_moves, C, K)
-        choice = jax.random.categorical(k_pick, log_probs, shape=(x.shape[0],))
+        choice = jax.random.categorical(k_pick, jnp.log(jnp.asarray(self.weights)), shape=(x.shape[0],))
         rows = jnp.arange(x.shape[0])
         return proposals[choice, rows], sites[choice, rows]
 
-    propose.components = tuple(zip(moves, probs))
-    return propose
 
-
-def changes_magnetisation(move: Move) -> bool:
-    """Whether ``move`` is (or mixes in) :func:`single_flip`, the move here that changes Σ x.
-
-    Samplers use it to refuse such moves on a fixed-magnetisation space; moves written
-    elsewhere are assumed to know their own constraints."""
-    if move is single_flip or (isinstance(move, OrderedMove) and move.kind == "flip"):
-        return True
-    return any(changes_magnetisation(m) for m, _ in getattr(move, "components", ()))
-
-
-class OrderedMove:
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class OrderedMove(Move):
     """Proposals visited in a fixed order, the same in every chain (a *systematic scan*).
 
-    ``move(position, x) -> (x', sites)`` applies proposal ``position mod n_positions`` of a
-    table to every chain: flip site ``s`` (``kind="flip"``) or swap the spins of bond ``(i, j)``
-    (``kind="exchange"``). ``sites`` has shape ``(K,)``, shared by all chains, which spares
-    fast-update states a per-chain gather of their tables. Each proposal is an involution
+    ``move(position, x) -> (x', sites)`` applies proposal ``position mod n_positions`` of
+    ``table`` to every chain: flip site ``s`` (``kind="flip"``) or swap the spins of bond
+    ``(i, j)`` (``kind="exchange"``). ``sites`` has shape ``(K,)``, shared by all chains, which
+    spares fast-update states a per-chain gather of their tables. Each proposal is an involution
     (x → x' → x), hence symmetric, and the Metropolis step with it satisfies detailed balance;
     the composition over a cycle leaves |ψ|² invariant (sequential updating; e.g. Landau &
     Binder, *A Guide to Monte Carlo Simulations*, ch. 4, from memory) and is ergodic when the
     table covers the sites (flips) or a connected set of bonds (exchange). Chains stay
     independent: the order is deterministic and involves no shared random numbers.
 
-    ``move.random`` is the randomised version (one uniformly drawn entry per chain), used
-    where a single proposal without a position is asked for.
+    :meth:`randomised` is the version with one uniformly drawn entry per chain.
     """
 
-    def __init__(self, table, kind: str):
-        if kind not in ("flip", "exchange"):
-            raise ValueError(f"kind must be 'flip' or 'exchange', got {kind!r}")
-        width = 1 if kind == "flip" else 2
-        table = np.asarray(table, dtype=np.int32).reshape(-1, width)
-        if len(table) == 0:
-            raise ValueError(f"an ordered {kind} move needs at least one entry")
-        if table.min() < 0:
-            raise ValueError(f"negative site {int(table.min())} in the ordered {kind} move")
-        self.kind = kind
-        self.table = table
-        self.n_positions = len(table)
-        self.random = single_flip if kind == "flip" else bond_exchange(table)
+    table: Any
+    kind: str
 
-    def __call__(self, position, x: jax.Array):
-        if int(self.table.max()) >= x.shape[1]:
-            raise ValueError(f"site {int(self.table.max())} outside the {x.shape[1]}-site configuration")
-        sites = jnp.asarray(self.table)[jnp.mod(position, self.n_positions)]
-        if self.kind == "flip":
+    def __post_init__(self):
+        if self.kind not in (FLIP, EXCHANGE):
+            raise ValueError(f"kind must be 'flip' or 'exchange', got {self.kind!r}")
+        width = 1 if self.kind == FLIP else 2
+        object.__setattr__(self, "table", site_table(self.table, width, f"ordered {self.kind} table"))
+
+    @property
+    def array(self) -> np.ndarray:
+        return np.asarray(self.table, dtype=np.int64)
+
+    @property
+    def n_positions(self) -> int:
+        return len(self.table)
+
+    @property
+    def conserves_magnetisation(self) -> bool:  # type: ignore[override]
+        return self.kind == EXCHANGE
+
+    def randomised(self) -> Move:
+        """The random-order move over the same table (:class:`SingleFlip` needs a full table of sites)."""
+        if self.kind == EXCHANGE:
+            return BondExchange(self.table)
+        return SingleFlip()
+
+    def __call__(self, position, x):
+        self.check(x.shape[1])
+        sites = self.sites_at(position)
+        if self.kind == FLIP:
             return x.at[:, sites[0]].multiply(-1), sites
         i, j = sites[0], sites[1]
         return x.at[:, i].set(x[:, j]).at[:, j].set(x[:, i]), sites
 
+    def width(self, n_sites):
+        return 1 if self.kind == FLIP else 2
+
+    def check(self, n_sites):
+        _check_table(self.array, n_sites, f"ordered {self.kind} table")
+
+    def entry_table(self, n_sites):
+        return self.array, self.kind
+
+    def ordered(self, n_sites):
+        return self
+
     def sites_at(self, positions) -> jax.Array:
         """The changed sites of proposals ``positions`` (any shape ``P``): int32 ``(*P, K)``."""
-        return jnp.asarray(self.table)[jnp.mod(positions, self.n_positions)]
+        return jnp.asarray(self.array, jnp.int32)[jnp.mod(positions, self.n_positions)]
 
     def proposed_values(self, old: jax.Array) -> jax.Array:
         """New values at the sites of one proposal from the old ones ``(n, K)``: ``−x_s`` for a
         flip, the two values swapped for an exchange (what :meth:`__call__` writes into ``x``)."""
-        return -old if self.kind == "flip" else old[:, ::-1]
+        return -old if self.kind == FLIP else old[:, ::-1]
 
     def __repr__(self) -> str:
         return f"OrderedMove({self.kind}, {self.n_positions} positions)"
 
 
-def ordered_flips(n_sites: int) -> OrderedMove:
-    """Flip sites 0, 1, …, n_sites − 1 in turn (every chain the same site)."""
-    if isinstance(n_sites, bool) or not isinstance(n_sites, (int, np.integer)) or n_sites < 1:
-        raise ValueError(f"n_sites must be a positive integer, got {n_sites!r}")
-    return OrderedMove(np.arange(n_sites), "flip")
-
-
-def ordered_exchange(bonds) -> OrderedMove:
-    """Swap the spins of the bonds in the listed order (every chain the same bond)."""
-    return OrderedMove(bonds, "exchange")
-
-
-def ordered_version(move: Move, n_sites: int) -> OrderedMove:
-    """The systematic-scan counterpart of :func:`single_flip` or of a :func:`bond_exchange` move."""
-    if isinstance(move, OrderedMove):
-        return move
-    if move is single_flip:
-        return ordered_flips(n_sites)
-    if getattr(move, "bonds", None) is not None:
-        return ordered_exchange(move.bonds)
-    raise ValueError(
-        f"order='sequential' needs single_flip or a bond_exchange move (or an OrderedMove), got {move!r}; "
-        "use order='random' for other moves"
-    )
-
-
-def entry_table(move: Move, n_sites: int):
-    """``(table, kind)`` of a move whose proposals pick one entry of a fixed table uniformly per
-    chain (by :func:`draw_entries`) or in a fixed order: ``table`` (P, K) int sites, ``kind``
-    ``"flip"`` (K = 1) or ``"exchange"`` (K = 2); ``None`` for other moves (e.g.
-    :func:`pair_exchange`, whose choice depends on ``x``, or a mixture)."""
-    if isinstance(move, OrderedMove):
-        return move.table, move.kind
-    if move is single_flip:
-        return np.arange(n_sites, dtype=np.int32)[:, None], "flip"
-    if getattr(move, "bonds", None) is not None:
-        return move.bonds, "exchange"
-    return None
+single_flip = SingleFlip()
+pair_exchange = PairExchange()
+global_flip = GlobalFlip()
 
 
 def choose_move(space, move: Move | None = None, bonds=None) -> Move:
-    """The move a sampler uses on ``space``: ``move`` itself after checking that it keeps a
-    fixed magnetisation, or the default — single flips for an unconstrained space,
-    nearest-neighbour exchange over ``bonds`` (any-pair exchange without bonds) otherwise."""
+    """The move a sampler uses on ``space``: ``move`` itself after checking that it is a
+    :class:`Move`, keeps the space's sector and stays within its sites, or the default — single
+    flips for an unconstrained space, nearest-neighbour exchange over ``bonds`` (any-pair
+    exchange without bonds) otherwise."""
+    if move is not None and bonds is not None:
+        raise ValueError("give either move= or bonds=, not both (bonds= picks a BondExchange move)")
+    if bonds is not None:
+        exchange = BondExchange(bonds)
+        exchange.check(space.n_sites)  # bad bonds are refused even where single flips are the default
     if move is None:
         if space.constrained:
-            return bond_exchange(bonds) if bonds is not None else pair_exchange
-        return single_flip
-    if space.constrained and changes_magnetisation(move):  # single_flip, also inside a mixture
+            move = exchange if bonds is not None else pair_exchange
+        else:
+            move = single_flip
+    if not isinstance(move, Move):
+        raise TypeError(f"move must be a psiloom.sampling.Move (e.g. single_flip, BondExchange(bonds)), got {move!r}")
+    if not move.keeps_sector(space):
         raise ValueError(
-            f"single_flip changes the magnetisation but the space fixes total_sz={space.total_sz}; "
+            f"{move!r} changes the magnetisation but the space fixes total_sz={space.total_sz}; "
             "use an exchange move"
         )
+    move.check(space.n_sites)
     return move

@@ -11,7 +11,9 @@ Geyer 1991; Hukushima & Nemoto 1996):
 
 * a Metropolis update of every replica with its own acceptance
   min(1, exp(2 β_r Re[log ψ(x') − log ψ(x)])) (symmetric proposal, see
-  :mod:`psiloom.sampling.moves`);
+  :mod:`psiloom.sampling.moves`): the β-weighted case of the shared acceptance step
+  :func:`psiloom.sampling.base.metropolis_accept`, with the proposal evaluated as in
+  :mod:`psiloom.sampling.metropolis` (fast updates where the state has them);
 * an exchange of the configurations of neighbouring replicas r, r+1, accepted with
 
       min(1, exp((β_r − β_{r+1}) (ℓ(x_{r+1}) − ℓ(x_r)))),     ℓ(x) = 2 Re log ψ(x),
@@ -38,10 +40,12 @@ import jax.numpy as jnp
 import numpy as np
 
 from psiloom.reduce import sample_mean, sample_sum
-from psiloom.sampling.metropolis import LogAmplitudeFn, _positive_int
+from psiloom.sampling import base
+from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect
+from psiloom.sampling.metropolis import _positive_int, attach_cache, proposal_log_amp
 from psiloom.sampling.moves import Move, choose_move
 from psiloom.spaces import SpinSpace
-from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
+from psiloom.states.fast import FastUpdates, fast_updates_of
 
 
 class TemperingState(NamedTuple):
@@ -85,12 +89,6 @@ def _check_betas(betas) -> np.ndarray:
     return arr
 
 
-def _select(accept, new, old):
-    return jax.tree_util.tree_map(
-        lambda a, b: jnp.where(accept.reshape(accept.shape + (1,) * (a.ndim - 1)), a, b), new, old
-    )
-
-
 def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
     """Pure kernel for one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ)):
 
@@ -107,24 +105,17 @@ def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
     def step(key, x, log_amp, log_amplitude: LogAmplitudeFn, log_u=None, cache=None, fast: FastUpdates | None = None):
         r, c = log_amp.shape
         k_prop, k_acc = jax.random.split(key)
-        flat = x.reshape(r * c, *x.shape[2:])
+        flat, flat_log = x.reshape(r * c, *x.shape[2:]), log_amp.reshape(r * c)
         flat_new, sites = move(k_prop, flat)
-        if fast is not None and cache is not None:
-            delta, cache_new = fast.update(flat, cache, sites, values_at(flat_new, sites))
-            delta = delta.reshape(r, c)
-            log_new = log_amp + delta
-        else:
-            cache_new = None
-            log_new = log_amplitude(flat_new).reshape(r, c)
-            delta = log_new - log_amp
-        beta = jnp.asarray(betas, dtype=jnp.real(log_new).dtype)[:, None]
-        log_ratio = 2.0 * beta * jnp.real(delta)
+        delta, log_new, cache_new = proposal_log_amp(flat, flat_log, cache, flat_new, sites, log_amplitude, fast)
+        log_ratio = 2.0 * jnp.real(delta)
+        beta = jnp.repeat(jnp.asarray(betas, dtype=log_ratio.dtype), c)  # replica-major, as the flattening
         if log_u is None:
-            log_u = jnp.log(jax.random.uniform(k_acc, log_ratio.shape, dtype=log_ratio.dtype))
-        accept = log_u < log_ratio
-        x = jnp.where(accept.reshape(r, c, *([1] * (x.ndim - 2))), flat_new.reshape(x.shape), x)
-        cache = None if cache_new is None else _select(accept.reshape(-1), cache_new, cache)
-        return x, jnp.where(accept, log_new, log_amp), cache, accept
+            log_u = jnp.log(jax.random.uniform(k_acc, (r, c), dtype=log_ratio.dtype))
+        current = (flat, flat_log, cache if cache_new is not None else None)
+        (flat, flat_log, cache), accept = base.metropolis_accept(
+            log_u.reshape(r * c), log_ratio, (flat_new, log_new, cache_new), current, beta=beta)
+        return flat.reshape(x.shape), flat_log.reshape(r, c), cache, accept.reshape(r, c)
 
     return step
 
@@ -194,12 +185,9 @@ class TemperingSampler:
     @staticmethod
     def _with_cache(state: TemperingState, fast: FastUpdates | None, recompute: bool = True) -> TemperingState:
         """Attach (or drop) the fast-update cache of all replicas, flattened to (R·C, ...)."""
-        if fast is None:
-            return state._replace(cache=None)
-        if recompute or state.cache is None:
-            r, c = state.log_amp.shape
-            return state._replace(cache=fast.init(state.x.reshape(r * c, *state.x.shape[2:])))
-        return state
+        r, c = state.log_amp.shape
+        flat = state.x.reshape(r * c, *state.x.shape[2:])
+        return state._replace(cache=attach_cache(flat, state.cache, fast, recompute))
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> TemperingState:
         """Independent random configurations for every replica of every chain."""
@@ -253,20 +241,19 @@ class TemperingSampler:
         acceptance and per-pair exchange rate of the stored part.
         """
         n_per_chain = _positive_int("n_per_chain", n_per_chain)
-        fast = fast_updates_of(log_amplitude)
+        fast = fast_updates_of(log_amplitude)  # asked once per call
         state = self._with_cache(state, fast, recompute=False)
-        k_burn, k_run = jax.random.split(key)
-        if self.burn_in:
-            state, _ = jax.lax.scan(lambda s, k: (self._step(k, s, log_amplitude, fast)[0], None), state,
-                                    jax.random.split(k_burn, self.burn_in))
 
-        def collect(st, k):
-            st, info = self._step(k, st, log_amplitude, fast)
+        def sweep(k, st, i):
+            return self._step(k, st, log_amplitude, fast)
+
+        def record(st, info):
             tried = info.attempted.astype(info.acceptance.dtype)
             accepted = sample_mean(info.swapped.astype(info.acceptance.dtype), axis=1)
-            return st, (st.x[0], st.log_amp[0], info.acceptance, tried, accepted)
+            return st.x[0], st.log_amp[0], info.acceptance, tried, accepted
 
-        state, (xs, logs, acc, tried, accepted) = jax.lax.scan(collect, state, jax.random.split(k_run, n_per_chain))
+        state, (xs, logs, acc, tried, accepted) = burn_in_and_collect(key, state, sweep, self.burn_in, n_per_chain,
+                                                                      record)
         n_tried = sample_sum(tried)
         swap_rate = jnp.where(n_tried > 0, sample_sum(accepted) / jnp.maximum(n_tried, 1.0), jnp.nan)
         acceptance = sample_mean(acc)

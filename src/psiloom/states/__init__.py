@@ -10,13 +10,7 @@ from psiloom.states.base import (
 )
 from psiloom.states.autoregressive import ChainRuleState
 from psiloom.states.bound import BoundState
-from psiloom.states.fast import (
-    BoundAmplitude,
-    FastUpdates,
-    bind_amplitude,
-    fast_updates_of,
-    supports_fast_updates,
-)
+from psiloom.states.fast import FastUpdates, RBMArrays, fast_updates_of, supports_fast_updates
 from psiloom.states.feedforward import FeedForward
 from psiloom.states.jastrow import TwoBodyJastrow
 from psiloom.states.product import ProductState
@@ -29,6 +23,6 @@ __all__ = [
     "TrialState", "check_input_size", "count_real_parameters", "default_complex_dtype",
     "default_real_dtype", "init_parameters", "FeedForward", "TwoBodyJastrow", "ProductState",
     "RBM", "log_two_cosh", "sum_log_two_cosh", "BoundState", "ChainRuleState",
-    "BoundAmplitude", "FastUpdates", "bind_amplitude", "fast_updates_of", "supports_fast_updates", "RBMCache", "rbm_fast_updates",
+    "FastUpdates", "RBMArrays", "fast_updates_of", "supports_fast_updates", "RBMCache", "rbm_fast_updates",
     "Symmetrized", "TranslationInvariantRBM", "GroupConv", "GroupConvNet", "GroupLift",
 ]

@@ -2,11 +2,13 @@
 
 Most samplers only need ``x ↦ log ψ(x)``. Some need more of the trial state: block Gibbs
 sampling reads the RBM weights, direct sampling calls the autoregressive state's own
-``sample`` method. :class:`BoundState` serves both: calling it gives
+``sample`` method, fast-update paths ask for the state's fast updates
+(:mod:`psiloom.states.fast`). :class:`BoundState` serves all of them: calling it gives
 ``model.apply(variables, x)``, and its ``model`` and ``variables`` attributes stay available.
+``fast=False`` makes every consumer take the generic path of full re-evaluation.
 
-It is a pytree (the variables are its leaves, the model is static), so it can be passed
-through ``jax.jit`` and ``jax.lax`` control flow like any other argument.
+It is a pytree (the variables are its leaves, the model and the flag are static), so it can be
+passed through ``jax.jit`` and ``jax.lax`` control flow like any other argument.
 """
 
 from __future__ import annotations
@@ -18,15 +20,21 @@ import jax
 
 @jax.tree_util.register_pytree_node_class
 class BoundState:
-    """``log ψ`` of ``model`` at fixed ``variables``: ``BoundState(model, variables)(x)``."""
+    """``log ψ`` of ``model`` at fixed ``variables``: ``BoundState(model, variables, fast=True)(x)``.
 
-    __slots__ = ("model", "variables", "__weakref__")
+    ``fast``: whether consumers may use the model's fast updates (when it offers them).
+    """
 
-    def __init__(self, model, variables: Any):
+    __slots__ = ("model", "variables", "fast", "__weakref__")
+
+    def __init__(self, model, variables: Any, fast: bool = True):
         if not hasattr(model, "apply"):
             raise ValueError(f"BoundState needs a Flax module with .apply, got {model!r}")
+        if not isinstance(fast, bool):
+            raise ValueError(f"fast must be True or False, got {fast!r}")
         self.model = model
         self.variables = variables
+        self.fast = fast
 
     def __call__(self, x):
         return self.model.apply(self.variables, x)
@@ -36,14 +44,14 @@ class BoundState:
         return self.model.apply(self.variables, *args, method=method, **kwargs)
 
     def tree_flatten(self):
-        return (self.variables,), self.model
+        return (self.variables,), (self.model, self.fast)
 
     @classmethod
-    def tree_unflatten(cls, model, children):
+    def tree_unflatten(cls, aux, children):
         obj = object.__new__(cls)
-        obj.model = model
+        obj.model, obj.fast = aux
         obj.variables = children[0]
         return obj
 
     def __repr__(self) -> str:
-        return f"BoundState({type(self.model).__name__})"
+        return f"BoundState({type(self.model).__name__}, fast={self.fast})"

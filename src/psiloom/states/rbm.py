@@ -49,9 +49,10 @@ whenever ``init`` runs (every optimisation step), so the rounding of a chain's s
 updates accumulates only over one step's sweeps. In float32 the tables overflow for
 ``|W| > 44``. It is an opt-in: the default keeps the parameters' precision.
 
-Compiled sweeps. For real parameters on the CPU the fast updates also carry compiled
-Metropolis sweeps (:mod:`psiloom.states.rbm_sweep`, the same update in one Numba loop nest),
-which :class:`~psiloom.sampling.MetropolisSampler` uses for single flips and bond exchanges.
+Compiled sweeps. For real parameters the fast updates also hand out the plain arrays of the
+state (``dense_rbm``: W, a and the tables e^{±2W}); :class:`~psiloom.sampling.MetropolisSampler`
+feeds them to its compiled CPU sweeps (:mod:`psiloom.sampling.compiled`, the same update in one
+Numba loop nest) for single flips and bond exchanges.
 """
 
 from __future__ import annotations
@@ -63,8 +64,7 @@ import jax.numpy as jnp
 import flax.linen as nn
 
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
-from psiloom.states import rbm_sweep
-from psiloom.states.fast import FastUpdates, log_product, values_at
+from psiloom.states.fast import FastUpdates, RBMArrays, log_product
 
 
 def log_two_cosh(z):
@@ -154,7 +154,7 @@ class RBM(TrialState):
 
     def fast_updates(self) -> FastUpdates:
         """Fast-update functions (see the module docstring); call via
-        ``model.apply(variables, method="fast_updates")`` or :func:`psiloom.states.bind_amplitude`."""
+        ``model.apply(variables, method="fast_updates")`` or :func:`psiloom.states.fast_updates_of`."""
         params = self.variables["params"]
         return rbm_fast_updates(
             params["kernel"],
@@ -201,7 +201,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
             theta = theta + hidden_bias
         return RBMCache(*(half.astype(ctype) for half in _one_plus_minus_tanh(theta)))
 
-    def update_at(old_values, cache: RBMCache, sites, new_values):
+    def update(old_values, cache: RBMCache, sites, new_values):
         sites = jnp.asarray(sites)
         valid = sites >= 0
         idx = jnp.where(valid, sites, 0)
@@ -226,10 +226,5 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
         log_ratio = log_product(ratio, block=log_block).astype(kernel.dtype)
         return delta + log_ratio, RBMCache(plus * inverse, minus * inverse)
 
-    def update(x, cache: RBMCache, sites, new_values):
-        return update_at(values_at(x, sites), cache, sites, new_values)
-
-    sweeps = None
-    if not jnp.iscomplexobj(kernel) and rbm_sweep.available():
-        sweeps = rbm_sweep.make_sweeps(kernel, visible_bias, rise, fall)
-    return FastUpdates(init, update, update_at, sweeps)
+    dense = None if jnp.iscomplexobj(kernel) else RBMArrays(kernel, hidden_bias, visible_bias, rise, fall)
+    return FastUpdates(init, update, dense)

@@ -43,7 +43,7 @@ import numpy as np
 import flax.linen as nn
 
 from psiloom.states.base import TrialState
-from psiloom.states.fast import FastUpdates, supports_fast_updates, values_at
+from psiloom.states.fast import FastUpdates, supports_fast_updates
 from psiloom.symmetry import Sector, SymmetryGroup
 
 __all__ = ["Symmetrized", "SymmetrizedCache", "log_sum_exp_weighted"]
@@ -180,18 +180,11 @@ class Symmetrized(TrialState):
             total = self._weighted_sum(terms, log_w)
             return total - cache.log_amplitude, SymmetrizedCache(base_cache, terms, total)
 
-        def update(x, cache: SymmetrizedCache, sites, new_values):
-            if base_fast.update_at is not None:
-                return update_at(values_at(x, sites), cache, sites, new_values)
-            moved, values = moved_and_values(sites, new_values)
-            one_image = jax.vmap(base_fast.update, in_axes=(1, 1, 0, 0), out_axes=(1, 1))
-            return combine(cache, *one_image(self._images(x, perms, flips), cache.base, moved, values))
-
-        def update_at(old_values, cache: SymmetrizedCache, sites, new_values):
+        def update(old_values, cache: SymmetrizedCache, sites, new_values):
             # the image e.x holds f_e x_i at e(i): its old values are f_e times those of x
             moved, values = moved_and_values(sites, new_values)
             old = signs[:, None, None].astype(old_values.dtype) * old_values[None]  # (E, n, K)
-            one_image = jax.vmap(base_fast.update_at, in_axes=(0, 1, 0, 0), out_axes=(1, 1))
+            one_image = jax.vmap(base_fast.update, in_axes=(0, 1, 0, 0), out_axes=(1, 1))
             return combine(cache, *one_image(old, cache.base, moved, values))
 
-        return FastUpdates(init, update, update_at if base_fast.update_at is not None else None)
+        return FastUpdates(init, update)

@@ -1,7 +1,8 @@
-"""Compiled Metropolis sweeps for RBM-family trial states (CPU).
+"""Compiled Metropolis sweeps for RBM-family trial states (CPU), fed the state's plain arrays.
 
 A Metropolis sweep makes ``S`` proposals in turn in every chain; on the fast path each costs
-O(M) per chain (:mod:`psiloom.states.rbm`). Expressed in JAX, every proposal is a handful of
+O(M) per chain (:mod:`psiloom.states.rbm`), and the state hands out its plain arrays
+(:class:`~psiloom.states.RBMArrays`: W, a, b and the tables e^{±2W}) for kernels like this one. Expressed in JAX, every proposal is a handful of
 XLA kernels over the ``(n_chains, M)`` cache, and on a CPU their launch overhead, the
 materialised intermediates and the scalar reductions cost more than the arithmetic itself.
 This module runs the whole sweep as one loop nest compiled by Numba and called from JAX
@@ -25,29 +26,50 @@ chains of a block make proposal t before any makes t + 1, so the factor rows of 
 (precomputed for every entry of the move's table) are read once per block.
 
 It serves moves that pick an entry of a fixed table (single flips, bond exchanges; random or
-sequential order, :func:`~psiloom.sampling.moves.entry_table`) with real parameters; the
+sequential order, :meth:`~psiloom.sampling.moves.Move.entry_table`) with real parameters; the
 sampler falls back to the JAX path for everything else (complex parameters, moves such as
-pair exchange or mixtures, a non-CPU backend, or Numba absent). Both give the same chain for the same random numbers to
-rounding of the log-ratios (``tests/test_compiled_sweep.py``). The random numbers are drawn
-in JAX and passed in: the kernel itself is deterministic. All sweeps of one
-:meth:`~psiloom.sampling.MetropolisSampler.sample` call go to the kernel in one host call.
+pair exchange or mixtures, a non-CPU backend, or Numba absent). Both give the same chain for
+the same random numbers to rounding of the log-ratios (``tests/test_compiled_sweep.py``). The
+random numbers are drawn in JAX and passed in: the kernel itself is deterministic. All sweeps
+of one :meth:`~psiloom.sampling.MetropolisSampler.sample` call go to the kernel in one host
+call (:func:`host_call`, the only place that calls back to the host).
+
+Guards (raised as exceptions from the host call, never a crash or a silently wrong chain):
+non-finite parameters, tables, caches, log-amplitudes or uniforms are refused before the
+kernel runs; and where the hidden fields could reach the pair cache's limit (the smaller of
+``1 ± tanh θ``, ~2e^{−2|θ|}, falls below the smallest normal number: |θ| ≳ 354 in float64, ≳ 44
+in float32; the bound is max_j Σ_i |W_ij| + |b_j|) every accepted update checks the new pair
+and the call fails once it underflows, instead of returning a finite but wrong log ψ.
+
+Numba's on-disk cache goes to ``$NUMBA_CACHE_DIR`` when the user set it, else to
+``$XDG_CACHE_HOME/psiloom/numba`` (``~/.cache/psiloom/numba``), never into the package folder.
 """
 
 from __future__ import annotations
 
 import functools
 import math
+import os
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+def _user_cache_dir() -> str:
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return os.path.join(base, "psiloom", "numba")
+
+
 try:  # Numba is a dependency, but the library stays usable (on the JAX path) without it
     import numba
 except ImportError:  # pragma: no cover - exercised only where Numba is missing
     numba = None
+else:
+    if not os.environ.get("NUMBA_CACHE_DIR") and not numba.config.CACHE_DIR:
+        numba.config.CACHE_DIR = _user_cache_dir()  # what NUMBA_CACHE_DIR would set; read when compiling
 
 FLIP, EXCHANGE = 1, 2  # proposal kinds = number of changed sites K
+_KINDS = {"flip": FLIP, "exchange": EXCHANGE}
 
 _LOG2 = math.log(2.0)
 _LOW, _HIGH = 2.0 ** -300, 2.0 ** 300
@@ -84,13 +106,15 @@ def _fill_factors(fwd_p, fwd_q, row, i, j, rise, fall, kind):
 
 @functools.partial(_compiled, parallel=True)
 def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, bias, d_max, kind,
-                  xs, log_amps, accepted):
+                  guard, tiny, xs, log_amps, accepted, failed):
     """In place: ``n_sweeps = len(positions)`` sweeps of ``S = positions.shape[1]`` proposals in
     every chain, proposal ``(s, t)`` of chain ``c`` flipping site ``table[positions[s, t, c], 0]``
     (``kind`` 1) or swapping the values at the two sites ``table[positions[s, t, c]]`` (``kind``
     2); ``positions`` (n_sweeps, S, n_chains), or (n_sweeps, S, 1) for the same in all chains.
     After sweep ``s`` the configurations and log-amplitudes go to ``xs[s]``, ``log_amps[s]`` and
-    the number of accepted proposals (null ones included) to ``accepted[s]``."""
+    the number of accepted proposals (null ones included) to ``accepted[s]``. With ``guard``,
+    every accepted update checks that no member of the new pair fell below ``tiny`` (the pair
+    cache's limit, module docstring) and marks its block in ``failed`` otherwise."""
     n_chains, m = plus.shape
     n_positions = table.shape[0]
     # groups of 4R factors 2r_j, each within 2e^{±d_max}: |log group| ≤ 4R(d_max + log 2) ≤ 400,
@@ -172,10 +196,22 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
                     delta += math.log(prod) + (exponent - m) * _LOG2  # the (P + Q) / 2 halves: -m log 2
                     if log_u[s, t, chain] < 2.0 * delta:
                         block_accepted[chain - first] += 1
-                        for u in range(m):  # (p, q) <- (2P, 2Q) / (P + Q)
-                            inverse = 2.0 / ratio[u]
-                            pc[u] = pc[u] * ep[u] * inverse
-                            qc[u] = qc[u] * em[u] * inverse
+                        if guard:  # hidden fields may reach the pair cache's limit: check the new pair
+                            lowest = 2.0
+                            for u in range(m):
+                                inverse = 2.0 / ratio[u]
+                                pu = pc[u] * ep[u] * inverse
+                                qu = qc[u] * em[u] * inverse
+                                pc[u] = pu
+                                qc[u] = qu
+                                lowest = min(lowest, min(pu, qu))
+                            if lowest < tiny:
+                                failed[block] = 1
+                        else:
+                            for u in range(m):  # (p, q) <- (2P, 2Q) / (P + Q)
+                                inverse = 2.0 / ratio[u]
+                                pc[u] = pc[u] * ep[u] * inverse
+                                qc[u] = qc[u] * em[u] * inverse
                         block_log_amp[chain - first] += delta
                         if kind == FLIP:
                             xc[i] = -xi
@@ -191,57 +227,95 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
         accepted[s] = accepted_per_chain[s].sum()
 
 
-def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, tables, bias_and_bound):
-    # the kernel works in place on writable copies (the parallel loop also takes no read-only input)
-    x, plus, minus, log_amp, log_u, tables, bias_and_bound = (
-        np.array(a) for a in (x, plus, minus, log_amp, log_u, tables, bias_and_bound))
+def pair_cache_limit(dtype) -> float:
+    """|θ| beyond which the smaller member of the pair ``1 ± tanh θ`` (~2e^{−2|θ|}) falls below
+    the smallest normal number of ``dtype``: ½ log(2 / tiny) (354.4 in float64, 44.4 in float32)."""
+    return 0.5 * math.log(2.0 / float(np.finfo(dtype).tiny))
+
+
+def _refuse_non_finite(**arrays):
+    for name, a in arrays.items():
+        if a is not None and not np.all(np.isfinite(a)):
+            raise FloatingPointError(f"compiled sweeps: non-finite {name} (NaN or inf); check the trial state's "
+                                     "parameters and the chains")
+
+
+def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, kernel, hidden_bias, visible_bias, tables):
+    """The host side of :func:`host_call`: checks, then :func:`_sweep_kernel` on writable copies."""
+    x, plus, minus, log_amp, log_u, kernel, tables = (
+        np.array(a) for a in (x, plus, minus, log_amp, log_u, kernel, tables))
+    visible_bias = np.zeros(kernel.shape[0], kernel.dtype) if visible_bias is None else np.array(visible_bias)
+    hidden_bias = np.zeros(kernel.shape[1], kernel.dtype) if hidden_bias is None else np.asarray(hidden_bias)
+    _refuse_non_finite(parameters=kernel, hidden_bias=hidden_bias, visible_bias=visible_bias,
+                       factor_tables=tables, cache=np.stack([plus, minus]), log_amplitudes=log_amp,
+                       configurations=x)
+    if np.any(np.isnan(log_u)):  # −inf is a legitimate log u (u = 0)
+        raise FloatingPointError("compiled sweeps: NaN among the acceptance uniforms")
+    limit = pair_cache_limit(plus.dtype)
+    field_bound = float(np.max(np.sum(np.abs(kernel), axis=0) + np.abs(hidden_bias)))  # max |θ_j| over all x
+    guard = field_bound >= limit
+    tiny = float(np.finfo(plus.dtype).tiny)
+    if guard and min(float(plus.min()), float(minus.min())) < tiny:
+        raise FloatingPointError(_limit_message(limit))
     n_sweeps = positions.shape[0]
     xs = np.empty((n_sweeps, *x.shape), x.dtype)
     log_amps = np.empty((n_sweeps, *log_amp.shape), log_amp.dtype)
     accepted = np.zeros(n_sweeps, np.int64)
+    failed = np.zeros(-(-x.shape[0] // _CHAIN_BLOCK), np.int64)
+    d_max = 4.0 * float(np.max(np.abs(kernel)))  # |d| ≤ 2|W_i| + 2|W_j|
     _sweep_kernel(x, plus, minus, log_amp, table, np.array(positions, np.int64), log_u, tables[0], tables[1],
-                  bias_and_bound[:-1], float(bias_and_bound[-1]), kind, xs, log_amps, accepted)
+                  visible_bias.astype(kernel.dtype), d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
+    if failed.any():
+        raise FloatingPointError(_limit_message(limit))
     return xs, log_amps, plus, minus, accepted.astype(np.int32)
 
 
-def make_sweeps(kernel, visible_bias, rise, fall):
-    """The compiled sweeps of an RBM with real ``kernel`` W (N, M), its ``visible_bias`` (or None)
-    and the fast-update tables ``rise = e^{2W}``, ``fall = e^{−2W}`` (in the cache dtype).
+def _limit_message(limit):
+    return (f"compiled sweeps: a hidden field reached |θ| > {limit:.0f}, where the pair cache (1 ± tanh θ) "
+            "underflows and fast updates lose log ψ; reduce the weights (or sample with fast=False)")
 
-    Returns ``sweeps(x, cache, log_amp, table, positions, log_u, kind) -> (xs, log_amps, cache,
-    accepted)``, the ``sweeps`` function of :class:`~psiloom.states.FastUpdates`: ``table``
-    (P, K) a NumPy int array of the sites of the P possible proposals (K = ``kind`` = 1 flips,
-    2 exchanges); ``positions`` (n_sweeps, S, n_chains) the entries of ``table`` proposed in turn
-    (taken mod P), or (n_sweeps, S, 1) for the same entries in every chain; ``log_u``
-    (n_sweeps, S, n_chains) the logarithms of the acceptance uniforms; ``xs`` (n_sweeps, n_chains,
-    N) and ``log_amps`` (n_sweeps, n_chains) the chains after every sweep, ``cache`` that of
-    ``xs[-1]`` (the input cache's type), ``accepted`` (n_sweeps,) int32 the accepted proposals
-    (null ones included) per sweep. Usable inside ``jax.jit``: one host call for all sweeps (a
-    host callback costs ~0.1-0.5 ms here, more than one sweep of a small state).
+
+def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, log_u, arrays):
+    """The one host callback: ``(xs, log_amps, plus, minus, accepted)`` of :func:`run_sweeps`
+    (kept small and separate so that it can be wrapped, e.g. per device shard)."""
+    n_sweeps = positions.shape[0]
+    shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
+              jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
+              jax.ShapeDtypeStruct(plus.shape, plus.dtype),
+              jax.ShapeDtypeStruct(minus.shape, minus.dtype),
+              jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+    tables = jnp.stack([arrays.rise, arrays.fall])
+    return jax.pure_callback(
+        lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp, positions, log_u,
+        arrays.kernel, arrays.hidden_bias, arrays.visible_bias, tables, vmap_method="sequential")
+
+
+def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
+    """Metropolis sweeps of an RBM-like state with real parameters, in one compiled host call.
+
+    ``arrays``: the state's :class:`~psiloom.states.RBMArrays` (``FastUpdates.dense_rbm``);
+    ``cache``: its :class:`~psiloom.states.RBMCache` of ``x`` (n_chains, N); ``table`` (P, K) a
+    NumPy int array of the sites of the P possible proposals, ``kind`` ``"flip"`` (K = 1) or
+    ``"exchange"`` (K = 2); ``positions`` (n_sweeps, S, n_chains) the entries of ``table``
+    proposed in turn (taken mod P), or (n_sweeps, S, 1) for the same entries in every chain;
+    ``log_u`` (n_sweeps, S, n_chains) the logarithms of the acceptance uniforms.
+
+    Returns ``(xs, log_amps, cache, accepted)``: ``xs`` (n_sweeps, n_chains, N) and ``log_amps``
+    (n_sweeps, n_chains) the chains after every sweep, ``cache`` that of ``xs[-1]`` (the input
+    cache's type), ``accepted`` (n_sweeps,) int32 the accepted proposals (null ones included)
+    per sweep. Usable inside ``jax.jit``: one host call for all sweeps (a host callback costs
+    ~0.1-0.5 ms here, more than one sweep of a small state). The chains are those that the fast
+    update with the Metropolis rule produces from the same numbers.
     """
-    bias = jnp.zeros(kernel.shape[0], kernel.dtype) if visible_bias is None else visible_bias
-    d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
-    bias_and_bound = jnp.concatenate([bias, d_max[None]]).astype(kernel.dtype)
-    tables = jnp.stack([rise, fall])
-
-    def sweeps(x, cache, log_amp, table, positions, log_u, kind: int):
-        table = np.asarray(table, np.int64)
-        if kind not in (FLIP, EXCHANGE) or table.ndim != 2 or table.shape[1] != kind:
-            raise ValueError(f"compiled sweeps take flips (K=1) or exchanges (K=2), got kind={kind!r} "
-                             f"with a table of shape {table.shape}")
-        if table.min() < 0 or table.max() >= x.shape[-1]:
-            raise ValueError(f"sites {table.min()}..{table.max()} outside the {x.shape[-1]}-site configuration")
-        if positions.ndim != 3 or positions.shape[2] not in (1, x.shape[0]):
-            raise ValueError(f"positions must have shape (n_sweeps, S, 1 or n_chains), got {positions.shape}")
-        n_sweeps = positions.shape[0]
-        shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
-                  jax.ShapeDtypeStruct(cache.plus.shape, cache.plus.dtype),
-                  jax.ShapeDtypeStruct(cache.minus.shape, cache.minus.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
-        xs, log_amps, plus, minus, accepted = jax.pure_callback(
-            lambda *a: _host_sweeps(kind, table, *a), shapes, x, cache.plus, cache.minus, log_amp, positions, log_u,
-            tables, bias_and_bound, vmap_method="sequential")
-        return xs, log_amps, cache._replace(plus=plus, minus=minus), accepted
-
-    return sweeps
+    k = _KINDS.get(kind) if isinstance(kind, str) else None
+    table = np.asarray(table, np.int64)
+    if k is None or table.ndim != 2 or table.shape[1] != k:
+        raise ValueError(f"compiled sweeps take flips (K=1) or exchanges (K=2), got kind={kind!r} "
+                         f"with a table of shape {table.shape}")
+    if table.min() < 0 or table.max() >= x.shape[-1]:
+        raise ValueError(f"sites {table.min()}..{table.max()} outside the {x.shape[-1]}-site configuration")
+    if positions.ndim != 3 or positions.shape[2] not in (1, x.shape[0]):
+        raise ValueError(f"positions must have shape (n_sweeps, S, 1 or n_chains), got {positions.shape}")
+    xs, log_amps, plus, minus, accepted = host_call(k, table, x, cache.plus, cache.minus, log_amp, positions, log_u,
+                                                    arrays)
+    return xs, log_amps, cache._replace(plus=plus, minus=minus), accepted
