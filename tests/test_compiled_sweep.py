@@ -164,3 +164,60 @@ def test_complex_rbm_offers_no_compiled_sweeps():
     variables = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(1), 1))
     fast = fast_updates_of(BoundState(model, variables))
     assert fast is not None and fast.dense_rbm is None
+
+
+_NAN_SCRIPT = """
+import jax, jax.numpy as jnp, numba
+jax.config.update("jax_enable_x64", True)
+import psiloom as pl
+from psiloom.states import RBM, BoundState
+print("cache dir", numba.config.CACHE_DIR)
+space = pl.spaces.SpinSpace(6)
+model = RBM(alpha=2, init_scale=0.3)
+variables = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(1), 1))
+params = dict(variables["params"])
+params["kernel"] = params["kernel"].at[0, 0].set(jnp.nan)
+amp = BoundState(model, {"params": params})
+sampler = pl.sampling.MetropolisSampler(space, n_chains=4)
+state = sampler.init(jax.random.PRNGKey(2), amp)
+try:
+    sampler.sample(jax.random.PRNGKey(3), state, amp, 2)
+except Exception as err:
+    print("raised", type(err).__name__, "non-finite" in str(err))
+else:
+    print("no exception")
+"""
+
+
+def test_nan_parameter_raises_instead_of_killing_python(tmp_path):
+    """A NaN weight once turned into int(NaN) and a modulo by zero inside the kernel (SIGFPE, the
+    interpreter died). Now the host call refuses non-finite input with an exception; run in a
+    subprocess so that a signal death would show as a negative return code. The same run checks
+    that Numba's disk cache goes under the user's cache dir (XDG_CACHE_HOME), not the package."""
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "NUMBA_CACHE_DIR"}
+    env["XDG_CACHE_HOME"] = str(tmp_path)
+    env["PYTHONPATH"] = os.pathsep.join([os.path.dirname(os.path.dirname(pl.__file__)), env.get("PYTHONPATH", "")])
+    done = subprocess.run([sys.executable, "-c", _NAN_SCRIPT], env=env, capture_output=True, text=True,
+                          timeout=600, cwd=tmp_path)
+    assert done.returncode == 0, (done.returncode, done.stderr[-2000:])
+    assert "raised" in done.stdout and "True" in done.stdout, done.stdout
+    assert f"cache dir {tmp_path / 'psiloom' / 'numba'}" in done.stdout, done.stdout
+
+
+def test_hidden_fields_beyond_the_pair_cache_limit_raise():
+    """|θ| beyond ~354 (float64) underflows the smaller member of (1 ± tanh θ) and the fast update
+    then loses log ψ (see rbm.py); the compiled sweeps refuse instead of returning a finite but
+    wrong log ψ. One hidden unit with W = 200: |θ| = 200 |Σx| ≥ 400 at the start."""
+    space = pl.spaces.SpinSpace(6, total_sz=1)
+    model = RBM(alpha=1 / 6, visible_bias=False, hidden_bias=False)
+    variables = {"params": {"kernel": jnp.full((6, 1), 200.0)}}
+    assert compiled.pair_cache_limit(np.float64) == pytest.approx(354.4, abs=0.1)
+    amp = BoundState(model, variables)
+    sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=pl.lattices.chain(6).bonds)
+    state = sampler.init(jax.random.PRNGKey(0), amp)
+    with pytest.raises(Exception, match="pair cache"):
+        sampler.sample(jax.random.PRNGKey(1), state, amp, 2)
