@@ -215,9 +215,18 @@ def test_hidden_fields_beyond_the_pair_cache_limit_raise():
     space = pl.spaces.SpinSpace(6, total_sz=1)
     model = RBM(alpha=1 / 6, visible_bias=False, hidden_bias=False)
     variables = {"params": {"kernel": jnp.full((6, 1), 200.0)}}
-    assert compiled.pair_cache_limit(np.float64) == pytest.approx(354.4, abs=0.1)
+    assert compiled.pair_cache_limit(np.float64) == pytest.approx(354.5, abs=0.1)
     amp = BoundState(model, variables)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=pl.lattices.chain(6).bonds)
     state = sampler.init(jax.random.PRNGKey(0), amp)
     with pytest.raises(Exception, match="pair cache"):
         sampler.sample(jax.random.PRNGKey(1), state, amp, 2)
+    # a start inside the limit (Σx = 0, θ = 0) whose chains walk beyond it (|θ| = 100·|Σx| → 400):
+    # caught by the per-update check inside the kernel
+    variables = {"params": {"kernel": jnp.full((6, 1), 100.0)}}
+    amp = BoundState(model, variables)
+    sampler = pl.sampling.MetropolisSampler(pl.spaces.SpinSpace(6), n_chains=4)
+    x0 = space.__class__(6, total_sz=0).random(jax.random.PRNGKey(2), 4)
+    state = sampler.refresh(pl.sampling.ChainState(x0, amp(x0)), amp)
+    with pytest.raises(Exception, match="pair cache"):
+        sampler.sample(jax.random.PRNGKey(3), state, amp, 2)
