@@ -192,3 +192,12 @@ def test_moves_are_static_under_jit():
     np.testing.assert_array_equal(np.asarray(out[0]), np.asarray(move(jax.random.PRNGKey(0), x)[0]))
     with pytest.raises(TypeError, match="Move"):
         MetropolisSampler(pl.spaces.SpinSpace(4), 2, move=lambda k, x: (x, jnp.zeros((x.shape[0], 1), int)))
+
+
+def test_every_sampler_offers_the_sampler_interface():
+    space = pl.spaces.SpinSpace(4)
+    system, _ = _electrons()
+    for sampler in (MetropolisSampler(space, 2), TemperingSampler(space, 2), pl.sampling.BlockGibbsSampler(space, 2),
+                    pl.sampling.ChainRuleSampler(space, 2), el.ElectronSampler(system, n_chains=2)):
+        assert isinstance(sampler, Sampler), type(sampler).__name__
+    assert not isinstance(object(), Sampler)

@@ -29,9 +29,11 @@ because every chain changes the same sites and the trial state's tables need no 
 gather (about 2× on a 100-site RBM, ``benchmarks/throughput.py``); on the fast path it reads
 and writes only the K changed sites of ``x`` instead of building every ``x'``.
 
-Compiled sweeps: a trial state that hands out its plain RBM arrays (the real RBM and its
-weight-shared variants; ``FastUpdates.dense_rbm``) runs, on the CPU, all sweeps of a :meth:`MetropolisSampler.sample` call
-in it, in one host call, when the move is single flips or a bond exchange (either order): the
+Compiled sweeps: when the trial state hands out its plain RBM arrays (the real RBM and its
+weight-shared variants; ``FastUpdates.dense_rbm``), all sweeps of a
+:meth:`MetropolisSampler.sample` call run on the CPU in the sampler's Numba kernel
+(:mod:`psiloom.sampling.compiled`), in one host call, when the move is single flips or a bond
+exchange (either order; :meth:`~psiloom.sampling.moves.Move.entry_table`): the
 proposals and uniforms are drawn in JAX exactly as on the JAX path and passed in, so both give
 the same chains (``compiled_sweeps=False`` keeps the JAX loop). A sequential sweep continues
 the cycle across sweeps of one :meth:`MetropolisSampler.sample` call and restarts it at
@@ -39,7 +41,7 @@ position 0 in every call.
 
 Fast updates: when ``log_amplitude`` is a bound trial state implementing the protocol of
 :mod:`psiloom.states.fast` (e.g. the RBM), the chain state also carries the per-chain cache
-(for the RBM the weights e^{±θ} of every hidden unit) and each proposal costs O(K·M) for the K sites the
+(for the RBM the pair 1 ± tanh θ of every hidden unit) and each proposal costs O(K·M) for the K sites the
 move changed, instead of a full O(N·M) evaluation. The random numbers are drawn exactly as
 on the generic path, so both paths produce the same chain for the same key (to rounding of
 the log-ratios). The cached log-amplitude is then accumulated, ``log ψ(x') = log ψ(x) + Δ``;
