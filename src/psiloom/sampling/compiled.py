@@ -235,25 +235,24 @@ def pair_cache_limit(dtype) -> float:
 
 def _refuse_non_finite(**arrays):
     for name, a in arrays.items():
-        if a is not None and not np.all(np.isfinite(a)):
+        if not np.all(np.isfinite(a)):
             raise FloatingPointError(f"compiled sweeps: non-finite {name} (NaN or inf); check the trial state's "
                                      "parameters and the chains")
 
 
-def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, kernel, hidden_bias, visible_bias, tables):
-    """The host side of :func:`host_call`: checks, then :func:`_sweep_kernel` on writable copies."""
-    x, plus, minus, log_amp, log_u, kernel, tables = (
-        np.array(a) for a in (x, plus, minus, log_amp, log_u, kernel, tables))
-    visible_bias = np.zeros(kernel.shape[0], kernel.dtype) if visible_bias is None else np.array(visible_bias)
-    hidden_bias = np.zeros(kernel.shape[1], kernel.dtype) if hidden_bias is None else np.asarray(hidden_bias)
-    _refuse_non_finite(parameters=kernel, hidden_bias=hidden_bias, visible_bias=visible_bias,
-                       factor_tables=tables, cache=np.stack([plus, minus]), log_amplitudes=log_amp,
-                       configurations=x)
+def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):
+    """The host side of :func:`host_call`: checks, then :func:`_sweep_kernel` on writable copies
+    (the kernel works in place, and its parallel loop takes no read-only input)."""
+    x, plus, minus, log_amp, log_u, tables, bias_and_bounds = (
+        np.array(a) for a in (x, plus, minus, log_amp, log_u, tables, bias_and_bounds))
+    # a NaN or inf weight makes the tables e^{±2W} non-finite; a bad hidden bias the field bound
+    _refuse_non_finite(parameters=tables, visible_bias_or_bounds=bias_and_bounds, cache=plus, cache_pair=minus,
+                       log_amplitudes=log_amp, configurations=x)
     if np.any(np.isnan(log_u)):  # −inf is a legitimate log u (u = 0)
         raise FloatingPointError("compiled sweeps: NaN among the acceptance uniforms")
     limit = pair_cache_limit(plus.dtype)
-    field_bound = float(np.max(np.sum(np.abs(kernel), axis=0) + np.abs(hidden_bias)))  # max |θ_j| over all x
-    guard = field_bound >= limit
+    d_max, field_bound = float(bias_and_bounds[-2]), float(bias_and_bounds[-1])
+    guard = field_bound >= limit  # max_j |θ_j| over all x may reach the limit: check every update
     tiny = float(np.finfo(plus.dtype).tiny)
     if guard and min(float(plus.min()), float(minus.min())) < tiny:
         raise FloatingPointError(_limit_message(limit))
@@ -262,9 +261,8 @@ def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, kernel,
     log_amps = np.empty((n_sweeps, *log_amp.shape), log_amp.dtype)
     accepted = np.zeros(n_sweeps, np.int64)
     failed = np.zeros(-(-x.shape[0] // _CHAIN_BLOCK), np.int64)
-    d_max = 4.0 * float(np.max(np.abs(kernel)))  # |d| ≤ 2|W_i| + 2|W_j|
     _sweep_kernel(x, plus, minus, log_amp, table, np.array(positions, np.int64), log_u, tables[0], tables[1],
-                  visible_bias.astype(kernel.dtype), d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
+                  bias_and_bounds[:-2], d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
     if failed.any():
         raise FloatingPointError(_limit_message(limit))
     return xs, log_amps, plus, minus, accepted.astype(np.int32)
@@ -284,10 +282,17 @@ def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, 
               jax.ShapeDtypeStruct(plus.shape, plus.dtype),
               jax.ShapeDtypeStruct(minus.shape, minus.dtype),
               jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+    kernel = arrays.kernel
+    bias = jnp.zeros(kernel.shape[0], kernel.dtype) if arrays.visible_bias is None else arrays.visible_bias
+    d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
+    field = jnp.sum(jnp.abs(kernel), axis=0)  # max_j |θ_j| over all x ≤ Σ_i |W_ij| + |b_j|
+    if arrays.hidden_bias is not None:
+        field = field + jnp.abs(arrays.hidden_bias)
+    bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None]]).astype(kernel.dtype)
     tables = jnp.stack([arrays.rise, arrays.fall])
     return jax.pure_callback(
         lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp, positions, log_u,
-        arrays.kernel, arrays.hidden_bias, arrays.visible_bias, tables, vmap_method="sequential")
+        tables, bias_and_bounds, vmap_method="sequential")
 
 
 def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
