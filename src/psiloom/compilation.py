@@ -14,6 +14,7 @@ from __future__ import annotations
 import os
 
 import math
+import sys
 
 import jax
 
@@ -49,5 +50,9 @@ def enable_compilation_cache(directory: str | None = None, min_compile_seconds: 
     jax.config.update("jax_compilation_cache_dir", os.path.join(directory, "jax"))
     jax.config.update("jax_persistent_cache_min_compile_time_secs", seconds)
     jax.config.update("jax_persistent_cache_min_entry_size_bytes", 0)
-    os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(directory, "numba"))
+    if not os.environ.get("NUMBA_CACHE_DIR"):
+        os.environ["NUMBA_CACHE_DIR"] = os.path.join(directory, "numba")
+        numba_config = sys.modules.get("numba.core.config")
+        if numba_config is not None:  # Numba reads the variable at import: tell it directly
+            numba_config.CACHE_DIR = os.environ["NUMBA_CACHE_DIR"]
     return directory
