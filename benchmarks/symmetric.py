@@ -10,9 +10,9 @@ References: 4×4 — exact diagonalisation in the same symmetry sector (psiloom.
 also equals −11.2284832 (REFERENCES.md, from memory); 6×6 — −0.678872 J per site (Schulz, Ziman
 & Poilblanc 1996, from memory).
 
-Targets (issue 5): rel. error ≤ 5e-5 (4×4) and ≤ 5e-4 (6×6) in ≤ 30 min on two CPU cores.
+Targets: rel. error ≤ 5e-5 (4×4) and ≤ 5e-4 (6×6) in ≤ 30 min on two CPU cores.
 ``--quick`` (< 2 min on two cores) runs short optimisations of both sizes; its errors are far
-above the targets. Prints one JSON line per system and a summary line last (../shared/BENCHMARKS.md).
+above the targets. Prints one JSON line per system and a summary line last (benchmarks/README.md).
 """
 
 from __future__ import annotations
