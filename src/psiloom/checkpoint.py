@@ -247,7 +247,8 @@ def compare_meta(found: dict, expected: dict, found_name: str = "the checkpoint"
     for attr, words in (("type", "space type"), ("n_sites", "n_sites"), ("total_sz", "magnetisation sector total_sz"),
                         ("n_electrons", "number of electrons")):
         if fs.get(attr) != es.get(attr) and (attr in fs or attr in es):
-            problems.append(f"{words}: {fs.get(attr, 'none')} in {found_name}, {es.get(attr, 'none')} in {expected_name}")
+            show = lambda v: f"{v:g}" if isinstance(v, float) else ("none" if v is None else str(v))
+            problems.append(f"{words}: {show(fs.get(attr))} in {found_name}, {show(es.get(attr))} in {expected_name}")
     return problems
 
 

@@ -179,7 +179,8 @@ def run_loop(advance: Callable, state, n_steps: int, history: History | None = N
 
     ``advance(state, n) -> (state, outputs, taken, bad, bad_step)`` runs up to ``n`` guarded
     steps on the device (``multi_step`` of :func:`psiloom.vmc.vmc`, compiled). Visits end at
-    ``steps_per_visit`` steps or earlier where a hook ``stops_at`` a step. Returns
+    ``steps_per_visit`` steps or earlier where a hook ``stops_at`` a step; the first visit is
+    one step long (its row alone carries the compilation time). Returns
     ``(state, history)``; raises :class:`NonFiniteError` (see the module docstring).
     """
     history = History() if history is None else history
@@ -191,13 +192,16 @@ def run_loop(advance: Callable, state, n_steps: int, history: History | None = N
             hook.start(state, n_steps)
             started.append(hook)
         last = time.perf_counter()
+        first = True
         while step < n_steps:
             extra = {}
             for hook in hooks:
                 extra.update(hook.before(state) or {})
             if extra:
                 last = time.perf_counter()  # profiling time is not step time
-            n = min(steps_per_visit, n_steps - step)
+            # the first visit is one step: its row alone carries the compilation time
+            n = 1 if first else min(steps_per_visit, n_steps - step)
+            first = False
             for j in range(1, n + 1):
                 if any(hook.stops_at(step + j, n_steps) for hook in hooks):
                     n = j
