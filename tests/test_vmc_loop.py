@@ -90,6 +90,22 @@ def test_pure_steps_equal_the_facade_step_and_k_step_visits(search, start):
     assert list(history["step"]) == list(range(1, 8))
 
 
+def test_progress_lines_hooks_and_history_agree(search, start):
+    lines, visits, calls = [], [], []
+    _, history = search.run(8, state=start, progress=lines.append, print_every=3, steps_per_visit=3,
+                            hooks=[lambda v: visits.append((v.step, len(v.outputs)))])
+    assert visits == [(1, 1), (3, 2), (6, 3), (8, 2)]  # first visit one step; cuts at prints and the end
+    assert [int(line.split()[1].split("/")[0]) for line in lines] == [1, 3, 6, 8]
+    for line in lines:
+        step = int(line.split()[1].split("/")[0])
+        assert f"E = {history['energy'][step - 1]:+.6f}" in line and history["step"][step - 1] == step
+    # a callback sees every step (visits of one step), with the state after that step
+    search.run(3, state=start, progress=False, steps_per_visit=3,
+               callback=lambda state, out: calls.append((int(state.step), float(out.energy.mean))))
+    assert [c[0] for c in calls] == [1, 2, 3]
+    np.testing.assert_array_equal([c[1] for c in calls], history["energy"][:3])
+
+
 def test_default_training_step_compiles_once():
     search = make()  # fresh: no compiled programs yet
     state, _ = search.run(9, key=jax.random.PRNGKey(2), progress=False, steps_per_visit=4)

@@ -17,6 +17,8 @@ need):
   for the first row of the visit (profiling does);
 * ``after(visit)``: after the rows of a visit were appended, with a :class:`Visit`.
 
+A plain function ``f(visit)`` passed as a hook is called after every visit.
+
 Provided: :class:`ProgressPrinter`, :class:`Checkpointer`, :class:`Profiler` and
 :class:`Callback` (a user function ``f(state, output)``, called after every step: its visits
 are one step long).
@@ -166,6 +168,25 @@ class Callback(Hook):
         self.fn(visit.state, visit.outputs[-1])
 
 
+class _AfterVisit(Hook):
+    """A plain function ``f(visit)`` used as a hook: called after every visit."""
+
+    def __init__(self, fn: Callable[[Visit], None]):
+        self.fn = fn
+
+    def after(self, visit):
+        self.fn(visit)
+
+
+def as_hook(hook) -> Hook:
+    """``hook`` itself if it is a :class:`Hook`, a plain function ``f(visit)`` wrapped as one."""
+    if isinstance(hook, Hook):
+        return hook
+    if callable(hook):
+        return _AfterVisit(hook)
+    raise TypeError(f"a loop hook must be a psiloom.loop.Hook or a function f(visit), got {hook!r}")
+
+
 def _row(out, step: int, seconds: float) -> dict:
     e = out.energy
     return {"step": int(step), "energy": float(np.real(e.mean)), "error": float(e.error),
@@ -185,7 +206,7 @@ def run_loop(advance: Callable, state, n_steps: int, history: History | None = N
     """
     history = History() if history is None else history
     step = int(state.step)
-    hooks = list(hooks)
+    hooks = [as_hook(h) for h in hooks]
     started = []
     try:
         for hook in hooks:

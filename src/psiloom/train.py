@@ -35,7 +35,7 @@ import optax
 from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
-from psiloom.loop import Callback, Checkpointer, NonFiniteError, ProgressPrinter, Profiler, format_progress, run_loop
+from psiloom.loop import Callback, Checkpointer, as_hook, NonFiniteError, ProgressPrinter, Profiler, format_progress, run_loop
 from psiloom.optimize.clipping import clip_local_energies
 from psiloom.states.base import count_real_parameters
 from psiloom.vmc import StepOutput, VMCState, vmc
@@ -329,7 +329,8 @@ class GroundStateSearch:
             steps_per_visit: at most this many steps run on the device between host visits
                 (one compiled ``lax.scan``); visits also end where printing, checkpoints,
                 profiling or a callback need the host. Default ``print_every``.
-            hooks: extra :class:`psiloom.loop.Hook` objects.
+            hooks: extra :class:`psiloom.loop.Hook` objects or functions ``f(visit)`` called after
+                every host visit (:class:`psiloom.loop.Visit`: state, step, outputs, history).
         Returns:
             ``(state, history)``; history rows are 1-based (``step`` = the state's step after
             the update, as in the progress lines).
@@ -358,7 +359,7 @@ class GroundStateSearch:
             all_hooks.append(ProgressPrinter(None if progress is True else progress, print_every))
         if callback is not None:
             all_hooks.append(Callback(callback))
-        all_hooks.extend(hooks)
+        all_hooks.extend(as_hook(h) for h in hooks)
         if checkpoint:
             all_hooks.append(Checkpointer(os.fspath(checkpoint), checkpoint_every, self.meta()))
         return run_loop(self._advance(steps_per_visit), state, n_steps, history, all_hooks, steps_per_visit)
