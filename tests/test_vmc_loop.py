@@ -320,6 +320,10 @@ def test_second_writer_of_a_checkpoint_is_refused(search, start, tmp_path):
         with pytest.raises(CheckpointError, match=f"process {other.pid}"):
             search.run(1, state=start, progress=False, checkpoint=path)
         assert not os.path.exists(path)
+        fresh = make()
+        with pytest.raises(CheckpointError, match=f"process {other.pid}"):
+            fresh.run(1, progress=False, checkpoint=path)
+        assert fresh._template is None and fresh._multi == {}  # refused before any compute
     finally:
         other.kill()
         other.wait()

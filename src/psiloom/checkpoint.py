@@ -110,6 +110,8 @@ class CheckpointLock:
         self.held = False
 
     def acquire(self) -> "CheckpointLock":
+        if self.held:
+            return self
         os.makedirs(os.path.dirname(self.path), exist_ok=True)
         for _ in range(3):
             try:

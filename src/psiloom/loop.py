@@ -53,8 +53,8 @@ class NonFiniteError(FloatingPointError):
 
     def __init__(self, step: int, what: str | list[str], state: Any = None, history: History | None = None):
         parts = [what] if isinstance(what, str) else list(what)
-        super().__init__(f"non-finite {', '.join(parts)} at step {step}; run stopped, "
-                         f"state and last checkpoint kept at step {step - 1}")
+        super().__init__(f"non-finite {', '.join(parts)} at step {step}; run stopped at the last good "
+                         f"state (step {step - 1}), its update discarded, no checkpoint written after it")
         self.step = step
         self.what = parts[0]
         self.parts = parts

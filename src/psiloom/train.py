@@ -343,12 +343,22 @@ class GroundStateSearch:
         _check_checkpoint_path(checkpoint)
         if callback is not None and not callable(callback):
             raise ValueError(f"callback must be callable, got {callback!r}")
-        if state is None:
-            state = self.init(jax.random.PRNGKey(0) if key is None else key)
-        else:
-            if history is not None:
-                history.truncate(int(state.step))
-            self.check_resumable(state, history)
+        user_hooks = [as_hook(h) for h in hooks]
+        writer = None
+        if checkpoint:
+            writer = Checkpointer(os.fspath(checkpoint), checkpoint_every, self.meta())
+            writer.lock.acquire()  # a second writer of the path is refused before any compute
+        try:
+            if state is None:
+                state = self.init(jax.random.PRNGKey(0) if key is None else key)
+            else:
+                if history is not None:
+                    history.truncate(int(state.step))
+                self.check_resumable(state, history)
+        except BaseException:
+            if writer is not None:
+                writer.lock.release()
+            raise
         history = History() if history is None else history
         history.truncate(int(state.step))
         all_hooks = []
@@ -359,7 +369,7 @@ class GroundStateSearch:
             all_hooks.append(ProgressPrinter(None if progress is True else progress, print_every))
         if callback is not None:
             all_hooks.append(Callback(callback))
-        all_hooks.extend(as_hook(h) for h in hooks)
-        if checkpoint:
-            all_hooks.append(Checkpointer(os.fspath(checkpoint), checkpoint_every, self.meta()))
+        all_hooks.extend(user_hooks)
+        if writer is not None:
+            all_hooks.append(writer)  # last: it saves what the other hooks saw
         return run_loop(self._advance(steps_per_visit), state, n_steps, history, all_hooks, steps_per_visit)
