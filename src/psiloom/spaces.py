@@ -19,6 +19,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import nonnegative_int, positive_int
+
 #: Largest space that :meth:`SpinSpace.all_states` will enumerate.
 MAX_ENUMERATION = 2**26
 
@@ -32,9 +34,8 @@ class SpinSpace:
 
     def __post_init__(self):
         n = self.n_sites
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-            raise ValueError(f"n_sites must be a positive integer, got {n!r}")
-        object.__setattr__(self, "n_sites", int(n))
+        n = positive_int("n_sites", n)
+        object.__setattr__(self, "n_sites", n)
         if self.total_sz is not None:
             sz = float(self.total_sz)
             if not np.isfinite(sz):
@@ -69,8 +70,7 @@ class SpinSpace:
 
     def random(self, key: jax.Array, n: int) -> jax.Array:
         """``n`` uniformly random valid configurations, shape ``(n, n_sites)``."""
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 0:
-            raise ValueError(f"number of configurations must be a non-negative integer, got {n!r}")
+        n = nonnegative_int("n (number of configurations)", n)
         if self.n_up is None:
             return jnp.where(jax.random.bernoulli(key, 0.5, (n, self.n_sites)), 1.0, -1.0)
         base = jnp.where(jnp.arange(self.n_sites) < self.n_up, 1.0, -1.0)

@@ -61,6 +61,7 @@ import scipy.sparse as sp
 
 from psiloom.lattices import Lattice
 from psiloom.spaces import SpinSpace, codes
+from psiloom._validation import positive_int
 
 __all__ = [
     "SymmetryGroup", "Sector", "translations", "point_group", "space_group", "spin_flip", "product",
@@ -388,9 +389,7 @@ def spin_flip(lattice_or_sites: Lattice | int) -> SymmetryGroup:
         linear = np.broadcast_to(np.eye(d, dtype=np.int64), (2, d, d)).copy()
         return SymmetryGroup(np.tile(np.arange(n), (2, 1)), np.array([1, -1]), linear, np.zeros((2, d), np.int64),
                              lat.extent, lat.pbc, "Z2")
-    n = lattice_or_sites
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise ValueError(f"spin_flip needs a Lattice or a positive number of sites, got {lattice_or_sites!r}")
+    n = positive_int("spin_flip's lattice_or_sites (a Lattice or a number of sites)", lattice_or_sites)
     return SymmetryGroup(np.tile(np.arange(int(n)), (2, 1)), np.array([1, -1]), np.zeros((2, 0, 0), np.int64),
                          np.zeros((2, 0), np.int64), (), True, "Z2")
 

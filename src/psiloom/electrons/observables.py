@@ -19,6 +19,7 @@ import jax
 
 from psiloom import stats
 from psiloom.electrons.hamiltonian import CoulombHamiltonian
+from psiloom._validation import positive_int
 
 
 class EnergyComponents(NamedTuple):
@@ -57,8 +58,7 @@ def evaluate_components(search, state, n_samples: int, key: jax.Array | None = N
     ``n_samples`` (rounded up to a multiple of the number of chains). Returns
     ``(EnergyComponents, acceptance)``.
     """
-    if isinstance(n_samples, bool) or not isinstance(n_samples, int) or n_samples < 1:
-        raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
+    n_samples = positive_int("n_samples", n_samples)
     sampler, model, hamiltonian = search.sampler, search.model, search.hamiltonian
     n_per_chain = -(-n_samples // sampler.n_chains)
     key = jax.random.fold_in(state.key, 11) if key is None else key

@@ -23,6 +23,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import integer, nonnegative_int, positive_real
+
 #: bohr per ångström (CODATA 2018: a0 = 0.529177210903 Å; from memory).
 BOHR_PER_ANGSTROM = 1.0 / 0.529177210903
 
@@ -89,9 +91,7 @@ class Molecule:
                         f"nuclei {j} and {i} coincide (distance {d:.3g} bohr at {positions[i].tolist()})"
                     )
         for name in ("n_up", "n_down"):
-            v = getattr(self, name)
-            if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
-                raise ValueError(f"{name} must be a non-negative integer, got {v!r}")
+            nonnegative_int(name, getattr(self, name))
         if self.n_up + self.n_down == 0:
             raise ValueError("a system needs at least one electron (n_up + n_down = 0)")
         symbols = tuple(self.symbols) if self.symbols else tuple(
@@ -193,10 +193,8 @@ class Molecule:
         (so spin-up electrons visit every nucleus across walkers) and places each electron at its
         nucleus plus an isotropic Gaussian displacement of standard deviation ``width`` bohr.
         """
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 0:
-            raise ValueError(f"number of walkers must be a non-negative integer, got {n!r}")
-        if not width > 0:
-            raise ValueError(f"width must be > 0, got {width!r}")
+        n = nonnegative_int("n (number of walkers)", n)
+        width = positive_real("width", width)
         sites = jnp.asarray(self.electron_sites())
         centres = jnp.asarray(self.positions)
         k_perm, k_noise = jax.random.split(key)
@@ -215,8 +213,7 @@ def _electron_counts(total_z: float, charge: int, spin: int | None) -> tuple[int
         raise ValueError(f"charge {charge} leaves {n} electrons for nuclear charge {total_z:g}")
     if spin is None:
         spin = n % 2
-    if isinstance(spin, bool) or not isinstance(spin, (int, np.integer)):
-        raise ValueError(f"spin (= n_up − n_down) must be an integer, got {spin!r}")
+    spin = integer("spin (= n_up − n_down)", spin)
     if abs(spin) > n or (n - spin) % 2:
         raise ValueError(
             f"spin {spin} is impossible for {n} electrons: need |spin| <= {n} and n − spin even "

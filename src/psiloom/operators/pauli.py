@@ -29,6 +29,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from psiloom.spaces import SpinSpace, codes
+from psiloom._validation import positive_int
 
 _LETTERS = ("X", "Y", "Z")
 # σ^a σ^b = phase · σ^c  (single-site Pauli algebra); None stands for the identity.
@@ -67,9 +68,7 @@ class PauliSum:
     """
 
     def __init__(self, n_sites: int, terms: dict[PauliString, complex] | None = None):
-        if isinstance(n_sites, bool) or not isinstance(n_sites, (int, np.integer)) or n_sites < 1:
-            raise ValueError(f"n_sites must be a positive integer, got {n_sites!r}")
-        self.n_sites = int(n_sites)
+        self.n_sites = positive_int("n_sites", n_sites)
         clean: dict[PauliString, complex] = {}
         for string, coef in (terms or {}).items():
             for site, letter in string:
