@@ -3,7 +3,7 @@
 import jax
 import numpy as np
 import pytest
-from hypothesis import given, strategies as st
+from hypothesis import given, settings, strategies as st
 
 from psiloom import electrons as el
 
@@ -86,3 +86,22 @@ def test_walkers_start_around_nuclei_by_charge():
     assert 0 < near_h[:, :2].sum() < 200  # the H electron is sometimes spin-up, sometimes down
     with pytest.raises(ValueError, match="width"):
         lih.random(jax.random.PRNGKey(0), 2, width=0.0)
+
+
+@settings(max_examples=30)
+@given(charge=st.one_of(st.floats(-1.5, 1.5).filter(lambda q: not float(q).is_integer()), st.just(1.0),
+                        st.text(max_size=2), st.booleans(), st.just(1j)))
+def test_non_integer_charge_raises_naming_it(charge):
+    # atom("He", charge=0.5) used to build neutral He (int() truncation) and charge="1" was accepted
+    with pytest.raises((TypeError, ValueError), match="charge"):
+        el.atom("He", charge=charge)
+
+
+def test_charge_or_spin_contradicting_the_electron_counts_raises():
+    # they used to be ignored silently when n_up/n_down were given
+    with pytest.raises(ValueError, match="charge=1 contradicts"):
+        el.molecule([("Li", (0, 0, 0))], charge=1, n_up=2, n_down=1)
+    with pytest.raises(ValueError, match="spin=1 contradicts"):
+        el.molecule([("Li", (0, 0, 0))], spin=1, n_up=3, n_down=0)
+    consistent = el.molecule([("Li", (0, 0, 0))], charge=1, spin=0, n_up=1, n_down=1)
+    assert (consistent.n_up, consistent.n_down, consistent.charge) == (1, 1, 1.0)

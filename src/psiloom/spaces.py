@@ -19,7 +19,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom._validation import nonnegative_int, positive_int
+from psiloom._validation import finite_real, nonnegative_int, positive_int
 
 #: Largest space that :meth:`SpinSpace.all_states` will enumerate.
 MAX_ENUMERATION = 2**26
@@ -27,7 +27,13 @@ MAX_ENUMERATION = 2**26
 
 @dataclass(frozen=True)
 class SpinSpace:
-    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``total_sz``."""
+    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``total_sz``.
+
+    ``n_sites`` is a positive integer; ``total_sz`` is ``None`` or a finite real number (an
+    integer or half-integer, in units of ħ) such that ``n_sites/2 + total_sz`` is an integer
+    in ``[0, n_sites]``. Anything else raises (a TypeError, which is also a ValueError, for a
+    wrong type such as ``True``, ``'0'`` or a complex number).
+    """
 
     n_sites: int
     total_sz: float | None = None
@@ -37,9 +43,8 @@ class SpinSpace:
         n = positive_int("n_sites", n)
         object.__setattr__(self, "n_sites", n)
         if self.total_sz is not None:
-            sz = float(self.total_sz)
-            if not np.isfinite(sz):
-                raise ValueError(f"total_sz must be finite, got {self.total_sz!r}")
+            # a bool, a string ('0') or a complex number is refused rather than converted
+            sz = finite_real("total_sz", self.total_sz)
             n_up = n / 2 + sz
             if abs(n_up - round(n_up)) > 1e-12:
                 parity = "odd" if n % 2 else "even"

@@ -204,6 +204,7 @@ class Molecule:
 
 
 def _electron_counts(total_z: float, charge: int, spin: int | None) -> tuple[int, int]:
+    charge = integer("charge", charge)
     n_total = total_z - charge
     if abs(n_total - round(n_total)) > 1e-9:
         raise ValueError(f"nuclear charges sum to {total_z:g}; with charge {charge} the electron count "
@@ -231,8 +232,13 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
         units: ``"bohr"`` or ``"angstrom"`` (converted with :data:`BOHR_PER_ANGSTROM`).
         charge: net charge (electrons = Σ Z − charge).
         spin: n_up − n_down; default the lowest possible (0 or 1).
-        n_up, n_down: give both to set the electron counts directly (then ``charge``/``spin``
-            are ignored).
+        n_up, n_down: give both to set the electron counts directly; a ``charge`` or ``spin``
+            given as well must agree with them (``charge = Σ Z − n_up − n_down``,
+            ``spin = n_up − n_down``), otherwise ValueError.
+
+    Raises:
+        ValueError (TypeError for wrong types): a non-integer ``charge`` (``0.5``, ``'1'``) or
+            ``spin``, impossible electron counts, or counts that contradict ``charge``/``spin``.
     """
     if units not in ("bohr", "angstrom"):
         raise ValueError(f"units must be 'bohr' or 'angstrom', got {units!r}")
@@ -259,14 +265,30 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
     charges_arr = np.asarray(charges)
     if (n_up is None) != (n_down is None):
         raise ValueError("give both n_up and n_down, or neither")
+    charge = integer("charge", charge)
+    if spin is not None:
+        spin = integer("spin (= n_up − n_down)", spin)
     if n_up is None:
         if np.any(charges_arr <= 0):
             bad = charges_arr[charges_arr <= 0][0]
             raise ValueError(f"nuclear charges must be positive, got {bad!r}")
-        n_up, n_down = _electron_counts(float(charges_arr.sum()), int(charge), spin)
+        n_up, n_down = _electron_counts(float(charges_arr.sum()), charge, spin)
+    else:
+        n_up, n_down = nonnegative_int("n_up", n_up), nonnegative_int("n_down", n_down)
+        implied = float(charges_arr.sum()) - (n_up + n_down)
+        if charge != 0 and abs(implied - charge) > 1e-9:
+            raise ValueError(
+                f"charge={charge} contradicts n_up={n_up}, n_down={n_down}: nuclear charge "
+                f"{float(charges_arr.sum()):g} with {n_up + n_down} electrons has net charge {implied:g}"
+            )
+        if spin is not None and spin != n_up - n_down:
+            raise ValueError(f"spin={spin} contradicts n_up={n_up}, n_down={n_down} (n_up − n_down = {n_up - n_down})")
     return Molecule(charges_arr, np.stack(positions), n_up, n_down, tuple(symbols))
 
 
 def atom(symbol, charge: int = 0, spin: int | None = None) -> Molecule:
-    """A single atom at the origin, e.g. ``atom("Li")`` (n_up = 2, n_down = 1)."""
+    """A single atom at the origin, e.g. ``atom("Li")`` (n_up = 2, n_down = 1).
+
+    ``charge`` and ``spin`` are integers (``atom("He", charge=0.5)`` raises rather than
+    building neutral helium)."""
     return molecule([(symbol, (0.0, 0.0, 0.0))], charge=charge, spin=spin)

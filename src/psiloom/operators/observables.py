@@ -38,6 +38,7 @@ import numpy as np
 from psiloom import stats
 from psiloom.batching import map_in_chunks
 from psiloom.lattices import Lattice
+from psiloom.operators.local import check_spin_configurations
 from psiloom.operators.models import magnetization_z, staggered_magnetization_z
 from psiloom.operators.pauli import PauliSum, pauli, total
 from psiloom.spaces import SpinSpace
@@ -53,6 +54,7 @@ LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 
 # ---------------------------------------------------------------------- plumbing
 def _check_samples(samples, log_amps):
+    check_spin_configurations(samples, "samples")  # concrete samples only (not under jit)
     x = jnp.asarray(samples)
     if x.ndim != 3:
         raise ValueError(
