@@ -224,7 +224,7 @@ def test_v_score_of_an_exact_eigenstate_vanishes():
         (lambda s: obs.measure(s["f"], {"a": s["ham"]}, s["xs"].reshape(-1, 16)), "n_time, n_chains, n_sites"),
         (lambda s: obs.measure(s["f"], {"a": s["ham"]}, s["xs"], s["logs"][:3]), "log_amps must have shape"),
         (lambda s: obs.measure(s["f"], {"a": pl.operators.heisenberg(pl.lattices.chain(8))}, s["xs"]), "8 sites"),
-        (lambda s: obs.correlation_operators(pl.lattices.chain(8, pbc=False)), "periodic"),
+        (lambda s: obs.correlation_operators(pl.lattices.chain(8), component="xy"), "component"),
         (lambda s: obs.correlation_operators(pl.lattices.chain(5), sign_rule=True), "bipartite"),
         (lambda s: obs.v_score(-1.0, 0.1, 4, -1.0), "undefined"),
         (lambda s: obs.infinite_temperature_energy(s["ham"], pl.spaces.SpinSpace(8)), "8 sites"),

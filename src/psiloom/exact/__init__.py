@@ -17,3 +17,7 @@ from psiloom.exact.lanczos import (  # noqa: E402
 )
 
 __all__ += ["DENSE_LIMIT", "ground_state", "lowest_eigenpairs", "operator_matrix", "sector_eigenpairs"]
+
+from psiloom.exact.vectors import expectation, fidelity, state_vector  # noqa: E402
+
+__all__ += ["expectation", "fidelity", "state_vector"]
