@@ -105,3 +105,17 @@ def test_charge_or_spin_contradicting_the_electron_counts_raises():
         el.molecule([("Li", (0, 0, 0))], spin=1, n_up=3, n_down=0)
     consistent = el.molecule([("Li", (0, 0, 0))], charge=1, spin=0, n_up=1, n_down=1)
     assert (consistent.n_up, consistent.n_down, consistent.charge) == (1, 1, 1.0)
+
+
+def test_energy_components_print_as_labelled_lines():
+    # used to print as a dump of the nested NamedTuples and arrays
+    from psiloom import stats
+    from psiloom.electrons.observables import EnergyComponents
+
+    rng = np.random.default_rng(0)
+    parts = [stats.estimate(c + 0.01 * rng.standard_normal((64, 4))) for c in (-2.9, 2.9, -5.8, -6.7, 0.9)]
+    text = str(EnergyComponents(*parts, virial_ratio=-parts[2].mean / parts[1].mean))
+    lines = text.splitlines()
+    assert len(lines) == 6
+    assert lines[0].startswith("total E") and "±" in lines[0] and "Array" not in text
+    assert lines[-1].startswith("virial") and float(lines[-1].split()[2]) == pytest.approx(2.0, abs=0.01)
