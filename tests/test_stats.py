@@ -508,7 +508,8 @@ def test_warnings_work_elementwise_on_array_estimates():
     rng = np.random.default_rng(34)
     good = rng.standard_normal((2000, 4))
     stuck = np.array([-5.0, -5.0, 5.0, 5.0]) + rng.standard_normal((2000, 4))
-    table = np.stack([good, stuck, good, stuck], axis=2)
+    drifting = np.array([-1.0, -1.0, 1.0, 1.0]) + rng.standard_normal((2000, 4))
+    table = np.stack([good, stuck, good, drifting], axis=2)
     est = jax.vmap(estimate, in_axes=2)(table)._replace(n_time=2000)
     messages = est.warnings()
     assert len(messages) == 1 and "R̂" in messages[0]

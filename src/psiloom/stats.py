@@ -187,46 +187,49 @@ class Estimate(NamedTuple):
         """Human-readable reasons to distrust this estimate (empty list if none).
 
         For an array estimate each kind of problem is reported once, naming the components
-        concerned (``component [3, 7]``, or ``[(0, 1), ...]`` for 2-D indices).
+        concerned (``2 of 4 components [1, 3]``, or ``(0, 1)``-style indices in 2-D) and the
+        message of the first of them.
         """
-        if self.shape:
-            found: dict[str, list] = {}
-            for index in np.ndindex(*self.shape):
-                for message in self.component(index).warnings():
-                    key = message.split(":")[0] if ":" in message else message
-                    found.setdefault(key, []).append((index, message))
-            out = []
-            for entries in found.values():
-                labels = [i[0] if len(i) == 1 else i for i, _ in entries]
-                shown = ", ".join(str(v) for v in labels[:8]) + (", …" if len(labels) > 8 else "")
-                first = entries[0][1]
-                out.append(f"{len(labels)} of {int(np.prod(self.shape))} components [{shown}]: "
-                           f"{first} (component {labels[0]}; others similar)")
-            return out
-        messages: list[str] = []
+        if not self.shape:
+            return [message for _, message in self._scalar_warnings()]
+        found: dict[str, list] = {}
+        for index in np.ndindex(*self.shape):
+            for kind, message in self.component(index)._scalar_warnings():
+                found.setdefault(kind, []).append((index, message))
+        out = []
+        for entries in found.values():
+            labels = [i[0] if len(i) == 1 else i for i, _ in entries]
+            shown = ", ".join(str(v) for v in labels[:8]) + (", …" if len(labels) > 8 else "")
+            out.append(f"{len(labels)} of {int(np.prod(self.shape))} components [{shown}]: "
+                       f"{entries[0][1]} (component {labels[0]})")
+        return out
+
+    def _scalar_warnings(self) -> list[tuple[str, str]]:
+        """``(kind, message)`` pairs of a scalar estimate."""
+        messages: list[tuple[str, str]] = []
         rhat = float(self.rhat)
         if rhat > RHAT_THRESHOLD:  # nan compares False
-            messages.append(
+            messages.append(("rhat",
                 f"R̂ = {rhat:.3f} > {RHAT_THRESHOLD}: chains have not mixed "
                 "(they disagree with each other or drift); the error bar is not trustworthy"
-            )
+            ))
         tau = float(self.tau)
         if self.n_time is not None and math.isfinite(tau):
             n_time = float(self.n_time)
             if n_time < MIN_CHAIN_OVER_TAU * max(tau, 1.0):
-                messages.append(
+                messages.append(("tau",
                     f"chain length {n_time:.0f} < {MIN_CHAIN_OVER_TAU:.0f} τ = "
                     f"{MIN_CHAIN_OVER_TAU * max(tau, 1.0):.0f}: chains too short for a reliable "
                     "autocorrelation time (the error bar uses τ ≥ 1)"
-                )
+                ))
             elif self.tau_reliable is not None and not bool(self.tau_reliable):
-                messages.append(
+                messages.append(("tau",
                     "autocorrelation time unreliable: Sokal's window condition M ≥ 5 τ(M) was "
                     "not met within half a chain (the error bar uses τ ≥ 1)"
-                )
+                ))
         ess = float(self.ess)
         if ess < MIN_ESS:  # nan compares False
-            messages.append(f"effective sample size {ess:.1f} < {MIN_ESS:.0f}")
+            messages.append(("ess", f"effective sample size {ess:.1f} < {MIN_ESS:.0f}"))
         return messages
 
 

@@ -282,7 +282,9 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
                 f"{float(charges_arr.sum()):g} with {n_up + n_down} electrons has net charge {implied:g}"
             )
         if spin is not None and spin != n_up - n_down:
-            raise ValueError(f"spin={spin} contradicts n_up={n_up}, n_down={n_down} (n_up − n_down = {n_up - n_down})")
+            raise ValueError(
+                f"spin={spin} contradicts n_up={n_up}, n_down={n_down} (n_up − n_down = {n_up - n_down})"
+            )
     return Molecule(charges_arr, np.stack(positions), n_up, n_down, tuple(symbols))
 
 

@@ -15,6 +15,7 @@ from psiloom.operators.local import local_values
 from psiloom.operators import observables
 
 __all__ = [
-    "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation", "spin_correlation_component",
-    "staggered_magnetization_z", "transverse_field_ising", "xxz", "local_values", "observables",
+    "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
+    "spin_correlation_component", "staggered_magnetization_z", "transverse_field_ising", "xxz",
+    "local_values", "observables",
 ]
