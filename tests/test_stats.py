@@ -10,7 +10,7 @@ import warnings
 import jax.numpy as jnp
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from scipy.signal import lfilter
 
@@ -284,6 +284,13 @@ def test_split_rhat_matches_arviz_random(draws):
     # excluded because XLA on CPU flushes them to zero. Reference: arviz's rank-normalized
     # split-R̂ (Vehtari et al. 2021).
     values = np.asarray(draws, dtype=float).reshape(9, 3)
+    # psiloom ranks draws equal within TIE_RTOL · max|x| as ties, arviz only exact ties: skip
+    # draws whose folded values |x − median| are equal in exact arithmetic but not in floating
+    # point (e.g. |1 − 0.594| and |0.188 − 0.594|)
+    split = np.concatenate([values[:4], values[5:]], axis=1)
+    folded = np.sort(np.abs(split - np.median(split)).reshape(-1))
+    gaps = np.diff(folded)
+    assume(not np.any((gaps > 0) & (gaps <= 1e-9)))
     ours = float(split_rhat(values))
     theirs = arviz_rhat(values)
     if math.isnan(theirs):  # constant input: 0/0 in both

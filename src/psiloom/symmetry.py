@@ -389,7 +389,10 @@ def spin_flip(lattice_or_sites: Lattice | int) -> SymmetryGroup:
         linear = np.broadcast_to(np.eye(d, dtype=np.int64), (2, d, d)).copy()
         return SymmetryGroup(np.tile(np.arange(n), (2, 1)), np.array([1, -1]), linear, np.zeros((2, d), np.int64),
                              lat.extent, lat.pbc, "Z2")
-    n = positive_int("spin_flip's lattice_or_sites (a Lattice or a number of sites)", lattice_or_sites)
+    try:
+        n = positive_int("lattice_or_sites", lattice_or_sites)
+    except ValueError as err:  # ArgumentTypeError is a ValueError too; keep its type
+        raise type(err)(f"spin_flip needs a Lattice or a positive number of sites: {err}") from None
     return SymmetryGroup(np.tile(np.arange(int(n)), (2, 1)), np.array([1, -1]), np.zeros((2, 0, 0), np.int64),
                          np.zeros((2, 0), np.int64), (), True, "Z2")
 
