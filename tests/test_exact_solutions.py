@@ -352,3 +352,21 @@ def test_one_diagonaliser_serves_dense_lanczos_and_sectors():
     e_sec, vec = exact.ground_state(heisenberg(ring), SpinSpace(8, total_sz=0), sector=sec)
     assert e_sec == pytest.approx(exact.heisenberg_ring_energy(8), abs=1e-10)
     assert exact.expectation(heisenberg(ring), vec, SpinSpace(8, total_sz=0)) == pytest.approx(e_sec, abs=1e-10)
+
+
+def test_lowest_eigenpairs_of_a_matrix_and_bad_input():
+    # a sparse matrix in the basis of the space is diagonalised like the operator it came from
+    from psiloom import exact
+    from psiloom.lattices import chain
+    from psiloom.operators import heisenberg
+
+    ham = heisenberg(chain(4))
+    vals, _ = exact.lowest_eigenpairs(ham.to_sparse(), k=2)
+    np.testing.assert_allclose(vals, np.linalg.eigvalsh(ham.to_dense())[:2], atol=1e-12)
+    assert vals[0] == pytest.approx(-2.0, abs=1e-12)  # 4-site ring: −2J (Bethe 1931, L = 4)
+    with pytest.raises(ValueError, match="Hermitian"):
+        exact.lowest_eigenpairs(sp.csr_matrix(np.array([[0.0, 1.0], [0.0, 0.0]])))
+    with pytest.raises(ValueError, match="k must be a positive integer"):
+        exact.lowest_eigenpairs(ham, k=0)
+    with pytest.raises(ValueError, match="k=17"):
+        exact.lowest_eigenpairs(ham, k=17)

@@ -448,3 +448,16 @@ def test_local_values_refuse_configurations_that_are_not_spins(bad, site):
     good = np.where(np.arange(12).reshape(3, 4) % 2, 1.0, -1.0)
     expected = local_values(log_amp, ham, good)
     np.testing.assert_allclose(jax.jit(lambda y: ham.local_energy(log_amp, y))(good), expected, atol=1e-12)
+
+
+def test_spin_correlation_components_sum_to_the_full_correlation():
+    # S_i·S_j = Σ_a S^a_i S^a_j (textbook); (S^a_i)² = 1/4 for spin 1/2
+    from psiloom.operators import spin_correlation_component
+
+    parts = [spin_correlation_component(3, 0, 2, a) for a in ("x", "Y", "z")]
+    np.testing.assert_allclose(sum(p.to_dense() for p in parts), spin_correlation(3, 0, 2).to_dense(), atol=1e-14)
+    np.testing.assert_allclose(spin_correlation_component(3, 1, 1, "x").to_dense(), 0.25 * np.eye(8), atol=1e-14)
+    with pytest.raises(ValueError, match="component must be one of"):
+        spin_correlation_component(3, 0, 1, "xy")
+    with pytest.raises(ValueError, match="site 5"):
+        spin_correlation_component(3, 5, 5, "z")
