@@ -39,8 +39,8 @@ def reference_energy(size: int) -> tuple[float, str]:
         space = pl.spaces.SpinSpace(16, total_sz=0)
         ham = pl.operators.heisenberg(lat, sign_rule=True)
         sector = sym.sector(sym.product(sym.space_group(lat), sym.spin_flip(lat)), (0, 0), "A1", 1)
-        vals, _ = sym.sector_eigenpairs(ham, space, sector)
-        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.symmetry); -11.2284832 from memory"
+        vals, _ = pl.exact.sector_eigenpairs(ham, space, sector)
+        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.exact); -11.2284832 from memory"
     if size == 6:
         return E_6X6_PER_SITE * 36, "Schulz, Ziman & Poilblanc 1996 (from memory)"
     raise ValueError(f"no reference for {size}x{size}")

@@ -22,12 +22,28 @@ from psiloom.electrons.hamiltonian import CoulombHamiltonian
 
 
 class EnergyComponents(NamedTuple):
+    """Estimates of the energy parts (hartree) and the virial ratio −⟨V⟩/⟨T⟩.
+
+    ``str()`` gives one labelled line per part (``format`` of each Estimate) and the ratio.
+    """
+
     total: stats.Estimate
     kinetic: stats.Estimate
     potential: stats.Estimate
     electron_nuclear: stats.Estimate
     electron_electron: stats.Estimate
     virial_ratio: float  # −⟨V⟩ / ⟨T⟩
+
+    def format(self) -> str:
+        labels = (("total E", self.total), ("kinetic T", self.kinetic), ("potential V", self.potential),
+                  ("electron-nuclear", self.electron_nuclear), ("electron-electron", self.electron_electron))
+        width = max(len(label) for label, _ in labels)
+        lines = [f"{label:<{width}}  {est.format()}" for label, est in labels]
+        lines.append(f"{'virial −V/T':<{width}}  {float(self.virial_ratio):.4f}  (2 for an exact eigenstate)")
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self.format()
 
 
 def energy_components(hamiltonian: CoulombHamiltonian, log_amp_fn, samples, chunk: int | None = None) -> EnergyComponents:
