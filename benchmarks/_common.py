@@ -1,6 +1,6 @@
 """Shared helpers for the scripts in ``benchmarks/``.
 
-Output contract (see ``shared/BENCHMARKS.md``): every system a script runs prints exactly one
+Output contract (see ``benchmarks/README.md``): every system a script runs prints exactly one
 line on stdout holding one JSON object; the last stdout line is a JSON object with
 ``"summary": true``.  Everything else (progress, warnings) goes to stderr.
 
@@ -153,7 +153,7 @@ def parse_args(name: str, description: str, argv: Sequence[str] | None = None,
                extra: Any = None) -> argparse.Namespace:
     """Standard argument parser: ``--quick`` plus whatever ``extra(parser)`` adds."""
     parser = argparse.ArgumentParser(prog=name, description=description)
-    parser.add_argument("--quick", action="store_true", help="reduced run (see the issue's time limit)")
+    parser.add_argument("--quick", action="store_true", help="reduced run of a few minutes on a 2-core CPU (each script states its budget)")
     if extra is not None:
         extra(parser)
     return parser.parse_args(argv)

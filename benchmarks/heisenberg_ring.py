@@ -2,7 +2,7 @@
 
 H = J Σ S_i·S_{i+1} (S = σ/2, J = 1), total Sᶻ = 0, Marshall sign rule.
 Full mode: L = 100, α = 4. ``--quick``: L = 16, α = 2 (< 60 s on two cores).
-Prints one JSON line for the system and a summary line last (../shared/BENCHMARKS.md).
+Prints one JSON line for the system and a summary line last (benchmarks/README.md).
 """
 
 from __future__ import annotations

@@ -3,7 +3,7 @@
 Each rung trains a trial state with stochastic reconfiguration through the public API
 (:class:`psiloom.train.GroundStateSearch`), evaluates the energy in a separate, longer sampling
 pass and compares it with its reference. One JSON line per rung, the summary line last
-(``shared/BENCHMARKS.md``); progress goes to stderr.
+(``benchmarks/README.md``); progress goes to stderr.
 
 Full-mode rungs (targets are relative errors; a time limit, where given, includes compilation):
 
@@ -320,7 +320,7 @@ FULL = [
 ]
 
 # Reduced sizes and short runs. Their targets are sanity bounds for these short runs (chosen
-# with margin above what they reach), not the full-mode targets.
+# with margin above what they reach), not the full-mode targets.
 QUICK = [
     Rung("tfim_chain_16", "tfim", (16,), 1e-3, alpha=1, n_samples=512, n_chains=32, steps=150, lr=(0.03, 0.05),
          warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096, couplings={"J": 1.0, "h": 1.0}),

@@ -1,19 +1,19 @@
 """Benchmark: ground-state energies of small atoms and molecules by VMC with determinant trial states.
 
 Systems (fixed nuclei, bohr, hartree): He, H₂ (R = 1.4), Li, LiH (R = 3.015), Be, compared with
-the exact non-relativistic energies of ../shared/REFERENCES.md (from memory).
+the published exact non-relativistic energies named in ``SYSTEMS`` below (from memory).
 
 ``--quick``: Slater–Jastrow states (Slater-type orbitals, cusp + neural Jastrow), short runs;
 the He line is the headline (target: within 5 mHa in under 2 minutes on two CPU cores).
 Full mode: neural-orbital multi-determinant states (``neural_slater_jastrow``), Hartree-Fock
-pretraining when PySCF is installed, long runs (targets of issue 6: He ≤ 0.1 mHa in ≤ 10 min;
+pretraining when PySCF is installed, long runs (targets: He ≤ 0.1 mHa in ≤ 10 min;
 H₂ ≤ 0.3, Li ≤ 1, LiH ≤ 1.6 mHa in ≤ 60 min; Be ≤ 3 mHa).
 
 For every system one energy line (energy from a separate evaluation pass) and one throughput line
 (walker-steps per second of the full optimisation step: sampling, local energy, gradient and SR);
 then throughput lines comparing the Laplacian implementations (own forward Laplacian, jvp of the
 gradient, and the optional ``folx`` package) on one system; a summary line last. JSON on stdout,
-progress on stderr (../shared/BENCHMARKS.md).
+progress on stderr (benchmarks/README.md).
 
 Options: ``--systems He,Li`` to run a subset; ``--laplacian`` to choose the Laplacian used in
 training (default: forward); ``--scale`` to shorten runs for a smoke test.

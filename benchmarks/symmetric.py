@@ -10,9 +10,9 @@ References: 4×4 — exact diagonalisation in the same symmetry sector (psiloom.
 also equals −11.2284832 (REFERENCES.md, from memory); 6×6 — −0.678872 J per site (Schulz, Ziman
 & Poilblanc 1996, from memory).
 
-Targets (issue 5): rel. error ≤ 5e-5 (4×4) and ≤ 5e-4 (6×6) in ≤ 30 min on two CPU cores.
+Targets: rel. error ≤ 5e-5 (4×4) and ≤ 5e-4 (6×6) in ≤ 30 min on two CPU cores.
 ``--quick`` (< 2 min on two cores) runs short optimisations of both sizes; its errors are far
-above the targets. Prints one JSON line per system and a summary line last (../shared/BENCHMARKS.md).
+above the targets. Prints one JSON line per system and a summary line last (benchmarks/README.md).
 """
 
 from __future__ import annotations
@@ -39,8 +39,8 @@ def reference_energy(size: int) -> tuple[float, str]:
         space = pl.spaces.SpinSpace(16, total_sz=0)
         ham = pl.operators.heisenberg(lat, sign_rule=True)
         sector = sym.sector(sym.product(sym.space_group(lat), sym.spin_flip(lat)), (0, 0), "A1", 1)
-        vals, _ = sym.sector_eigenpairs(ham, space, sector)
-        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.symmetry); -11.2284832 from memory"
+        vals, _ = pl.exact.sector_eigenpairs(ham, space, sector)
+        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.exact); -11.2284832 from memory"
     if size == 6:
         return E_6X6_PER_SITE * 36, "Schulz, Ziman & Poilblanc 1996 (from memory)"
     raise ValueError(f"no reference for {size}x{size}")

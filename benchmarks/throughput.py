@@ -23,7 +23,7 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
 
 Times are wall-clock, best of several repetitions after compilation (OpenBLAS limited to one
 thread unless OPENBLAS_NUM_THREADS is set: see the note at the import). Prints one JSON line per
-measurement and a summary line last (../shared/BENCHMARKS.md); progress goes to stderr.
+measurement and a summary line last (benchmarks/README.md); progress goes to stderr.
 ``--quick`` uses fewer repetitions and smaller SR/batch sizes (< 60 s on two cores);
 ``--single-thread`` runs XLA on one thread (steadier numbers on a busy machine).
 """

@@ -3,7 +3,7 @@
 import jax
 import numpy as np
 import pytest
-from hypothesis import given, strategies as st
+from hypothesis import given, settings, strategies as st
 
 from psiloom import electrons as el
 
@@ -86,3 +86,36 @@ def test_walkers_start_around_nuclei_by_charge():
     assert 0 < near_h[:, :2].sum() < 200  # the H electron is sometimes spin-up, sometimes down
     with pytest.raises(ValueError, match="width"):
         lih.random(jax.random.PRNGKey(0), 2, width=0.0)
+
+
+@settings(max_examples=30)
+@given(charge=st.one_of(st.floats(-1.5, 1.5).filter(lambda q: not float(q).is_integer()), st.just(1.0),
+                        st.text(max_size=2), st.booleans(), st.just(1j)))
+def test_non_integer_charge_raises_naming_it(charge):
+    # atom("He", charge=0.5) used to build neutral He (int() truncation) and charge="1" was accepted
+    with pytest.raises((TypeError, ValueError), match="charge"):
+        el.atom("He", charge=charge)
+
+
+def test_charge_or_spin_contradicting_the_electron_counts_raises():
+    # they used to be ignored silently when n_up/n_down were given
+    with pytest.raises(ValueError, match="charge=1 contradicts"):
+        el.molecule([("Li", (0, 0, 0))], charge=1, n_up=2, n_down=1)
+    with pytest.raises(ValueError, match="spin=1 contradicts"):
+        el.molecule([("Li", (0, 0, 0))], spin=1, n_up=3, n_down=0)
+    consistent = el.molecule([("Li", (0, 0, 0))], charge=1, spin=0, n_up=1, n_down=1)
+    assert (consistent.n_up, consistent.n_down, consistent.charge) == (1, 1, 1.0)
+
+
+def test_energy_components_print_as_labelled_lines():
+    # used to print as a dump of the nested NamedTuples and arrays
+    from psiloom import stats
+    from psiloom.electrons.observables import EnergyComponents
+
+    rng = np.random.default_rng(0)
+    parts = [stats.estimate(c + 0.01 * rng.standard_normal((64, 4))) for c in (-2.9, 2.9, -5.8, -6.7, 0.9)]
+    text = str(EnergyComponents(*parts, virial_ratio=-parts[2].mean / parts[1].mean))
+    lines = text.splitlines()
+    assert len(lines) == 6
+    assert lines[0].startswith("total E") and "±" in lines[0] and "Array" not in text
+    assert lines[-1].startswith("virial") and float(lines[-1].split()[2]) == pytest.approx(2.0, abs=0.01)

@@ -250,3 +250,123 @@ def test_odd_size_message_explains_why():
         heisenberg_ring_energy(7)
     with pytest.raises(ValueError, match="twice"):
         heisenberg_ring_energy(2)
+
+
+# --------------------------------------------------------------------------- state vectors and expectations
+
+
+def _singlet_log_amplitude(x):
+    """Two-site singlet (|↑↓⟩ − |↓↑⟩)/√2 as a complex log ψ (−inf on the triplet states ↑↑, ↓↓)."""
+    import jax.numpy as jnp
+
+    up_down = (x[:, 0] > 0) & (x[:, 1] < 0)
+    down_up = (x[:, 0] < 0) & (x[:, 1] > 0)
+    return jnp.where(up_down, 0.0 + 0j, jnp.where(down_up, 1j * jnp.pi, -jnp.inf + 0j))
+
+
+def test_two_site_singlet_by_enumeration():
+    # textbook: in the singlet S_1·S_2 = [S(S+1) − 2·(3/4)]/2 = −3/4, ⟨S^z_1 S^z_2⟩ = −1/4
+    # and ⟨S^z_1⟩ = 0; the vector is (|↑↓⟩ − |↓↑⟩)/√2 up to a global phase
+    from psiloom.exact import expectation, fidelity, state_vector
+    from psiloom.operators import pauli, spin_correlation
+    from psiloom.spaces import SpinSpace
+
+    space = SpinSpace(2)
+    v = state_vector(_singlet_log_amplitude, space)
+    assert np.linalg.norm(v) == pytest.approx(1.0, abs=1e-14)
+    reference = np.array([0.0, 1.0, -1.0, 0.0]) / math.sqrt(2)  # basis ↓↓, ↓↑, ↑↓, ↑↑ (codes 0..3)
+    assert fidelity(v, reference) == pytest.approx(1.0, abs=1e-14)
+    assert expectation(spin_correlation(2, 0, 1), v) == pytest.approx(-0.75, abs=1e-14)
+    assert expectation(pauli(2, "ZZ", (0, 1), 0.25), v) == pytest.approx(-0.25, abs=1e-14)
+    assert expectation(pauli(2, "Z", 0, 0.5), v) == pytest.approx(0.0, abs=1e-14)
+    # the same from a sparse matrix, and in the Sᶻ = 0 sector (basis ↓↑, ↑↓)
+    assert expectation(spin_correlation(2, 0, 1).to_sparse(), v) == pytest.approx(-0.75, abs=1e-14)
+    sector = SpinSpace(2, total_sz=0)
+    w = state_vector(_singlet_log_amplitude, sector)
+    assert expectation(spin_correlation(2, 0, 1), w, sector) == pytest.approx(-0.75, abs=1e-14)
+    # a non-Hermitian operator gives a complex value: S⁺_0 S⁻_1 with S^± = (σˣ ± iσʸ)/2 maps
+    # |↓↑⟩ to |↑↓⟩, so ⟨S⁺_0 S⁻_1⟩ = conj(v_↑↓) v_↓↑ = −1/2 (textbook)
+    raising = (pauli(2, "X", 0) + 1j * pauli(2, "Y", 0)) * (pauli(2, "X", 1) - 1j * pauli(2, "Y", 1)) / 4
+    assert isinstance(expectation(raising, v), complex)
+    assert expectation(raising, v) == pytest.approx(-0.5, abs=1e-14)
+
+
+def test_expectation_matches_scipy_on_a_random_complex_state():
+    # a random complex trial state on 4 sites: the enumerated vector reproduces exp(log ψ)
+    # normalised, and ⟨H⟩ equals v† H v from scipy.sparse; the ED ground state gives E0 (eigsh)
+    import jax.numpy as jnp
+
+    from psiloom.exact import expectation, ground_state, state_vector
+    from psiloom.lattices import chain
+    from psiloom.operators import heisenberg
+    from psiloom.spaces import SpinSpace
+
+    rng = np.random.default_rng(3)
+    weights = rng.standard_normal(4) + 1j * rng.standard_normal(4)
+    log_amp = lambda x: jnp.asarray(x) @ jnp.asarray(weights) * 0.3
+    space = SpinSpace(4)
+    v = state_vector(log_amp, space)
+    direct = np.exp(space.all_states() @ weights * 0.3)
+    direct /= np.linalg.norm(direct)
+    np.testing.assert_allclose(v, direct, atol=1e-13)
+    ham = heisenberg(chain(4))
+    mat = ham.to_sparse(space)
+    assert expectation(ham, v) == pytest.approx(float(np.real(v.conj() @ (mat @ v))), abs=1e-13)
+    e0 = spla.eigsh(sp.csr_matrix(mat), k=1, which="SA", return_eigenvectors=False)[0]
+    assert expectation(ham, ground_state(ham)[1]) == pytest.approx(e0, abs=1e-10)
+
+
+def test_state_vector_and_expectation_reject_bad_input():
+    from psiloom.exact import expectation, state_vector
+    from psiloom.operators import pauli
+    from psiloom.spaces import SpinSpace
+
+    import jax.numpy as jnp
+
+    with pytest.raises(ValueError, match="vanishes"):
+        state_vector(lambda x: jnp.full(x.shape[0], -jnp.inf), SpinSpace(2))
+    with pytest.raises(ValueError, match="nan"):
+        state_vector(lambda x: jnp.full(x.shape[0], jnp.nan), SpinSpace(2))
+    with pytest.raises(ValueError, match="4 states"):
+        expectation(pauli(2, "Z", 0), np.ones(3))
+    with pytest.raises(TypeError, match="operator"):
+        expectation("H", np.ones(4))
+
+
+def test_one_diagonaliser_serves_dense_lanczos_and_sectors():
+    # the dense solver (≤ DENSE_LIMIT states) and Lanczos (above) agree with the Bethe ansatz
+    # (Bethe 1931) on rings of 8 (70 states in Sᶻ = 0) and 12 (924 states); the k = 0 sector
+    # of the 8-ring, through the same switch, holds the ground state (L/2 even, from memory)
+    from psiloom import exact, symmetry
+    from psiloom.lattices import chain
+    from psiloom.operators import heisenberg
+    from psiloom.spaces import SpinSpace
+
+    for n in (8, 12):
+        space = SpinSpace(n, total_sz=0)
+        assert (space.size <= exact.DENSE_LIMIT) == (n == 8)
+        e0, _ = exact.ground_state(heisenberg(chain(n)), space)
+        assert e0 == pytest.approx(exact.heisenberg_ring_energy(n), abs=1e-9)
+    ring = chain(8)
+    sec = symmetry.sector(symmetry.translations(ring), (0.0,))
+    e_sec, vec = exact.ground_state(heisenberg(ring), SpinSpace(8, total_sz=0), sector=sec)
+    assert e_sec == pytest.approx(exact.heisenberg_ring_energy(8), abs=1e-10)
+    assert exact.expectation(heisenberg(ring), vec, SpinSpace(8, total_sz=0)) == pytest.approx(e_sec, abs=1e-10)
+
+
+def test_lowest_eigenpairs_of_a_matrix_and_bad_input():
+    # a sparse matrix in the basis of the space is diagonalised like the operator it came from
+    from psiloom import exact
+    from psiloom.lattices import chain
+    from psiloom.operators import heisenberg
+
+    ham = heisenberg(chain(4))
+    vals, _ = exact.lowest_eigenpairs(ham.to_sparse(), k=2)
+    np.testing.assert_allclose(vals, np.linalg.eigvalsh(ham.to_dense())[:2], atol=1e-12)
+    assert vals[0] == pytest.approx(-2.0, abs=1e-12)  # 4-site ring: −2J (Bethe 1931, L = 4)
+    with pytest.raises(ValueError, match="Hermitian"):
+        exact.lowest_eigenpairs(sp.csr_matrix(np.array([[0.0, 1.0], [0.0, 0.0]])))
+    with pytest.raises(ValueError, match="k must be a positive integer"):
+        exact.lowest_eigenpairs(ham, k=0)
+    with pytest.raises(ValueError, match="k=17"):
+        exact.lowest_eigenpairs(ham, k=17)

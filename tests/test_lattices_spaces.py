@@ -15,7 +15,7 @@ import math
 import jax
 import numpy as np
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from psiloom import lattices
@@ -346,3 +346,13 @@ def test_bad_random_count_raises(n):
     with pytest.raises(ValueError) as err:
         SpinSpace(4).random(jax.random.PRNGKey(0), n)
     assert repr(n) in str(err.value)
+
+
+@settings(max_examples=40)
+@given(total_sz=st.one_of(st.booleans(), st.text(max_size=3), st.complex_numbers(allow_nan=False).filter(lambda z: z.imag != 0),
+                          st.just(0j), st.just([0]), st.just("0")))
+def test_sector_of_the_wrong_type_raises_naming_it(total_sz):
+    # SpinSpace(4, total_sz=True) used to be the sector Sᶻ = 1 and total_sz='0' the sector 0;
+    # a complex sector raised a raw TypeError from float()
+    with pytest.raises((TypeError, ValueError), match="total_sz"):
+        SpinSpace(4, total_sz=total_sz)

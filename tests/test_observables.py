@@ -157,6 +157,23 @@ def test_magnetizations_match_exact_diagonalisation():
     assert _expect(ms * ms, space, v) == pytest.approx(s_pi / (3 * n), rel=1e-10)
 
 
+def test_discrete_observables_have_honest_rhat():
+    # local values of discrete observables carry ~1e-16 configuration-dependent rounding noise
+    # (seen on a 12-site chain); m_stag² must have the R̂ of the same values computed directly
+    # from the configurations (exact: multiples of 1/(4N²)), and m² ≡ 0 in the Sᶻ = 0 sector is
+    # a constant: R̂ = nan and no R̂ warning. Samples: uniform Sᶻ = 0 configurations, i.e. exact
+    # iid samples of |ψ|² for a constant ψ.
+    n = 12
+    lat = pl.lattices.chain(n)
+    xs = pl.spaces.SpinSpace(n, total_sz=0).random(jax.random.PRNGKey(0), 64 * 4).reshape(64, 4, n)
+    res = obs.magnetizations(lambda x: jnp.zeros(x.shape[0]), lat, xs)
+    signs = 1 - 2 * lat.sublattice
+    direct = (np.asarray(xs) @ signs / (2 * n)) ** 2
+    assert float(res["m_stag2"].rhat) == pytest.approx(float(pl.stats.split_rhat(direct)), abs=1e-12)
+    assert np.isnan(float(res["m2"].rhat))
+    assert not any("R̂" in message for message in res["m2"].warnings())
+
+
 def test_measure_agrees_with_local_values():
     # the stacked evaluation must reproduce psiloom.operators.local.local_values term by term
     lat, space, ham, _, _, log_amp, xs, logs = _square_setup(False)
@@ -224,7 +241,7 @@ def test_v_score_of_an_exact_eigenstate_vanishes():
         (lambda s: obs.measure(s["f"], {"a": s["ham"]}, s["xs"].reshape(-1, 16)), "n_time, n_chains, n_sites"),
         (lambda s: obs.measure(s["f"], {"a": s["ham"]}, s["xs"], s["logs"][:3]), "log_amps must have shape"),
         (lambda s: obs.measure(s["f"], {"a": pl.operators.heisenberg(pl.lattices.chain(8))}, s["xs"]), "8 sites"),
-        (lambda s: obs.correlation_operators(pl.lattices.chain(8, pbc=False)), "periodic"),
+        (lambda s: obs.correlation_operators(pl.lattices.chain(8), component="xy"), "component"),
         (lambda s: obs.correlation_operators(pl.lattices.chain(5), sign_rule=True), "bipartite"),
         (lambda s: obs.v_score(-1.0, 0.1, 4, -1.0), "undefined"),
         (lambda s: obs.infinite_temperature_energy(s["ham"], pl.spaces.SpinSpace(8)), "8 sites"),
@@ -235,3 +252,36 @@ def test_bad_input_is_named(call, match):
     lat, space, ham, _, _, log_amp, xs, logs = _square_setup(False)
     with pytest.raises(ValueError, match=match):
         call({"f": log_amp, "ham": ham, "xs": xs, "logs": logs})
+
+
+# ---------------------------------------------------------------------- components and open lattices
+def test_correlation_components_on_an_open_chain_match_exact_diagonalisation():
+    # open Heisenberg chain of 6 sites (ED ground state, a singlet): C_aa(r) averaged over the
+    # L − r pairs that exist equals ⟨v|·|v⟩ of operators built pair by pair; SU(2) invariance of
+    # the singlet gives C_xx = C_yy = C_zz = C/3 (textbook). Samples: iid from |v|² (exact).
+    n = 6
+    lat = pl.lattices.chain(n, pbc=False)
+    space = pl.spaces.SpinSpace(n)  # full space: S^x S^x alone leaves the Sᶻ = 0 sector
+    e0, v = pl.exact.ground_state(pl.operators.heisenberg(lat), space)
+    log_amp = _table_state(space, v)
+    states = space.all_states()
+    pick = np.random.default_rng(7).choice(len(states), size=(256, 8), p=np.abs(v) ** 2 / np.sum(np.abs(v) ** 2))
+    xs = jnp.asarray(states[pick])
+    full = obs.spin_correlations(log_amp, lat, xs)
+    assert full.structure_factor is None and full.momenta.shape == (0, 1)
+    for comp, letter in (("zz", "Z"), ("xx", "X"), ("yy", "Y")):
+        res = obs.spin_correlations(log_amp, lat, xs, component=comp)
+        exact = []
+        for r in range(n):
+            pairs = [pl.operators.pauli(n, letter + letter, (i, i + r), 0.25) if r else
+                     pl.operators.PauliSum.identity(n, 0.25) for i in range(n - r)]
+            exact.append(pl.exact.expectation(pl.operators.total(pairs, n) / (n - r), v, space))
+        exact = np.array(exact)
+        _within(res.correlation.mean, res.correlation.error, exact)
+        # the singlet: one component is a third of the full correlation (exact, from ED)
+        full_exact = np.array([pl.exact.expectation(op, v, space) for op in obs.correlation_operators(lat)[1]])
+        np.testing.assert_allclose(exact, full_exact / 3, atol=1e-10)
+        assert float(res.correlation.mean[0]) == pytest.approx(0.25, abs=1e-12)
+    # nearest-neighbour correlation of the open chain: E0 / (L − 1) (ED)
+    assert full_exact[1] == pytest.approx(e0 / (n - 1), abs=1e-10)
+    _within(full.correlation.mean[1], full.correlation.error[1], e0 / (n - 1))

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from psiloom import exact, lattices
@@ -95,9 +95,47 @@ def test_single_site_pauli_algebra(a, b, phase, c):
     assert (pauli(1, a, 0) * pauli(1, a, 0)).terms == {(): 1.0}
 
 
-def test_repeated_sites_multiply_out():
-    # σˣ₀σʸ₀ written as one string is iσᶻ₀
-    np.testing.assert_allclose(pauli(2, "XY", (0, 0)).to_dense(), 1j * kron_string(2, {0: "Z"}), atol=1e-14)
+def test_repeated_sites_are_refused_and_products_multiply_out():
+    # a string naming a site twice used to multiply out silently ("XY" on (0, 0) = iσᶻ₀, not
+    # Hermitian); it is refused, and the operator product gives the single-site algebra
+    with pytest.raises(ValueError, match="site 0 more than once"):
+        pauli(2, "XY", (0, 0))
+    with pytest.raises(ValueError, match="site 1 twice"):
+        PauliSum(2, {((1, "X"), (1, "Z")): 1.0})
+    prod = pauli(2, "X", 0) * pauli(2, "Y", 0)
+    np.testing.assert_allclose(prod.to_dense(), 1j * kron_string(2, {0: "Z"}), atol=1e-14)
+
+
+@settings(max_examples=60)
+@given(bad=st.one_of(st.sampled_from([float("nan"), float("inf"), -float("inf"), complex(1, float("nan"))]),
+                     st.text(max_size=2), st.none(), st.just([1.0])))
+def test_bad_coefficients_are_refused_by_name(bad):
+    # pauli(4, "Z", 0, nan) used to be the zero operator and inf was accepted; strings raised
+    # a raw TypeError from complex()
+    with pytest.raises((ValueError, TypeError), match="coefficient"):
+        pauli(4, "Z", 0, bad)
+    with pytest.raises((ValueError, TypeError), match="coefficient"):
+        PauliSum(4, {((0, "Z"),): bad})
+
+
+@settings(max_examples=40)
+@given(site=st.one_of(st.floats(0.01, 3.99).filter(lambda v: not float(v).is_integer()),
+                      st.just(2.0), st.text(min_size=1, max_size=2), st.booleans(), st.just(1 + 0j)))
+def test_non_integer_sites_are_refused_by_name(site):
+    # pauli(4, "Z", 1.7) used to act on site 1 (int() truncation)
+    with pytest.raises((ValueError, TypeError), match="site"):
+        pauli(4, "Z", site)
+    with pytest.raises((ValueError, TypeError), match="site"):
+        pauli(4, "ZZ", (0, site))
+
+
+def test_bad_letters_and_sizes_are_refused_by_name():
+    with pytest.raises(TypeError, match="letters"):
+        pauli(4, 3, 0)
+    with pytest.raises(ValueError, match="n_sites"):
+        pauli(0, "Z", 0)
+    with pytest.raises(ValueError, match="scalar factor"):
+        pauli(4, "Z", 0) * float("nan")
 
 
 @given(st.integers(1, 4), st.data())
@@ -385,3 +423,41 @@ def test_heisenberg_square_4x4():
     lat = lattices.square(4, 4)
     e0, _ = exact.ground_state(heisenberg(lat, sign_rule=True), SpinSpace(16, total_sz=0))
     assert e0 == pytest.approx(-11.2284832, abs=5e-7)
+
+
+# --------------------------------------------------------------------------- configurations
+
+
+@settings(max_examples=30)
+@given(bad=st.sampled_from([0.0, 0.5, float("nan"), 2.0, float("inf")]), site=st.integers(0, 3))
+def test_local_values_refuse_configurations_that_are_not_spins(bad, site):
+    # 0/1 occupations, 0.5 or nan used to give finite (wrong) local energies
+    from psiloom.operators import local_values, observables
+
+    ham = heisenberg(lattices.chain(4))
+    log_amp = lambda x: 0.1 * x.sum(axis=-1)
+    x = np.ones((3, 4))
+    x[1, site] = bad
+    with pytest.raises(ValueError, match=r"±1; entry \(1, %d\)" % site):
+        ham.local_energy(log_amp, x)
+    with pytest.raises(ValueError, match="samples must hold spin configurations"):
+        observables.measure(log_amp, {"H": ham}, x[None])
+    # valid spins pass, also inside jit where the check is skipped
+    import jax
+
+    good = np.where(np.arange(12).reshape(3, 4) % 2, 1.0, -1.0)
+    expected = local_values(log_amp, ham, good)
+    np.testing.assert_allclose(jax.jit(lambda y: ham.local_energy(log_amp, y))(good), expected, atol=1e-12)
+
+
+def test_spin_correlation_components_sum_to_the_full_correlation():
+    # S_i·S_j = Σ_a S^a_i S^a_j (textbook); (S^a_i)² = 1/4 for spin 1/2
+    from psiloom.operators import spin_correlation_component
+
+    parts = [spin_correlation_component(3, 0, 2, a) for a in ("x", "Y", "z")]
+    np.testing.assert_allclose(sum(p.to_dense() for p in parts), spin_correlation(3, 0, 2).to_dense(), atol=1e-14)
+    np.testing.assert_allclose(spin_correlation_component(3, 1, 1, "x").to_dense(), 0.25 * np.eye(8), atol=1e-14)
+    with pytest.raises(ValueError, match="component must be one of"):
+        spin_correlation_component(3, 0, 1, "xy")
+    with pytest.raises(ValueError, match="site 5"):
+        spin_correlation_component(3, 5, 5, "z")

@@ -268,7 +268,7 @@ def test_vmc_in_the_symmetric_sector_reaches_the_sector_ground_state():
     space = pl.spaces.SpinSpace(16, total_sz=0)
     ham = pl.operators.heisenberg(lat, sign_rule=True)
     sec = sym.sector(sym.point_group(lat), None, "A1")
-    e_sector = sym.sector_eigenpairs(ham, space, sym.sector(sym.space_group(lat), (0, 0), "A1"))[0][0]
+    e_sector = pl.exact.sector_eigenpairs(ham, space, sym.sector(sym.space_group(lat), (0, 0), "A1"))[0][0]
     model = Symmetrized(TranslationInvariantRBM(lat, alpha=2), sec)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lat.bonds, burn_in=2)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.05))

@@ -50,7 +50,7 @@ def test_resume_from_checkpoint_is_bit_identical(search, start, tmp_path):
 
     path = str(tmp_path / "run.ckpt")
     half, _ = search.run(3, state=start, progress=False, checkpoint=path, checkpoint_every=3)
-    loaded, hist_loaded = load_checkpoint(path)
+    loaded, hist_loaded = search.resume(path)
     assert int(loaded.step) == 3 and len(hist_loaded) == 3
     assert leaves_equal(loaded, half)
     resumed, hist_resumed = search.run(6, state=loaded, history=hist_loaded, progress=False)
@@ -72,7 +72,7 @@ def test_history_save_and_load_round_trip(search, start, tmp_path):
     hist.save(path)
     back = History.load(path)
     assert back.columns == hist.columns
-    assert len(back) == 3 and list(back["step"]) == [0, 1, 2]
+    assert len(back) == 3 and list(back["step"]) == [1, 2, 3]  # 1-based: the state's step after the update
     assert np.all(np.isfinite(back["energy"])) and np.all(back["error"] >= 0)
     assert np.all((back["acceptance"] >= 0) & (back["acceptance"] <= 1))
 
@@ -81,7 +81,7 @@ def test_checkpoint_round_trip_preserves_dtypes(start, tmp_path):
     state = start
     path = str(tmp_path / "s.ckpt")
     save_checkpoint(path, state)
-    back, hist = load_checkpoint(path)
+    back, hist = load_checkpoint(path, start)
     assert len(hist) == 0
     for a, b in zip(jax.tree_util.tree_leaves(state), jax.tree_util.tree_leaves(back)):
         assert np.asarray(a).dtype == np.asarray(b).dtype
@@ -121,19 +121,20 @@ def test_nan_stops_run_and_keeps_last_good_checkpoint(tmp_path):
     run = make_search(model=BreaksAtThreshold(), optimizer=count_steps())
     path = str(tmp_path / "nan.ckpt")
     start = run.init(jax.random.PRNGKey(5))
-    # steps 0..3 see counter = 0..3 < 3.5: finite; step 4 sees counter = 4: log of a negative
+    # steps 1..4 see counter = 0..3 < 3.5: finite; step 5 (state.step 4 -> 5) sees counter = 4:
+    # log of a negative
     good, _ = run.run(4, state=start, progress=False)
     with pytest.raises(NonFiniteError) as err:
         run.run(10, state=start, progress=False, checkpoint=path, checkpoint_every=1)
-    assert err.value.step == 4
-    assert "step 4" in str(err.value)
-    saved, hist = load_checkpoint(path)
+    assert err.value.step == 5
+    assert "step 5" in str(err.value)
+    saved, hist = run.resume(path)
     assert int(saved.step) == 4 and len(hist) == 4
     assert leaves_equal(saved.params, good.params)
     assert float(saved.params["params"]["counter"]) == 4.0
     # resuming from the bad point fails again and leaves the file byte-for-byte untouched
     before = open(path, "rb").read()
-    with pytest.raises(NonFiniteError, match="step 4"):
+    with pytest.raises(NonFiniteError, match="step 5"):
         run.run(10, state=saved, history=hist, progress=False, checkpoint=path, checkpoint_every=1)
     assert open(path, "rb").read() == before
 
@@ -149,14 +150,14 @@ def test_infinite_energy_names_step():
         def local_energy(self, log_amplitude, x, log_amp_x=None, chunk=None):
             e = base.local_energy(log_amplitude, x, log_amp_x, chunk)
             counter = jnp.exp(-log_amplitude(jnp.zeros((1, L)))[0])  # = 1/(T − c) for x = 0
-            return jnp.where(counter > 1.0 / 2.5, jnp.inf, e)  # c > 7.5 → inf
+            return jnp.where(counter > 1.0 / 2.5, jnp.inf, e)  # c > 7.5 → inf (step 9 sees c = 8)
 
     space = SpinSpace(L, total_sz=0)
     sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds)
     run = GroundStateSearch(BreaksAtThreshold(threshold=10.0), Wrapped(), sampler, count_steps(), n_samples=64)
     with pytest.raises(NonFiniteError) as err:
         run.run(20, key=jax.random.PRNGKey(1), progress=False)
-    assert err.value.step == 8 and "step 8" in str(err.value) and err.value.what == "energy"
+    assert err.value.step == 9 and "step 9" in str(err.value) and err.value.what == "energy"
 
 
 # --------------------------------------------------------------------------- bad input

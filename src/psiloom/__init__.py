@@ -3,7 +3,7 @@
 Data flows one way through the subpackages:
 
     lattices / spaces  →  states (log ψ)  →  sampling  →  operators (local values)
-        →  stats  →  optimize (gradient, preconditioner)  →  train (the loop)
+        →  stats  →  optimize (gradient, preconditioner)  →  vmc (the step), loop, train (the facade)
 
 ``exact`` holds reference solutions (sparse ED by Lanczos, free fermions, Bethe ansatz).
 psiloom follows the dtype of its inputs; enable ``jax_enable_x64`` for float64, which
@@ -11,9 +11,10 @@ stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
 """
 
 from psiloom import batching, exact, lattices, operators, optimize, plotting, reduce, sampling, spaces, states, stats, symmetry, train
+from psiloom import checkpoint, history, loop, vmc  # the pieces behind train.GroundStateSearch
 from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 
 __version__ = "0.1.0"
 
 __all__ = ["batching", "exact", "lattices", "operators", "optimize", "plotting", "reduce", "sampling", "spaces", "states",
-           "stats", "symmetry", "train", "electrons", "__version__"]
+           "stats", "symmetry", "train", "vmc", "loop", "history", "checkpoint", "electrons", "__version__"]

@@ -7,6 +7,8 @@ from typing import Callable
 import jax
 import jax.numpy as jnp
 
+from psiloom._validation import positive_int
+
 
 def map_in_chunks(fn: Callable, chunk: int | None, *arrays):
     """Apply ``fn`` to the leading-axis batch of ``arrays`` in chunks of ``chunk`` rows.
@@ -15,11 +17,11 @@ def map_in_chunks(fn: Callable, chunk: int | None, *arrays):
     batch to a multiple of ``chunk`` with copies of the first row and drops the padding.
     ``chunk=None`` (or a chunk ≥ batch) evaluates everything at once.
     """
+    if chunk is not None:
+        chunk = positive_int("chunk", chunk)
     n = arrays[0].shape[0]
     if chunk is None or chunk >= n:
         return fn(*arrays)
-    if chunk < 1:
-        raise ValueError(f"chunk must be a positive integer or None, got {chunk!r}")
     n_chunks = -(-n // chunk)
     pad = n_chunks * chunk - n
 

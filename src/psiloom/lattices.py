@@ -22,13 +22,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from psiloom._validation import positive_int
+
 
 def _check_extent(name: str, value) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
-        raise ValueError(f"lattice {name} must be an integer, got {value!r}")
-    if value < 1:
-        raise ValueError(f"lattice {name} must be >= 1, got {value}")
-    return int(value)
+    return positive_int(f"lattice {name}", value)
 
 
 @dataclass(frozen=True, eq=False)

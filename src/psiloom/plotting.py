@@ -21,6 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from psiloom import stats
+from psiloom._validation import integer, nonnegative_int, positive_int
 
 SPIN_CMAP = "coolwarm"  # −1 blue, +1 red
 
@@ -104,8 +105,7 @@ def plot_trace(values, ax=None, label: str = "observable", max_chains: int = 8):
         values: shape ``(n_time,)`` or ``(n_time, n_chains)``.
     """
     arr = _as_time_by_chain(values)
-    if isinstance(max_chains, bool) or not isinstance(max_chains, (int, np.integer)) or max_chains < 1:
-        raise ValueError(f"max_chains must be a positive integer, got {max_chains!r}")
+    max_chains = positive_int("max_chains", max_chains)
     ax = _axes(ax)
     t = np.arange(arr.shape[0])
     for c in range(min(arr.shape[1], max_chains)):
@@ -126,8 +126,8 @@ def plot_autocorrelation(values, ax=None, max_lag: int | None = None):
     tau = float(stats.integrated_autocorrelation_time(arr))
     if max_lag is None:
         max_lag = int(min(arr.shape[0] - 1, max(10, np.ceil(5 * tau))))
-    elif isinstance(max_lag, bool) or not isinstance(max_lag, (int, np.integer)) or max_lag < 0:
-        raise ValueError(f"max_lag must be a non-negative integer, got {max_lag!r}")
+    else:
+        max_lag = nonnegative_int("max_lag", max_lag)
     max_lag = min(int(max_lag), arr.shape[0] - 1)
     ax = _axes(ax)
     lags = np.arange(max_lag + 1)
@@ -183,8 +183,7 @@ def plot_snapshots(samples, lattice=None, chain: int = 0, every: int = 1, max_sn
     if arr.ndim != 3:
         raise ValueError(f"samples must have shape (n_time, n_chains, n_sites) or (n_time, n_sites), got {np.shape(samples)}")
     for name, value, low in (("chain", chain, 0), ("every", every, 1), ("max_snapshots", max_snapshots, 1)):
-        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-            raise ValueError(f"{name} must be an integer >= {low}, got {value!r}")
+        integer(name, value, minimum=low)
     if chain >= arr.shape[1]:
         raise ValueError(f"chain={chain} but samples hold {arr.shape[1]} chains")
     times = np.arange(0, arr.shape[0], every)[:max_snapshots]

@@ -19,26 +19,32 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import finite_real, nonnegative_int, positive_int
+
 #: Largest space that :meth:`SpinSpace.all_states` will enumerate.
 MAX_ENUMERATION = 2**26
 
 
 @dataclass(frozen=True)
 class SpinSpace:
-    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``total_sz``."""
+    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``total_sz``.
+
+    ``n_sites`` is a positive integer; ``total_sz`` is ``None`` or a finite real number (an
+    integer or half-integer, in units of ħ) such that ``n_sites/2 + total_sz`` is an integer
+    in ``[0, n_sites]``. Anything else raises (a TypeError, which is also a ValueError, for a
+    wrong type such as ``True``, ``'0'`` or a complex number).
+    """
 
     n_sites: int
     total_sz: float | None = None
 
     def __post_init__(self):
         n = self.n_sites
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-            raise ValueError(f"n_sites must be a positive integer, got {n!r}")
-        object.__setattr__(self, "n_sites", int(n))
+        n = positive_int("n_sites", n)
+        object.__setattr__(self, "n_sites", n)
         if self.total_sz is not None:
-            sz = float(self.total_sz)
-            if not np.isfinite(sz):
-                raise ValueError(f"total_sz must be finite, got {self.total_sz!r}")
+            # a bool, a string ('0') or a complex number is refused rather than converted
+            sz = finite_real("total_sz", self.total_sz)
             n_up = n / 2 + sz
             if abs(n_up - round(n_up)) > 1e-12:
                 parity = "odd" if n % 2 else "even"
@@ -69,8 +75,7 @@ class SpinSpace:
 
     def random(self, key: jax.Array, n: int) -> jax.Array:
         """``n`` uniformly random valid configurations, shape ``(n, n_sites)``."""
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 0:
-            raise ValueError(f"number of configurations must be a non-negative integer, got {n!r}")
+        n = nonnegative_int("n (number of configurations)", n)
         if self.n_up is None:
             return jnp.where(jax.random.bernoulli(key, 0.5, (n, self.n_sites)), 1.0, -1.0)
         base = jnp.where(jnp.arange(self.n_sites) < self.n_up, 1.0, -1.0)

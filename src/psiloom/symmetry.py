@@ -42,8 +42,9 @@ a representation of the whole group only when ``R`` leaves ``k`` invariant modul
 lattice vectors (``Rᵀk ≡ k``) for every ``R`` present — e.g. ``k = 0`` and ``k = (π, π)`` on the
 square lattice with C4v, any ``k`` with translations alone. :func:`sector` checks this.
 
-Exact diagonalisation in a sector (:func:`sector_basis`, :func:`sector_eigenpairs`) uses the
-orthonormal orbit basis ``|r_χ⟩ ∝ Σ_g χ(g)* |g·r⟩`` over orbit representatives ``r``; these
+Exact diagonalisation in a sector (:func:`psiloom.exact.sector_eigenpairs`, which lives with
+every other diagonaliser in :mod:`psiloom.exact`) uses the orthonormal orbit basis
+:func:`sector_basis` ``|r_χ⟩ ∝ Σ_g χ(g)* |g·r⟩`` over orbit representatives ``r``; these
 vectors span exactly the states with ``ψ(g·x) = χ(g)* ψ(x)``.
 """
 
@@ -56,16 +57,15 @@ from typing import Sequence
 
 import jax.numpy as jnp
 import numpy as np
-import scipy.linalg
 import scipy.sparse as sp
-import scipy.sparse.linalg
 
 from psiloom.lattices import Lattice
 from psiloom.spaces import SpinSpace, codes
+from psiloom._validation import positive_int
 
 __all__ = [
     "SymmetryGroup", "Sector", "translations", "point_group", "space_group", "spin_flip", "product",
-    "momenta", "characters", "sector", "sector_basis", "sector_eigenpairs", "POINT_IRREPS",
+    "momenta", "characters", "sector", "sector_basis", "POINT_IRREPS",
 ]
 
 #: Names of the one-dimensional point-group irreducible representations understood here.
@@ -389,9 +389,10 @@ def spin_flip(lattice_or_sites: Lattice | int) -> SymmetryGroup:
         linear = np.broadcast_to(np.eye(d, dtype=np.int64), (2, d, d)).copy()
         return SymmetryGroup(np.tile(np.arange(n), (2, 1)), np.array([1, -1]), linear, np.zeros((2, d), np.int64),
                              lat.extent, lat.pbc, "Z2")
-    n = lattice_or_sites
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise ValueError(f"spin_flip needs a Lattice or a positive number of sites, got {lattice_or_sites!r}")
+    try:
+        n = positive_int("lattice_or_sites", lattice_or_sites)
+    except ValueError as err:  # ArgumentTypeError is a ValueError too; keep its type
+        raise type(err)(f"spin_flip needs a Lattice or a positive number of sites: {err}") from None
     return SymmetryGroup(np.tile(np.arange(int(n)), (2, 1)), np.array([1, -1]), np.zeros((2, 0, 0), np.int64),
                          np.zeros((2, 0), np.int64), (), True, "Z2")
 
@@ -594,7 +595,7 @@ def sector(group: SymmetryGroup, momentum=None, point_irrep: str = "A1", spin_pa
     return Sector(group, chi, " ".join(parts))
 
 
-# ---------------------------------------------------------------------- exact diagonalisation in a sector
+# ---------------------------------------------------------------------- sector bases
 def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_matrix:
     """Orthonormal basis of the sector inside ``space``: a sparse ``(space.size, n_sector)`` matrix.
 
@@ -644,30 +645,3 @@ def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_m
     keep = np.flatnonzero(norms > atol * math.sqrt(len(group)))
     mat = mat[:, keep] @ sp.diags(1.0 / norms[keep])
     return mat.tocsr()
-
-
-def sector_eigenpairs(operator, space: SpinSpace, sec: Sector, k: int = 1, tol: float = 1e-12):
-    """The ``k`` lowest eigenvalues of ``operator`` restricted to a sector, and their
-    eigenvectors in the basis of ``space.all_states()`` (columns, normalised).
-
-    The operator must commute with the group (not checked beyond Hermiticity of the block).
-    Returns ``(values, vectors)``; raises ValueError if the sector is empty or smaller than k.
-    """
-    basis = sector_basis(space, sec)
-    n = basis.shape[1]
-    if n == 0:
-        raise ValueError(f"sector {sec.label!r} holds no states of this space")
-    if not 1 <= k <= n:
-        raise ValueError(f"k={k} must lie in [1, {n}] for a sector of dimension {n}")
-    h = operator.to_sparse(space)
-    block = (basis.conj().T @ h @ basis).tocsr()
-    if n <= 256 or k >= n - 1:
-        vals, vecs = scipy.linalg.eigh(block.toarray())
-        vals, vecs = vals[:k], vecs[:, :k]
-    else:
-        rng = np.random.default_rng(0)
-        v0 = rng.standard_normal(n) + (0j if np.iscomplexobj(block.data) else 0)
-        vals, vecs = scipy.sparse.linalg.eigsh(block, k=k, which="SA", tol=tol, v0=v0)
-        order = np.argsort(vals)
-        vals, vecs = vals[order], vecs[:, order]
-    return np.real(vals), basis @ vecs

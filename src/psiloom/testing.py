@@ -21,6 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from psiloom._validation import positive_int
+
 __all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes"]
 
 
@@ -45,8 +47,7 @@ def configurations(n_sites: int, batch: int | tuple[int, int] = 1, n_up: int | N
     st, hnp = _hypothesis()
     if space is not None:
         n_sites, n_up = space.n_sites, space.n_up
-    if isinstance(n_sites, bool) or not isinstance(n_sites, (int, np.integer)) or n_sites < 1:
-        raise ValueError(f"n_sites must be a positive integer, got {n_sites!r}")
+    n_sites = positive_int("n_sites", n_sites)
     if n_up is not None and not 0 <= n_up <= n_sites:
         raise ValueError(f"n_up={n_up!r} must lie in [0, {n_sites}]")
     sizes = st.just(int(batch)) if np.isscalar(batch) else st.integers(int(batch[0]), int(batch[1]))

@@ -1,158 +1,71 @@
-"""The training loop: a jit-compiled VMC step and an outer loop with history and checkpoints.
+"""The convenient facade of a variational ground-state search: :class:`GroundStateSearch`.
 
-One step follows the data flow of the library:
+It joins the pure functions of :mod:`psiloom.vmc` (the step, its four phases, evaluation),
+the outer loop with hooks of :mod:`psiloom.loop` (progress lines, checkpoints, profiling,
+callbacks; several steps per host visit) and the checked checkpoints of
+:mod:`psiloom.checkpoint`. A :class:`TrainState` (= :class:`psiloom.vmc.VMCState`) holds
+everything needed to continue a run bit-identically: step count, parameters, optimiser
+state, chain state and PRNG key.
 
-    chains ──sample──▶ x ──log ψ──▶ E_loc(x) ──stats──▶ E ± σ
-                                        └──▶ ∇E (covariance form) ──preconditioner──▶ update
+Non-finite energies, gradients, parameters or optimiser states stop the run with
+:class:`NonFiniteError` naming the (1-based) step; the state that produced them is discarded
+and the last checkpoint is left untouched.
 
-All of it is a single pure function ``step(state) -> (state, StepOutput)`` compiled once;
-the Python loop in :meth:`GroundStateSearch.run` only calls it, prints progress, records
-history and writes checkpoints. A :class:`TrainState` holds everything needed to continue a
-run bit-identically: step count, parameters, optimiser state, chain state and PRNG key.
+Step numbers are 1-based everywhere: step n takes ``state.step`` from n − 1 to n; its history
+row has ``step = n`` and its progress line prints ``step n/total``.
 
-Non-finite energies or gradients stop the run with :class:`NonFiniteError` naming the step;
-the state that produced them is discarded and the last checkpoint is left untouched.
-
-The step is composed of four phases — sampling, local energy, gradient, solve — written as
-separate methods. :meth:`GroundStateSearch.profile_step` compiles each phase on its own and
-times it with ``block_until_ready`` (the fused step is one XLA program and cannot be split
-from inside); ``run(..., profile_every=k)`` records that breakdown in the history.
-Trial states with fast updates (:mod:`psiloom.states.fast`, e.g. the RBM) use them in the
-sampler and the local energy unless ``fast=False``.
+:meth:`GroundStateSearch.profile_step` compiles each phase on its own and times it with
+``block_until_ready`` (the fused step is one XLA program and cannot be split from inside);
+``run(..., profile_every=k)`` records that breakdown in the history. Trial states with fast
+updates (:mod:`psiloom.states.fast`, e.g. the RBM) use them in the sampler and the local
+energy unless ``fast=False``.
 """
 
 from __future__ import annotations
 
-import json
 import os
-import pickle
-import tempfile
 import time
-from dataclasses import dataclass, field
-from typing import Any, Callable, NamedTuple
+from typing import Callable
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
 
-from psiloom import stats
+from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
+                                load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
+from psiloom.history import History
+from psiloom.loop import Callback, Checkpointer, as_hook, NonFiniteError, ProgressPrinter, Profiler, format_progress, run_loop
 from psiloom.optimize.clipping import clip_local_energies
-from psiloom.optimize.flatten import tree_norm
-from psiloom.optimize.gradient import SampleGeometry, energy_gradient
-from psiloom.sampling.metropolis import ChainState
-from psiloom.states.base import check_input_size, count_real_parameters
-from psiloom.states.bound import BoundState
+from psiloom.states.base import count_real_parameters
+from psiloom.vmc import StepOutput, VMCState, vmc
+
+TrainState = VMCState
+
+__all__ = ["GroundStateSearch", "TrainState", "StepOutput", "History", "NonFiniteError", "CheckpointError",
+           "CheckpointLock", "save_checkpoint", "load_checkpoint", "format_progress"]
 
 
-class NonFiniteError(FloatingPointError):
-    """Raised when the energy or gradient of a step is NaN or infinite."""
-
-    def __init__(self, step: int, what: str):
-        super().__init__(f"non-finite {what} at step {step}; run stopped, last checkpoint kept")
-        self.step = step
-        self.what = what
+def load_checkpoint(path: str, template, meta: dict | None = None):
+    """Read a checkpoint into the structure of ``template`` (see :func:`psiloom.checkpoint.load_checkpoint`;
+    :meth:`GroundStateSearch.resume` builds the template and checks the run description)."""
+    return _load_checkpoint(path, template, meta)
 
 
-class TrainState(NamedTuple):
-    step: jax.Array
-    params: Any
-    opt_state: Any
-    chains: ChainState
-    key: jax.Array
+def _count(name: str, value, minimum: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        kind = "a positive" if minimum == 1 else "a non-negative"
+        raise ValueError(f"{name} must be {kind} integer, got {value!r}")
+    return int(value)
 
 
-class StepOutput(NamedTuple):
-    energy: stats.Estimate
-    acceptance: jax.Array
-    grad_norm: jax.Array
-
-
-@dataclass
-class History:
-    """Per-step record of a run; ``save`` writes JSON (one object of equal-length lists)."""
-
-    columns: dict[str, list] = field(default_factory=lambda: {
-        k: [] for k in ("step", "energy", "error", "variance", "tau", "rhat", "acceptance", "grad_norm", "seconds")
-    })
-
-    def append(self, step: int, out: StepOutput, seconds: float, extra: dict[str, float] | None = None) -> None:
-        """Add one row; ``extra`` columns (e.g. the ``t_*`` phase timings) are created on first
-        use and hold NaN in rows that lack them."""
-        e = out.energy
-        row = {
-            "step": step, "energy": float(np.real(e.mean)), "error": float(e.error),
-            "variance": float(e.variance), "tau": float(e.tau), "rhat": float(e.rhat),
-            "acceptance": float(out.acceptance), "grad_norm": float(out.grad_norm), "seconds": seconds,
-        }
-        row.update(extra or {})
-        n = len(self)
-        for k in row:
-            if k not in self.columns:
-                self.columns[k] = [float("nan")] * n
-        for k, column in self.columns.items():
-            column.append(row.get(k, float("nan")))
-
-    def __len__(self) -> int:
-        return len(self.columns["step"])
-
-    def __getitem__(self, name: str) -> np.ndarray:
-        return np.asarray(self.columns[name])
-
-    def truncate(self, n_steps: int) -> None:
-        keep = [i for i, s in enumerate(self.columns["step"]) if s < n_steps]
-        self.columns = {k: [v[i] for i in keep] for k, v in self.columns.items()}
-
-    def save(self, path: str) -> None:
-        _atomic_write(path, json.dumps(self.columns).encode())
-
-    @classmethod
-    def load(cls, path: str) -> "History":
-        with open(path) as f:
-            return cls(json.load(f))
-
-
-def _atomic_write(path: str, payload: bytes) -> None:
-    directory = os.path.dirname(os.path.abspath(path))
-    os.makedirs(directory, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=directory, prefix=".tmp-")
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(payload)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-CHECKPOINT_VERSION = 1
-
-
-def save_checkpoint(path: str, state: TrainState, history: History | None = None) -> None:
-    """Write ``state`` (and history) atomically: a crash mid-write leaves the old file intact."""
-    host = jax.tree_util.tree_map(np.asarray, state)
-    payload = {"version": CHECKPOINT_VERSION, "state": host, "history": None if history is None else history.columns}
-    _atomic_write(path, pickle.dumps(payload))
-
-
-def load_checkpoint(path: str) -> tuple[TrainState, History]:
-    """Read a checkpoint written by :func:`save_checkpoint`."""
-    with open(path, "rb") as f:
-        payload = pickle.load(f)
-    if payload.get("version") != CHECKPOINT_VERSION:
-        raise ValueError(f"checkpoint {path!r} has version {payload.get('version')!r}, expected {CHECKPOINT_VERSION}")
-    state = jax.tree_util.tree_map(jnp.asarray, payload["state"])
-    history = History(payload["history"]) if payload["history"] is not None else History()
-    return state, history
-
-
-def _format_progress(step: int, total: int, out: StepOutput, sec: float) -> str:
-    e = out.energy
-    return (f"step {step:>5d}/{total}  E = {float(np.real(e.mean)):+.6f} ± {float(e.error):.6f}"
-            f"  var {float(e.variance):.4g}  acc {float(out.acceptance):.3f}  {sec * 1e3:.1f} ms/step")
+def _check_checkpoint_path(checkpoint) -> None:
+    if checkpoint is None:
+        return
+    if not isinstance(checkpoint, (str, os.PathLike)) or not os.fspath(checkpoint):
+        raise ValueError(f"checkpoint must be a non-empty file path or None, got {checkpoint!r}")
+    if os.path.isdir(checkpoint):
+        raise ValueError(f"checkpoint {os.fspath(checkpoint)!r} is a directory, not a file path")
 
 
 class GroundStateSearch:
@@ -173,7 +86,11 @@ class GroundStateSearch:
             gradient and the SR geometry; the reported energy estimate stays unclipped.
         fast: use the trial state's fast amplitude updates (if it has them) in sampling and
             local energies; ``False`` forces full re-evaluation (same results, slower).
+
+    The pure functions behind it are in ``self.vmc`` (:func:`psiloom.vmc.vmc`).
     """
+
+    PHASES = ("sampling", "local_energy", "gradient", "solve")
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
                  n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
@@ -182,85 +99,63 @@ class GroundStateSearch:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
             raise ValueError(f"n_samples={n_samples} is not a multiple of the sampler's n_chains={sampler.n_chains}")
+        if chunk is not None:
+            _count("chunk", chunk)
         h_sites, s_sites = getattr(hamiltonian, "n_sites", None), getattr(sampler.space, "n_sites", None)
         if h_sites is not None and s_sites is not None and h_sites != s_sites:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
+        if energy_clip is not None:
+            clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
         self.model = model
         self.hamiltonian = hamiltonian
         self.sampler = sampler
         self.optimizer = optax.with_extra_args_support(optimizer)
         self.n_samples = int(n_samples)
         self.n_per_chain = self.n_samples // sampler.n_chains
-        self.chunk = chunk
-        if energy_clip is not None:
-            clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
+        self.chunk = None if chunk is None else int(chunk)
         self.energy_clip = energy_clip
         self.fast = bool(fast)
+        self.vmc = vmc(model, hamiltonian, sampler, optimizer, self.n_samples, chunk=self.chunk,
+                       energy_clip=energy_clip, fast=self.fast)
         self._phases = None  # separately compiled phases, built by profile_step on first use
-        self._step = jax.jit(self._step_impl)
-        self._eval = jax.jit(self._evaluate_impl, static_argnums=(2,))
+        self._step = jax.jit(self.vmc.step)
+        self._multi = {}  # steps_per_visit -> compiled multi_step
+        # one compiled evaluation per (n_per_chain, burn-in) pair: evaluate() with many distinct
+        # sample counts keeps one program each (jax's cache), each costs a compilation
+        self._eval = jax.jit(self.vmc.evaluate, static_argnums=(3, 4))
+        self._template = None
 
-    # ---------------------------------------------------------------- pure pieces
+    # ---------------------------------------------------------------- state
     def init(self, key: jax.Array, params=None) -> TrainState:
         """Fresh state: parameters (initialised unless given), optimiser state and chains."""
-        k_param, k_chain, k_run = jax.random.split(key, 3)
-        space = self.sampler.space
-        if params is None:
-            # compiled: op-by-op initialisation of deep modules is many times slower
-            params = jax.jit(self.model.init)(k_param, space.random(k_param, 1))
-        check_input_size(self.model, params, space)
-        chains = self.sampler.init(k_chain, self._bind(params))
-        return TrainState(jnp.zeros((), jnp.int32), params, self.optimizer.init(params), chains, k_run)
+        return self.vmc.init(key, params)
 
     def n_parameters(self, state: TrainState) -> int:
         return count_real_parameters(state.params)
 
-    def _bind(self, params) -> BoundState:
-        """``log ψ`` at ``params`` as a callable that still knows its model (samplers may read
-        it; fast-update paths use it unless ``fast=False``)."""
-        return BoundState(self.model, params, fast=self.fast)
+    def template(self):
+        """Shapes and dtypes of a fresh state (``jax.ShapeDtypeStruct`` leaves, nothing computed)."""
+        if self._template is None:
+            self._template = jax.eval_shape(self.vmc.init, jax.random.PRNGKey(0))
+        return self._template
 
-    # The four phases of a step (composed by _step_impl, timed one by one by profile_step).
-    def _sampling_phase(self, key, params, chains, n_per_chain):
-        log_amp = self._bind(params)
-        chains = self.sampler.refresh(chains, log_amp)
-        xs, logs, chains, acc = self.sampler.sample(key, chains, log_amp, n_per_chain)
-        x = xs.reshape(-1, *xs.shape[2:])  # time-major leading sample axis
-        return x, logs.reshape(-1), chains, acc
+    def meta(self) -> dict:
+        """The run description checked on resume: chain count, space, x64 setting."""
+        return run_meta(self.sampler)
 
-    def _local_energy_phase(self, params, x, logs):
-        return self.hamiltonian.local_energy(self._bind(params), x, logs, chunk=self.chunk)
+    def _bind(self, params):
+        return self.vmc.bind(params)
 
-    def _gradient_phase(self, params, x, e_loc):
-        estimate = stats.estimate(e_loc.reshape(self.n_per_chain, -1))
-        if self.energy_clip is not None:
-            e_loc = clip_local_energies(e_loc, self.energy_clip)
-        _, grad = energy_gradient(self.model.apply, params, x, e_loc)
-        return estimate, grad, e_loc
-
-    def _solve_phase(self, params, opt_state, grad, x, e_loc):
-        geometry = SampleGeometry(self.model.apply, params, x, e_loc, chunk=self.chunk)
-        updates, opt_state = self.optimizer.update(grad, opt_state, params, geometry=geometry)
-        return optax.apply_updates(params, updates), opt_state
-
-    def _sample(self, key, params, chains, n_per_chain):
-        x, logs, chains, acc = self._sampling_phase(key, params, chains, n_per_chain)
-        e_loc = self._local_energy_phase(params, x, logs)
-        return x, e_loc, chains, acc
-
-    def _step_impl(self, state: TrainState):
-        key, k_sample = jax.random.split(state.key)
-        x, e_loc, chains, acc = self._sample(k_sample, state.params, state.chains, self.n_per_chain)
-        estimate, grad, e_loc = self._gradient_phase(state.params, x, e_loc)
-        params, opt_state = self._solve_phase(state.params, state.opt_state, grad, x, e_loc)
-        new = TrainState(state.step + 1, params, opt_state, chains, key)
-        return new, StepOutput(estimate, acc, tree_norm(grad))
-
+    # ---------------------------------------------------------------- one step
     def step(self, state: TrainState) -> tuple[TrainState, StepOutput]:
-        """One compiled optimisation step."""
+        """One compiled optimisation step (unguarded: non-finite values are returned as they are)."""
         return self._step(state)
 
-    PHASES = ("sampling", "local_energy", "gradient", "solve")
+    def _advance(self, steps_per_visit: int):
+        if steps_per_visit not in self._multi:
+            self._multi[steps_per_visit] = jax.jit(lambda s, n: self.vmc.multi_step(s, n, steps_per_visit))
+        multi = self._multi[steps_per_visit]
+        return lambda state, n: multi(state, jnp.int32(n))
 
     def profile_step(self, state: TrainState, repeat: int = 3) -> dict[str, float]:
         """Wall-clock seconds of the phases of one step from ``state`` (the state is not advanced).
@@ -280,17 +175,12 @@ class GroundStateSearch:
         if isinstance(repeat, bool) or not isinstance(repeat, (int, np.integer)) or repeat < 1:
             raise ValueError(f"repeat must be a positive integer, got {repeat!r}")
         if self._phases is None:
-            self._phases = (
-                jax.jit(self._sampling_phase, static_argnums=(3,)),
-                jax.jit(self._local_energy_phase),
-                jax.jit(self._gradient_phase),
-                jax.jit(self._solve_phase),
-            )
+            p = self.vmc.phases
+            self._phases = (jax.jit(p.sampling, static_argnums=(3,)), jax.jit(p.local_energy),
+                            jax.jit(p.gradient), jax.jit(p.solve))
         sampling, local_energy, gradient, solve = self._phases
         _, k_sample = jax.random.split(state.key)
-        calls = {
-            "sampling": lambda: sampling(k_sample, state.params, state.chains, self.n_per_chain),
-        }
+        calls = {"sampling": lambda: sampling(k_sample, state.params, state.chains, self.n_per_chain)}
         x, logs, _, _ = jax.block_until_ready(calls["sampling"]())
         calls["local_energy"] = lambda: local_energy(state.params, x, logs)
         e_loc = jax.block_until_ready(calls["local_energy"]())
@@ -313,17 +203,15 @@ class GroundStateSearch:
         out["step"] = best["step"]
         return out
 
-    def _evaluate_impl(self, params, chains_key, n_per_chain):
-        chains, key = chains_key
-        _, e_loc, chains, acc = self._sample(key, params, chains, n_per_chain)
-        return stats.estimate(e_loc.reshape(n_per_chain, -1)), acc, chains
-
+    # ---------------------------------------------------------------- evaluation
     def evaluate(self, state: TrainState, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 0,
                  starts=None):
         """A separate, longer evaluation pass at fixed parameters.
 
         Returns ``(Estimate, acceptance)``: the energy with its autocorrelation-corrected error
-        (τ from the chains, Sokal windowing) and R̂ across chains.
+        (τ from the chains, Sokal windowing) and R̂ across chains. ``n_samples`` is rounded up
+        to a multiple of the chain count; each distinct ``(n_samples, burn_in_sweeps)`` compiles
+        its own evaluation program once (kept for reuse), so prefer a few fixed sample counts.
 
         ``starts`` (optional, shape ``(k, n_sites)`` with ``1 ≤ k ≤ n_chains``): valid
         configurations that replace the first ``k`` chains before the burn-in, the dispersed
@@ -335,19 +223,25 @@ class GroundStateSearch:
         real, and R̂ rises above 1 (``Estimate.warnings`` then says the chains have not mixed);
         in a healthy state they relax to the same distribution as the others during the burn-in.
         """
+        chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
+                                                                    fold=7)
+        est, acc, _ = self._eval(state.params, chains, key, n_per_chain, burn_in)
+        return est, float(acc)
+
+    def evaluation_inputs(self, state: TrainState, n_samples: int, key=None, burn_in_sweeps: int = 0, starts=None,
+                          fold: int = 7):
+        """Validated inputs of an evaluation pass: ``(chains, key, n_per_chain, burn_in)``; the
+        default key is ``fold_in(state.key, fold)``. The one entry point of evaluation passes
+        (:meth:`evaluate`, :func:`psiloom.electrons.evaluate_components`)."""
         if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
-        n_chains = self.sampler.n_chains
-        n_per_chain = max(1, -(-int(n_samples) // n_chains))
-        key = jax.random.fold_in(state.key, 7) if key is None else key
+        burn_in = _count("burn_in_sweeps", burn_in_sweeps, minimum=0)
+        n_per_chain = max(1, -(-int(n_samples) // self.sampler.n_chains))
+        key = jax.random.fold_in(state.key, fold) if key is None else key
         chains = state.chains
         if starts is not None:
             chains = chains._replace(x=self._with_starts(chains.x, starts))
-        if burn_in_sweeps:
-            k_burn, key = jax.random.split(key)
-            _, _, chains = self._eval(state.params, (chains, k_burn), int(burn_in_sweeps))
-        est, acc, _ = self._eval(state.params, (chains, key), n_per_chain)
-        return est, float(acc)
+        return chains, key, n_per_chain, burn_in
 
     def _with_starts(self, x, starts):
         """``x`` with its first rows replaced by the validated ``starts`` (see :meth:`evaluate`)."""
@@ -364,57 +258,118 @@ class GroundStateSearch:
                              f"({space!r}): {starts[bad[0]].tolist()}")
         return x.at[: starts.shape[0]].set(jnp.asarray(starts, x.dtype))
 
+    # ---------------------------------------------------------------- resume
+    def compatibility_problems(self, state: TrainState, history: History | None = None) -> list[str]:
+        """Every reason why ``state`` (and ``history``) cannot continue in this search, in plain
+        words: parameter structure, shapes, real/complex and dtypes (x64), optimiser state
+        structure, chain count, n_sites, magnetisation sector, history steps."""
+        problems = compare_descriptions(describe_state(state), describe_state(self.template()),
+                                        "the given state", "this search")
+        space = self.sampler.space
+        x = getattr(state.chains, "x", None)
+        if not problems and x is not None and hasattr(space, "contains") and getattr(space, "total_sz", None) is not None:
+            inside = np.asarray(space.contains(np.asarray(x)))
+            if not inside.all():
+                sz = 0.5 * np.sum(np.asarray(x)[~inside][0])
+                problems.append(f"magnetisation sector: chains have total_sz={sz:g}, this space has "
+                                f"total_sz={space.total_sz:g}")
+        if history is not None and len(history):
+            step = int(state.step)
+            steps = [int(s) for s in history.columns["step"] if s <= step]
+            if steps != list(range(1, step + 1)):
+                problems.append(f"history steps are not contiguous 1..{step} (state at step {step}): "
+                                f"got {len(steps)} rows from {steps[:1]} to {steps[-1:]}")
+        return problems
+
+    def check_resumable(self, state: TrainState, history: History | None = None) -> None:
+        """Raise ValueError naming every problem of :meth:`compatibility_problems`."""
+        problems = self.compatibility_problems(state, history)
+        if problems:
+            raise ValueError("cannot continue this state in this search: " + "; ".join(problems))
+
+    def save(self, path: str, state: TrainState, history: History | None = None) -> None:
+        """Write a checkpoint of ``state`` and ``history`` (with this search's run description)."""
+        _check_checkpoint_path(path)
+        save_checkpoint(path, state, history, self.meta())
+
+    def resume(self, path: str) -> tuple[TrainState, History]:
+        """Load a checkpoint of this search: checks the file, the run description (chain count,
+        space, x64) and the state's structure, shapes and dtypes, naming every difference
+        (:class:`~psiloom.checkpoint.CheckpointError`). Returns ``(state, history)`` for
+        ``run(n, state=state, history=history)``."""
+        state, history = _load_checkpoint(path, self.template(), self.meta())
+        problems = self.compatibility_problems(state, history)
+        if problems:
+            raise CheckpointError(f"checkpoint {path!r} does not fit this search: " + "; ".join(problems))
+        return state, history
+
     # ---------------------------------------------------------------- outer loop
     def run(self, n_steps: int, state: TrainState | None = None, key: jax.Array | None = None,
             history: History | None = None, checkpoint: str | None = None, checkpoint_every: int = 50,
             progress: bool | Callable[[str], None] = True, print_every: int = 10,
-            callback: Callable[[TrainState, StepOutput], None] | None = None, profile_every: int = 0):
+            callback: Callable[[TrainState, StepOutput], None] | None = None, profile_every: int = 0,
+            steps_per_visit: int | None = None, hooks=()):
         """Run until ``state.step == n_steps`` (so a resumed run continues to the same total).
 
         Args:
             n_steps: total number of steps (counting those already in ``state``).
-            state: state to continue from; default ``self.init(key)``.
+            state: state to continue from (checked by :meth:`check_resumable`); default
+                ``self.init(key)``.
+            history: history of ``state`` (rows of steps 1..state.step; later rows are dropped).
             checkpoint: path to write the state and history every ``checkpoint_every`` steps
-                and at the end (atomic writes; never after a non-finite step).
-            progress: True prints to stdout, a callable receives each progress line.
+                and at the end (atomic writes; never after a non-finite step; the path is locked
+                against a second run while this one writes it).
+            progress: True prints to stdout, a callable receives each progress line (after step
+                1, every ``print_every`` steps and after the last).
+            callback: ``f(state, output)`` after every step.
             profile_every: if > 0, every that many steps (and at the first) time the phases of
                 the step with :meth:`profile_step` (``repeat=1``) before taking it, and record
                 them as history columns ``t_sampling``, ``t_local_energy``, ``t_gradient``,
                 ``t_solve`` (NaN in other rows). Costs one extra compilation per phase.
+            steps_per_visit: at most this many steps run on the device between host visits
+                (one compiled ``lax.scan``); visits also end where printing, checkpoints,
+                profiling or a callback need the host. Default ``print_every``.
+            hooks: extra :class:`psiloom.loop.Hook` objects or functions ``f(visit)`` called after
+                every host visit (:class:`psiloom.loop.Visit`: state, step, outputs, history).
         Returns:
-            ``(state, history)``.
+            ``(state, history)``; history rows are 1-based (``step`` = the state's step after
+            the update, as in the progress lines).
         """
-        if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or n_steps < 0:
-            raise ValueError(f"n_steps must be a non-negative integer, got {n_steps!r}")
-        if isinstance(profile_every, bool) or not isinstance(profile_every, (int, np.integer)) or profile_every < 0:
-            raise ValueError(f"profile_every must be a non-negative integer, got {profile_every!r}")
-        if state is None:
-            state = self.init(jax.random.PRNGKey(0) if key is None else key)
+        n_steps = _count("n_steps", n_steps, minimum=0)
+        checkpoint_every = _count("checkpoint_every", checkpoint_every)
+        print_every = _count("print_every", print_every)
+        profile_every = _count("profile_every", profile_every, minimum=0)
+        steps_per_visit = print_every if steps_per_visit is None else _count("steps_per_visit", steps_per_visit)
+        _check_checkpoint_path(checkpoint)
+        if callback is not None and not callable(callback):
+            raise ValueError(f"callback must be callable, got {callback!r}")
+        user_hooks = [as_hook(h) for h in hooks]
+        writer = None
+        if checkpoint:
+            writer = Checkpointer(os.fspath(checkpoint), checkpoint_every, self.meta())
+            writer.lock.acquire()  # a second writer of the path is refused before any compute
+        try:
+            if state is None:
+                state = self.init(jax.random.PRNGKey(0) if key is None else key)
+            else:
+                if history is not None:
+                    history.truncate(int(state.step))
+                self.check_resumable(state, history)
+        except BaseException:
+            if writer is not None:
+                writer.lock.release()
+            raise
         history = History() if history is None else history
         history.truncate(int(state.step))
-        emit = (lambda s: print(s, flush=True)) if progress is True else (progress or None)
-        step = first = int(state.step)
-        last = time.perf_counter()
-        while step < n_steps:
-            timing = None
-            if profile_every and (step % profile_every == 0 or step == first):
-                phases = self.profile_step(state, repeat=1)
-                timing = {f"t_{name}": phases[name] for name in self.PHASES}
-                last = time.perf_counter()  # profiling time is not step time
-            new_state, out = self._step(state)
-            energy = float(np.real(out.energy.mean))
-            if not np.isfinite(energy) or not np.isfinite(float(out.energy.error)):
-                raise NonFiniteError(step, "energy")
-            if not np.isfinite(float(out.grad_norm)):
-                raise NonFiniteError(step, "gradient")
-            now = time.perf_counter()
-            history.append(step, out, now - last, timing)
-            last = now
-            state, step = new_state, step + 1
-            if callback is not None:
-                callback(state, out)
-            if emit and (step % print_every == 0 or step == n_steps or step == 1):
-                emit(_format_progress(step, n_steps, out, history["seconds"][-1]))
-            if checkpoint and (step % checkpoint_every == 0 or step == n_steps):
-                save_checkpoint(checkpoint, state, history)
-        return state, history
+        all_hooks = []
+        if profile_every:
+            all_hooks.append(Profiler(lambda s: {k: v for k, v in self.profile_step(s, repeat=1).items()
+                                                 if k in self.PHASES}, profile_every))
+        if progress:
+            all_hooks.append(ProgressPrinter(None if progress is True else progress, print_every))
+        if callback is not None:
+            all_hooks.append(Callback(callback))
+        all_hooks.extend(user_hooks)
+        if writer is not None:
+            all_hooks.append(writer)  # last: it saves what the other hooks saw
+        return run_loop(self._advance(steps_per_visit), state, n_steps, history, all_hooks, steps_per_visit)

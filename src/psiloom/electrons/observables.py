@@ -22,12 +22,28 @@ from psiloom.electrons.hamiltonian import CoulombHamiltonian
 
 
 class EnergyComponents(NamedTuple):
+    """Estimates of the energy parts (hartree) and the virial ratio −⟨V⟩/⟨T⟩.
+
+    ``str()`` gives one labelled line per part (``format`` of each Estimate) and the ratio.
+    """
+
     total: stats.Estimate
     kinetic: stats.Estimate
     potential: stats.Estimate
     electron_nuclear: stats.Estimate
     electron_electron: stats.Estimate
     virial_ratio: float  # −⟨V⟩ / ⟨T⟩
+
+    def format(self) -> str:
+        labels = (("total E", self.total), ("kinetic T", self.kinetic), ("potential V", self.potential),
+                  ("electron-nuclear", self.electron_nuclear), ("electron-electron", self.electron_electron))
+        width = max(len(label) for label, _ in labels)
+        lines = [f"{label:<{width}}  {est.format()}" for label, est in labels]
+        lines.append(f"{'virial −V/T':<{width}}  {float(self.virial_ratio):.4f}  (2 for an exact eigenstate)")
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self.format()
 
 
 def energy_components(hamiltonian: CoulombHamiltonian, log_amp_fn, samples, chunk: int | None = None) -> EnergyComponents:
@@ -54,24 +70,17 @@ def evaluate_components(search, state, n_samples: int, key: jax.Array | None = N
     """A separate evaluation pass of a :class:`psiloom.train.GroundStateSearch` at fixed parameters.
 
     Continues the search's chains from ``state``, discards ``burn_in_sweeps`` sweeps and stores
-    ``n_samples`` (rounded up to a multiple of the number of chains). Returns
-    ``(EnergyComponents, acceptance)``.
+    ``n_samples`` (rounded up to a multiple of the number of chains), through the same sampling
+    path as ``search.evaluate`` (fast updates included; default key ``fold_in(state.key, 11)``).
+    Returns ``(EnergyComponents, acceptance)``.
     """
-    if isinstance(n_samples, bool) or not isinstance(n_samples, int) or n_samples < 1:
-        raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
-    sampler, model, hamiltonian = search.sampler, search.model, search.hamiltonian
-    n_per_chain = -(-n_samples // sampler.n_chains)
-    key = jax.random.fold_in(state.key, 11) if key is None else key
+    chains, key, n_per_chain, burn_in = search.evaluation_inputs(state, n_samples, key, burn_in_sweeps, fold=11)
+    hamiltonian = search.hamiltonian
 
     @jax.jit
     def run(params, chains, key):
-        log_amp = lambda x: model.apply(params, x)
-        chains = sampler.refresh(chains, log_amp)
-        k_burn, k_run = jax.random.split(key)
-        if burn_in_sweeps:
-            _, _, chains, _ = sampler.sample(k_burn, chains, log_amp, burn_in_sweeps)
-        xs, _, _, acceptance = sampler.sample(k_run, chains, log_amp, n_per_chain)
+        xs, _, _, acceptance, log_amp = search.vmc.draw(params, chains, key, n_per_chain, burn_in)
         return energy_components(hamiltonian, log_amp, xs, chunk), acceptance
 
-    components, acceptance = run(state.params, state.chains, key)
+    components, acceptance = run(state.params, chains, key)
     return components, float(acceptance)

@@ -36,6 +36,7 @@ import numpy as np
 from psiloom.electrons.basis import BasisFunction, aufbau_guess, default_basis, normalisation
 from psiloom.electrons.features import MomentMixer, electron_nuclear, safe_distance
 from psiloom.electrons.system import Molecule
+from psiloom._validation import positive_int
 
 
 def _inverse_softplus(y):
@@ -92,8 +93,7 @@ class SlaterTypeOrbitals(nn.Module):
         sys_ = self.system
         if x.shape[-2] != sys_.n_electrons:
             raise ValueError(f"orbitals were built for {sys_.n_electrons} electrons, got shape {x.shape}")
-        if isinstance(self.n_det, bool) or not isinstance(self.n_det, int) or self.n_det < 1:
-            raise ValueError(f"n_det must be a positive integer, got {self.n_det!r}")
+        positive_int("n_det", self.n_det)
         basis = self._basis()
         c_up, c_dn = self.coefficients if self.coefficients is not None else aufbau_guess(sys_, basis)
         zetas = nn.softplus(self.param("exponents", lambda k: jnp.asarray(_inverse_softplus([f.zeta for f in basis]), dtype)))

@@ -36,6 +36,7 @@ from psiloom.electrons.determinants import SlaterJastrow
 from psiloom.electrons.sampler import ElectronSampler
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
+from psiloom._validation import positive_int
 
 _SHELL_FACTOR = {0: 0.5 / np.sqrt(np.pi), 1: np.sqrt(3.0 / (4.0 * np.pi))}
 
@@ -187,8 +188,7 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
     Returns:
         ``(params, losses)`` with the loss of every step (NumPy array).
     """
-    if isinstance(n_steps, bool) or not isinstance(n_steps, int) or n_steps < 1:
-        raise ValueError(f"n_steps must be a positive integer, got {n_steps!r}")
+    n_steps = positive_int("n_steps", n_steps)
     system = hf.orbitals.system
     sampler = ElectronSampler(system, n_chains=n_walkers, burn_in=0, equilibrate=50)
     hf_log = lambda x: hf.state.apply({}, x)

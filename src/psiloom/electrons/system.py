@@ -23,6 +23,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import integer, nonnegative_int, positive_real
+
 #: bohr per ångström (CODATA 2018: a0 = 0.529177210903 Å; from memory).
 BOHR_PER_ANGSTROM = 1.0 / 0.529177210903
 
@@ -89,9 +91,7 @@ class Molecule:
                         f"nuclei {j} and {i} coincide (distance {d:.3g} bohr at {positions[i].tolist()})"
                     )
         for name in ("n_up", "n_down"):
-            v = getattr(self, name)
-            if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
-                raise ValueError(f"{name} must be a non-negative integer, got {v!r}")
+            nonnegative_int(name, getattr(self, name))
         if self.n_up + self.n_down == 0:
             raise ValueError("a system needs at least one electron (n_up + n_down = 0)")
         symbols = tuple(self.symbols) if self.symbols else tuple(
@@ -193,10 +193,8 @@ class Molecule:
         (so spin-up electrons visit every nucleus across walkers) and places each electron at its
         nucleus plus an isotropic Gaussian displacement of standard deviation ``width`` bohr.
         """
-        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 0:
-            raise ValueError(f"number of walkers must be a non-negative integer, got {n!r}")
-        if not width > 0:
-            raise ValueError(f"width must be > 0, got {width!r}")
+        n = nonnegative_int("n (number of walkers)", n)
+        width = positive_real("width", width)
         sites = jnp.asarray(self.electron_sites())
         centres = jnp.asarray(self.positions)
         k_perm, k_noise = jax.random.split(key)
@@ -206,6 +204,7 @@ class Molecule:
 
 
 def _electron_counts(total_z: float, charge: int, spin: int | None) -> tuple[int, int]:
+    charge = integer("charge", charge)
     n_total = total_z - charge
     if abs(n_total - round(n_total)) > 1e-9:
         raise ValueError(f"nuclear charges sum to {total_z:g}; with charge {charge} the electron count "
@@ -215,8 +214,7 @@ def _electron_counts(total_z: float, charge: int, spin: int | None) -> tuple[int
         raise ValueError(f"charge {charge} leaves {n} electrons for nuclear charge {total_z:g}")
     if spin is None:
         spin = n % 2
-    if isinstance(spin, bool) or not isinstance(spin, (int, np.integer)):
-        raise ValueError(f"spin (= n_up − n_down) must be an integer, got {spin!r}")
+    spin = integer("spin (= n_up − n_down)", spin)
     if abs(spin) > n or (n - spin) % 2:
         raise ValueError(
             f"spin {spin} is impossible for {n} electrons: need |spin| <= {n} and n − spin even "
@@ -234,8 +232,13 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
         units: ``"bohr"`` or ``"angstrom"`` (converted with :data:`BOHR_PER_ANGSTROM`).
         charge: net charge (electrons = Σ Z − charge).
         spin: n_up − n_down; default the lowest possible (0 or 1).
-        n_up, n_down: give both to set the electron counts directly (then ``charge``/``spin``
-            are ignored).
+        n_up, n_down: give both to set the electron counts directly; a ``charge`` or ``spin``
+            given as well must agree with them (``charge = Σ Z − n_up − n_down``,
+            ``spin = n_up − n_down``), otherwise ValueError.
+
+    Raises:
+        ValueError (TypeError for wrong types): a non-integer ``charge`` (``0.5``, ``'1'``) or
+            ``spin``, impossible electron counts, or counts that contradict ``charge``/``spin``.
     """
     if units not in ("bohr", "angstrom"):
         raise ValueError(f"units must be 'bohr' or 'angstrom', got {units!r}")
@@ -262,14 +265,32 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
     charges_arr = np.asarray(charges)
     if (n_up is None) != (n_down is None):
         raise ValueError("give both n_up and n_down, or neither")
+    charge = integer("charge", charge)
+    if spin is not None:
+        spin = integer("spin (= n_up − n_down)", spin)
     if n_up is None:
         if np.any(charges_arr <= 0):
             bad = charges_arr[charges_arr <= 0][0]
             raise ValueError(f"nuclear charges must be positive, got {bad!r}")
-        n_up, n_down = _electron_counts(float(charges_arr.sum()), int(charge), spin)
+        n_up, n_down = _electron_counts(float(charges_arr.sum()), charge, spin)
+    else:
+        n_up, n_down = nonnegative_int("n_up", n_up), nonnegative_int("n_down", n_down)
+        implied = float(charges_arr.sum()) - (n_up + n_down)
+        if charge != 0 and abs(implied - charge) > 1e-9:
+            raise ValueError(
+                f"charge={charge} contradicts n_up={n_up}, n_down={n_down}: nuclear charge "
+                f"{float(charges_arr.sum()):g} with {n_up + n_down} electrons has net charge {implied:g}"
+            )
+        if spin is not None and spin != n_up - n_down:
+            raise ValueError(
+                f"spin={spin} contradicts n_up={n_up}, n_down={n_down} (n_up − n_down = {n_up - n_down})"
+            )
     return Molecule(charges_arr, np.stack(positions), n_up, n_down, tuple(symbols))
 
 
 def atom(symbol, charge: int = 0, spin: int | None = None) -> Molecule:
-    """A single atom at the origin, e.g. ``atom("Li")`` (n_up = 2, n_down = 1)."""
+    """A single atom at the origin, e.g. ``atom("Li")`` (n_up = 2, n_down = 1).
+
+    ``charge`` and ``spin`` are integers (``atom("He", charge=0.5)`` raises rather than
+    building neutral helium)."""
     return molecule([(symbol, (0.0, 0.0, 0.0))], charge=charge, spin=spin)

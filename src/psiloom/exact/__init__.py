@@ -1,4 +1,5 @@
-"""Exact reference energies for benchmarking trial wavefunctions."""
+"""Exact references: every exact diagonalisation (dense or Lanczos, optionally in a symmetry
+sector), closed-form energies (free-fermion TFIM ring, Bethe-ansatz Heisenberg ring)."""
 
 from .bethe import HULTHEN_ENERGY_PER_SITE, heisenberg_ring_energy, heisenberg_ring_rapidities
 from .tfim import tfim_ring_energy, tfim_ring_energy_per_site_infinite
@@ -11,6 +12,12 @@ __all__ = [
     "tfim_ring_energy_per_site_infinite",
 ]
 
-from psiloom.exact.lanczos import ground_state, lowest_eigenpairs  # noqa: E402
+from psiloom.exact.lanczos import (  # noqa: E402
+    DENSE_LIMIT, ground_state, lowest_eigenpairs, operator_matrix, sector_eigenpairs,
+)
 
-__all__ += ["ground_state", "lowest_eigenpairs"]
+__all__ += ["DENSE_LIMIT", "ground_state", "lowest_eigenpairs", "operator_matrix", "sector_eigenpairs"]
+
+from psiloom.exact.vectors import expectation, fidelity, state_vector  # noqa: E402
+
+__all__ += ["expectation", "fidelity", "state_vector"]

@@ -28,10 +28,11 @@ from __future__ import annotations
 
 import functools
 import math
-import numbers
 
 import numpy as np
 from scipy import optimize
+
+from psiloom._validation import finite_real, integer
 
 __all__ = [
     "HULTHEN_ENERGY_PER_SITE",
@@ -45,9 +46,7 @@ HULTHEN_ENERGY_PER_SITE: float = 0.25 - math.log(2)
 
 
 def _check_ring_size(n_sites) -> int:
-    if isinstance(n_sites, bool) or not isinstance(n_sites, numbers.Integral):
-        raise ValueError(f"n_sites must be an integer, got {n_sites!r}")
-    n = int(n_sites)
+    n = integer("n_sites", n_sites)
     if n < 4:
         raise ValueError(
             f"n_sites must be at least 4, got {n_sites!r}: a ring of 2 sites would count its "
@@ -153,8 +152,7 @@ def heisenberg_ring_energy(n_sites: int, J: float = 1.0) -> float:
             which this function does not describe).
     """
     n = _check_ring_size(n_sites)
-    if isinstance(J, bool) or not isinstance(J, numbers.Real) or not math.isfinite(float(J)):
-        raise ValueError(f"J must be a finite real number, got {J!r}")
+    J = finite_real("J", J)
     if J < 0:
         raise ValueError(
             f"J must be >= 0 (antiferromagnetic), got {J!r}: for J < 0 the ground state is "

@@ -27,29 +27,21 @@ H' = −J' Σ Sᶻ Sᶻ − h' Σ Sˣ, then J = J'/4 and h = h'/2 in the formula
 from __future__ import annotations
 
 import math
-import numbers
 
 import numpy as np
 from scipy import integrate
+
+from psiloom._validation import finite_real, integer
 
 __all__ = ["tfim_ring_energy", "tfim_ring_energy_per_site_infinite"]
 
 
 def _check_coupling(name: str, value) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise ValueError(f"{name} must be a real number, got {value!r}")
-    value = float(value)
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return value
+    return finite_real(name, value)
 
 
 def _check_even_ring_size(n_sites) -> int:
-    if isinstance(n_sites, bool) or not isinstance(n_sites, numbers.Integral):
-        raise ValueError(f"n_sites must be an integer, got {n_sites!r}")
-    n = int(n_sites)
-    if n < 2:
-        raise ValueError(f"n_sites must be at least 2 for a ring, got {n_sites!r}")
+    n = integer("n_sites (sites of the ring)", n_sites, minimum=2)
     if n % 2:
         raise ValueError(
             f"n_sites must be even, got {n_sites!r}: for odd rings the ground state is not "

@@ -6,6 +6,7 @@ from psiloom.operators.models import (
     j1j2,
     magnetization_z,
     spin_correlation,
+    spin_correlation_component,
     staggered_magnetization_z,
     transverse_field_ising,
     xxz,
@@ -15,5 +16,6 @@ from psiloom.operators import observables
 
 __all__ = [
     "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
-    "staggered_magnetization_z", "transverse_field_ising", "xxz", "local_values", "observables",
+    "spin_correlation_component", "staggered_magnetization_z", "transverse_field_ising", "xxz",
+    "local_values", "observables",
 ]

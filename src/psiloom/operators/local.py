@@ -32,6 +32,7 @@ from typing import Callable
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from psiloom.batching import map_in_chunks
 from psiloom.states.fast import FastUpdates, fast_updates_of
@@ -46,6 +47,26 @@ def _local_block(log_amplitude: LogAmplitudeFn, operator, x, log_amp_x):
     ratio = jnp.exp(log_conn - log_amp_x[:, None])
     terms = jnp.where(mels != 0, mels * ratio, 0)
     return jnp.sum(terms, axis=-1)
+
+
+def check_spin_configurations(x, name: str = "x") -> None:
+    """Raise ValueError unless every entry of ``x`` is +1 or −1.
+
+    Local values of configurations holding 0/1, 0.5 or nan would otherwise come back finite
+    and wrong (the matrix elements read ``x_i`` as a sign). The check runs on the host for
+    concrete arrays only (one pass over the batch, outside ``jit``); traced arrays inside a
+    jitted function are not checked (the samplers only ever produce ±1).
+    """
+    if isinstance(x, jax.core.Tracer):
+        return
+    arr = np.asarray(x)
+    bad = ~((arr == 1) | (arr == -1))
+    if bad.any():
+        where = tuple(int(i) for i in np.argwhere(bad)[0])
+        raise ValueError(
+            f"{name} must hold spin configurations with entries ±1; entry {where} is {arr[where]!r} "
+            "(0/1 occupations convert as x = 2n − 1)"
+        )
 
 
 CONNECTION_BLOCK = 16  # connections evaluated together on the fast path
@@ -97,9 +118,13 @@ def local_values(
             than ``chunk`` samples (module docstring).
     Returns:
         ``(n_samples,)`` local values, complex if ψ or the matrix elements are complex.
+
+    Raises:
+        ValueError: for a concrete ``x`` holding anything but ±1 (not checked under ``jit``).
     """
     if x.ndim != 2:
         raise ValueError(f"configurations must have shape (n_samples, n_sites), got {x.shape}")
+    check_spin_configurations(x)
     fast = fast_updates_of(log_amplitude) if hasattr(operator, "flip_table") else None
     if fast is not None:
         auto = _fast_chunk(fast, x)

@@ -15,20 +15,16 @@ for the unfrustrated antiferromagnet the rotated ground state has non-negative a
 
 from __future__ import annotations
 
+import numbers
+
 import numpy as np
 
+from psiloom._validation import finite_real, one_of
 from psiloom.lattices import Lattice
 from psiloom.operators.pauli import PauliSum, pauli, total
 
 
-def _real(name: str, value) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a real number, got {value!r}") from None
-    if not np.isfinite(v):
-        raise ValueError(f"{name} must be finite, got {value!r}")
-    return v
+_real = finite_real
 
 
 def transverse_field_ising(lattice: Lattice, J: float = 1.0, h: float = 1.0) -> PauliSum:
@@ -98,4 +94,15 @@ def staggered_magnetization_z(lattice: Lattice) -> PauliSum:
 
 def spin_correlation(n_sites: int, i: int, j: int) -> PauliSum:
     """``S_i·S_j = ¼ (σˣσˣ + σʸσʸ + σᶻσᶻ)`` (spin units; ``i = j`` gives 3/4)."""
-    return total([pauli(n_sites, a + a, (i, j), 0.25) for a in "XYZ"], n_sites)
+    return total([spin_correlation_component(n_sites, i, j, a) for a in "XYZ"], n_sites)
+
+
+def spin_correlation_component(n_sites: int, i: int, j: int, component: str) -> PauliSum:
+    """``S^a_i S^a_j = ¼ σ^a_i σ^a_j`` for ``component`` a ∈ {"x", "y", "z"} (spin units;
+    ``i = j`` gives ``(S^a)² = 1/4``)."""
+    letter = one_of("component", str(component).lower() if isinstance(component, str) else component,
+                    ("x", "y", "z")).upper()
+    if isinstance(i, numbers.Integral) and isinstance(j, numbers.Integral) and i == j:
+        pauli(n_sites, letter, i)  # checks n_sites and the site
+        return PauliSum.identity(n_sites, 0.25)
+    return pauli(n_sites, letter + letter, (i, j), 0.25)

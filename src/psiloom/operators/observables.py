@@ -10,9 +10,11 @@ Conventions (spin-1/2 operators ``S = σ/2``, ``ħ = 1``):
 
 * magnetisation per site ``m = (1/N) Σ_i Sᶻ_i`` and its square ``m² = (1/N²)(Σ_i Sᶻ_i)²``;
   staggered ``m_s = (1/N) Σ_i ε_i Sᶻ_i`` with ``ε_i = ±1`` on the two sublattices, and ``m_s²``;
-* spin correlations by displacement ``r`` (periodic lattices),
-  ``C(r) = (1/N) Σ_i ⟨S_i · S_{i+r}⟩`` (so ``C(0) = 3/4``), also averaged over shells of equal
-  minimum-image distance ``|r|``;
+* spin correlations by displacement ``r``,
+  ``C(r) = (1/N) Σ_i ⟨S_i · S_{i+r}⟩`` (so ``C(0) = 3/4``), or one component
+  ``C_aa(r) = (1/N) Σ_i ⟨S^a_i S^a_{i+r}⟩`` (a = x, y, z), also averaged over shells of equal
+  minimum-image distance ``|r|``; on open lattices ``C(r)`` averages the ``N_r`` pairs that
+  exist and the shells use plain distances;
 * static structure factor on all lattice momenta ``q`` (:func:`psiloom.symmetry.momenta`),
   ``S(q) = (1/N) Σ_{ij} e^{iq·(r_i − r_j)} ⟨S_i·S_j⟩ = Σ_r cos(q·r) C(r)``, obeying the sum rule
   ``(1/N) Σ_q S(q) = C(0) = ⟨S_i·S_i⟩ = 3/4`` and ``S(0) = S_tot(S_tot + 1)/N``;
@@ -36,16 +38,19 @@ import jax.numpy as jnp
 import numpy as np
 
 from psiloom import stats
+from psiloom._validation import one_of
 from psiloom.batching import map_in_chunks
 from psiloom.lattices import Lattice
+from psiloom.operators.local import check_spin_configurations
 from psiloom.operators.models import magnetization_z, staggered_magnetization_z
 from psiloom.operators.pauli import PauliSum, pauli, total
 from psiloom.spaces import SpinSpace
 from psiloom.symmetry import momenta as lattice_momenta
 
 __all__ = [
-    "measure", "local_value_table", "correlation_operators", "spin_correlations", "SpinCorrelations",
+    "measure", "local_value_table", "correlation_operators", "spin_correlations", "SpinCorrelations", "COMPONENTS",
     "magnetizations", "energy_statistics", "EnergyStatistics", "infinite_temperature_energy", "v_score",
+    "operator_scale",
 ]
 
 LogAmplitudeFn = Callable[[jax.Array], jax.Array]
@@ -53,6 +58,7 @@ LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 
 # ---------------------------------------------------------------------- plumbing
 def _check_samples(samples, log_amps):
+    check_spin_configurations(samples, "samples")  # concrete samples only (not under jit)
     x = jnp.asarray(samples)
     if x.ndim != 3:
         raise ValueError(
@@ -122,12 +128,27 @@ def local_value_table(log_amplitude: LogAmplitudeFn, operators, samples, log_amp
     return table(x.reshape(t * c, n), logs).reshape(t, c, len(stacked.operators))
 
 
-_estimate_columns = jax.vmap(stats.estimate, in_axes=2)
+_estimate_columns = jax.vmap(stats.estimate, in_axes=(2, 0))
 
 
-def _estimates(table) -> stats.Estimate:
-    """Estimate of every column of a ``(n_time, n_chains, K)`` table (Estimate fields of shape (K,))."""
-    est = _estimate_columns(table)
+def operator_scale(operator) -> float:
+    """``Σ_t |c_t|``, the size of the terms a PauliSum's local value is summed from (0 for other
+    operators). Its local values carry rounding noise of about eps times this, so
+    :func:`psiloom.stats.estimate` treats values equal within ``TIE_RTOL`` of it as ties; e.g.
+    m², exactly 0 in the Sᶻ = 0 sector, is then constant instead of showing a spurious R̂."""
+    terms = getattr(operator, "terms", None)
+    if not isinstance(terms, dict):
+        return 0.0
+    return float(sum(abs(c) for c in terms.values()))
+
+
+def _estimates(table, scales=None) -> stats.Estimate:
+    """Estimate of every column of a ``(n_time, n_chains, K)`` table (Estimate fields of shape (K,)).
+
+    ``scales``: per-column size of the summed terms (:func:`operator_scale`), default 0.
+    """
+    scales = np.zeros(table.shape[2]) if scales is None else np.asarray(scales, dtype=float)
+    est = _estimate_columns(table, jnp.asarray(scales, dtype=jnp.real(table).dtype))
     return est._replace(n_time=table.shape[0])
 
 
@@ -145,8 +166,9 @@ def measure(log_amplitude: LogAmplitudeFn, operators: Mapping[str, Any], samples
         ``{name: Estimate}`` (complex means for non-Hermitian operators or complex ψ).
     """
     names = list(operators)
-    table = local_value_table(log_amplitude, [operators[k] for k in names], samples, log_amps, chunk)
-    est = _estimates(table)
+    ops = [operators[k] for k in names]
+    table = local_value_table(log_amplitude, ops, samples, log_amps, chunk)
+    est = _estimates(table, [operator_scale(op) for op in ops])
     return {name: jax.tree_util.tree_map(lambda a, k=k: a[k] if np.ndim(a) else a, est)
             for k, name in enumerate(names)}
 
@@ -168,42 +190,61 @@ def magnetizations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, log
 
 
 # ---------------------------------------------------------------------- correlations
-def _pair_operator(n: int, i: int, j: int, coef: float, flip_xy: bool) -> PauliSum:
-    sxy = -1.0 if flip_xy else 1.0
-    return total([pauli(n, "XX", (i, j), sxy * coef), pauli(n, "YY", (i, j), sxy * coef),
-                  pauli(n, "ZZ", (i, j), coef)], n)
+#: Components of the spin correlation: the full S_i·S_j or one of its diagonal parts S^a_i S^a_j.
+COMPONENTS = ("all", "xx", "yy", "zz")
 
 
-def correlation_operators(lattice: Lattice, sign_rule: bool = False) -> tuple[np.ndarray, list[PauliSum]]:
-    """``(displacements, operators)``: ``C(r) = (1/N) Σ_i S_i·S_{i+r}`` for every displacement.
+def _pair_operator(n: int, i: int, j: int, coef: float, flip_xy: bool, component: str = "all") -> PauliSum:
+    letters = "XYZ" if component == "all" else component[0].upper()
+    return total([pauli(n, a + a, (i, j), (-1.0 if flip_xy and a in "XY" else 1.0) * coef) for a in letters], n)
 
-    Displacement ``k`` is ``coords[k]`` (so ``k = 0`` is ``r = 0`` and ``C(0) = 3/4``); needs a
-    periodic lattice. With ``sign_rule`` the exchange part of pairs joining the two
-    sublattices changes sign (see module docstring).
+
+def correlation_operators(lattice: Lattice, sign_rule: bool = False,
+                          component: str = "all") -> tuple[np.ndarray, list[PauliSum]]:
+    """``(displacements, operators)`` for the spin correlation by displacement ``r``.
+
+    ``component="all"``: ``C(r) = (1/N_r) Σ_i S_i·S_{i+r}`` (so ``C(0) = 3/4``);
+    ``"xx"``, ``"yy"``, ``"zz"``: ``C_aa(r) = (1/N_r) Σ_i S^a_i S^a_{i+r}`` (``C_aa(0) = 1/4``).
+    The sum runs over the ``N_r`` sites ``i`` whose partner ``i + r`` lies on the lattice:
+    all ``N`` sites on a periodic lattice, ``Π_a (L_a − r_a)`` on an open one (where ``C(r)`` is
+    the average over the pairs that exist and is not translation invariant).
+
+    Displacement ``k`` is ``coords[k]`` (so ``k = 0`` is ``r = 0``): on an open lattice these
+    are the displacements with non-negative components (in 2-D, directions such as
+    ``(1, −1)`` are not included). With ``sign_rule`` the exchange (xx, yy) part of pairs
+    joining the two sublattices changes sign (see module docstring).
     """
     if not isinstance(lattice, Lattice):
         raise ValueError(f"expected a psiloom Lattice, got {lattice!r}")
-    if not lattice.pbc:
-        raise ValueError(f"correlations by displacement need a periodic lattice; {lattice!r} is open")
+    component = one_of("component", component, COMPONENTS)
     if sign_rule and not lattice.is_bipartite:
         raise ValueError(f"sign_rule=True needs a bipartite lattice; {lattice!r} is not bipartite")
     n = lattice.n_sites
     coords = lattice.coords
+    extent = np.asarray(lattice.extent)
+    per_component = 0.75 if component == "all" else 0.25
     ops = []
     for r in coords:
+        if lattice.pbc:
+            starts = range(n)
+        else:
+            starts = [i for i in range(n) if np.all(coords[i] + r < extent)]
+        weight = 1.0 / len(starts)
         terms = []
-        for i in range(n):
+        for i in starts:
             j = lattice.site_index(*(coords[i] + r))
             if i == j:
-                terms.append(PauliSum.identity(n, 0.75 / n))
+                terms.append(PauliSum.identity(n, per_component * weight))
                 continue
             flip = bool(sign_rule and lattice.sublattice[i] != lattice.sublattice[j])
-            terms.append(_pair_operator(n, i, j, 0.25 / n, flip))
+            terms.append(_pair_operator(n, i, j, 0.25 * weight, flip, component))
         ops.append(total(terms, n))
     return coords.copy(), ops
 
 
 def _minimum_image(lattice: Lattice, displacements: np.ndarray) -> np.ndarray:
+    if not lattice.pbc:
+        return np.sqrt(np.sum(displacements.astype(float) ** 2, axis=-1))
     ext = np.asarray(lattice.extent)
     d = np.mod(displacements, ext)
     d = np.minimum(d, ext - d)
@@ -216,10 +257,12 @@ class SpinCorrelations(NamedTuple):
     Attributes:
         displacements: ``(N, dim)`` integer displacement vectors ``r``.
         correlation: :class:`~psiloom.stats.Estimate` of ``C(r)``, fields of shape ``(N,)``.
-        distances: ``(K,)`` distinct minimum-image distances ``|r|`` (ascending).
+        distances: ``(K,)`` distinct distances ``|r|`` (minimum image when periodic; ascending).
         shell: Estimate of the shell average of ``C(r)`` over ``|r| = distances[k]``, ``(K,)``.
-        momenta: ``(N, dim)`` lattice momenta ``q``.
-        structure_factor: Estimate of ``S(q)``, fields of shape ``(N,)``.
+        momenta: ``(N, dim)`` lattice momenta ``q`` (``(0, dim)`` on open lattices).
+        structure_factor: Estimate of ``S(q)``, fields of shape ``(N,)`` (``None`` on open
+            lattices, which have no lattice momenta).
+        component: ``"all"`` (S·S) or ``"xx"``, ``"yy"``, ``"zz"``.
     """
 
     displacements: np.ndarray
@@ -227,22 +270,34 @@ class SpinCorrelations(NamedTuple):
     distances: np.ndarray
     shell: stats.Estimate
     momenta: np.ndarray
-    structure_factor: stats.Estimate
+    structure_factor: stats.Estimate | None
+    component: str = "all"
 
 
 def spin_correlations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, log_amps=None,
-                      sign_rule: bool = False, chunk: int | None = None) -> SpinCorrelations:
+                      sign_rule: bool = False, chunk: int | None = None,
+                      component: str = "all") -> SpinCorrelations:
     """``C(r)`` for all displacements, its shell averages, and ``S(q)`` on all lattice momenta.
 
     All come from one table of local values ``C_loc(r; x)``; the per-sample
     ``S_loc(q; x) = Σ_r cos(q·r) C_loc(r; x)`` and shell averages are formed before
     estimating, so their error bars account for correlations between displacements.
+    ``component`` selects ``S·S`` (``"all"``) or one part ``S^a S^a`` (``"xx"``, ``"yy"``,
+    ``"zz"``; then ``S(q)`` is the structure factor of that component). On an open lattice
+    ``C(r)`` averages the pairs that exist (:func:`correlation_operators`), shells use plain
+    distances and there is no ``S(q)``.
     """
-    disp, ops = correlation_operators(lattice, sign_rule)
+    disp, ops = correlation_operators(lattice, sign_rule, component)
     table = jnp.real(local_value_table(log_amplitude, ops, samples, log_amps, chunk))  # (T, C, N)
-    q = lattice_momenta(lattice)
-    phase = np.cos(q @ disp.T)  # (n_q, n_r)
-    sq = table @ jnp.asarray(phase.T, dtype=table.dtype)
+    scales = np.array([operator_scale(op) for op in ops])
+    if lattice.pbc:
+        q = lattice_momenta(lattice)
+        phase = np.cos(q @ disp.T)  # (n_q, n_r)
+        sq = table @ jnp.asarray(phase.T, dtype=table.dtype)
+        structure = _estimates(sq, np.abs(phase) @ scales)
+    else:
+        q = np.zeros((0, lattice.dim))
+        structure = None
     dist = _minimum_image(lattice, disp)
     rounded = np.round(dist, 10)
     distances, shell_of = np.unique(rounded, return_inverse=True)
@@ -250,7 +305,8 @@ def spin_correlations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, 
     weights[np.arange(len(disp)), shell_of] = 1.0
     weights /= weights.sum(axis=0, keepdims=True)
     shells = table @ jnp.asarray(weights, dtype=table.dtype)
-    return SpinCorrelations(disp, _estimates(table), distances, _estimates(shells), q, _estimates(sq))
+    return SpinCorrelations(disp, _estimates(table, scales), distances, _estimates(shells, weights.T @ scales),
+                            q, structure, component)
 
 
 # ---------------------------------------------------------------------- energy variance and V-score
@@ -322,7 +378,7 @@ def energy_statistics(log_amplitude: LogAmplitudeFn, hamiltonian, samples, log_a
     The variance estimate is the mean of ``|E_loc − Ē|²`` (its error treats Ē as fixed).
     """
     table = local_value_table(log_amplitude, [hamiltonian], samples, log_amps, chunk)[..., 0]
-    energy = stats.estimate(table)
+    energy = stats.estimate(table, scale=operator_scale(hamiltonian))
     dev = jnp.abs(table - energy.mean) ** 2
     variance = stats.estimate(dev)
     n = int(jnp.asarray(samples).shape[-1])

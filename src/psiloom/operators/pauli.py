@@ -29,6 +29,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from psiloom.spaces import SpinSpace, codes
+from psiloom._validation import ArgumentTypeError, finite_complex, integer, positive_int
 
 _LETTERS = ("X", "Y", "Z")
 # σ^a σ^b = phase · σ^c  (single-site Pauli algebra); None stands for the identity.
@@ -39,6 +40,14 @@ _PRODUCT = {
 }
 
 PauliString = tuple[tuple[int, str], ...]  # sorted by site, at most one letter per site
+
+
+def _check_site(site, n_sites: int) -> int:
+    """A site index: an integer (never a truncated float) in ``[0, n_sites)``."""
+    site = integer("site", site)
+    if not 0 <= site < n_sites:
+        raise ValueError(f"operator acts on site {site}, outside the lattice of {n_sites} sites")
+    return site
 
 
 def _multiply_strings(a: PauliString, b: PauliString) -> tuple[complex, PauliString]:
@@ -67,42 +76,62 @@ class PauliSum:
     """
 
     def __init__(self, n_sites: int, terms: dict[PauliString, complex] | None = None):
-        if isinstance(n_sites, bool) or not isinstance(n_sites, (int, np.integer)) or n_sites < 1:
-            raise ValueError(f"n_sites must be a positive integer, got {n_sites!r}")
-        self.n_sites = int(n_sites)
+        self.n_sites = positive_int("n_sites", n_sites)
         clean: dict[PauliString, complex] = {}
         for string, coef in (terms or {}).items():
+            coef = finite_complex("coefficient", coef)
+            seen = set()
             for site, letter in string:
-                if not 0 <= site < self.n_sites:
-                    raise ValueError(
-                        f"operator acts on site {site}, outside the lattice of {self.n_sites} sites"
-                    )
+                _check_site(site, self.n_sites)
                 if letter not in _LETTERS:
                     raise ValueError(f"unknown Pauli letter {letter!r}; expected one of X, Y, Z")
+                if site in seen:
+                    raise ValueError(f"Pauli string {string!r} names site {site} twice")
+                seen.add(site)
+            string = tuple(sorted((int(site), letter) for site, letter in string))
             if coef != 0:
-                clean[string] = clean.get(string, 0) + complex(coef)
+                clean[string] = clean.get(string, 0) + coef
         self.terms = {s: c for s, c in clean.items() if abs(c) > 0}
 
     # ----------------------------------------------------------------- construction
     @classmethod
     def term(cls, n_sites: int, letters: str, sites: Sequence[int], coefficient: complex = 1.0) -> "PauliSum":
-        """``coefficient · Π_k σ^{letters[k]}_{sites[k]}`` (repeated sites multiply out)."""
-        letters = str(letters).upper()
-        sites = [int(s) for s in np.atleast_1d(sites)]
+        """``coefficient · Π_k σ^{letters[k]}_{sites[k]}`` on distinct sites.
+
+        ``sites`` are integers in ``[0, n_sites)``, each named once (a site named twice would
+        silently multiply out, e.g. ``"XY"`` on ``(0, 0)`` is the non-Hermitian ``iσᶻ₀``; write
+        the product ``pauli(n, "X", 0) * pauli(n, "Y", 0)`` when that is meant). The
+        coefficient is a finite real or complex number.
+
+        Raises:
+            TypeError (also a ValueError): letters not a string, a site not an integer (a
+                fractional site is never truncated), a coefficient that is not a number.
+            ValueError: unknown letters, sites outside the lattice or repeated, a non-finite
+                coefficient, or as many letters as sites not given.
+        """
+        n_sites = positive_int("n_sites", n_sites)
+        if not isinstance(letters, str):
+            raise ArgumentTypeError(f"letters must be a string of X, Y, Z, got {letters!r}")
+        letters = letters.upper()
+        raw = np.atleast_1d(np.asarray(sites, dtype=object) if not isinstance(sites, np.ndarray) else sites)
+        if raw.ndim != 1:
+            raise ValueError(f"sites must be one site or a flat sequence of sites, got {sites!r}")
+        sites = [_check_site(site, n_sites) for site in raw.tolist()]
         if len(letters) != len(sites):
             raise ValueError(f"{len(letters)} Pauli letters {letters!r} but {len(sites)} sites {sites!r}")
-        for site in sites:
-            if not 0 <= site < n_sites:
-                raise ValueError(f"operator acts on site {site}, outside the lattice of {n_sites} sites")
         for letter in letters:
             if letter not in _LETTERS:
                 raise ValueError(f"unknown Pauli letter {letter!r}; expected one of X, Y, Z")
-        phase: complex = 1.0
-        string: PauliString = ()
-        for letter, site in zip(letters, sites):
-            ph, string = _multiply_strings(string, ((site, letter),))
-            phase *= ph
-        return cls(n_sites, {string: phase * coefficient})
+        if len(set(sites)) != len(sites):
+            repeated = sorted({s for s in sites if sites.count(s) > 1})
+            raise ValueError(
+                f"sites {sites!r} name site {repeated[0]} more than once; a Pauli string acts on "
+                "distinct sites (multiply operators, pauli(n, 'X', i) * pauli(n, 'Y', i), for the "
+                "single-site algebra)"
+            )
+        coefficient = finite_complex("coefficient", coefficient)
+        string: PauliString = tuple(sorted(zip(sites, letters)))
+        return cls(n_sites, {string: coefficient})
 
     @classmethod
     def identity(cls, n_sites: int, coefficient: complex = 1.0) -> "PauliSum":
@@ -137,6 +166,7 @@ class PauliSum:
 
     def __mul__(self, other):
         if isinstance(other, numbers.Number):
+            other = finite_complex("scalar factor", other)
             return PauliSum(self.n_sites, {s: c * other for s, c in self.terms.items()})
         if not isinstance(other, PauliSum):
             return NotImplemented

@@ -22,17 +22,12 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 
+from psiloom._validation import positive_real
 from psiloom.reduce import sample_mean, sample_median
 
 
 def _check_width(width) -> float:
-    try:
-        w = float(width)
-    except (TypeError, ValueError):
-        raise ValueError(f"clipping width must be a positive number, got {width!r}") from None
-    if not w > 0:
-        raise ValueError(f"clipping width must be > 0, got {width!r}")
-    return w
+    return positive_real("clipping width", width)
 
 
 def clip_local_energies(e_loc: jax.Array, width: float = 5.0) -> jax.Array:

@@ -57,6 +57,7 @@ import optax
 
 from psiloom.optimize.flatten import ravel_real
 from psiloom.reduce import sample_sum
+from psiloom._validation import positive_int, positive_real
 
 SOLVERS = ("dense", "sample_space", "cg", "auto")
 
@@ -149,12 +150,11 @@ def stochastic_reconfiguration(
                          "use solver='dense' or 'sample_space'")
     if not float(tol) >= 0 or not float(atol) >= 0:
         raise ValueError(f"tol and atol must be >= 0, got tol={tol!r}, atol={atol!r}")
-    if maxiter is not None and (isinstance(maxiter, bool) or int(maxiter) != maxiter or maxiter < 1):
-        raise ValueError(f"maxiter must be a positive integer or None, got {maxiter!r}")
+    if maxiter is not None:
+        maxiter = positive_int("maxiter", maxiter)
     use_previous = warm_start and solver == "cg"
-    if max_metric_norm is not None and not (isinstance(max_metric_norm, (int, float))
-                                            and not isinstance(max_metric_norm, bool) and max_metric_norm > 0):
-        raise ValueError(f"max_metric_norm must be a positive number or None, got {max_metric_norm!r}")
+    if max_metric_norm is not None:
+        max_metric_norm = positive_real("max_metric_norm", max_metric_norm)
 
     def init(params):
         previous = jnp.zeros_like(ravel_real(params)[0]) if use_previous else None

@@ -1,0 +1,224 @@
+"""The variational Monte Carlo step as pure functions over a pytree state.
+
+:func:`vmc` builds, from a trial state, a Hamiltonian, a sampler and an optax optimiser, a
+:class:`VMC` bundle of pure functions (the pattern of an optax transformation):
+
+* ``init(key, params=None) -> VMCState``: parameters (initialised unless given), optimiser
+  state, chains and the key of the run;
+* ``step(state) -> (state, StepOutput)``: one optimisation step,
+
+      chains ──sample──▶ x ──log ψ──▶ E_loc(x) ──stats──▶ E ± σ
+                                          └──▶ ∇E (covariance form) ──preconditioner──▶ update
+
+* ``guarded_step(state) -> (state, StepOutput, bad)``: the step that keeps the old state when
+  the energy, the gradient, the new parameters or the new optimiser state are not finite
+  (``bad`` is a bit mask of :data:`NON_FINITE`);
+* ``multi_step(state, n_active, k) -> (state, outputs, taken, bad, bad_step)``: up to ``k``
+  guarded steps in one ``lax.scan`` (``k`` static, ``n_active ≤ k`` traced: one compiled
+  program serves every visit length); once a step is non-finite the remaining ones leave the
+  state untouched;
+* ``evaluate(params, chains, key, n_per_chain, burn_in) -> (Estimate, acceptance, chains)``
+  and ``draw(...)``, the shared sampling of evaluation passes (also used by
+  :func:`psiloom.electrons.evaluate_components`).
+
+The four phases of a step — ``sampling``, ``local_energy``, ``gradient``, ``solve`` — are
+separate pure functions in ``VMC.phases`` so that profiling can compile and time them one
+by one. Nothing here is compiled; callers ``jax.jit`` what they use
+(:class:`psiloom.train.GroundStateSearch` does).
+
+Every leaf of the state returned by ``init`` is strongly typed, like the state a step returns,
+so the compiled step is traced and compiled once per run (a weakly typed leaf in the initial
+state used to cost a second compilation at step 2).
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import optax
+
+from psiloom import stats
+from psiloom.optimize.clipping import clip_local_energies
+from psiloom.optimize.flatten import tree_norm
+from psiloom.optimize.gradient import SampleGeometry, energy_gradient
+from psiloom.states.base import check_input_size
+from psiloom.states.bound import BoundState
+
+
+class VMCState(NamedTuple):
+    """Everything needed to continue a run bit-identically.
+
+    ``step`` counts the updates applied so far (0 after ``init``)."""
+
+    step: jax.Array
+    params: Any
+    opt_state: Any
+    chains: Any
+    key: jax.Array
+
+
+class StepOutput(NamedTuple):
+    energy: stats.Estimate
+    acceptance: jax.Array
+    grad_norm: jax.Array
+
+
+class Phases(NamedTuple):
+    """The four phases of a step as pure functions (see :func:`vmc`)."""
+
+    sampling: Callable  # (key, params, chains, n_per_chain) -> (x, log ψ(x), chains, acceptance)
+    local_energy: Callable  # (params, x, logs) -> E_loc
+    gradient: Callable  # (params, x, e_loc) -> (Estimate, ∇E, e_loc used for the update)
+    solve: Callable  # (params, opt_state, grad, x, e_loc) -> (params, opt_state)
+
+
+class VMC(NamedTuple):
+    """Pure functions of a variational Monte Carlo search (see the module docstring)."""
+
+    init: Callable
+    step: Callable
+    guarded_step: Callable
+    multi_step: Callable
+    evaluate: Callable
+    draw: Callable
+    phases: Phases
+    bind: Callable  # params -> log ψ as a bound callable (fast path unless fast=False)
+    n_per_chain: int
+
+
+# Bits of the non-finite mask returned by guarded steps, in the order they are reported.
+NON_FINITE = {"energy": 1, "gradient": 2, "parameters": 4, "optimiser state": 8}
+
+
+def non_finite_names(mask: int) -> list[str]:
+    """The parts named by a non-finite bit mask, e.g. ``["energy", "gradient"]``."""
+    return [name for name, bit in NON_FINITE.items() if int(mask) & bit]
+
+
+def _all_finite(tree) -> jax.Array:
+    leaves = [jnp.all(jnp.isfinite(l)) for l in jax.tree_util.tree_leaves(tree)
+              if jnp.issubdtype(jnp.result_type(l), jnp.inexact)]
+    return jnp.all(jnp.stack(leaves)) if leaves else jnp.asarray(True)
+
+
+def strong(tree):
+    """``tree`` with every array leaf strongly typed (same dtype, ``weak_type=False``)."""
+    return jax.tree_util.tree_map(lambda a: jax.lax.convert_element_type(a, jnp.result_type(a))
+                                  if hasattr(a, "dtype") else a, tree)
+
+
+def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_samples: int,
+        chunk: int | None = None, energy_clip: float | None = None, fast: bool = True) -> VMC:
+    """The pure functions of a VMC search (arguments as for :class:`psiloom.train.GroundStateSearch`,
+    which validates them). ``optimizer`` receives the keyword ``geometry`` (the sample geometry,
+    for stochastic reconfiguration) through :func:`optax.with_extra_args_support`."""
+    optimizer = optax.with_extra_args_support(optimizer)
+    n_per_chain = int(n_samples) // sampler.n_chains
+    fast = bool(fast)
+
+    def bind(params):
+        return BoundState(model, params, fast=fast)
+
+    def init(key, params=None) -> VMCState:
+        k_param, k_chain, k_run = jax.random.split(key, 3)
+        space = sampler.space
+        if params is None:
+            # compiled: op-by-op initialisation of deep modules is many times slower
+            params = jax.jit(model.init)(k_param, space.random(k_param, 1))
+        check_input_size(model, params, space)
+        chains = sampler.init(k_chain, bind(params))
+        # strongly typed leaves, like those the step returns: one compilation, not two
+        return strong(VMCState(jnp.zeros((), jnp.int32), params, optimizer.init(params), chains, k_run))
+
+    # ------------------------------------------------------------------ the four phases
+    def sampling(key, params, chains, n_per_chain):
+        log_amp = bind(params)
+        chains = sampler.refresh(chains, log_amp)
+        xs, logs, chains, acc = sampler.sample(key, chains, log_amp, n_per_chain)
+        x = xs.reshape(-1, *xs.shape[2:])  # time-major leading sample axis
+        return x, logs.reshape(-1), chains, acc
+
+    def local_energy(params, x, logs):
+        return hamiltonian.local_energy(bind(params), x, logs, chunk=chunk)
+
+    def gradient(params, x, e_loc):
+        estimate = stats.estimate(e_loc.reshape(-1, sampler.n_chains))
+        if energy_clip is not None:
+            e_loc = clip_local_energies(e_loc, energy_clip)
+        _, grad = energy_gradient(model.apply, params, x, e_loc)
+        return estimate, grad, e_loc
+
+    def solve(params, opt_state, grad, x, e_loc):
+        geometry = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk)
+        updates, opt_state = optimizer.update(grad, opt_state, params, geometry=geometry)
+        return optax.apply_updates(params, updates), opt_state
+
+    # ------------------------------------------------------------------ steps
+    def step(state: VMCState):
+        key, k_sample = jax.random.split(state.key)
+        x, logs, chains, acc = sampling(k_sample, state.params, state.chains, n_per_chain)
+        e_loc = local_energy(state.params, x, logs)
+        estimate, grad, e_loc = gradient(state.params, x, e_loc)
+        params, opt_state = solve(state.params, state.opt_state, grad, x, e_loc)
+        new = VMCState(state.step + 1, params, opt_state, chains, key)
+        return new, StepOutput(estimate, acc, tree_norm(grad))
+
+    def guarded_step(state: VMCState):
+        new, out = step(state)
+        e = out.energy
+        bad = (jnp.where(jnp.isfinite(e.mean) & jnp.isfinite(e.error), 0, NON_FINITE["energy"])
+               | jnp.where(jnp.isfinite(out.grad_norm), 0, NON_FINITE["gradient"])
+               | jnp.where(_all_finite(new.params), 0, NON_FINITE["parameters"])
+               | jnp.where(_all_finite(new.opt_state), 0, NON_FINITE["optimiser state"])).astype(jnp.int32)
+        kept = jax.tree_util.tree_map(lambda a, b: jnp.where(bad == 0, a, b), new, state)
+        return kept, out, bad
+
+    def multi_step(state: VMCState, n_active, k: int):
+        """Up to ``k`` guarded steps (the first ``n_active``) in one scan. Returns the state,
+        the stacked outputs of all ``k`` slots, ``taken`` (bool, the steps that replaced the
+        state), the non-finite mask of the first bad step (0 if none) and its step number
+        (1-based, the value ``state.step`` would have had after it; 0 if none)."""
+        out_shape = jax.eval_shape(lambda s: step(s)[1], state)
+
+        def skip(st):
+            return st, strong(jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), out_shape)), jnp.int32(0)
+
+        def take(st):
+            new, out, bad = guarded_step(st)
+            return new, strong(out), bad
+
+        def body(carry, i):
+            st, bad, bad_step = carry
+            active = (i < n_active) & (bad == 0)
+            new, out, b = jax.lax.cond(active, take, skip, st)
+            taken = active & (b == 0)
+            bad_step = jnp.where(active & (b != 0), st.step + 1, bad_step)
+            return (new, jnp.where(active, b, bad), bad_step), (out, taken)
+
+        (state, bad, bad_step), (outs, taken) = jax.lax.scan(
+            body, (state, jnp.int32(0), jnp.zeros((), state.step.dtype)), jnp.arange(k))
+        return state, outs, taken, bad, bad_step
+
+    # ------------------------------------------------------------------ evaluation
+    def draw(params, chains, key, n_per_chain, burn_in=0):
+        """Samples of an evaluation pass at fixed ``params``: refresh the chains, discard
+        ``burn_in`` sweeps, store ``n_per_chain`` per chain (``(n_per_chain, n_chains, ...)``).
+        Returns ``(xs, log ψ(xs), chains, acceptance, log ψ bound)``."""
+        log_amp = bind(params)
+        if burn_in:
+            k_burn, key = jax.random.split(key)
+            _, _, chains, _ = sampler.sample(k_burn, sampler.refresh(chains, log_amp), log_amp, burn_in)
+        xs, logs, chains, acc = sampler.sample(key, sampler.refresh(chains, log_amp), log_amp, n_per_chain)
+        return xs, logs, chains, acc, log_amp
+
+    def evaluate(params, chains, key, n_per_chain, burn_in=0):
+        """Energy estimate of an evaluation pass: ``(Estimate, acceptance, chains)``."""
+        xs, logs, chains, acc, log_amp = draw(params, chains, key, n_per_chain, burn_in)
+        x = xs.reshape(-1, *xs.shape[2:])
+        e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=chunk)
+        return stats.estimate(e_loc.reshape(n_per_chain, -1)), acc, chains
+
+    return VMC(init, step, guarded_step, multi_step, evaluate, draw,
+               Phases(sampling, local_energy, gradient, solve), bind, n_per_chain)
