@@ -334,8 +334,13 @@ def run_probe_child(category: str, first: int, per_probe_timeout: int) -> None:
         except ProbeTimeout:
             outcome, detail = "crashes", f"hang (> {per_probe_timeout} s)"
         except Exception as err:  # noqa: BLE001
-            outcome = classify_exception(err, arg, value, words)
-            detail = f"{type(err).__name__}: {str(err)[:160]}"
+            if category == "nan_sampling":  # any error that says what is wrong (a callback's error arrives wrapped)
+                outcome = "clear" if _named(str(err), "", None, words) else "unclear"
+            else:
+                outcome = classify_exception(err, arg, value, words)
+            lines = [ln for ln in str(err).splitlines() if ln.strip()]
+            # a wrapped host-callback error ends with the original exception's line
+            detail = f"{type(err).__name__}: {(lines[-1] if len(lines) > 3 else str(err))[:200]}"
         finally:
             signal.alarm(0)
         print(json.dumps({"done": i, "target": target, "arg": arg, "value": _show(value), "outcome": outcome,
