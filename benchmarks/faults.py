@@ -129,10 +129,11 @@ def _fixtures():
     return fx
 
 
-def _search(fx, **kw):
+def _search(fx, optimizer=None, **kw):
     pl, optax = fx["pl"], fx["optax"]
     sampler = pl.sampling.MetropolisSampler(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
-    opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
+    opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05)) \
+        if optimizer is None else optimizer
     args = dict(n_samples=16)
     args.update(kw)
     return pl.train.GroundStateSearch(pl.states.RBM(alpha=1.0, init_scale=0.05), fx["ham"], sampler, opt, **args)
@@ -622,64 +623,79 @@ def resume_mismatch(args, tmp) -> dict:
 
 
 # ------------------------------------------------------------------------------ kills
+def _kill_search(fx):
+    """The search the killed trainers run: plain SGD (a cheaper compilation than SR)."""
+    return _search(fx, optimizer=fx["optax"].sgd(0.05))
+
+
 def train_child(path: str) -> None:
     """Child: train a tiny search with a checkpoint every step, until killed."""
     fx = _fixtures()
-    search = _search(fx)
-    print("ready", flush=True)
-    search.run(10**6, key=fx["jax"].random.PRNGKey(9), progress=False, checkpoint=path, checkpoint_every=1)
+    _kill_search(fx).run(10**6, key=fx["jax"].random.PRNGKey(9), progress=False, checkpoint=path,
+                         checkpoint_every=1)
 
 
 def litter(path: str) -> list[str]:
+    """Files beside ``path`` that belong to it: temporary files of writes, the lock."""
     folder, base = os.path.dirname(path), os.path.basename(path)
     return sorted(f for f in os.listdir(folder) if f != base and f.startswith(("." + base, base)))
 
 
 def kills(args, tmp, rng) -> dict:
+    """Trainers started together (start-up dominates), each killed at its own random moment after
+    its first checkpoint; then every checkpoint is loaded and written once more by a new run."""
     fx = _fixtures()
-    jax, pl = fx["jax"], fx["pl"]
-    search = _search(fx)
     counts, findings = {k: 0 for k in OUTCOMES}, []
     n_kills = 3 if args.quick else 12
+    batch = 3
     survived = 0
-    for i in range(n_kills):
-        path = os.path.join(tmp, f"kill-{i}", "run.ckpt")
-        os.makedirs(os.path.dirname(path))
-        proc = subprocess.Popen([sys.executable, HERE, "--child", "train", "--path", path],
-                                stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
-        what = f"kill {i}"
+    for first in range(0, n_kills, batch):
+        paths, procs = [], []
         try:
-            proc.stdout.readline()  # imported; now wait for the first checkpoint, then a random moment
-            deadline = time.time() + args.child_timeout
-            while not os.path.exists(path) and time.time() < deadline and proc.poll() is None:
-                time.sleep(0.02)
-            time.sleep(float(rng.uniform(0.0, 1.5)))
+            for i in range(first, min(first + batch, n_kills)):
+                paths.append(os.path.join(tmp, f"kill-{i}", "run.ckpt"))
+                os.makedirs(os.path.dirname(paths[-1]))
+                procs.append(subprocess.Popen([sys.executable, HERE, "--child", "train", "--path", paths[-1]],
+                                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
+            for path, proc in zip(paths, procs):
+                deadline = time.time() + args.child_timeout
+                while not os.path.exists(path) and time.time() < deadline and proc.poll() is None:
+                    time.sleep(0.02)
+                time.sleep(float(rng.uniform(0.0, 1.0)))
+                if proc.poll() is None:
+                    os.kill(proc.pid, signal.SIGKILL)
+                proc.wait()
         finally:
-            if proc.poll() is None:
-                os.kill(proc.pid, signal.SIGKILL)
-            proc.wait()
-        if proc.returncode != -signal.SIGKILL:
-            counts["unclear"] += 1
-            findings.append({"what": what, "outcome": "unclear", "detail": f"trainer ended by itself: {proc.returncode}"})
-            continue
-        try:
-            state, history = search.resume(path)
-        except Exception as err:  # noqa: BLE001
-            counts["silent_wrong"] += 1  # a checkpoint lost to one kill: the atomic write failed
-            findings.append({"what": what, "outcome": "silent_wrong", "detail": f"no loadable checkpoint: {err}"})
-            continue
-        survived += 1
-        step = int(state.step)
-        search.run(step + 1, state=state, history=history, progress=False, checkpoint=path, checkpoint_every=1)
-        left = litter(path)
-        back, _ = search.resume(path)
-        if left or int(back.step) != step + 1:
-            counts["silent_wrong"] += 1
-            findings.append({"what": what, "outcome": "silent_wrong",
-                             "detail": f"after the next write: litter {left}, step {int(back.step)} (want {step + 1})"})
-        else:
-            counts["clear"] += 1
-        progress(f"  kill {i}: checkpoint at step {step} loaded; litter after the next write: {left}")
+            for proc in procs:
+                if proc.poll() is None:
+                    os.kill(proc.pid, signal.SIGKILL)
+                    proc.wait()
+        search = _kill_search(fx)
+        for i, (path, proc) in enumerate(zip(paths, procs), start=first):
+            what = f"kill {i}"
+            if proc.returncode != -signal.SIGKILL:
+                counts["unclear"] += 1
+                findings.append({"what": what, "outcome": "unclear",
+                                 "detail": f"trainer ended by itself: {proc.returncode}"})
+                continue
+            try:
+                state, history = search.resume(path)
+            except Exception as err:  # noqa: BLE001
+                counts["silent_wrong"] += 1  # a checkpoint lost to one kill: the atomic write failed
+                findings.append({"what": what, "outcome": "silent_wrong", "detail": f"no loadable checkpoint: {err}"})
+                continue
+            survived += 1
+            step = int(state.step)
+            search.run(step + 1, state=state, history=history, progress=False, checkpoint=path, checkpoint_every=1)
+            left = litter(path)
+            back, _ = search.resume(path)
+            if left or int(back.step) != step + 1:
+                counts["silent_wrong"] += 1
+                findings.append({"what": what, "outcome": "silent_wrong",
+                                 "detail": f"after the next write: litter {left}, step {int(back.step)} (want {step + 1})"})
+            else:
+                counts["clear"] += 1
+            progress(f"  kill {i}: checkpoint at step {step} loaded; litter after the next write: {left}")
     return {"tried": n_kills, **counts, "findings": findings, "kills": n_kills, "kills_survived": survived}
 
 
