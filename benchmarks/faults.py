@@ -41,6 +41,7 @@ Usage::
 
 from __future__ import annotations
 
+import inspect
 import json
 import math
 import os
@@ -247,6 +248,8 @@ def input_probes(fx):
         ("GroundStateSearch.run", "callback", [5, "f"], lambda v: run_with(callback=v)),
         ("GroundStateSearch.evaluate", "n_samples", "count", lambda v: evaluate_with(n_samples=v)),
         ("GroundStateSearch.evaluate", "burn_in_sweeps", "count0", lambda v: evaluate_with(burn_in_sweeps=v)),
+        *([("GroundStateSearch", "mesh", [3, "samples", [1, 2]], lambda v: _search(fx, mesh=v))]
+          if "mesh" in inspect.signature(pl.train.GroundStateSearch).parameters else []),
         ("electrons.atom", "symbol", ["Xx", "", 3.5, None, -1], lambda v: el.atom(v)),
         ("electrons.atom", "charge", [0.5, NAN, "1", True, 3, -INF], lambda v: el.atom("He", charge=v)),
         ("electrons.atom", "spin", [0.5, 5, "1", NAN, -3], lambda v: el.atom("Li", spin=v)),
@@ -573,7 +576,13 @@ def checkpoint_damage(args, tmp, rng) -> dict:
             outcome, detail = "clear", ""
         except Exception as err:  # noqa: BLE001
             outcome, detail = "unclear", f"{type(err).__name__}: {err}"
-        # also through the plain loader of the module, with and without a template
+        try:  # and through the module's loader with the search's template
+            pl.checkpoint.load_checkpoint(bad, search.template())
+            outcome, detail = "silent_wrong", "crafted file loaded by load_checkpoint"
+        except CheckpointError:
+            pass
+        except Exception as err:  # noqa: BLE001
+            outcome, detail = "unclear", f"load_checkpoint: {type(err).__name__}: {err}"
         if os.path.exists(marker):
             outcome, detail = "silent_wrong", "the crafted pickle ran (marker file created)"
             os.unlink(marker)

@@ -55,7 +55,8 @@ anything is compiled (at trace time, from static shapes) the bytes of these arra
 
 (b bytes per number, rows = n or 2n), and a solver above the limit raises ``ValueError`` saying
 how much it would need and which solver fits (``"cg"`` needs O(n + P)). The default limit is half
-of the physical memory (or of the cgroup limit, where lower); ``memory_limit=float("inf")``
+of the physical memory (or of the cgroup limit, where lower; on an accelerator at most what XLA
+may allocate there); ``memory_limit=float("inf")``
 turns the guard off. Measured: dense SR with 2^20 samples of an L=100 RBM asked XLA for 160 GiB.
 With ``"auto"`` the preferred solver above is taken if it fits, else the other one, else ``"cg"``
 (absolute shift only).
@@ -114,9 +115,20 @@ def physical_memory_bytes() -> int | None:
 
 
 def default_memory_limit() -> float:
-    """Half of :func:`physical_memory_bytes` (``inf`` where it is unknown)."""
+    """Half of :func:`physical_memory_bytes`, and at most the memory XLA may allocate on an
+    accelerator (``memory_stats()["bytes_limit"]`` of the first device, where it reports one);
+    ``inf`` where neither is known."""
     total = physical_memory_bytes()
-    return float("inf") if total is None else 0.5 * total
+    limit = float("inf") if total is None else 0.5 * total
+    try:
+        device = jax.devices()[0]
+        if device.platform != "cpu":
+            stats = device.memory_stats() or {}
+            if stats.get("bytes_limit"):
+                limit = min(limit, float(stats["bytes_limit"]))
+    except Exception:  # noqa: BLE001 - a backend without memory statistics keeps the host bound
+        pass
+    return limit
 
 
 def solver_memory_bytes(solver: str, rows: int, n_params: int, itemsize: int = 8) -> int:
