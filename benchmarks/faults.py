@@ -43,7 +43,6 @@ from __future__ import annotations
 
 import inspect
 import json
-import math
 import os
 import signal
 import subprocess
@@ -659,7 +658,7 @@ def kills(args, tmp, rng) -> dict:
     batch = 3
     survived = 0
     for first in range(0, n_kills, batch):
-        paths, procs = [], []
+        paths, procs, unwritten = [], [], set()
         try:
             for i in range(first, min(first + batch, n_kills)):
                 paths.append(os.path.join(tmp, f"kill-{i}", "run.ckpt"))
@@ -670,6 +669,8 @@ def kills(args, tmp, rng) -> dict:
                 deadline = time.time() + args.child_timeout
                 while not os.path.exists(path) and time.time() < deadline and proc.poll() is None:
                     time.sleep(0.02)
+                if not os.path.exists(path):
+                    unwritten.add(path)
                 time.sleep(float(rng.uniform(0.0, 1.0)))
                 if proc.poll() is None:
                     os.kill(proc.pid, signal.SIGKILL)
@@ -682,6 +683,10 @@ def kills(args, tmp, rng) -> dict:
         search = _kill_search(fx)
         for i, (path, proc) in enumerate(zip(paths, procs), start=first):
             what = f"kill {i}"
+            if path in unwritten:
+                counts["unclear"] += 1
+                findings.append({"what": what, "outcome": "unclear", "detail": "no checkpoint written before the kill"})
+                continue
             if proc.returncode != -signal.SIGKILL:
                 counts["unclear"] += 1
                 findings.append({"what": what, "outcome": "unclear",
