@@ -399,3 +399,54 @@ def test_metric_trust_radius_shortens_long_steps_only(solver):
 def test_bad_trust_radius_rejected(bad):
     with pytest.raises(ValueError, match="max_metric_norm"):
         stochastic_reconfiguration(1e-3, max_metric_norm=bad)
+
+
+# ----------------------------------------------------------------------------- memory guard
+def abstract_update(solver, rows, n_params, complex_output=False, **kw):
+    """Trace one SR update on abstract arrays of the given size (nothing is allocated)."""
+    tx = stochastic_reconfiguration(1e-2, solver, **kw)
+
+    def update(x, residual, g):
+        geom = MatrixGeometry(x, residual, complex_output=complex_output)
+        params = {"w": g}
+        return tx.update({"w": g}, tx.init(params), params, geometry=geom)
+
+    spec = lambda *shape: jax.ShapeDtypeStruct(shape, jnp.float64)
+    return jax.eval_shape(update, spec(rows, n_params), spec(rows), spec(n_params))
+
+
+def test_dense_sr_above_the_default_memory_limit_is_refused_before_compiling():
+    # 2^20 samples × 10^6 parameters: X alone is 8 TiB, far above half of any machine's memory
+    with pytest.raises(ValueError, match=r"would need about .* GiB.*solver='cg'"):
+        abstract_update("dense", 2**20, 10**6)
+    with pytest.raises(ValueError, match="sample_space"):
+        abstract_update("sample_space", 2**20, 10**6)
+    out, _ = abstract_update("cg", 2**20, 10**6)  # matrix-free: traces without complaint
+    assert out["w"].shape == (10**6,)
+
+
+@pytest.mark.parametrize("rows, n_params, fits", [(64, 8, "dense"), (8, 64, "sample_space")])
+def test_auto_solver_falls_back_by_memory(rows, n_params, fits):
+    from psiloom.optimize.sr import solver_memory_bytes
+
+    need = {k: solver_memory_bytes(k, rows, n_params) for k in ("dense", "sample_space", "cg")}
+    other = "sample_space" if fits == "dense" else "dense"
+    assert need[fits] < need[other]  # the shape rule's choice is also the smaller one here
+    # limit between the two: the explicit larger solver is refused, naming the one that fits
+    limit = 0.5 * (need[fits] + need[other])
+    with pytest.raises(ValueError, match=f"use solver='{fits}'"):
+        abstract_update(other, rows, n_params, memory_limit=limit)
+    # limit below both matrix solvers: "auto" takes CG and still solves (S + εI)δ = F (numpy reference)
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(rows, n_params)) / np.sqrt(rows)
+    residual = rng.normal(size=rows)
+    delta, _ = apply_sr("auto", x, residual, shift=1e-1, memory_limit=need["cg"] + 1, tol=1e-12)
+    np.testing.assert_allclose(delta, numpy_sr(x, x.T @ residual, 1e-1), rtol=1e-7, atol=1e-9)
+    with pytest.raises(ValueError, match="relative_shift"):  # no matrix-free fallback with ε_rel
+        apply_sr("auto", x, residual, rel=1e-2, memory_limit=need["cg"] + 1)
+
+
+@given(bad=st.sampled_from([0, -1.0, float("nan"), "1e9", True, [1e9], 1e9j]))
+def test_bad_memory_limit_rejected(bad):
+    with pytest.raises(ValueError, match="memory_limit"):
+        stochastic_reconfiguration(1e-3, "dense", memory_limit=bad)
