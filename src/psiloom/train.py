@@ -36,7 +36,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
-from psiloom import stats
+from psiloom import parallel, stats
 from psiloom.optimize.clipping import clip_local_energies
 from psiloom.optimize.flatten import tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
@@ -133,8 +133,14 @@ CHECKPOINT_VERSION = 1
 
 
 def save_checkpoint(path: str, state: TrainState, history: History | None = None) -> None:
-    """Write ``state`` (and history) atomically: a crash mid-write leaves the old file intact."""
-    host = jax.tree_util.tree_map(np.asarray, state)
+    """Write ``state`` (and history) atomically: a crash mid-write leaves the old file intact.
+
+    With several processes call it in all of them: the state is gathered to host arrays
+    (:func:`psiloom.parallel.to_host`, a collective) and process 0 alone writes, so the file holds
+    whole arrays and can be resumed with any number of processes or devices."""
+    host = parallel.to_host(state)  # parallel: gather sharded / multi-process arrays
+    if not parallel.is_main_process():  # parallel: process 0 writes
+        return
     payload = {"version": CHECKPOINT_VERSION, "state": host, "history": None if history is None else history.columns}
     _atomic_write(path, pickle.dumps(payload))
 
@@ -174,11 +180,16 @@ class GroundStateSearch:
             gradient and the SR geometry; the reported energy estimate stays unclipped.
         fast: use the trial state's fast amplitude updates (if it has them) in sampling and
             local energies; ``False`` forces full re-evaluation (same results, slower).
+        mesh: optional :func:`psiloom.parallel.sample_mesh`: spread the chains over its devices
+            (and processes). ``n_chains`` must be divisible by the device count; the chain state is
+            sharded along its leading axis, parameters, optimiser state and key replicated, and the
+            same seed gives the same run on any number of devices (:mod:`psiloom.parallel`).
+            Progress is printed and checkpoints are written by process 0 only.
     """
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
                  n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
-                 fast: bool = True):
+                 fast: bool = True, mesh=None):
         if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
@@ -186,6 +197,9 @@ class GroundStateSearch:
         h_sites, s_sites = getattr(hamiltonian, "n_sites", None), getattr(sampler.space, "n_sites", None)
         if h_sites is not None and s_sites is not None and h_sites != s_sites:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
+        if mesh is not None:  # parallel: chains split evenly over the devices
+            parallel.check_divisible("n_chains", sampler.n_chains, mesh)
+        self.mesh = mesh
         self.model = model
         self.hamiltonian = hamiltonian
         self.sampler = sampler
@@ -211,7 +225,26 @@ class GroundStateSearch:
             params = jax.jit(self.model.init)(k_param, space.random(k_param, 1))
         check_input_size(self.model, params, space)
         chains = self.sampler.init(k_chain, self._bind(params))
-        return TrainState(jnp.zeros((), jnp.int32), params, self.optimizer.init(params), chains, k_run)
+        return self.place(TrainState(jnp.zeros((), jnp.int32), params, self.optimizer.init(params), chains, k_run))
+
+    def place(self, state: TrainState) -> TrainState:
+        """``state`` placed on the mesh (parallel): chains sharded, everything else replicated; no-op
+        without a mesh. Applied by :meth:`init` and by :meth:`run` to a state it is given."""
+        if self.mesh is None:
+            return state
+        step, params, opt_state, key = parallel.replicate((state.step, state.params, state.opt_state, state.key),
+                                                          self.mesh)
+        return TrainState(step, params, opt_state, parallel.place_chains(state.chains, self.mesh,
+                                                                         self.sampler.n_chains), key)
+
+    def _constrain(self, state: TrainState, *outputs):
+        """Inside jit (parallel): keep the state's placement; other outputs replicated."""
+        if self.mesh is None:
+            return (state, *outputs)
+        rest = parallel.constrain_replicated((state.step, state.params, state.opt_state, state.key, outputs),
+                                             self.mesh)
+        chains = parallel.constrain_chains(state.chains, self.mesh, self.sampler.n_chains)
+        return (TrainState(*rest[:3], chains, rest[3]), *rest[4])
 
     def n_parameters(self, state: TrainState) -> int:
         return count_real_parameters(state.params)
@@ -255,11 +288,12 @@ class GroundStateSearch:
         estimate, grad, e_loc = self._gradient_phase(state.params, x, e_loc)
         params, opt_state = self._solve_phase(state.params, state.opt_state, grad, x, e_loc)
         new = TrainState(state.step + 1, params, opt_state, chains, key)
-        return new, StepOutput(estimate, acc, tree_norm(grad))
+        return self._constrain(new, StepOutput(estimate, acc, tree_norm(grad)))
 
     def step(self, state: TrainState) -> tuple[TrainState, StepOutput]:
         """One compiled optimisation step."""
-        return self._step(state)
+        with parallel.mesh_context(self.mesh):  # parallel: traces see the mesh (per-device callbacks)
+            return self._step(state)
 
     PHASES = ("sampling", "local_energy", "gradient", "solve")
 
@@ -299,7 +333,7 @@ class GroundStateSearch:
         _, grad, e_used = jax.block_until_ready(calls["gradient"]())
         calls["solve"] = lambda: solve(state.params, state.opt_state, grad, x, e_used)
         jax.block_until_ready(calls["solve"]())
-        calls["step"] = lambda: self._step(state)
+        calls["step"] = lambda: self.step(state)
         jax.block_until_ready(calls["step"]())
         best = {}
         for name, call in calls.items():
@@ -317,7 +351,9 @@ class GroundStateSearch:
     def _evaluate_impl(self, params, chains_key, n_per_chain):
         chains, key = chains_key
         _, e_loc, chains, acc = self._sample(key, params, chains, n_per_chain)
-        return stats.estimate(e_loc.reshape(n_per_chain, -1)), acc, chains
+        chains = parallel.constrain_chains(chains, self.mesh, self.sampler.n_chains)  # parallel
+        est, acc = parallel.constrain_replicated((stats.estimate(e_loc.reshape(n_per_chain, -1)), acc), self.mesh)
+        return est, acc, chains
 
     def evaluate(self, state: TrainState, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 0,
                  starts=None):
@@ -344,10 +380,11 @@ class GroundStateSearch:
         chains = state.chains
         if starts is not None:
             chains = chains._replace(x=self._with_starts(chains.x, starts))
-        if burn_in_sweeps:
-            k_burn, key = jax.random.split(key)
-            _, _, chains = self._eval(state.params, (chains, k_burn), int(burn_in_sweeps))
-        est, acc, _ = self._eval(state.params, (chains, key), n_per_chain)
+        with parallel.mesh_context(self.mesh):  # parallel: traces see the mesh (per-device callbacks)
+            if burn_in_sweeps:
+                k_burn, key = jax.random.split(key)
+                _, _, chains = self._eval(state.params, (chains, k_burn), int(burn_in_sweeps))
+            est, acc, _ = self._eval(state.params, (chains, key), n_per_chain)
         return est, float(acc)
 
     def _with_starts(self, x, starts):
@@ -391,9 +428,12 @@ class GroundStateSearch:
             raise ValueError(f"profile_every must be a non-negative integer, got {profile_every!r}")
         if state is None:
             state = self.init(jax.random.PRNGKey(0) if key is None else key)
+        else:
+            state = self.place(state)  # parallel: e.g. a checkpoint written with another device count
         history = History() if history is None else history
         history.truncate(int(state.step))
         emit = (lambda s: print(s, flush=True)) if progress is True else (progress or None)
+        emit = emit if parallel.is_main_process() else None  # parallel: process 0 prints
         step = first = int(state.step)
         last = time.perf_counter()
         while step < n_steps:
@@ -402,7 +442,7 @@ class GroundStateSearch:
                 phases = self.profile_step(state, repeat=1)
                 timing = {f"t_{name}": phases[name] for name in self.PHASES}
                 last = time.perf_counter()  # profiling time is not step time
-            new_state, out = self._step(state)
+            new_state, out = self.step(state)
             energy = float(np.real(out.energy.mean))
             if not np.isfinite(energy) or not np.isfinite(float(out.energy.error)):
                 raise NonFiniteError(step, "energy")

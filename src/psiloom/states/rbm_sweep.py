@@ -42,6 +42,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom import parallel
+
 try:  # Numba is a dependency, but the library stays usable (on the JAX path) without it
     import numba
 except ImportError:  # pragma: no cover - exercised only where Numba is missing
@@ -234,14 +236,21 @@ def make_sweeps(kernel, visible_bias, rise, fall):
         if positions.ndim != 3 or positions.shape[2] not in (1, x.shape[0]):
             raise ValueError(f"positions must have shape (n_sweeps, S, 1 or n_chains), got {positions.shape}")
         n_sweeps = positions.shape[0]
-        shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
-                  jax.ShapeDtypeStruct(cache.plus.shape, cache.plus.dtype),
-                  jax.ShapeDtypeStruct(cache.minus.shape, cache.minus.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
-        xs, log_amps, plus, minus, accepted = jax.pure_callback(
-            lambda *a: _host_sweeps(kind, table, *a), shapes, x, cache.plus, cache.minus, log_amp, positions, log_u,
-            tables, bias_and_bound, vmap_method="sequential")
+
+        def call(x, plus, minus, log_amp, *rest):  # shapes of the chains it is given
+            shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
+                      jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
+                      jax.ShapeDtypeStruct(plus.shape, plus.dtype), jax.ShapeDtypeStruct(minus.shape, minus.dtype),
+                      jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+            return jax.pure_callback(lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp,
+                                     *rest, vmap_method="sequential")
+
+        # parallel: with a sample mesh each device runs the host kernel on its own chains
+        per_chain_positions = 2 if positions.shape[2] == x.shape[0] and x.shape[0] > 1 else None
+        call = parallel.per_device(call, in_axes=(0, 0, 0, 0, per_chain_positions, 2, None, None),
+                                   out_axes=(1, 1, 0, 0, "sum"))
+        xs, log_amps, plus, minus, accepted = call(x, cache.plus, cache.minus, log_amp, positions, log_u,
+                                                   tables, bias_and_bound)
         return xs, log_amps, cache._replace(plus=plus, minus=minus), accepted
 
     return sweeps
