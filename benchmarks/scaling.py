@@ -47,7 +47,9 @@ def worker(args) -> None:
         os.sched_setaffinity(0, {args.process_id % os.cpu_count()})
     else:
         flags = os.environ.get("XLA_FLAGS", "")
-        os.environ["XLA_FLAGS"] = f"{flags} --xla_force_host_platform_device_count={args.devices}".strip()
+        # agreement runs only: XLA's backend optimisation off (compilation dominates these short runs)
+        os.environ["XLA_FLAGS"] = (f"{flags} --xla_force_host_platform_device_count={args.devices}"
+                                   " --xla_backend_optimization_level=0").strip()
     import jax
 
     from psiloom import parallel
