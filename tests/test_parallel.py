@@ -142,3 +142,49 @@ def test_bad_inputs_name_the_values(runs):
     assert "n_chains=6" in errors["indivisible"] and "4 devices" in errors["indivisible"]
     assert "4 or 8" in errors["indivisible"]
     assert "processes=2" in errors["not_initialised"] and "initialize" in errors["not_initialised"]
+
+
+# ---------------------------------------------------------------- in-process checks (one device)
+def test_slurm_settings_and_node_lists():
+    from psiloom import parallel
+
+    env = {"SLURM_NTASKS": "8", "SLURM_PROCID": "3", "SLURM_JOB_NODELIST": "gpu[003-004,010],cpu1",
+           "SLURM_JOB_ID": "123456"}
+    assert parallel.slurm_settings(env) == {"coordinator_address": "gpu003:23456", "num_processes": 8,
+                                            "process_id": 3}
+    assert parallel.slurm_settings({**env, "SLURM_STEP_NODELIST": "node7,node8"}, port=999)["coordinator_address"] \
+        == "node7:999"
+    with pytest.raises(ValueError, match="SLURM"):
+        parallel.slurm_settings({"SLURM_NTASKS": "2"})
+
+
+def test_initialize_needs_all_or_none_of_its_arguments():
+    from psiloom import parallel
+
+    with pytest.raises(ValueError, match="coordinator_address"):
+        parallel.initialize("localhost:1234", 2)
+    with pytest.raises(ValueError, match="process_id=2"):
+        parallel.initialize("localhost:1234", 2, 2)
+
+
+@pytest.mark.parametrize("value, devices, near", [(10, 4, "8 or 12"), (3, 4, "4"), (7, 2, "6 or 8")])
+def test_indivisible_chain_counts_name_the_nearest_valid_values(value, devices, near):
+    from psiloom import parallel
+
+    with pytest.raises(ValueError, match=f"n_chains={value} is not divisible by the {devices} devices.*{near}$"):
+        parallel.check_divisible("n_chains", value, devices)
+    parallel.check_divisible("n_chains", value * devices, devices)
+
+
+def test_one_device_mesh_and_bad_device_requests():
+    import jax
+
+    from psiloom import parallel
+
+    mesh = parallel.sample_mesh(1)
+    assert mesh.axis_names == (parallel.SAMPLE_AXIS,) and parallel.n_devices(mesh) == 1
+    assert parallel.n_devices(parallel.sample_mesh(processes=1)) == len(jax.devices())
+    with pytest.raises(ValueError, match="devices=99"):
+        parallel.sample_mesh(99)
+    with pytest.raises(ValueError, match="processes"):
+        parallel.sample_mesh(processes=0)

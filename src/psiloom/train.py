@@ -314,6 +314,10 @@ class GroundStateSearch:
         """
         if isinstance(repeat, bool) or not isinstance(repeat, (int, np.integer)) or repeat < 1:
             raise ValueError(f"repeat must be a positive integer, got {repeat!r}")
+        with parallel.mesh_context(self.mesh):  # parallel: traces see the mesh (per-device callbacks)
+            return self._profile_phases(state, int(repeat))
+
+    def _profile_phases(self, state: TrainState, repeat: int) -> dict[str, float]:
         if self._phases is None:
             self._phases = (
                 jax.jit(self._sampling_phase, static_argnums=(3,)),
