@@ -153,6 +153,16 @@ def check_electron():
     return record(search, 2)
 
 
+def check_global():
+    """Chains made by each process for itself, joined into global arrays and gathered back."""
+    pid = jax.process_index()
+    local = {"x": np.arange(12.0).reshape(4, 3) + 100 * pid, "step_size": np.float64(0.5)}
+    joined = parallel.global_chains(local, MESH)
+    host = parallel.to_host(joined)
+    return {"x": host["x"].tolist(), "step_size": float(host["step_size"]),
+            "sharded": joined["x"].sharding.spec[:1] == PartitionSpec(parallel.SAMPLE_AXIS)[:1]}
+
+
 def check_errors():
     out = {}
     try:
@@ -167,7 +177,7 @@ def check_errors():
 
 
 CHECKS = {"train": check_train, "cg": check_cg, "compiled": check_compiled, "electron": check_electron,
-          "errors": check_errors}
+          "errors": check_errors, "global": check_global}
 
 result = {"devices": D, "processes": jax.process_count()}
 for name in ARGS.checks.split(","):

@@ -53,7 +53,7 @@ def _two_processes(tmp):
     """Two processes of one CPU device each, joined by jax.distributed over localhost (gloo)."""
     port = _free_port()
     cmd = lambda i: [sys.executable, WORKER, "--process-id", str(i), "--num-processes", "2", "--port", str(port),
-                     "--checks", "train,compiled", "--checkpoint", os.path.join(tmp, "two_processes.pkl")]
+                     "--checks", "train,compiled,global", "--checkpoint", os.path.join(tmp, "two_processes.pkl")]
     procs = [subprocess.Popen(cmd(i), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())
              for i in range(2)]
     outs = []
@@ -135,6 +135,10 @@ def test_two_processes_equal_two_devices(runs):
         assert _close(got[check]["energies"], runs[2][check]["energies"])
         assert _close(got[check]["params"], runs[2][check]["params"])
     assert got["compiled"]["chains_per_host_call"] == [4]
+    # process-local chains joined in process order (make_array_from_process_local_data)
+    local = np.arange(12.0).reshape(4, 3)
+    assert got["global"]["sharded"] and got["global"]["step_size"] == 0.5
+    np.testing.assert_array_equal(got["global"]["x"], np.concatenate([local, local + 100]))
 
 
 def test_bad_inputs_name_the_values(runs):
