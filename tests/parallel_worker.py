@@ -44,11 +44,11 @@ os.environ["XLA_FLAGS"] = flags.strip()
 
 import jax  # noqa: E402
 
+jax.config.update("jax_enable_x64", True)
 from psiloom import parallel  # noqa: E402
 
 if ARGS.process_id is not None:
     parallel.initialize(f"localhost:{ARGS.port}", ARGS.num_processes, ARGS.process_id, timeout=60)
-jax.config.update("jax_enable_x64", True)
 
 import numpy as np  # noqa: E402
 import optax  # noqa: E402
@@ -104,7 +104,8 @@ def check_train():
     state, history = search.run(4, state=state, history=history, progress=False)
     est, acc = search.evaluate(state, n_samples=4 * N_CHAINS)
     out = {"energies": [float(v) for v in history["energy"]], "params": flat(state.params),
-           "eval": float(np.real(est.mean)), "acceptance": acc, "placed": placed and placement_ok(state, search)}
+           "eval": float(np.real(est.mean)), "acceptance": acc, "placed": placed and placement_ok(state, search),
+           "compilations": compilations(search)}
     if ARGS.resume:
         resumed, history = load_checkpoint(ARGS.resume)
         resumed, history = search.run(4, state=resumed, history=history, progress=False)
@@ -112,10 +113,15 @@ def check_train():
     return out
 
 
+def compilations(search):
+    """How often the step was compiled (1 when the state keeps its placement from step to step)."""
+    return search._step._cache_size()
+
+
 def record(search, n_steps):
     state, history = search.run(n_steps, key=jax.random.PRNGKey(0), progress=False)
     return {"energies": [float(v) for v in history["energy"]], "params": flat(state.params),
-            "placed": placement_ok(state, search)}
+            "placed": placement_ok(state, search), "compilations": compilations(search)}
 
 
 def check_cg():

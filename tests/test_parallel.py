@@ -100,6 +100,7 @@ def _close(a, b):
 def test_same_run_on_any_device_count(runs, check, devices):
     ref, got = runs[1][check], runs[devices][check]
     assert got["placed"], "chains not sharded or parameters not replicated after init/step"
+    assert got["compilations"] == 1, "the step's output placement differs from its input's: compiled again"
     assert len(ref["energies"]) >= 2
     assert _close(got["energies"], ref["energies"]), (got["energies"], ref["energies"])
     assert _close(got["params"], ref["params"])

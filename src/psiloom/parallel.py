@@ -51,6 +51,7 @@ import re
 from typing import Any, Callable, Mapping, Sequence
 
 import jax
+import jax.numpy  # noqa: F401  (jax.numpy.asarray in _put)
 import numpy as np
 from jax.sharding import AxisType, Mesh, NamedSharding, PartitionSpec
 
@@ -118,10 +119,15 @@ def check_divisible(name: str, value: int, mesh: Mesh | int | None) -> None:
 
 # ---------------------------------------------------------------------------- shardings and placement
 def chain_sharding(mesh: Mesh, ndim: int = 1, axis: int = 0) -> NamedSharding:
-    """Sharding of an array whose dimension ``axis`` (of ``ndim``) is the sample axis."""
-    spec = [None] * max(ndim, axis + 1)
-    spec[axis] = SAMPLE_AXIS
-    return NamedSharding(mesh, PartitionSpec(*spec))
+    """Sharding of an array whose dimension ``axis`` (of ``ndim``) is the sample axis (on a
+    one-device mesh the replicated sharding, which is what compiled programs return there: equal
+    shardings in and out keep ``jit`` from compiling a step twice)."""
+    if n_devices(mesh) == 1:
+        return replicated_sharding(mesh)
+    if not 0 <= axis < max(ndim, 1):
+        raise ValueError(f"sample axis {axis} outside an array of {ndim} dimensions")
+    # no trailing None entries: compiled programs return them trimmed, and equal specs matter
+    return NamedSharding(mesh, PartitionSpec(*([None] * axis), SAMPLE_AXIS))
 
 
 def replicated_sharding(mesh: Mesh) -> NamedSharding:
@@ -131,7 +137,11 @@ def replicated_sharding(mesh: Mesh) -> NamedSharding:
 
 def _put(leaf, sharding: NamedSharding):
     """``leaf`` placed with ``sharding``; with several processes the (identical) value of every
-    process provides the shards its devices hold."""
+    process provides the shards its devices hold. Placed arrays are strongly typed: a weakly typed
+    input (e.g. configurations built from Python scalars) whose step output is strongly typed
+    would make ``jit`` compile the step a second time."""
+    if isinstance(leaf, jax.Array) and getattr(leaf.aval, "weak_type", False):
+        leaf = jax.numpy.asarray(leaf, dtype=leaf.dtype)
     if sharding.is_fully_addressable:
         return jax.device_put(leaf, sharding)
     if isinstance(leaf, jax.Array) and jax.dtypes.issubdtype(leaf.dtype, jax.dtypes.prng_key):
