@@ -219,7 +219,9 @@ def per_device(fn: Callable, mesh: Mesh | None = None, in_axes: Sequence[int | N
     """Run ``fn`` once per device on that device's samples (``jax.shard_map`` over the sample axis).
 
     Meant for functions that call the host (``jax.pure_callback``), which GSPMD would otherwise
-    run on one device for all samples. ``fn(*args)`` must return a tuple of arrays.
+    run on one device for all samples. ``fn(*args)`` must return a tuple of arrays. The devices of
+    one process call the host function concurrently, from one thread each: it must be thread-safe
+    (Numba's parallel loops are under its ``omp`` and ``tbb`` threading layers, not ``workqueue``).
 
     Args:
         fn: the function to wrap; it sees each device's block of the sample axis.
