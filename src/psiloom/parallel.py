@@ -32,6 +32,13 @@ rematerialization"). The results are right but one device does all the work. :fu
 wraps such a call in :func:`jax.shard_map` over the sample axis, so each device calls the host
 function on its own chains.
 
+Known limit: several *simulated* CPU devices in one process share XLA's CPU thread pool, and
+with host callbacks in the step (the compiled sweeps) its in-process all-reduce was seen to
+deadlock on a 2-core machine (L=16, 32 chains on 2 devices: XLA aborts after 40 s waiting for one
+device at the rendezvous), whether the callback ran per device or gathered on one. Tiny runs
+(8 chains) pass. Use ``compiled_sweeps=False`` with simulated devices, or one process per device
+(``jax.distributed``; tested with the compiled sweeps).
+
 Several processes (one per GPU, or several machines): call :func:`initialize` first (before any
 other JAX call), then build the mesh with ``sample_mesh(processes=n)``. Every process runs the
 same program; arrays that every process computed identically (the initial state from the same
