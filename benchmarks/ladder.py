@@ -189,7 +189,9 @@ def dispersed_starts(rung: Rung, lattice):
     return None, None
 
 
-def run_rung(rung: Rung) -> dict:
+def run_rung(rung: Rung, mesh=None) -> dict:
+    """Train and evaluate one rung; ``mesh`` (optional, :func:`psiloom.parallel.sample_mesh`) spreads
+    its chains over several devices."""
     progress(f"--- rung {rung.name}")
     with Timer() as timer:
         ham, sampler, ref, source, system, lattice = build(rung)
@@ -201,7 +203,7 @@ def run_rung(rung: Rung) -> dict:
 
         def make_search(n_samples):
             return pl.train.GroundStateSearch(model, ham, sampler, opt, n_samples=n_samples, chunk=chunk,
-                                              energy_clip=rung.energy_clip)
+                                              energy_clip=rung.energy_clip, mesh=mesh)
 
         search = make_search(rung.n_samples)
         state = search.init(jax.random.PRNGKey(rung.seed))

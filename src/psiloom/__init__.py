@@ -10,11 +10,11 @@ psiloom follows the dtype of its inputs; enable ``jax_enable_x64`` for float64, 
 stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
 """
 
-from psiloom import batching, exact, lattices, operators, optimize, plotting, reduce, sampling, spaces, states, stats, symmetry, train
+from psiloom import batching, compilation, exact, lattices, operators, optimize, parallel, plotting, reduce, sampling, spaces, states, stats, symmetry, train
 from psiloom import checkpoint, history, loop, vmc  # the pieces behind train.GroundStateSearch
 from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 
 __version__ = "0.1.0"
 
-__all__ = ["batching", "exact", "lattices", "operators", "optimize", "plotting", "reduce", "sampling", "spaces", "states",
+__all__ = ["batching", "compilation", "exact", "lattices", "operators", "optimize", "parallel", "plotting", "reduce", "sampling", "spaces", "states",
            "stats", "symmetry", "train", "vmc", "loop", "history", "checkpoint", "electrons", "__version__"]

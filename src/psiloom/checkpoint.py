@@ -36,6 +36,7 @@ import jax
 import numpy as np
 from flax import serialization
 
+from psiloom import parallel
 from psiloom.history import History
 
 FORMAT_VERSION = 2
@@ -102,7 +103,8 @@ class CheckpointLock:
 
     Acquiring raises :class:`CheckpointError` when another live process (or another run in
     this process) holds the lock; a lock left by a process that no longer exists is taken over.
-    Use as a context manager or call :meth:`acquire` / :meth:`release`.
+    Use as a context manager or call :meth:`acquire` / :meth:`release`. With several processes
+    (:mod:`psiloom.parallel`) only process 0 writes files, so only process 0 takes the lock.
     """
 
     def __init__(self, path: str):
@@ -110,7 +112,7 @@ class CheckpointLock:
         self.held = False
 
     def acquire(self) -> "CheckpointLock":
-        if self.held:
+        if self.held or not parallel.is_main_process():
             return self
         os.makedirs(os.path.dirname(self.path), exist_ok=True)
         for _ in range(3):
@@ -273,11 +275,15 @@ def save_checkpoint(path: str, state, history: History | None = None, meta: dict
     """Write ``state`` (a state NamedTuple, e.g. :class:`psiloom.vmc.VMCState`) and ``history``.
 
     Leaves are gathered to host NumPy arrays first (a sharded state saves like an unsharded
-    one). ``meta`` (see :func:`run_meta`) is stored in the header and checked on load.
+    one, so it loads with any device or process count). ``meta`` (see :func:`run_meta`) is stored
+    in the header and checked on load. With several processes call it in all of them: gathering
+    is a collective (:func:`psiloom.parallel.to_host`), and process 0 alone writes.
     """
     from psiloom import __version__
 
-    host = jax.tree_util.tree_map(lambda a: np.asarray(jax.device_get(a)), state)
+    host = parallel.to_host(state)
+    if not parallel.is_main_process():
+        return
     leaves = jax.tree_util.tree_leaves(host)
     body = {"leaves": {str(i): leaf for i, leaf in enumerate(leaves)},
             "history": None if history is None else history.to_json()}

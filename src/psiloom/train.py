@@ -32,6 +32,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from psiloom import parallel
 from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
@@ -86,6 +87,11 @@ class GroundStateSearch:
             gradient and the SR geometry; the reported energy estimate stays unclipped.
         fast: use the trial state's fast amplitude updates (if it has them) in sampling and
             local energies; ``False`` forces full re-evaluation (same results, slower).
+        mesh: optional :func:`psiloom.parallel.sample_mesh`: spread the chains over its devices
+            (and processes). ``n_chains`` must be divisible by the device count; the chain state
+            is sharded along its leading axis, parameters, optimiser state and key replicated, and
+            the same seed gives the same run on any number of devices. Progress is printed and
+            checkpoints are written by process 0 only.
 
     The pure functions behind it are in ``self.vmc`` (:func:`psiloom.vmc.vmc`).
     """
@@ -94,7 +100,7 @@ class GroundStateSearch:
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
                  n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
-                 fast: bool = True):
+                 fast: bool = True, mesh=None):
         if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         if n_samples % sampler.n_chains:
@@ -106,6 +112,9 @@ class GroundStateSearch:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
         if energy_clip is not None:
             clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
+        if mesh is not None:  # chains split evenly over the devices
+            parallel.check_divisible("n_chains", sampler.n_chains, mesh)
+        self.mesh = mesh
         self.model = model
         self.hamiltonian = hamiltonian
         self.sampler = sampler
@@ -118,17 +127,44 @@ class GroundStateSearch:
         self.vmc = vmc(model, hamiltonian, sampler, optimizer, self.n_samples, chunk=self.chunk,
                        energy_clip=energy_clip, fast=self.fast)
         self._phases = None  # separately compiled phases, built by profile_step on first use
-        self._step = jax.jit(self.vmc.step)
+        self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
         self._multi = {}  # steps_per_visit -> compiled multi_step
         # one compiled evaluation per (n_per_chain, burn-in) pair: evaluate() with many distinct
         # sample counts keeps one program each (jax's cache), each costs a compilation
-        self._eval = jax.jit(self.vmc.evaluate, static_argnums=(3, 4))
+        self._eval = jax.jit(self._evaluate_placed, static_argnums=(3, 4))
         self._template = None
 
     # ---------------------------------------------------------------- state
     def init(self, key: jax.Array, params=None) -> TrainState:
         """Fresh state: parameters (initialised unless given), optimiser state and chains."""
-        return self.vmc.init(key, params)
+        return self.place(self.vmc.init(key, params))
+
+    def place(self, state: TrainState) -> TrainState:
+        """``state`` placed on the mesh: chains sharded along their leading axis, everything else
+        replicated; a no-op without a mesh. Applied by :meth:`init` and by :meth:`run` to a state it
+        is given (e.g. a checkpoint written with another device count)."""
+        if self.mesh is None:
+            return state
+        step, params, opt_state, key = parallel.replicate((state.step, state.params, state.opt_state, state.key),
+                                                          self.mesh)
+        chains = parallel.place_chains(state.chains, self.mesh, self.sampler.n_chains)
+        return TrainState(step, params, opt_state, chains, key)
+
+    def _constrain(self, state: TrainState, *outputs):
+        """Inside jit: keep the state's placement (chains sharded), other outputs replicated."""
+        if self.mesh is None:
+            return (state, *outputs)
+        step, params, opt_state, key, outputs = parallel.constrain_replicated(
+            (state.step, state.params, state.opt_state, state.key, outputs), self.mesh)
+        chains = parallel.constrain_chains(state.chains, self.mesh, self.sampler.n_chains)
+        return (TrainState(step, params, opt_state, chains, key), *outputs)
+
+    def _evaluate_placed(self, params, chains, key, n_per_chain, burn_in):
+        est, acc, chains = self.vmc.evaluate(params, chains, key, n_per_chain, burn_in)
+        if self.mesh is None:
+            return est, acc, chains
+        est, acc = parallel.constrain_replicated((est, acc), self.mesh)
+        return est, acc, parallel.constrain_chains(chains, self.mesh, self.sampler.n_chains)
 
     def n_parameters(self, state: TrainState) -> int:
         return count_real_parameters(state.params)
@@ -149,13 +185,23 @@ class GroundStateSearch:
     # ---------------------------------------------------------------- one step
     def step(self, state: TrainState) -> tuple[TrainState, StepOutput]:
         """One compiled optimisation step (unguarded: non-finite values are returned as they are)."""
-        return self._step(state)
+        with parallel.mesh_context(self.mesh):  # traces see the mesh (per-device host callbacks)
+            return self._step(state)
 
     def _advance(self, steps_per_visit: int):
         if steps_per_visit not in self._multi:
-            self._multi[steps_per_visit] = jax.jit(lambda s, n: self.vmc.multi_step(s, n, steps_per_visit))
+            def multi(s, n):
+                state, *rest = self.vmc.multi_step(s, n, steps_per_visit)
+                return self._constrain(state, *rest)
+
+            self._multi[steps_per_visit] = jax.jit(multi)
         multi = self._multi[steps_per_visit]
-        return lambda state, n: multi(state, jnp.int32(n))
+
+        def advance(state, n):
+            with parallel.mesh_context(self.mesh):
+                return multi(state, jnp.int32(n))
+
+        return advance
 
     def profile_step(self, state: TrainState, repeat: int = 3) -> dict[str, float]:
         """Wall-clock seconds of the phases of one step from ``state`` (the state is not advanced).
@@ -174,6 +220,10 @@ class GroundStateSearch:
         """
         if isinstance(repeat, bool) or not isinstance(repeat, (int, np.integer)) or repeat < 1:
             raise ValueError(f"repeat must be a positive integer, got {repeat!r}")
+        with parallel.mesh_context(self.mesh):  # traces see the mesh (per-device host callbacks)
+            return self._profile_phases(state, int(repeat))
+
+    def _profile_phases(self, state: TrainState, repeat: int) -> dict[str, float]:
         if self._phases is None:
             p = self.vmc.phases
             self._phases = (jax.jit(p.sampling, static_argnums=(3,)), jax.jit(p.local_energy),
@@ -188,7 +238,7 @@ class GroundStateSearch:
         _, grad, e_used = jax.block_until_ready(calls["gradient"]())
         calls["solve"] = lambda: solve(state.params, state.opt_state, grad, x, e_used)
         jax.block_until_ready(calls["solve"]())
-        calls["step"] = lambda: self._step(state)
+        calls["step"] = lambda: self.step(state)
         jax.block_until_ready(calls["step"]())
         best = {}
         for name, call in calls.items():
@@ -225,7 +275,8 @@ class GroundStateSearch:
         """
         chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
                                                                     fold=7)
-        est, acc, _ = self._eval(state.params, chains, key, n_per_chain, burn_in)
+        with parallel.mesh_context(self.mesh):
+            est, acc, _ = self._eval(state.params, chains, key, n_per_chain, burn_in)
         return est, float(acc)
 
     def evaluation_inputs(self, state: TrainState, n_samples: int, key=None, burn_in_sweeps: int = 0, starts=None,
@@ -355,6 +406,7 @@ class GroundStateSearch:
                 if history is not None:
                     history.truncate(int(state.step))
                 self.check_resumable(state, history)
+                state = self.place(state)  # e.g. a checkpoint written with another device count
         except BaseException:
             if writer is not None:
                 writer.lock.release()
@@ -365,7 +417,7 @@ class GroundStateSearch:
         if profile_every:
             all_hooks.append(Profiler(lambda s: {k: v for k, v in self.profile_step(s, repeat=1).items()
                                                  if k in self.PHASES}, profile_every))
-        if progress:
+        if progress and parallel.is_main_process():  # one process prints
             all_hooks.append(ProgressPrinter(None if progress is True else progress, print_every))
         if callback is not None:
             all_hooks.append(Callback(callback))

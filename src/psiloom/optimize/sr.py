@@ -38,6 +38,22 @@ Solvers (the ``solver`` option; all give the same δ up to rounding or the CG to
     ``"sample_space"`` when the parameters outnumber the rows of X, else ``"dense"`` (decided
     from static shapes at trace time).
 
+Sharded samples (``GroundStateSearch(mesh=...)``, :mod:`psiloom.parallel`): the rows of X live
+on the device that holds their samples; parameters, F and δ are replicated. XLA's partitioner then
+communicates as follows (read off the compiled programs on 4 simulated devices):
+
+* ``"dense"``: each device forms its partial X_dᵀX_d, one all-reduce of the P×P matrix (plus the
+  P-vector of the force); every device factorises S and solves, redundantly.
+* ``"sample_space"``: XXᵀ couples all samples, so X (n×P) is all-gathered and the n×n Gram matrix
+  is factorised on every device (the Cholesky factorisation is not partitioned); Xᵀ(…) ends in an
+  all-reduce of a P-vector. Cheap to communicate only while n·P is small, as it is where this
+  solver wins (P ≫ n is about compute, and X is needed whole).
+* ``"cg"``: per iteration, the jvp is local, the centring all-reduces 1-2 block means and the vjp
+  all-reduces one P-vector (Xᵀu summed over devices); the CG vector updates are replicated.
+
+The trust radius and the relative shift add one all-reduce each (a scalar, a P-vector). All three
+give the same δ on any number of devices up to the order of additions (``tests/test_parallel.py``).
+
 Trust radius (``max_metric_norm``, optional): a step whose length in the metric,
 ‖δ‖_S = (δᵀ S δ)^{1/2}, exceeds a bound r is shortened to it, δ ← δ · r/‖δ‖_S (a trust region in
 the Fubini-Study metric; the direction is unchanged). To first order the step moves ψ by

@@ -55,6 +55,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom import parallel
+
+
 def _user_cache_dir() -> str:
     base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
     return os.path.join(base, "psiloom", "numba")
@@ -274,14 +277,10 @@ def _limit_message(limit):
 
 
 def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, log_u, arrays):
-    """The one host callback: ``(xs, log_amps, plus, minus, accepted)`` of :func:`run_sweeps`
-    (kept small and separate so that it can be wrapped, e.g. per device shard)."""
-    n_sweeps = positions.shape[0]
-    shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
-              jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
-              jax.ShapeDtypeStruct(plus.shape, plus.dtype),
-              jax.ShapeDtypeStruct(minus.shape, minus.dtype),
-              jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+    """The one host callback: ``(xs, log_amps, plus, minus, accepted)`` of :func:`run_sweeps`.
+
+    With a sample mesh active (:mod:`psiloom.parallel`) every device runs the kernel on its own
+    chains (:func:`psiloom.parallel.per_device`); the accepted counts are summed over devices."""
     kernel = arrays.kernel
     bias = jnp.zeros(kernel.shape[0], kernel.dtype) if arrays.visible_bias is None else arrays.visible_bias
     d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
@@ -290,9 +289,22 @@ def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, 
         field = field + jnp.abs(arrays.hidden_bias)
     bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None]]).astype(kernel.dtype)
     tables = jnp.stack([arrays.rise, arrays.fall])
-    return jax.pure_callback(
-        lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp, positions, log_u,
-        tables, bias_and_bounds, vmap_method="sequential")
+    n_sweeps = positions.shape[0]
+
+    def call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):  # one device's chains
+        shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
+                  jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
+                  jax.ShapeDtypeStruct(plus.shape, plus.dtype),
+                  jax.ShapeDtypeStruct(minus.shape, minus.dtype),
+                  jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+        return jax.pure_callback(
+            lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp, positions, log_u,
+            tables, bias_and_bounds, vmap_method="sequential")
+
+    per_chain_positions = 2 if positions.shape[2] == x.shape[0] and x.shape[0] > 1 else None
+    call = parallel.per_device(call, in_axes=(0, 0, 0, 0, per_chain_positions, 2, None, None),
+                               out_axes=(1, 1, 0, 0, "sum"))
+    return call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds)
 
 
 def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
