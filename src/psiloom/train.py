@@ -319,9 +319,10 @@ class GroundStateSearch:
         space = self.sampler.space
         x = getattr(state.chains, "x", None)
         if not problems and x is not None and hasattr(space, "contains") and getattr(space, "total_sz", None) is not None:
-            inside = np.asarray(space.contains(np.asarray(x)))
+            x = parallel.to_host(x)  # whole chains on every process (a collective when spread)
+            inside = np.asarray(space.contains(x))
             if not inside.all():
-                sz = 0.5 * np.sum(np.asarray(x)[~inside][0])
+                sz = 0.5 * np.sum(x[~inside][0])
                 problems.append(f"magnetisation sector: chains have total_sz={sz:g}, this space has "
                                 f"total_sz={space.total_sz:g}")
         if history is not None and len(history):
