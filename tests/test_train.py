@@ -267,3 +267,28 @@ def test_dispersed_starts_reject_the_wrong_magnetisation(search, start):
     four_up = np.where(np.arange(L) <= L // 2, 1.0, -1.0)  # spins ±1 but total Sz = 1, not 0
     with pytest.raises(ValueError, match="starts row 0 is not a configuration"):
         search.evaluate(start, 64, starts=four_up)
+
+
+def test_measure_matches_the_exact_state_vector(search):
+    """``measure`` on a state with random parameters agrees with ⟨v|O|v⟩ of the same state's exact
+    vector (full enumeration of the Sᶻ = 0 sector) within 5 error bars (5σ: common practice)."""
+    state = search.init(jax.random.PRNGKey(3))
+    m_s = pl.operators.staggered_magnetization_z(pl.lattices.chain(L))
+    ops = {"nn": pl.operators.spin_correlation(L, 0, 1), "far": pl.operators.spin_correlation(L, 0, 3),
+           "m_s2": m_s * m_s}
+    out = search.measure(state, ops, n_samples=4096, burn_in_sweeps=4)
+    assert set(out) == set(ops)
+    space = search.sampler.space
+    vector = pl.exact.state_vector(search.vmc.bind(state.params), space)
+    for name, op in ops.items():
+        exact = pl.exact.expectation(op, vector, space)
+        est = out[name]
+        assert abs(float(np.real(est.mean)) - exact) < 5 * float(est.error) + 1e-12, (name, est, exact)
+
+
+def test_measure_and_evaluate_say_when_samples_are_rounded(search):
+    state = search.init(jax.random.PRNGKey(3))
+    with pytest.warns(UserWarning, match="n_samples=60 is not a multiple of n_chains=8: 64 samples"):
+        search.evaluate(state, n_samples=60)
+    with pytest.raises(ValueError, match="observables"):
+        search.measure(state, {}, n_samples=64)

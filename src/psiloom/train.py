@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import os
 import time
+import warnings
 from typing import Callable
 
 import jax
@@ -133,6 +134,7 @@ class GroundStateSearch:
         # sample counts keeps one program each (jax's cache), each costs a compilation
         self._eval = jax.jit(self._evaluate_placed, static_argnums=(3, 4))
         self._template = None
+        self._draw = None  # compiled sampling pass of measure(), built on first use
 
     # ---------------------------------------------------------------- state
     def init(self, key: jax.Array, params=None) -> TrainState:
@@ -279,6 +281,35 @@ class GroundStateSearch:
             est, acc, _ = self._eval(state.params, chains, key, n_per_chain, burn_in)
         return est, float(acc)
 
+    def measure(self, state: TrainState, observables, n_samples: int, key: jax.Array | None = None,
+                burn_in_sweeps: int = 0, starts=None, chunk: int | None = None) -> dict:
+        """Expectation values with error bars of named observables in the trained state.
+
+        One evaluation pass at fixed parameters (the chains continue from ``state``, as in
+        :meth:`evaluate`), then every operator of ``observables`` (a mapping name -> operator
+        with local values, e.g. a :class:`~psiloom.operators.PauliSum`) is estimated on the same
+        samples: ⟨O⟩ = mean over x ~ |ψ|² of O_loc(x) = Σ_x' O_{x x'} ψ(x')/ψ(x), with the error
+        bar, τ and R̂ of :func:`psiloom.stats.estimate` (see
+        :func:`psiloom.operators.observables.measure`). Returns ``{name: Estimate}``.
+
+        Operators follow the Hamiltonian's basis: for a state trained with a Marshall-rotated
+        Hamiltonian (``sign_rule=True``) pass operators rotated the same way (e.g. the
+        correlation operators of :func:`psiloom.operators.observables.correlation_operators`
+        with ``sign_rule=True``); diagonal operators need no rotation.
+        """
+        from psiloom.operators.observables import measure as measure_local
+
+        if not hasattr(observables, "items") or not len(observables):
+            raise ValueError(f"observables must be a non-empty mapping name -> operator, got {observables!r}")
+        chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
+                                                                    fold=13)
+        if self._draw is None:
+            self._draw = jax.jit(lambda p, c, k, n, b: self.vmc.draw(p, c, k, n, b)[:2], static_argnums=(3, 4))
+        with parallel.mesh_context(self.mesh):
+            xs, logs = self._draw(state.params, chains, key, n_per_chain, burn_in)
+        xs, logs = parallel.to_host((xs, logs))
+        return measure_local(self.vmc.bind(state.params), dict(observables), xs, logs, chunk=chunk)
+
     def evaluation_inputs(self, state: TrainState, n_samples: int, key=None, burn_in_sweeps: int = 0, starts=None,
                           fold: int = 7):
         """Validated inputs of an evaluation pass: ``(chains, key, n_per_chain, burn_in)``; the
@@ -288,6 +319,10 @@ class GroundStateSearch:
             raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
         burn_in = _count("burn_in_sweeps", burn_in_sweeps, minimum=0)
         n_per_chain = max(1, -(-int(n_samples) // self.sampler.n_chains))
+        if n_per_chain * self.sampler.n_chains != n_samples:
+            warnings.warn(f"n_samples={n_samples} is not a multiple of n_chains={self.sampler.n_chains}: "
+                          f"{n_per_chain * self.sampler.n_chains} samples are drawn ({n_per_chain} per chain)",
+                          stacklevel=3)
         key = jax.random.fold_in(state.key, fold) if key is None else key
         chains = state.chains
         if starts is not None:
