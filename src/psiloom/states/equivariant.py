@@ -34,6 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 import flax.linen as nn
 
+from psiloom._validation import positive_int
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
 from psiloom.states.rbm import log_two_cosh
 from psiloom.states.symmetric import log_sum_exp_weighted
@@ -48,9 +49,7 @@ def log_cosh(z):
 
 
 def _check_features(name: str, value) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise ValueError(f"{name} must be a positive integer, got {value!r}")
-    return int(value)
+    return positive_int(name, value)
 
 
 def _group_of(symmetry) -> SymmetryGroup:
