@@ -277,6 +277,21 @@ def test_electron_sampler_step_size_is_a_finite_positive_length(step_size):
         pl.electrons.ElectronSampler(pl.electrons.atom("He"), step_size=step_size)
 
 
+OTHER_OPTIONS = {  # each value would pass as a valid one if converted (True → 1, "1" → 1.0)
+    "Mixture weight": ([True, "1", np.array(True)],
+                       lambda v: pl.sampling.Mixture((pl.sampling.single_flip,), (v,))),
+    "spin_parity": ([True, np.True_], lambda v: init_state(pl.states.Symmetrized(
+        pl.states.RBM(), pl.symmetry.translations(pl.lattices.chain(4)), spin_parity=v))),
+}
+
+
+@pytest.mark.parametrize("arg, value", [(a, v) for a, (vs, _) in sorted(OTHER_OPTIONS.items()) for v in vs])
+def test_other_options_refuse_values_that_only_look_valid(arg, value):
+    with pytest.raises((ValueError, TypeError)) as err:
+        OTHER_OPTIONS[arg][1](value)
+    assert arg in str(err.value), str(err.value)
+
+
 # --------------------------------------------------------------------------- NaN at step k
 
 def nan_at_step():
