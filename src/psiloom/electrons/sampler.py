@@ -26,7 +26,6 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
 from psiloom._validation import nonnegative_int, positive_int, positive_real, probability
 from psiloom.electrons.system import Molecule

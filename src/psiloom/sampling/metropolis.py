@@ -54,7 +54,6 @@ from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
 from psiloom._validation import boolean, nonnegative_int, one_of, positive_int
 from psiloom.sampling import base, compiled

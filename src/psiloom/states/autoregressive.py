@@ -35,7 +35,6 @@ from typing import Any
 import flax.linen as nn
 import jax
 import jax.numpy as jnp
-import numpy as np
 
 from psiloom._validation import finite_real, nonnegative_int, positive_int
 from psiloom.states.base import TrialState, default_real_dtype
