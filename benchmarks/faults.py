@@ -209,7 +209,8 @@ def input_probes(fx):
         ("states.TwoBodyJastrow.init", "init_scale", "nonneg", lambda v: init_state(st.TwoBodyJastrow(init_scale=v))),
         ("states.FeedForward.init", "hidden", [(NAN,), (-1.0,), (0.0,), ("2",), 2.0],
          lambda v: init_state(st.FeedForward(hidden=v))),
-        ("states.ChainRuleState.init", "features", "count", lambda v: init_state(st.ChainRuleState(features=v))),
+        # features = 0 is a documented, normalised state (only the direct linear term): not a fault
+        ("states.ChainRuleState.init", "features", "count0", lambda v: init_state(st.ChainRuleState(features=v))),
         ("states.ChainRuleState.init", "total_sz", "sz6", lambda v: init_state(st.ChainRuleState(total_sz=v))),
         ("sampling.MetropolisSampler", "n_chains", "count", lambda v: sampler(smp.MetropolisSampler, n_chains=v)),
         ("sampling.MetropolisSampler", "sweep", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]], lambda v: sampler(smp.MetropolisSampler, sweep=v)),

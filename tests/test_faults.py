@@ -115,6 +115,183 @@ def test_molecule_refuses_non_finite_nuclear_positions(position, axis):
         pl.electrons.molecule([("H", [0.0, 0.0, 0.0]), ("H", where)])
 
 
+# ------------------------------------------------------- flags, reals and state attributes
+
+# not a bool: integers (0/1 included: a flag is never a count), floats with NaN, strings,
+# None, lists of bools
+not_a_flag = st.one_of(st.integers(), st.floats(allow_nan=True), st.text(max_size=3), st.none(),
+                       st.lists(st.booleans(), min_size=1, max_size=2))
+
+FLAGS = {
+    "pbc": [lambda v: pl.lattices.chain(6, pbc=v), lambda v: pl.lattices.square(2, 3, pbc=v)],
+    "sign_rule": [lambda v: pl.operators.heisenberg(lattice(), sign_rule=v),
+                  lambda v: pl.operators.j1j2(pl.lattices.square(2, 2), sign_rule=v)],
+    "compiled_sweeps": [lambda v: pl.sampling.MetropolisSampler(space(), compiled_sweeps=v)],
+}
+
+
+@settings(max_examples=60)
+@given(arg=st.sampled_from(sorted(FLAGS)), which=st.integers(0, 1), value=not_a_flag)
+def test_flags_take_only_true_or_false(arg, which, value):
+    build = FLAGS[arg][which % len(FLAGS[arg])]
+    with pytest.raises((ValueError, TypeError)) as err:
+        build(value)
+    assert names(str(err.value), arg), str(err.value)
+
+
+@pytest.mark.parametrize("builder", ["heisenberg", "xxz", "transverse_field_ising", "j1j2",
+                                     "staggered_magnetization_z"])
+@pytest.mark.parametrize("value", [6, "chain", None, (6,)])
+def test_model_builders_name_a_lattice_that_is_not_one(builder, value):
+    with pytest.raises(TypeError, match="lattice"):
+        getattr(pl.operators, builder)(value)
+
+
+# not a finite real >= 0: negative or non-finite floats, bools, strings, complex, lists, None
+not_a_nonnegative_real = st.one_of(
+    st.floats(max_value=-1e-300), st.sampled_from([math.nan, math.inf, -math.inf]),
+    st.booleans(), st.text(max_size=3), st.complex_numbers(min_magnitude=1e-3),
+    st.lists(st.floats(0, 1), min_size=1, max_size=2), st.none(),
+)
+
+
+@settings(max_examples=60)
+@given(arg=st.sampled_from(["shift", "relative_shift", "tol", "atol"]), value=not_a_nonnegative_real)
+def test_sr_refuses_bad_shifts_and_tolerances_naming_them(arg, value):
+    assume(not (arg == "relative_shift" and value is None))  # None: no relative shift
+    solver = "cg" if arg in ("tol", "atol") else "dense"
+    with pytest.raises((ValueError, TypeError)) as err:
+        pl.optimize.stochastic_reconfiguration(solver=solver, **{arg: value})
+    assert names(str(err.value), arg), str(err.value)
+
+
+def test_sr_still_takes_schedules():
+    tx = pl.optimize.stochastic_reconfiguration(shift=lambda count: 1e-2, relative_shift=lambda count: 0.0)
+    assert tx is not None
+
+
+def init_state(model, n_sites=4):
+    return model.init(jax.random.PRNGKey(0), jnp.ones((2, n_sites)))
+
+
+STATE_ATTRIBUTES = {
+    ("RBM", "alpha"): (lambda v: pl.states.RBM(alpha=v), "positive"),
+    ("RBM", "init_scale"): (lambda v: pl.states.RBM(init_scale=v), "nonneg"),
+    ("TwoBodyJastrow", "init_scale"): (lambda v: pl.states.TwoBodyJastrow(init_scale=v), "nonneg"),
+    ("FeedForward", "hidden"): (lambda v: pl.states.FeedForward(hidden=(v,)), "positive"),
+    ("ChainRuleState", "total_sz"): (lambda v: pl.states.ChainRuleState(total_sz=v), "real"),
+    ("ChainRuleState", "features"): (lambda v: pl.states.ChainRuleState(features=v), "count0"),
+}
+not_a_positive_real = st.one_of(not_a_nonnegative_real, st.just(0.0))
+not_a_real = st.one_of(st.sampled_from([math.nan, math.inf, -math.inf]), st.booleans(),
+                       st.text(min_size=1, max_size=3), st.complex_numbers(min_magnitude=1e-3),
+                       st.lists(st.floats(0, 1), min_size=1, max_size=2))
+BAD_BY_KIND = {"positive": not_a_positive_real, "nonneg": not_a_nonnegative_real, "real": not_a_real,
+               "count0": not_a_count0}
+
+
+@settings(max_examples=60, deadline=None)
+@given(target=st.sampled_from(sorted(STATE_ATTRIBUTES)), data=st.data())
+def test_state_attributes_are_checked_at_init_naming_them(target, data):
+    build, kind = STATE_ATTRIBUTES[target]
+    value = data.draw(BAD_BY_KIND[kind])
+    with pytest.raises((ValueError, TypeError)) as err:
+        init_state(build(value))
+    assert names(str(err.value), target[1]) or f"{target[1]}[0]" in str(err.value), str(err.value)
+
+
+def test_state_attributes_survive_clone():
+    model = pl.states.RBM(alpha=2.0).clone(alpha=1.0)
+    assert init_state(model)["params"]["kernel"].shape == (4, 4)
+    with pytest.raises(ValueError, match="alpha"):
+        init_state(pl.states.RBM().clone(alpha=-1.0))
+
+
+def test_zero_site_configurations_are_refused_clearly():
+    with pytest.raises(ValueError, match="at least one site"):
+        pl.states.RBM().init(jax.random.PRNGKey(0), jnp.ones((2, 0)))
+
+
+@settings(max_examples=12, deadline=None)
+@given(model=st.sampled_from(["RBM", "TwoBodyJastrow", "FeedForward"]),
+       m=st.integers(1, 9).filter(lambda m: m != 6))
+def test_a_state_names_the_size_it_was_built_for(model, m):
+    state = getattr(pl.states, model)()
+    variables = init_state(state, 6)
+    with pytest.raises(ValueError, match=f"built for 6 sites, got configurations of {m} sites"):
+        state.apply(variables, jnp.ones((3, m)))
+
+
+@pytest.mark.parametrize("fast", [True, False])
+@pytest.mark.parametrize("m", [5, 7])
+def test_local_energy_names_the_operators_size(fast, m):
+    model = pl.states.TwoBodyJastrow()
+    bound = pl.states.BoundState(model, init_state(model, 6), fast=fast)
+    with pytest.raises(ValueError, match=f"{m} sites.*acts on 6 sites"):
+        pl.operators.local_values(bound, pl.operators.heisenberg(lattice()), jnp.ones((2, m)))
+
+
+class OnePerSite(pl.states.TrialState):
+    """A faulty state: one number per site instead of one per configuration."""
+
+    def log_amplitude(self, x):
+        return 0.1 * x
+
+
+def test_a_state_with_one_value_per_site_is_refused_clearly():
+    with pytest.raises(ValueError, match="one log-amplitude per configuration"):
+        init_state(OnePerSite())
+
+
+def test_samplers_refuse_a_log_amplitude_with_one_value_per_site():
+    def per_site(x):
+        return 0.1 * x
+
+    for smp in (sampler(), pl.sampling.TemperingSampler(space(), n_chains=2, bonds=lattice().bonds)):
+        with pytest.raises(ValueError, match="one log-amplitude per configuration"):
+            smp.init(jax.random.PRNGKey(0), per_site)
+
+
+@given(betas=st.one_of(st.text(max_size=3), st.just([True, False]), st.just([1.0, 0.5j]),
+                       st.just(["1", "0.5"]), st.just([1.0, None])))
+def test_tempering_betas_must_be_real_numbers(betas):
+    with pytest.raises((ValueError, TypeError), match="beta"):
+        pl.sampling.TemperingSampler(space(), betas=betas)
+
+
+@given(spin=st.integers(max_value=-1))
+def test_atom_spin_is_never_negative(spin):
+    with pytest.raises(ValueError, match="spin"):
+        pl.electrons.atom("Li", spin=spin)
+
+
+@pytest.mark.parametrize("symbol", [None, [3], 1j])
+def test_atom_names_a_symbol_that_is_neither_element_nor_charge(symbol):
+    with pytest.raises((ValueError, TypeError), match="symbol"):
+        pl.electrons.atom(symbol)
+
+
+@given(step_size=not_a_positive_real)
+def test_electron_sampler_step_size_is_a_finite_positive_length(step_size):
+    with pytest.raises((ValueError, TypeError), match="step_size"):
+        pl.electrons.ElectronSampler(pl.electrons.atom("He"), step_size=step_size)
+
+
+OTHER_OPTIONS = {  # each value would pass as a valid one if converted (True → 1, "1" → 1.0)
+    "Mixture weight": ([True, "1", np.array(True)],
+                       lambda v: pl.sampling.Mixture((pl.sampling.single_flip,), (v,))),
+    "spin_parity": ([True, np.True_], lambda v: init_state(pl.states.Symmetrized(
+        pl.states.RBM(), pl.symmetry.translations(pl.lattices.chain(4)), spin_parity=v))),
+}
+
+
+@pytest.mark.parametrize("arg, value", [(a, v) for a, (vs, _) in sorted(OTHER_OPTIONS.items()) for v in vs])
+def test_other_options_refuse_values_that_only_look_valid(arg, value):
+    with pytest.raises((ValueError, TypeError)) as err:
+        OTHER_OPTIONS[arg][1](value)
+    assert arg in str(err.value), str(err.value)
+
+
 # --------------------------------------------------------------------------- NaN at step k
 
 def nan_at_step():

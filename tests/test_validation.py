@@ -75,3 +75,14 @@ def test_finite_complex_and_probability_and_choices():
         v.one_of("solver", "CG", ("dense", "cg"))
     with pytest.raises(ValueError, match="flag"):
         v.one_of("flag", True, (1, -1))  # a bool is not the number 1
+
+
+@settings(max_examples=60)
+@given(value=st.one_of(st.booleans(), st.integers(), st.floats(allow_nan=True), st.text(max_size=3), st.none(),
+                       st.lists(st.booleans(), max_size=2), st.sampled_from([np.True_, np.False_, np.array(True)])))
+def test_boolean_takes_only_true_or_false(value):
+    if isinstance(value, (bool, np.bool_)) or (isinstance(value, np.ndarray) and value.dtype == bool):
+        assert v.boolean("pbc", value) is bool(value)
+    else:
+        with pytest.raises(TypeError, match="pbc must be True or False"):
+            v.boolean("pbc", value)

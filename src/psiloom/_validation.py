@@ -19,7 +19,7 @@ from typing import Any, Iterable
 
 __all__ = [
     "ArgumentTypeError", "integer", "positive_int", "nonnegative_int", "finite_real",
-    "positive_real", "finite_complex", "probability", "one_of",
+    "positive_real", "finite_complex", "probability", "one_of", "boolean",
 ]
 
 
@@ -106,6 +106,16 @@ def probability(name: str, value: Any, closed: bool = False) -> float:
     if not inside:
         interval = "[0, 1]" if closed else "(0, 1)"
         raise ValueError(f"{name} must lie in {interval}, got {value!r}")
+    return value
+
+
+def boolean(name: str, value: Any) -> bool:
+    """``value`` as a ``bool``: only ``True``/``False`` (Python or NumPy), never 0/1, strings or NaN."""
+    if hasattr(value, "ndim") and getattr(value, "ndim") == 0 and hasattr(value, "item") \
+            and getattr(getattr(value, "dtype", None), "kind", None) == "b":
+        value = value.item()
+    if not isinstance(value, bool):
+        raise ArgumentTypeError(f"{name} must be True or False, got {value!r} ({type(value).__name__})")
     return value
 
 

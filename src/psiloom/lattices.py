@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from psiloom._validation import positive_int
+from psiloom._validation import boolean, positive_int
 
 
 def _check_extent(name: str, value) -> int:
@@ -121,7 +121,7 @@ def _build(kind: str, extent: tuple[int, ...], pbc: bool, nn_shifts, nnn_shifts)
 def chain(length: int, pbc: bool = True) -> Lattice:
     """A one-dimensional chain of ``length`` sites (a ring when ``pbc``)."""
     n = _check_extent("length", length)
-    return _build("chain", (n,), bool(pbc), [(1,)], [(2,)])
+    return _build("chain", (n,), boolean("pbc", pbc), [(1,)], [(2,)])
 
 
 def square(lx: int, ly: int | None = None, pbc: bool = True) -> Lattice:
@@ -131,4 +131,4 @@ def square(lx: int, ly: int | None = None, pbc: bool = True) -> Lattice:
     """
     nx = _check_extent("lx", lx)
     ny = nx if ly is None else _check_extent("ly", ly)
-    return _build("square", (nx, ny), bool(pbc), [(1, 0), (0, 1)], [(1, 1), (1, -1)])
+    return _build("square", (nx, ny), boolean("pbc", pbc), [(1, 0), (0, 1)], [(1, 1), (1, -1)])

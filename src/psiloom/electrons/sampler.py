@@ -26,8 +26,8 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
+from psiloom._validation import nonnegative_int, positive_int, positive_real, probability
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
 from psiloom.sampling import base
@@ -63,12 +63,6 @@ def metropolis_update(key, state: WalkerState, log_amplitude: LogAmplitudeFn, el
     return WalkerState(x, log_amp, state.step_size), StepInfo(accept, log_ratio)
 
 
-def _integer(name, value, minimum):
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}")
-    return int(value)
-
-
 class ElectronSampler:
     """Metropolis walkers for an electronic system (see module docstring).
 
@@ -92,23 +86,19 @@ class ElectronSampler:
             raise ValueError(f"system must be a psiloom.electrons.Molecule, got {type(system).__name__}")
         if move not in MOVES:
             raise ValueError(f"unknown move {move!r}; available: {', '.join(MOVES)}")
-        if isinstance(step_size, bool) or not isinstance(step_size, (int, float, np.integer, np.floating)) \
-                or not step_size > 0:
-            raise ValueError(f"step_size must be a positive number (bohr), got {step_size!r}")
-        if not 0.0 < float(target_acceptance) < 1.0:
-            raise ValueError(f"target_acceptance must lie in (0, 1), got {target_acceptance!r}")
-        if not init_width > 0:
-            raise ValueError(f"init_width must be > 0, got {init_width!r}")
+        step_size = positive_real("step_size (bohr)", step_size)
+        target_acceptance = probability("target_acceptance", target_acceptance)
+        init_width = positive_real("init_width (bohr)", init_width)
         self.system = system
         self.space = system
-        self.n_chains = _integer("n_chains", n_chains, 1)
+        self.n_chains = positive_int("n_chains", n_chains)
         self.move = move
         self.step_size = float(step_size)
         n = system.n_electrons
         default_sweep = 10 if move == "all" else 2 * n
-        self.sweep = default_sweep if sweep is None else _integer("sweep", sweep, 1)
-        self.burn_in = _integer("burn_in", burn_in, 0)
-        self.equilibrate = _integer("equilibrate", equilibrate, 0)
+        self.sweep = default_sweep if sweep is None else positive_int("sweep", sweep)
+        self.burn_in = nonnegative_int("burn_in", burn_in)
+        self.equilibrate = nonnegative_int("equilibrate", equilibrate)
         self.target_acceptance = float(target_acceptance)
         self.init_width = float(init_width)
 
@@ -166,7 +156,7 @@ class ElectronSampler:
         Returns ``(samples (T, C, N, 3), log_amps (T, C), state, acceptance)``, the
         acceptance averaged over the stored part.
         """
-        n_per_chain = _integer("n_per_chain", n_per_chain, 1)
+        n_per_chain = positive_int("n_per_chain", n_per_chain)
         state, (xs, logs, acc) = burn_in_and_collect(
             key, state, lambda k, st, i: self._sweep(k, st, log_amplitude), self.burn_in, n_per_chain,
             lambda st, acc: (st.x, st.log_amp, acc), burn_sweep=self._adaptive_sweep(log_amplitude))

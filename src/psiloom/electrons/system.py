@@ -23,7 +23,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom._validation import integer, nonnegative_int, positive_real
+from psiloom._validation import finite_real, integer, nonnegative_int, positive_real
 
 #: bohr per ångström (CODATA 2018: a0 = 0.529177210903 Å; from memory).
 BOHR_PER_ANGSTROM = 1.0 / 0.529177210903
@@ -214,7 +214,7 @@ def _electron_counts(total_z: float, charge: int, spin: int | None) -> tuple[int
         raise ValueError(f"charge {charge} leaves {n} electrons for nuclear charge {total_z:g}")
     if spin is None:
         spin = n % 2
-    spin = integer("spin (= n_up − n_down)", spin)
+    spin = integer("spin (= n_up − n_down)", spin, minimum=0)
     if abs(spin) > n or (n - spin) % 2:
         raise ValueError(
             f"spin {spin} is impossible for {n} electrons: need |spin| <= {n} and n − spin even "
@@ -231,7 +231,9 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
         atoms: pairs of an element symbol (or a positive nuclear charge) and a position.
         units: ``"bohr"`` or ``"angstrom"`` (converted with :data:`BOHR_PER_ANGSTROM`).
         charge: net charge (electrons = Σ Z − charge).
-        spin: n_up − n_down; default the lowest possible (0 or 1).
+        spin: n_up − n_down ≥ 0 (spin-up electrons are the majority by convention; the
+            mirror state with more spin-down electrons has the same energy); default the lowest
+            possible (0 or 1).
         n_up, n_down: give both to set the electron counts directly; a ``charge`` or ``spin``
             given as well must agree with them (``charge = Σ Z − n_up − n_down``,
             ``spin = n_up − n_down``), otherwise ValueError.
@@ -255,7 +257,7 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
             z = float(charge_of(what))
             symbols.append(ELEMENTS[int(z)])
         else:
-            z = float(what)
+            z = finite_real("atom symbol or nuclear charge", what)
             symbols.append(ELEMENTS[int(z)] if z.is_integer() and 0 < z < len(ELEMENTS) else f"Z={z:g}")
         charges.append(z)
         pos = np.asarray(where, dtype=np.float64)
@@ -267,7 +269,7 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
         raise ValueError("give both n_up and n_down, or neither")
     charge = integer("charge", charge)
     if spin is not None:
-        spin = integer("spin (= n_up − n_down)", spin)
+        spin = integer("spin (= n_up − n_down)", spin, minimum=0)  # n_up ≥ n_down by convention
     if n_up is None:
         if np.any(charges_arr <= 0):
             bad = charges_arr[charges_arr <= 0][0]

@@ -124,6 +124,10 @@ def local_values(
     """
     if x.ndim != 2:
         raise ValueError(f"configurations must have shape (n_samples, n_sites), got {x.shape}")
+    n_op = getattr(operator, "n_sites", None)
+    if isinstance(n_op, int) and x.shape[1] != n_op:
+        raise ValueError(f"configurations have {x.shape[1]} sites (shape {tuple(x.shape)}), "
+                         f"but the operator acts on {n_op} sites")
     check_spin_configurations(x)
     fast = fast_updates_of(log_amplitude) if hasattr(operator, "flip_table") else None
     if fast is not None:

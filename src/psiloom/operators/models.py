@@ -19,7 +19,7 @@ import numbers
 
 import numpy as np
 
-from psiloom._validation import finite_real, one_of
+from psiloom._validation import boolean, finite_real, one_of
 from psiloom.lattices import Lattice
 from psiloom.operators.pauli import PauliSum, pauli, total
 
@@ -27,8 +27,20 @@ from psiloom.operators.pauli import PauliSum, pauli, total
 _real = finite_real
 
 
+def _lattice(lattice) -> Lattice:
+    if not isinstance(lattice, Lattice):
+        raise TypeError(f"lattice must be a psiloom Lattice (e.g. chain(6)), got {lattice!r} "
+                        f"({type(lattice).__name__})")
+    return lattice
+
+
+def _sign_rule(sign_rule) -> bool:
+    return boolean("sign_rule", sign_rule)
+
+
 def transverse_field_ising(lattice: Lattice, J: float = 1.0, h: float = 1.0) -> PauliSum:
     """``H = −J Σ_⟨ij⟩ σᶻ_i σᶻ_j − h Σ_i σˣ_i`` (Pauli matrices) on the nearest-neighbour bonds."""
+    lattice = _lattice(lattice)
     J, h = _real("J", J), _real("h", h)
     n = lattice.n_sites
     zz = [pauli(n, "ZZ", b, -J) for b in lattice.bonds]
@@ -55,6 +67,7 @@ def _marshall(lattice: Lattice, bonds) -> np.ndarray:
 
 def xxz(lattice: Lattice, J: float = 1.0, delta: float = 1.0, sign_rule: bool = False) -> PauliSum:
     """``H = J Σ_⟨ij⟩ (Sˣ_iSˣ_j + Sʸ_iSʸ_j + Δ Sᶻ_iSᶻ_j)`` with spin-1/2 operators ``S = σ/2``."""
+    lattice, sign_rule = _lattice(lattice), _sign_rule(sign_rule)
     J, delta = _real("J", J), _real("delta", delta)
     bonds = lattice.bonds
     flip = _marshall(lattice, bonds) if sign_rule else None
@@ -70,6 +83,7 @@ def j1j2(lattice: Lattice, J1: float = 1.0, J2: float = 0.5, sign_rule: bool = F
     """``H = J1 Σ_⟨ij⟩ S_i·S_j + J2 Σ_⟨⟨ij⟩⟩ S_i·S_j`` (spin-1/2 operators; nearest and next-nearest
     neighbour bonds of the lattice). ``sign_rule`` applies the Marshall rotation, which makes
     the J1 part sign-free but *not* the J2 part (next-nearest bonds join the same sublattice)."""
+    lattice, sign_rule = _lattice(lattice), _sign_rule(sign_rule)
     J1, J2 = _real("J1", J1), _real("J2", J2)
     n = lattice.n_sites
     nn, nnn = lattice.bonds, lattice.next_bonds
@@ -85,6 +99,7 @@ def magnetization_z(n_sites: int) -> PauliSum:
 
 def staggered_magnetization_z(lattice: Lattice) -> PauliSum:
     """``Sᶻ_stag = ½ Σ_i (−1)^{sublattice(i)} σᶻ_i`` on a bipartite lattice (spin units)."""
+    lattice = _lattice(lattice)
     if not lattice.is_bipartite:
         raise ValueError(f"staggered magnetisation needs a bipartite lattice; {lattice!r} is not")
     n = lattice.n_sites

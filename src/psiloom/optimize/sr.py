@@ -90,7 +90,7 @@ import optax
 
 from psiloom.optimize.flatten import ravel_real
 from psiloom.reduce import sample_sum
-from psiloom._validation import positive_int, positive_real
+from psiloom._validation import ArgumentTypeError, finite_real, positive_int, positive_real
 
 SOLVERS = ("dense", "sample_space", "cg", "auto")
 
@@ -104,11 +104,12 @@ def _as_schedule(value, name) -> Callable:
     if callable(value):
         return value
     try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a float or a schedule (callable), got {value!r}") from None
-    if not v >= 0:
-        raise ValueError(f"{name} must be >= 0, got {value!r}")
+        v = finite_real(name, value, minimum=0.0)
+    except ArgumentTypeError:
+        raise ArgumentTypeError(
+            f"{name} must be a finite real number >= 0 or a schedule (callable), got {value!r} "
+            f"({type(value).__name__})"
+        ) from None
     return lambda count: v
 
 
@@ -267,8 +268,8 @@ def stochastic_reconfiguration(
     if rel_fn is not None and solver == "cg":
         raise ValueError("relative_shift needs diag(S), which the matrix-free 'cg' solver does not form; "
                          "use solver='dense' or 'sample_space'")
-    if not float(tol) >= 0 or not float(atol) >= 0:
-        raise ValueError(f"tol and atol must be >= 0, got tol={tol!r}, atol={atol!r}")
+    tol = finite_real("tol", tol, minimum=0.0)
+    atol = finite_real("atol", atol, minimum=0.0)
     if maxiter is not None:
         maxiter = positive_int("maxiter", maxiter)
     use_previous = warm_start and solver == "cg"

@@ -52,6 +52,15 @@ class Sampler(Protocol):
                n_per_chain: int) -> tuple[jax.Array, jax.Array, Any, jax.Array]: ...
 
 
+def evaluate_log_amplitudes(log_amplitude: LogAmplitudeFn, x: jax.Array) -> jax.Array:
+    """``log_amplitude(x)`` for a batch ``x`` of shape ``(n, n_sites)``, checked to hold one
+    log-amplitude per configuration (shape ``(n,)``; a ``ValueError`` otherwise). Samplers call
+    it where a chain's log-amplitudes are first produced (``init``/``refresh``)."""
+    from psiloom.states.base import check_log_amplitudes
+
+    return check_log_amplitudes(log_amplitude(x), x, "log_amplitude")
+
+
 def select(accepted: jax.Array, new, old):
     """Per-chain choice between two pytrees whose leaves have the chain axis leading
     (``accepted`` of shape ``(n_chains,)``); ``None`` leaves stay ``None``."""

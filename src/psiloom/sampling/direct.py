@@ -18,7 +18,9 @@ from typing import NamedTuple
 import jax
 import jax.numpy as jnp
 
-from psiloom.sampling.metropolis import ChainState, _positive_int
+from psiloom._validation import positive_int
+from psiloom.sampling.base import evaluate_log_amplitudes
+from psiloom.sampling.metropolis import ChainState
 from psiloom.spaces import SpinSpace
 from psiloom.states.bound import BoundState
 
@@ -37,7 +39,7 @@ class ChainRuleSampler:
 
     def __init__(self, space: SpinSpace, n_chains: int = 16):
         self.space = space
-        self.n_chains = _positive_int("n_chains", n_chains)
+        self.n_chains = positive_int("n_chains", n_chains)
 
     def _check(self, log_amplitude) -> BoundState:
         if not isinstance(log_amplitude, BoundState):
@@ -66,11 +68,11 @@ class ChainRuleSampler:
         """One independent draw per chain (kept only to satisfy the sampler protocol)."""
         log_amplitude = self._check(log_amplitude)
         x = self._draw(key, log_amplitude, self.n_chains)
-        return ChainState(x, log_amplitude(x))
+        return ChainState(x, evaluate_log_amplitudes(log_amplitude, x))
 
     def refresh(self, state: ChainState, log_amplitude) -> ChainState:
         """Recompute the cached log-amplitudes (nothing else depends on the previous draws)."""
-        return ChainState(state.x, log_amplitude(state.x))
+        return ChainState(state.x, evaluate_log_amplitudes(log_amplitude, state.x))
 
     def step(self, key: jax.Array, state: ChainState, log_amplitude: BoundState):
         """A fresh independent draw for every chain: ``(state, DrawInfo)``."""
@@ -83,7 +85,7 @@ class ChainRuleSampler:
 
         Returns ``(samples, log_amps (n_per_chain, n_chains), state, acceptance = 1)``.
         """
-        n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        n_per_chain = positive_int("n_per_chain", n_per_chain)
         log_amplitude = self._check(log_amplitude)
         x = self._draw(key, log_amplitude, n_per_chain * self.n_chains)
         xs = x.reshape(n_per_chain, self.n_chains, x.shape[-1])

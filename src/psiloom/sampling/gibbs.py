@@ -47,7 +47,9 @@ import jax
 import jax.numpy as jnp
 
 from psiloom.reduce import sample_mean
-from psiloom.sampling.metropolis import ChainState, _positive_int
+from psiloom._validation import nonnegative_int, positive_int
+from psiloom.sampling.base import evaluate_log_amplitudes
+from psiloom.sampling.metropolis import ChainState
 from psiloom.spaces import SpinSpace
 from psiloom.states.bound import BoundState
 from psiloom.states.rbm import RBM
@@ -126,9 +128,9 @@ class BlockGibbsSampler:
                 f"total_sz={space.total_sz} fixed: use an unconstrained SpinSpace"
             )
         self.space = space
-        self.n_chains = _positive_int("n_chains", n_chains)
-        self.sweep = _positive_int("sweep", sweep)
-        self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
+        self.n_chains = positive_int("n_chains", n_chains)
+        self.sweep = positive_int("sweep", sweep)
+        self.burn_in = nonnegative_int("burn_in", burn_in)
 
     def _weights(self, log_amplitude) -> RBMWeights:
         weights = rbm_weights(log_amplitude)
@@ -142,11 +144,11 @@ class BlockGibbsSampler:
         """Random starting configurations and their log-amplitudes."""
         self._weights(log_amplitude)
         x = self.space.random(key, self.n_chains)
-        return ChainState(x, log_amplitude(x))
+        return ChainState(x, evaluate_log_amplitudes(log_amplitude, x))
 
     def refresh(self, state: ChainState, log_amplitude) -> ChainState:
         """Recompute the cached log-amplitudes (after the parameters changed)."""
-        return ChainState(state.x, log_amplitude(state.x))
+        return ChainState(state.x, evaluate_log_amplitudes(log_amplitude, state.x))
 
     def step(self, key: jax.Array, state: ChainState, log_amplitude: BoundState):
         """One block Gibbs update per chain: ``(state, GibbsInfo)``."""
@@ -171,7 +173,7 @@ class BlockGibbsSampler:
         Returns ``(samples (n_per_chain, n_chains, N), log_amps (n_per_chain, n_chains), state,
         acceptance)`` with acceptance the fraction of updates that moved a chain.
         """
-        n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        n_per_chain = positive_int("n_per_chain", n_per_chain)
         weights = self._weights(log_amplitude)
         k_burn, k_run = jax.random.split(key)
         x = state.x

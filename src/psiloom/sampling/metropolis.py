@@ -54,8 +54,8 @@ from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
+from psiloom._validation import boolean, nonnegative_int, one_of, positive_int
 from psiloom.sampling import base, compiled
 from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect, sweep_keys
 from psiloom.sampling.moves import Move, OrderedMove, choose_move, draw_entries
@@ -148,14 +148,6 @@ def metropolis_step(move: Move) -> Callable:
     return step
 
 
-def _positive_int(name: str, value, allow_zero: bool = False) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
-        raise ValueError(f"{name} must be an integer, got {value!r}")
-    if value < (0 if allow_zero else 1):
-        raise ValueError(f"{name} must be {'>= 0' if allow_zero else '>= 1'}, got {value}")
-    return int(value)
-
-
 class MetropolisSampler:
     """Metropolis sampler over ``n_chains`` independent chains.
 
@@ -182,15 +174,11 @@ class MetropolisSampler:
     def __init__(self, space: SpinSpace, n_chains: int = 16, move: Move | None = None, bonds=None,
                  sweep: int | None = None, burn_in: int = 0, order: str = "random", compiled_sweeps: bool = True):
         self.space = space
-        self.n_chains = _positive_int("n_chains", n_chains)
-        self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
-        self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
-        if order not in ("random", "sequential"):
-            raise ValueError(f"order must be 'random' or 'sequential', got {order!r}")
-        self.order = order
-        if not isinstance(compiled_sweeps, bool):
-            raise ValueError(f"compiled_sweeps must be True or False, got {compiled_sweeps!r}")
-        self.compiled_sweeps = compiled_sweeps
+        self.n_chains = positive_int("n_chains", n_chains)
+        self.sweep = space.n_sites if sweep is None else positive_int("sweep", sweep)
+        self.burn_in = nonnegative_int("burn_in", burn_in)
+        self.order = one_of("order", order, ("random", "sequential"))
+        self.compiled_sweeps = boolean("compiled_sweeps", compiled_sweeps)
         move = choose_move(space, move, bonds)
         self.ordered = move.ordered(space.n_sites) if order == "sequential" else None
         self.move = move.randomised() if isinstance(move, OrderedMove) else move
@@ -201,11 +189,13 @@ class MetropolisSampler:
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
         """Random valid starting configurations, their log-amplitudes (and fast-update cache)."""
         x = self.space.random(key, self.n_chains)
-        return ChainState(x, log_amplitude(x), attach_cache(x, None, fast_updates_of(log_amplitude)))
+        return ChainState(x, base.evaluate_log_amplitudes(log_amplitude, x),
+                          attach_cache(x, None, fast_updates_of(log_amplitude)))
 
     def refresh(self, state: ChainState, log_amplitude: LogAmplitudeFn) -> ChainState:
         """Recompute the cached log-amplitudes and fast-update cache (after the parameters changed)."""
-        return ChainState(state.x, log_amplitude(state.x), attach_cache(state.x, None, fast_updates_of(log_amplitude)))
+        return ChainState(state.x, base.evaluate_log_amplitudes(log_amplitude, state.x),
+                          attach_cache(state.x, None, fast_updates_of(log_amplitude)))
 
     def step(self, key, state: ChainState, log_amplitude: LogAmplitudeFn):
         """One proposal per chain: ``(state, StepInfo)`` (fast path when available)."""
@@ -281,7 +271,7 @@ class MetropolisSampler:
         and the mean acceptance rate over the stored part. Uses fast updates when
         ``log_amplitude`` offers them (see the module docstring).
         """
-        n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        n_per_chain = positive_int("n_per_chain", n_per_chain)
         fast = fast_updates_of(log_amplitude)  # asked once per call
         state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
         if self._uses_compiled_sweeps(fast, state):

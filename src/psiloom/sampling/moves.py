@@ -35,6 +35,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import positive_real
+
 FLIP, EXCHANGE = "flip", "exchange"  # kinds of entry tables: one site flipped, two sites swapped
 
 
@@ -262,13 +264,7 @@ class Mixture(Move):
                 raise ValueError(f"Mixture component {move!r} is not a move (a psiloom.sampling.Move)")
         probs = []
         for w in weights:
-            try:
-                p = float(w)
-            except (TypeError, ValueError) as err:
-                raise ValueError(f"Mixture weight {w!r} is not a number") from err
-            if not np.isfinite(p) or p <= 0.0:
-                raise ValueError(f"Mixture weights must be finite and > 0, got {w!r}")
-            probs.append(p)
+            probs.append(positive_real("Mixture weight", w))
         total = float(np.sum(probs))
         if abs(total - 1.0) > 1e-9:
             raise ValueError(f"Mixture weights must sum to 1, got {probs} (sum {total})")

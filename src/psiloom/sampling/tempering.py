@@ -42,7 +42,8 @@ import numpy as np
 from psiloom.reduce import sample_mean, sample_sum
 from psiloom.sampling import base
 from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect
-from psiloom.sampling.metropolis import _positive_int, attach_cache, proposal_log_amp
+from psiloom._validation import ArgumentTypeError, nonnegative_int, positive_int, probability
+from psiloom.sampling.metropolis import attach_cache, proposal_log_amp
 from psiloom.sampling.moves import Move, choose_move
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of
@@ -65,19 +66,21 @@ class TemperingInfo(NamedTuple):
 
 def geometric_betas(n_replicas: int, beta_min: float) -> np.ndarray:
     """A geometric ladder β_r = beta_min^{r/(R−1)}, r = 0 … R−1 (β_0 = 1, β_{R−1} = beta_min)."""
-    n_replicas = _positive_int("n_replicas", n_replicas)
-    if not 0.0 < float(beta_min) < 1.0:
-        raise ValueError(f"beta_min must lie in (0, 1), got {beta_min!r}")
+    n_replicas = positive_int("n_replicas", n_replicas)
+    beta_min = probability("beta_min", beta_min)
     if n_replicas == 1:
         return np.ones(1)
-    return float(beta_min) ** (np.arange(n_replicas) / (n_replicas - 1))
+    return beta_min ** (np.arange(n_replicas) / (n_replicas - 1))
 
 
 def _check_betas(betas) -> np.ndarray:
     try:
-        arr = np.asarray(betas, dtype=float).reshape(-1)
-    except (TypeError, ValueError) as err:
-        raise ValueError(f"betas must be a sequence of numbers, got {betas!r}") from err
+        raw = np.asarray(betas)
+    except (TypeError, ValueError) as err:  # ragged nesting
+        raise ArgumentTypeError(f"betas must be a sequence of real numbers, got {betas!r}") from err
+    if raw.dtype.kind not in "iuf":  # strings, bools, complex numbers, None, mixed objects
+        raise ArgumentTypeError(f"betas must be a sequence of real numbers, got {betas!r}")
+    arr = raw.astype(float).reshape(-1)
     if arr.size == 0:
         raise ValueError("betas must hold at least one inverse temperature")
     if not np.all(np.isfinite(arr)) or np.any(arr < 0.0) or np.any(arr > 1.0):
@@ -173,11 +176,11 @@ class TemperingSampler:
     def __init__(self, space: SpinSpace, n_chains: int = 16, betas: Sequence[float] = (1.0, 0.5),
                  move: Move | None = None, bonds=None, sweep: int | None = None, burn_in: int = 0):
         self.space = space
-        self.n_chains = _positive_int("n_chains", n_chains)
+        self.n_chains = positive_int("n_chains", n_chains)
         self.betas = _check_betas(betas)
         self.n_replicas = len(self.betas)
-        self.sweep = space.n_sites if sweep is None else _positive_int("sweep", sweep)
-        self.burn_in = _positive_int("burn_in", burn_in, allow_zero=True)
+        self.sweep = space.n_sites if sweep is None else positive_int("sweep", sweep)
+        self.burn_in = nonnegative_int("burn_in", burn_in)
         self.move = move = choose_move(space, move, bonds)
         self._metropolis = tempered_metropolis_step(move, self.betas)
         self._exchange = replica_exchange(self.betas)
@@ -193,7 +196,7 @@ class TemperingSampler:
         """Independent random configurations for every replica of every chain."""
         r, c = self.n_replicas, self.n_chains
         x = self.space.random(key, r * c)
-        log_amp = log_amplitude(x)
+        log_amp = base.evaluate_log_amplitudes(log_amplitude, x)
         real = jnp.real(log_amp).dtype
         state = TemperingState(
             x.reshape(r, c, *x.shape[1:]), log_amp.reshape(r, c), jnp.zeros((), jnp.int32),
@@ -205,7 +208,7 @@ class TemperingSampler:
         """Recompute the cached log-amplitudes (and fast-update cache) of all replicas."""
         r, c = state.log_amp.shape
         flat = state.x.reshape(r * c, *state.x.shape[2:])
-        state = state._replace(log_amp=log_amplitude(flat).reshape(r, c))
+        state = state._replace(log_amp=base.evaluate_log_amplitudes(log_amplitude, flat).reshape(r, c))
         return self._with_cache(state, fast_updates_of(log_amplitude))
 
     def _step(self, key, state: TemperingState, log_amplitude, fast):
@@ -240,7 +243,7 @@ class TemperingSampler:
         acceptance)``; ``state.acceptance`` and ``state.swap_rate`` hold the per-replica
         acceptance and per-pair exchange rate of the stored part.
         """
-        n_per_chain = _positive_int("n_per_chain", n_per_chain)
+        n_per_chain = positive_int("n_per_chain", n_per_chain)
         fast = fast_updates_of(log_amplitude)  # asked once per call
         state = self._with_cache(state, fast, recompute=False)
 

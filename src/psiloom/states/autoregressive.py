@@ -35,8 +35,8 @@ from typing import Any
 import flax.linen as nn
 import jax
 import jax.numpy as jnp
-import numpy as np
 
+from psiloom._validation import finite_real, nonnegative_int, positive_int
 from psiloom.states.base import TrialState, default_real_dtype
 
 
@@ -59,7 +59,8 @@ def conditional_logits(params, x: jax.Array) -> jax.Array:
 def _check_n_up(n: int, total_sz) -> int | None:
     if total_sz is None:
         return None
-    n_up = n / 2 + float(total_sz)
+    total_sz = finite_real("total_sz", total_sz)
+    n_up = n / 2 + total_sz
     if abs(n_up - round(n_up)) > 1e-12 or not 0 <= round(n_up) <= n:
         raise ValueError(f"total_sz={total_sz!r} is impossible for {n} sites")
     return int(round(n_up))
@@ -136,9 +137,8 @@ class ChainRuleState(TrialState):
 
     def _check(self):
         for name in ("features", "phase_features"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 0:
-                raise ValueError(f"{name} must be a non-negative integer, got {value!r}")
+            nonnegative_int(name, getattr(self, name))
+        finite_real("init_scale", self.init_scale, minimum=0.0)
 
     @nn.compact
     def log_amplitude(self, x):
@@ -193,8 +193,7 @@ class ChainRuleState(TrialState):
     def sample(self, key: jax.Array, n_samples: int):
         """``n_samples`` exact, independent draws from |ψ|², shape ``(n_samples, N)``."""
         self._check()
-        if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
-            raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
+        n_samples = positive_int("n_samples", n_samples)
         params = self._params()
         n = int(params["site_bias"].shape[0])
         dtype = jnp.result_type(float)

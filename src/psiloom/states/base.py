@@ -13,8 +13,11 @@ flattening for stochastic reconfiguration and checkpointing all work on them dir
 
 from __future__ import annotations
 
+import re
+
 import jax
 import jax.numpy as jnp
+import flax.errors
 import flax.linen as nn
 
 
@@ -27,6 +30,38 @@ def default_complex_dtype():
     return jnp.complex128 if jax.config.jax_enable_x64 else jnp.complex64
 
 
+def check_width(x) -> int:
+    """The number of sites of a batch ``x`` (its last axis); ``ValueError`` when it is zero."""
+    n = x.shape[-1]
+    if n < 1:
+        raise ValueError(f"configurations need at least one site, got shape {tuple(x.shape)}")
+    return n
+
+
+def check_log_amplitudes(out, x, who: str = "the trial state"):
+    """``out`` if it holds one log-amplitude per configuration of the batch ``x`` (B, N), i.e.
+    has shape ``(B,)``; a ``ValueError`` otherwise (shapes are static: safe under ``jit``)."""
+    expected = tuple(x.shape[:-1])
+    if tuple(jnp.shape(out)) != expected:
+        raise ValueError(
+            f"{who} must return one log-amplitude per configuration: expected shape {expected} "
+            f"for configurations of shape {tuple(x.shape)}, got {tuple(jnp.shape(out))}"
+        )
+    return out
+
+
+def _built_for(message: str, n: int) -> str:
+    """The number of sites a parameter was made for, read from Flax's shape-mismatch message
+    (the existing shape's entry where the expected shape has ``n``); "another number of" if unclear."""
+    shapes = re.findall(r"shape \(([0-9, ]*)\)", message)
+    if len(shapes) >= 2:
+        expected, existing = ([int(v) for v in s.split(",") if v.strip()] for s in shapes[:2])
+        for want, have in zip(expected, existing):
+            if want == n and have != n:
+                return str(have)
+    return "another number of"
+
+
 class TrialState(nn.Module):
     """Base class: ``__call__(x) = log ψ(x)`` for ``x`` of shape ``(..., n_sites)``."""
 
@@ -34,9 +69,17 @@ class TrialState(nn.Module):
         x = jnp.asarray(x)
         if x.ndim == 0:
             raise ValueError(f"a configuration needs at least one axis, got a scalar of shape {x.shape}")
-        lead, n = x.shape[:-1], x.shape[-1]
-        out = self.log_amplitude(x.reshape(-1, n))
-        return out.reshape(lead)
+        lead, n = x.shape[:-1], check_width(x)
+        flat = x.reshape(-1, n)
+        try:
+            out = self.log_amplitude(flat)
+        except flax.errors.ScopeParamShapeError as err:
+            built = _built_for(str(err), n)
+            raise ValueError(
+                f"trial state {type(self).__name__} was built for {built} sites, got configurations of "
+                f"{n} sites (shape {tuple(x.shape)}): {str(err).split(' (https')[0]}"
+            ) from err
+        return check_log_amplitudes(out, flat, f"trial state {type(self).__name__}").reshape(lead)
 
     def log_amplitude(self, x):  # pragma: no cover - abstract
         """``log ψ`` of a batch ``x`` of shape ``(n_samples, n_sites)``; returns ``(n_samples,)``."""

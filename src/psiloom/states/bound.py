@@ -17,6 +17,8 @@ from typing import Any
 
 import jax
 
+from psiloom._validation import boolean
+
 
 @jax.tree_util.register_pytree_node_class
 class BoundState:
@@ -30,8 +32,7 @@ class BoundState:
     def __init__(self, model, variables: Any, fast: bool = True):
         if not hasattr(model, "apply"):
             raise ValueError(f"BoundState needs a Flax module with .apply, got {model!r}")
-        if not isinstance(fast, bool):
-            raise ValueError(f"fast must be True or False, got {fast!r}")
+        fast = boolean("fast", fast)
         self.model = model
         self.variables = variables
         self.fast = fast

@@ -34,6 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 import flax.linen as nn
 
+from psiloom._validation import finite_real, positive_int
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
 from psiloom.states.rbm import log_two_cosh
 from psiloom.states.symmetric import log_sum_exp_weighted
@@ -48,9 +49,7 @@ def log_cosh(z):
 
 
 def _check_features(name: str, value) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise ValueError(f"{name} must be a positive integer, got {value!r}")
-    return int(value)
+    return positive_int(name, value)
 
 
 def _group_of(symmetry) -> SymmetryGroup:
@@ -77,7 +76,8 @@ class GroupLift(nn.Module):
         if x.ndim != 2 or x.shape[-1] != group.n_sites:
             raise ValueError(f"GroupLift expects configurations (B, {group.n_sites}), got shape {x.shape}")
         dtype = self.param_dtype or default_real_dtype()
-        kernel = self.param("kernel", nn.initializers.variance_scaling(self.init_scale, "fan_in", "normal"),
+        scale = finite_real("init_scale", self.init_scale, minimum=0.0)
+        kernel = self.param("kernel", nn.initializers.variance_scaling(scale, "fan_in", "normal"),
                             (group.n_sites, d), dtype)
         # Σ_i K_id (g⁻¹·x)_i = Σ_j x_j s_g K[g⁻¹(j), d]: gather the kernel (N, G, D) rather
         # than the images of every configuration
@@ -107,7 +107,8 @@ class GroupConv(nn.Module):
         c = f.shape[2]
         dtype = self.param_dtype or default_real_dtype()
         # fan-in of one output: |G| elements × C channels
-        kernel = self.param("kernel", nn.initializers.variance_scaling(self.init_scale, "fan_in", "normal",
+        scale = finite_real("init_scale", self.init_scale, minimum=0.0)
+        kernel = self.param("kernel", nn.initializers.variance_scaling(scale, "fan_in", "normal",
                                                                           in_axis=(0, 1), out_axis=2),
                             (n_el, c, d), dtype)
         table = group.multiplication_table()

@@ -13,7 +13,8 @@ from typing import Any
 import jax.numpy as jnp
 import flax.linen as nn
 
-from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+from psiloom._validation import finite_real
+from psiloom.states.base import TrialState, check_width, default_complex_dtype, default_real_dtype
 
 
 class TwoBodyJastrow(TrialState):
@@ -26,12 +27,13 @@ class TwoBodyJastrow(TrialState):
 
     @nn.compact
     def log_amplitude(self, x):
-        n = x.shape[-1]
+        n = check_width(x)
+        init = nn.initializers.normal(finite_real("init_scale", self.init_scale, minimum=0.0))
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
-        w = self.param("pair", nn.initializers.normal(self.init_scale), (n, n), dtype)
+        w = self.param("pair", init, (n, n), dtype)
         w = jnp.triu(w, k=1)
         xc = x.astype(dtype)
         out = jnp.einsum("bi,ij,bj->b", xc, w, xc)
         if self.one_body:
-            out = out + xc @ self.param("field", nn.initializers.normal(self.init_scale), (n,), dtype)
+            out = out + xc @ self.param("field", init, (n,), dtype)
         return out

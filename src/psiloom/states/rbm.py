@@ -63,7 +63,8 @@ import jax
 import jax.numpy as jnp
 import flax.linen as nn
 
-from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+from psiloom._validation import finite_real, positive_real
+from psiloom.states.base import TrialState, check_width, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates, RBMArrays, log_product
 
 
@@ -130,13 +131,13 @@ class RBM(TrialState):
 
     def hidden_preactivation(self, x):
         """θ(x) = W x + b, shape ``(n_samples, M)`` (kept per chain by fast-update paths)."""
-        n = x.shape[-1]
-        if self.alpha <= 0:
-            raise ValueError(f"alpha must be > 0, got {self.alpha}")
-        m = max(1, int(round(self.alpha * n)))
+        n = check_width(x)
+        alpha = positive_real("alpha", self.alpha)
+        init_scale = finite_real("init_scale", self.init_scale, minimum=0.0)
+        m = max(1, int(round(alpha * n)))
         dtype = self._dtype()
         resolve_cache_dtype(self.cache_dtype, dtype)  # a bad option fails here, not at the first sweep
-        init = nn.initializers.normal(self.init_scale)
+        init = nn.initializers.normal(init_scale)
         kernel = self.param("kernel", init, (n, m), dtype)
         theta = x.astype(dtype) @ kernel
         if self.hidden_bias:
@@ -148,7 +149,8 @@ class RBM(TrialState):
         theta = self.hidden_preactivation(x)
         out = sum_log_two_cosh(theta, axis=-1)
         if self.visible_bias:
-            a = self.param("visible_bias", nn.initializers.normal(self.init_scale), (x.shape[-1],), self._dtype())
+            scale = finite_real("init_scale", self.init_scale, minimum=0.0)
+            a = self.param("visible_bias", nn.initializers.normal(scale), (x.shape[-1],), self._dtype())
             out = out + x.astype(a.dtype) @ a
         return out
 

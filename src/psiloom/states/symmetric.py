@@ -42,6 +42,7 @@ import jax.numpy as jnp
 import numpy as np
 import flax.linen as nn
 
+from psiloom._validation import one_of
 from psiloom.states.base import TrialState
 from psiloom.states.fast import FastUpdates, supports_fast_updates
 from psiloom.symmetry import Sector, SymmetryGroup
@@ -110,8 +111,7 @@ class Symmetrized(TrialState):
         elements, ``(e·x)_j = flips[e] x[perms[e, j]]``: the group's, followed by their
         spin-flipped copies with ``spin_parity``."""
         sec = self._sector()
-        if self.spin_parity not in (None, 1, -1):
-            raise ValueError(f"spin_parity must be None, +1 or -1, got {self.spin_parity!r}")
+        one_of("spin_parity", self.spin_parity, (None, 1, -1))
         group = sec.group
         perms, flips, chi = group.perms, np.asarray(group.flips), np.asarray(sec.characters)
         if self.spin_parity is not None:

@@ -28,6 +28,7 @@ import numpy as np
 import flax.linen as nn
 
 from psiloom.lattices import Lattice
+from psiloom._validation import finite_real, positive_int
 from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates
 from psiloom.states.rbm import rbm_fast_updates, resolve_cache_dtype, sum_log_two_cosh
@@ -74,8 +75,8 @@ class TranslationInvariantRBM(TrialState):
 
     @nn.compact
     def log_amplitude(self, x):
-        if isinstance(self.alpha, bool) or not isinstance(self.alpha, (int, np.integer)) or self.alpha < 1:
-            raise ValueError(f"alpha must be a positive integer (number of filters), got {self.alpha!r}")
+        positive_int("alpha", self.alpha)  # number of filters
+        finite_real("init_scale", self.init_scale, minimum=0.0)
         group = self._group()
         n = x.shape[-1]
         if n != group.n_sites:
