@@ -292,3 +292,18 @@ def test_measure_and_evaluate_say_when_samples_are_rounded(search):
         search.evaluate(state, n_samples=60)
     with pytest.raises(ValueError, match="observables"):
         search.measure(state, {}, n_samples=64)
+
+
+def test_evaluation_programs_are_bounded(search):
+    """Many distinct evaluation sizes keep at most EVALUATION_PROGRAMS compiled passes (the least
+    recently used are dropped), and a kept one is reused, not recompiled."""
+    state = search.init(jax.random.PRNGKey(4))
+    sizes = [8 * k for k in range(1, search.EVALUATION_PROGRAMS + 3)]
+    for n in sizes:
+        search.evaluate(state, n_samples=n)
+    kept = [tag for tag in search._programs if tag[0] == "evaluate"]
+    assert len(search._programs) <= search.EVALUATION_PROGRAMS
+    assert kept[-1] == ("evaluate", sizes[-1] // 8, 0)
+    program = search._program("evaluate", sizes[-1] // 8, 0)
+    search.evaluate(state, n_samples=sizes[-1])
+    assert program._cache_size() == 1

@@ -23,6 +23,7 @@ energy unless ``fast=False``.
 
 from __future__ import annotations
 
+import collections
 import os
 import time
 import warnings
@@ -34,6 +35,7 @@ import numpy as np
 import optax
 
 from psiloom import parallel
+from psiloom._validation import nonnegative_int, positive_int
 from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
@@ -52,13 +54,6 @@ def load_checkpoint(path: str, template, meta: dict | None = None):
     """Read a checkpoint into the structure of ``template`` (see :func:`psiloom.checkpoint.load_checkpoint`;
     :meth:`GroundStateSearch.resume` builds the template and checks the run description)."""
     return _load_checkpoint(path, template, meta)
-
-
-def _count(name: str, value, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        kind = "a positive" if minimum == 1 else "a non-negative"
-        raise ValueError(f"{name} must be {kind} integer, got {value!r}")
-    return int(value)
 
 
 def _check_checkpoint_path(checkpoint) -> None:
@@ -102,12 +97,11 @@ class GroundStateSearch:
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
                  n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
                  fast: bool = True, mesh=None):
-        if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
-            raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
+        positive_int("n_samples", n_samples)
         if n_samples % sampler.n_chains:
             raise ValueError(f"n_samples={n_samples} is not a multiple of the sampler's n_chains={sampler.n_chains}")
         if chunk is not None:
-            _count("chunk", chunk)
+            positive_int("chunk", chunk)
         h_sites, s_sites = getattr(hamiltonian, "n_sites", None), getattr(sampler.space, "n_sites", None)
         if h_sites is not None and s_sites is not None and h_sites != s_sites:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
@@ -130,11 +124,10 @@ class GroundStateSearch:
         self._phases = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
         self._multi = {}  # steps_per_visit -> compiled multi_step
-        # one compiled evaluation per (n_per_chain, burn-in) pair: evaluate() with many distinct
-        # sample counts keeps one program each (jax's cache), each costs a compilation
-        self._eval = jax.jit(self._evaluate_placed, static_argnums=(3, 4))
+        # compiled evaluation passes, one per (kind, n_per_chain, burn-in); the least recently used
+        # beyond EVALUATION_PROGRAMS are dropped, so many distinct sample counts cannot pile up memory
+        self._programs = collections.OrderedDict()
         self._template = None
-        self._draw = None  # compiled sampling pass of measure(), built on first use
 
     # ---------------------------------------------------------------- state
     def init(self, key: jax.Array, params=None) -> TrainState:
@@ -160,6 +153,25 @@ class GroundStateSearch:
             (state.step, state.params, state.opt_state, state.key, outputs), self.mesh)
         chains = parallel.constrain_chains(state.chains, self.mesh, self.sampler.n_chains)
         return (TrainState(step, params, opt_state, chains, key), *outputs)
+
+    EVALUATION_PROGRAMS = 4  # compiled evaluation passes kept (least recently used dropped)
+
+    def _program(self, kind: str, n_per_chain: int, burn_in: int):
+        """The compiled evaluation pass ``(params, chains, key) -> ...`` of one sample count and
+        burn-in: ``"evaluate"`` (energy estimate) or ``"draw"`` (samples and log ψ). Compiled on
+        first use and kept, at most :attr:`EVALUATION_PROGRAMS` of them (dropping a program frees
+        its executable)."""
+        tag = (kind, n_per_chain, burn_in)
+        if tag not in self._programs:
+            if kind == "evaluate":
+                program = jax.jit(lambda p, c, k: self._evaluate_placed(p, c, k, n_per_chain, burn_in))
+            else:
+                program = jax.jit(lambda p, c, k: self.vmc.draw(p, c, k, n_per_chain, burn_in)[:2])
+            self._programs[tag] = program
+            while len(self._programs) > self.EVALUATION_PROGRAMS:
+                self._programs.popitem(last=False)
+        self._programs.move_to_end(tag)
+        return self._programs[tag]
 
     def _evaluate_placed(self, params, chains, key, n_per_chain, burn_in):
         est, acc, chains = self.vmc.evaluate(params, chains, key, n_per_chain, burn_in)
@@ -220,8 +232,7 @@ class GroundStateSearch:
         Also returns ``total`` (their sum) and ``step``: the normal fused step, timed the same
         way (usually a little below ``total``: one program, no intermediate transfers).
         """
-        if isinstance(repeat, bool) or not isinstance(repeat, (int, np.integer)) or repeat < 1:
-            raise ValueError(f"repeat must be a positive integer, got {repeat!r}")
+        repeat = positive_int("repeat", repeat)
         with parallel.mesh_context(self.mesh):  # traces see the mesh (per-device host callbacks)
             return self._profile_phases(state, int(repeat))
 
@@ -262,8 +273,9 @@ class GroundStateSearch:
 
         Returns ``(Estimate, acceptance)``: the energy with its autocorrelation-corrected error
         (τ from the chains, Sokal windowing) and R̂ across chains. ``n_samples`` is rounded up
-        to a multiple of the chain count; each distinct ``(n_samples, burn_in_sweeps)`` compiles
-        its own evaluation program once (kept for reuse), so prefer a few fixed sample counts.
+        to a multiple of the chain count (with a warning); each distinct ``(n_samples,
+        burn_in_sweeps)`` compiles its own evaluation program once, and the
+        :attr:`EVALUATION_PROGRAMS` most recently used are kept for reuse.
 
         ``starts`` (optional, shape ``(k, n_sites)`` with ``1 ≤ k ≤ n_chains``): valid
         configurations that replace the first ``k`` chains before the burn-in, the dispersed
@@ -278,7 +290,7 @@ class GroundStateSearch:
         chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
                                                                     fold=7)
         with parallel.mesh_context(self.mesh):
-            est, acc, _ = self._eval(state.params, chains, key, n_per_chain, burn_in)
+            est, acc, _ = self._program("evaluate", n_per_chain, burn_in)(state.params, chains, key)
         return est, float(acc)
 
     def measure(self, state: TrainState, observables, n_samples: int, key: jax.Array | None = None,
@@ -303,10 +315,8 @@ class GroundStateSearch:
             raise ValueError(f"observables must be a non-empty mapping name -> operator, got {observables!r}")
         chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
                                                                     fold=13)
-        if self._draw is None:
-            self._draw = jax.jit(lambda p, c, k, n, b: self.vmc.draw(p, c, k, n, b)[:2], static_argnums=(3, 4))
         with parallel.mesh_context(self.mesh):
-            xs, logs = self._draw(state.params, chains, key, n_per_chain, burn_in)
+            xs, logs = self._program("draw", n_per_chain, burn_in)(state.params, chains, key)
         xs, logs = parallel.to_host((xs, logs))
         return measure_local(self.vmc.bind(state.params), dict(observables), xs, logs, chunk=chunk)
 
@@ -315,9 +325,8 @@ class GroundStateSearch:
         """Validated inputs of an evaluation pass: ``(chains, key, n_per_chain, burn_in)``; the
         default key is ``fold_in(state.key, fold)``. The one entry point of evaluation passes
         (:meth:`evaluate`, :func:`psiloom.electrons.evaluate_components`)."""
-        if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
-            raise ValueError(f"n_samples must be a positive integer, got {n_samples!r}")
-        burn_in = _count("burn_in_sweeps", burn_in_sweeps, minimum=0)
+        positive_int("n_samples", n_samples)
+        burn_in = nonnegative_int("burn_in_sweeps", burn_in_sweeps)
         n_per_chain = max(1, -(-int(n_samples) // self.sampler.n_chains))
         if n_per_chain * self.sampler.n_chains != n_samples:
             warnings.warn(f"n_samples={n_samples} is not a multiple of n_chains={self.sampler.n_chains}: "
@@ -422,11 +431,11 @@ class GroundStateSearch:
             ``(state, history)``; history rows are 1-based (``step`` = the state's step after
             the update, as in the progress lines).
         """
-        n_steps = _count("n_steps", n_steps, minimum=0)
-        checkpoint_every = _count("checkpoint_every", checkpoint_every)
-        print_every = _count("print_every", print_every)
-        profile_every = _count("profile_every", profile_every, minimum=0)
-        steps_per_visit = print_every if steps_per_visit is None else _count("steps_per_visit", steps_per_visit)
+        n_steps = nonnegative_int("n_steps", n_steps)
+        checkpoint_every = positive_int("checkpoint_every", checkpoint_every)
+        print_every = positive_int("print_every", print_every)
+        profile_every = nonnegative_int("profile_every", profile_every)
+        steps_per_visit = print_every if steps_per_visit is None else positive_int("steps_per_visit", steps_per_visit)
         _check_checkpoint_path(checkpoint)
         if callback is not None and not callable(callback):
             raise ValueError(f"callback must be callable, got {callback!r}")
