@@ -34,9 +34,10 @@ Solvers (the ``solver`` option; all give the same δ up to rounding or the CG to
     jvp and a vjp of the log-amplitude (:meth:`SampleGeometry.s_operator`): neither X nor S is
     formed, memory O(P + n). Options ``tol``, ``atol``, ``maxiter`` and ``warm_start`` (start
     from the previous step's δ). Only the absolute shift is available (diag S needs X).
-``"auto"``
+``"auto"`` (the default)
     ``"sample_space"`` when the parameters outnumber the rows of X, else ``"dense"`` (decided
-    from static shapes at trace time).
+    from static shapes at trace time): the exact solve that is cheaper for the shapes, and one that
+    fits the memory limit (``"cg"`` can be faster still on large states, but stops at its tolerance).
 
 Sharded samples (``GroundStateSearch(mesh=...)``, :mod:`psiloom.parallel`): the rows of X live
 on the device that holds their samples; parameters, F and δ are replicated. XLA's partitioner then
@@ -232,7 +233,7 @@ def _solve_sample_space_diag(x, residual, force, lam):
 
 def stochastic_reconfiguration(
     shift=1e-3,
-    solver: str = "dense",
+    solver: str = "auto",
     *,
     relative_shift=None,
     tol: float = 1e-10,
@@ -246,7 +247,7 @@ def stochastic_reconfiguration(
 
     Args:
         shift: absolute diagonal shift ε ≥ 0, a float or a schedule ``count -> ε``.
-        solver: ``"dense"``, ``"sample_space"``, ``"cg"`` or ``"auto"``.
+        solver: ``"auto"`` (default), ``"dense"``, ``"sample_space"`` or ``"cg"``.
         relative_shift: optional ε_rel ≥ 0 (float or schedule) multiplying diag S
             (``"dense"`` and ``"sample_space"`` only).
         tol, atol: CG stopping rule ‖S̃δ − F‖ ≤ max(tol·‖F‖, atol) (``"cg"`` only).
