@@ -4,7 +4,8 @@ H = J Σ_i S_i · S_{i+1} (spin-1/2 operators, J = 1), L = 20 sites, total Sᶻ 
 The Marshall sign rule makes the ground state positive, so a real RBM suffices.
 The exact energy comes from the Bethe ansatz (Bethe 1931), solved by psiloom.exact.
 
-Run:  python examples/ring_demo.py   (about a minute on two CPU cores)
+Run:  python examples/ring_demo.py   (about 35 s on an idle 2-core CPU, compilation included;
+      two to four times longer when the machine is busy)
 """
 
 import sys
