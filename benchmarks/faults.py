@@ -404,21 +404,6 @@ def run_probes(category: str, args) -> dict:
 
 
 # ------------------------------------------------------------------------------ divergence
-def poisoned_sgd(optax, jax, jnp):
-    """SGD whose update turns NaN at the (1-based) step held in its state (``"at"``, 0 = never);
-    the step is data, so one compiled program serves every k."""
-
-    def init(params):
-        return {"count": jnp.zeros((), jnp.int32), "at": jnp.zeros((), jnp.int32)}
-
-    def update(grads, state, params=None):
-        count = state["count"] + 1
-        nan = jnp.where(count == state["at"], jnp.nan, 0.0)
-        return jax.tree_util.tree_map(lambda g: -0.05 * g + nan, grads), {"count": count, "at": state["at"]}
-
-    return optax.GradientTransformation(init, update)
-
-
 def leaves_equal(jax, np, a, b) -> bool:
     la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
     return len(la) == len(lb) and all(
@@ -429,15 +414,17 @@ def leaves_equal(jax, np, a, b) -> bool:
 def divergence(args, tmp) -> dict:
     fx = _fixtures()
     jax, jnp, np, optax, pl = fx["jax"], fx["jnp"], fx["np"], fx["optax"], fx["pl"]
+    from psiloom.testing import fail_at_step, sgd_failing_at
+
     counts, findings = {k: 0 for k in OUTCOMES}, []
     steps = [2, 5] if args.quick else [2, 3, 4, 5, 7, 8, 11]
     sampler = pl.sampling.MetropolisSampler(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
     search = pl.train.GroundStateSearch(pl.states.RBM(alpha=1.0, init_scale=0.05), fx["ham"], sampler,
-                                        poisoned_sgd(optax, jax, jnp), n_samples=16)
+                                        sgd_failing_at(), n_samples=16)
     for k in steps:
         for spv in (1, 3):
             start = search.init(jax.random.PRNGKey(k))
-            start = start._replace(opt_state={**start.opt_state, "at": jnp.asarray(k, jnp.int32)})
+            start = fail_at_step(start, k)
             good, _ = search.run(k - 1, state=start, progress=False, steps_per_visit=spv)
             path = os.path.join(tmp, f"nan-{k}-{spv}.ckpt")
             what = f"NaN update at step {k} (steps_per_visit={spv})"

@@ -34,8 +34,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import socket
-import subprocess
 import sys
 import time
 
@@ -90,34 +88,21 @@ def worker(args) -> None:
                           "energies": energies, "seconds": seconds, "compile_seconds": compile_seconds}), flush=True)
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("localhost", 0))
-        return s.getsockname()[1]
-
-
 def _launch(common, devices=1, processes=None, timeout=600):
+    from psiloom import parallel
+
     env = dict(os.environ)
     env["PYTHONPATH"] = os.path.join(os.path.dirname(HERE), "src") + os.pathsep + env.get("PYTHONPATH", "")
     base = [sys.executable, os.path.abspath(__file__), "--worker", *common]
     if processes is None:
-        procs = [subprocess.Popen(base + ["--devices", str(devices)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                  text=True, env=env)]
+        runs = parallel.run_local_processes(lambda i: base + ["--devices", str(devices)], 1, timeout, env)
     else:
-        port = str(_free_port())
-        procs = [subprocess.Popen(base + ["--processes", str(processes), "--process-id", str(i), "--port", port],
-                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-                 for i in range(processes)]
-    outs = []
-    try:
-        for p in procs:
-            outs.append(p.communicate(timeout=timeout))
-    finally:
-        for p in procs:
-            if p.poll() is None:
-                p.kill()
-                p.communicate()
-    if any(p.returncode for p in procs):
+        port = str(parallel.free_local_port())
+        runs = parallel.run_local_processes(
+            lambda i: base + ["--processes", str(processes), "--process-id", str(i), "--port", port],
+            processes, timeout, env)
+    outs = [(out, err) for out, err, _ in runs]
+    if any(rc for _, _, rc in runs):
         raise RuntimeError("run failed:\n" + "\n".join(o[1][-2000:] for o in outs))
     return json.loads([line for line in outs[0][0].splitlines() if line.startswith("{")][-1])
 

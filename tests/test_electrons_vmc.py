@@ -37,3 +37,20 @@ def test_short_vmc_run_beats_hartree_fock(name):
     assert energy + 5 * error < hf_limit, (name, energy, error)  # beyond Hartree-Fock
     assert energy > exact - 5 * error, (name, energy, error)  # variational principle
     assert energy - exact < excess, (name, energy, error)
+
+
+def test_parts_built_for_different_molecules_are_refused():
+    """A trial state built for one molecule, trained with the Hamiltonian and sampler of another,
+    is refused by name (it would otherwise sample the wrong electron count or the wrong nuclei)."""
+    he, li, h2 = el.atom("He"), el.atom("Li"), el.molecule([("H", (0, 0, 0)), ("H", (1.4, 0, 0))])
+    model_for = lambda system: el.slater_jastrow(system, neural_jastrow=False)
+    opt = optax.sgd(0.01)
+    with pytest.raises(ValueError, match="different molecules"):
+        pl.train.GroundStateSearch(model_for(he), el.CoulombHamiltonian(li), el.ElectronSampler(li, n_chains=8),
+                                   opt, n_samples=16)
+    with pytest.raises(ValueError, match="different molecules"):
+        pl.train.GroundStateSearch(model_for(h2), el.CoulombHamiltonian(h2),
+                                   el.ElectronSampler(el.molecule([("H", (0, 0, 0)), ("H", (2.0, 0, 0))]), n_chains=8),
+                                   opt, n_samples=16)
+    pl.train.GroundStateSearch(model_for(he), el.CoulombHamiltonian(he), el.ElectronSampler(el.atom("He"), n_chains=8),
+                               opt, n_samples=16)  # equal molecules built twice are the same system

@@ -26,6 +26,7 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 import psiloom as pl
+from psiloom.testing import fail_at_step, sgd_failing_at
 from psiloom.train import GroundStateSearch, NonFiniteError
 
 SRC = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "src")
@@ -294,31 +295,16 @@ def test_other_options_refuse_values_that_only_look_valid(arg, value):
 
 # --------------------------------------------------------------------------- NaN at step k
 
-def nan_at_step():
-    """SGD whose update turns NaN at the (1-based) step held in its state; the step is data, so
-    one compiled program serves every k."""
-
-    def init(params):
-        return {"count": jnp.zeros((), jnp.int32), "at": jnp.zeros((), jnp.int32)}
-
-    def update(grads, state, params=None):
-        count = state["count"] + 1
-        nan = jnp.where(count == state["at"], jnp.nan, 0.0)
-        return jax.tree_util.tree_map(lambda g: -0.05 * g + nan, grads), {"count": count, "at": state["at"]}
-
-    return optax.GradientTransformation(init, update)
-
-
 def leaves_equal(a, b) -> bool:
     la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
     return len(la) == len(lb) and all(np.array_equal(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
 
 
 def test_nan_update_at_step_k_leaves_the_checkpoint_of_step_k_minus_1(tmp_path):
-    run = search(optimizer=nan_at_step())
+    run = search(optimizer=sgd_failing_at())
     for k in (1, 4):
         start = run.init(jax.random.PRNGKey(k))
-        start = start._replace(opt_state={**start.opt_state, "at": jnp.asarray(k, jnp.int32)})
+        start = fail_at_step(start, k)
         path = str(tmp_path / f"nan{k}.ckpt")
         with pytest.raises(NonFiniteError) as err:
             run.run(k + 2, state=start, progress=False, checkpoint=path, checkpoint_every=1, steps_per_visit=1)

@@ -13,13 +13,14 @@ from __future__ import annotations
 
 import json
 import os
-import socket
 import subprocess
 import sys
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pytest
+
+from psiloom import parallel
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 WORKER = os.path.join(HERE, "parallel_worker.py")
@@ -43,33 +44,18 @@ def _worker(*args):
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("localhost", 0))
-        return s.getsockname()[1]
-
-
 def _two_processes(tmp):
     """Two processes of one CPU device each, joined by jax.distributed over localhost (gloo)."""
-    port = _free_port()
+    port = parallel.free_local_port()
     cmd = lambda i: [sys.executable, WORKER, "--process-id", str(i), "--num-processes", "2", "--port", str(port),
-                     "--checks", "train,compiled,global", "--checkpoint", os.path.join(tmp, "two_processes.pkl")]
-    procs = [subprocess.Popen(cmd(i), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())
-             for i in range(2)]
-    outs = []
-    try:
-        for p in procs:
-            outs.append(p.communicate(timeout=TIMEOUT))
-    finally:
-        for p in procs:
-            if p.poll() is None:
-                p.kill()
-                p.communicate()
-    if any(p.returncode for p in procs):
+                     "--checks", "train,compiled,global", "--checkpoint", os.path.join(tmp, "two_processes.ckpt")]
+    runs = parallel.run_local_processes(cmd, 2, TIMEOUT, _env())
+    outs = [(out, err) for out, err, _ in runs]
+    if any(rc for _, _, rc in runs):
         err = "\n".join(o[1][-3000:] for o in outs)
         if "gloo" in err.lower() and "not" in err.lower() and "available" in err.lower():
             return {"skip": "jaxlib was built without gloo CPU collectives: " + err[-500:]}
-        raise AssertionError(f"two-process run failed ({[p.returncode for p in procs]}):\n{err}")
+        raise AssertionError(f"two-process run failed ({[rc for _, _, rc in runs]}):\n{err}")
     if any(line.startswith("{") for line in outs[1][0].splitlines()):
         raise AssertionError(f"process 1 printed results (only process 0 may): {outs[1][0][:500]}")
     return json.loads(outs[0][0].strip().splitlines()[-1])
@@ -193,3 +179,12 @@ def test_one_device_mesh_and_bad_device_requests():
         parallel.sample_mesh(99)
     with pytest.raises(ValueError, match="processes"):
         parallel.sample_mesh(processes=0)
+
+
+def test_local_processes_run_in_rank_order_and_bad_counts_are_refused():
+    runs = parallel.run_local_processes(lambda i: [sys.executable, "-c", f"print({i} * 7)"], 3, timeout=60)
+    assert [(out.strip(), rc) for out, _, rc in runs] == [("0", 0), ("7", 0), ("14", 0)]
+    with pytest.raises(ValueError, match="n_processes"):
+        parallel.run_local_processes(lambda i: [sys.executable, "-c", "pass"], 0, timeout=60)
+    with pytest.raises(ValueError, match="timeout"):
+        parallel.run_local_processes(lambda i: [sys.executable, "-c", "pass"], 1, timeout=-1)

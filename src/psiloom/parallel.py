@@ -355,3 +355,43 @@ def to_host(tree):
         return np.asarray(leaf)
 
     return jax.tree_util.tree_map(one, tree)
+
+
+def free_local_port() -> int:
+    """A TCP port on localhost that is free now (for the coordinator of local processes)."""
+    import socket
+
+    with socket.socket() as sock:
+        sock.bind(("localhost", 0))
+        return sock.getsockname()[1]
+
+
+def run_local_processes(command: Callable[[int], Sequence[str]], n_processes: int, timeout: float,
+                        env: Mapping[str, str] | None = None) -> list[tuple[str, str, int]]:
+    """Start ``command(i)`` for ``i = 0 … n_processes − 1`` on this machine at once (e.g. the
+    processes of one multi-process run, each passed its rank and a common :func:`free_local_port`),
+    wait for all of them (``timeout`` seconds each) and kill whatever is left. Returns
+    ``(stdout, stderr, returncode)`` per process, in rank order; a process killed at the timeout
+    has a negative return code and whatever output it had written."""
+    import subprocess
+
+    from psiloom._validation import positive_int, positive_real
+
+    n_processes = positive_int("n_processes", n_processes)
+    timeout = positive_real("timeout", timeout)
+    procs = [subprocess.Popen(list(command(i)), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                              env=None if env is None else dict(env)) for i in range(n_processes)]
+    outs = []
+    try:
+        for proc in procs:
+            try:
+                outs.append(proc.communicate(timeout=timeout))
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                outs.append(proc.communicate())
+    finally:
+        for proc in procs:
+            if proc.poll() is None:
+                proc.kill()
+                proc.communicate()
+    return [(out, err, proc.returncode) for (out, err), proc in zip(outs, procs)]

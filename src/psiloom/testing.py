@@ -11,6 +11,11 @@ Assertions (plain NumPy, usable with or without hypothesis):
 * :func:`assert_invariant` — ``ψ(g·x) = ψ(x)``;
 * :func:`assert_covariant` — ``ψ(g·x) = χ(g)* ψ(x)`` (psiloom's sector convention).
 
+Fault injection:
+
+* :func:`sgd_failing_at` — plain SGD whose update turns NaN at a chosen step, to test that a
+  run stops cleanly (``NonFiniteError`` naming the step, last good checkpoint kept).
+
 Log-amplitudes are compared as complex numbers modulo ``2πi`` (the phase of ψ is defined only
 modulo 2π) with a tolerance on ``|Δ log ψ|``. Configurations where ψ is negligible (``log|ψ|``
 more than ``floor`` below ``scale``, by default the largest in the batch; e.g. where a sector
@@ -21,9 +26,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from psiloom._validation import positive_int
+from psiloom._validation import nonnegative_int, positive_int
 
-__all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes"]
+__all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes",
+           "sgd_failing_at", "fail_at_step"]
 
 
 def _hypothesis():
@@ -133,3 +139,38 @@ def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e
                      scale: float | None = None) -> None:
     """Assert ``ψ(g·x) = ψ(x)`` (see :func:`assert_covariant` for the arguments)."""
     assert_covariant(model, variables, group, np.ones(len(group)), x, elements, atol, floor, scale)
+
+
+def sgd_failing_at(learning_rate: float = 0.05):
+    """An optax transformation: SGD (update −η g) whose update is NaN at one chosen step.
+
+    The step (1-based: the n-th call of ``update``) is data held in the optimiser state under
+    ``"at"`` (0 = never), so one compiled program serves every choice; set it on a training
+    state with :func:`fail_at_step`. For tests of divergence handling.
+    """
+    import jax
+    import jax.numpy as jnp
+    import optax
+
+    from psiloom._validation import finite_real
+
+    eta = finite_real("learning_rate", learning_rate)
+
+    def init(params):
+        return {"count": jnp.zeros((), jnp.int32), "at": jnp.zeros((), jnp.int32)}
+
+    def update(grads, state, params=None):
+        count = state["count"] + 1
+        nan = jnp.where(count == state["at"], jnp.nan, 0.0)
+        return jax.tree_util.tree_map(lambda g: -eta * g + nan, grads), {"count": count, "at": state["at"]}
+
+    return optax.GradientTransformation(init, update)
+
+
+def fail_at_step(state, step: int):
+    """``state`` (a training state whose optimiser is :func:`sgd_failing_at`) set to fail at
+    ``step`` (1-based; 0 = never)."""
+    import jax.numpy as jnp
+
+    step = nonnegative_int("step", step)
+    return state._replace(opt_state={**state.opt_state, "at": jnp.asarray(step, jnp.int32)})

@@ -56,6 +56,43 @@ def load_checkpoint(path: str, template, meta: dict | None = None):
     return _load_checkpoint(path, template, meta)
 
 
+def _system_key(obj):
+    """``(n_up, n_down, charges, positions)`` of a molecule-like object (duck-typed), else None."""
+    if all(hasattr(obj, a) for a in ("n_up", "n_down", "charges", "positions")):
+        return (int(obj.n_up), int(obj.n_down), tuple(float(v) for v in np.round(np.ravel(obj.charges), 12)),
+                tuple(float(v) for v in np.round(np.ravel(obj.positions), 12)))
+    return None
+
+
+def _systems_in(obj, depth: int = 3) -> set:
+    """The molecules a trial state (or a Hamiltonian, a sampler) was built for: its own
+    ``system`` attribute and those of its sub-modules' fields, ``depth`` levels down."""
+    found = set()
+    key = _system_key(getattr(obj, "system", None))
+    if key is not None:
+        found.add(key)
+    if depth and hasattr(obj, "__dataclass_fields__"):
+        for name in obj.__dataclass_fields__:
+            if name in ("parent", "name", "system"):
+                continue
+            value = getattr(obj, name, None)
+            for item in value if isinstance(value, (tuple, list)) else (value,):
+                if hasattr(item, "__dataclass_fields__") and not isinstance(item, type):
+                    found |= _systems_in(item, depth - 1)
+    return found
+
+
+def _check_same_system(model, hamiltonian, sampler) -> None:
+    """Refuse a trial state, Hamiltonian and sampler built for different molecules (electrons)."""
+    parts = {name: _systems_in(obj) for name, obj in (("trial state", model), ("Hamiltonian", hamiltonian),
+                                                        ("sampler", sampler))}
+    present = {name: keys for name, keys in parts.items() if keys}
+    if len(set().union(*present.values())) > 1 if present else False:
+        described = "; ".join(f"{name}: " + ", ".join(f"n_up={k[0]}, n_down={k[1]}, charges={list(k[2])}"
+                                                      for k in sorted(keys)) for name, keys in present.items())
+        raise ValueError(f"the trial state, Hamiltonian and sampler are built for different molecules ({described})")
+
+
 def _check_checkpoint_path(checkpoint) -> None:
     if checkpoint is None:
         return
@@ -107,6 +144,7 @@ class GroundStateSearch:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
         if energy_clip is not None:
             clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
+        _check_same_system(model, hamiltonian, sampler)
         if mesh is not None:  # chains split evenly over the devices
             parallel.check_divisible("n_chains", sampler.n_chains, mesh)
         self.mesh = mesh

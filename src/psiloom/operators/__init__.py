@@ -13,9 +13,17 @@ from psiloom.operators.models import (
 )
 from psiloom.operators.local import local_values
 from psiloom.operators import observables
+from psiloom.operators.observables import (
+    correlation_operators,
+    energy_statistics,
+    magnetizations,
+    spin_correlations,
+    v_score,
+)
 
 __all__ = [
     "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
     "spin_correlation_component", "staggered_magnetization_z", "transverse_field_ising", "xxz",
-    "local_values", "observables",
+    "local_values", "observables", "correlation_operators", "energy_statistics", "magnetizations",
+    "spin_correlations", "v_score",
 ]
