@@ -188,3 +188,9 @@ def test_local_processes_run_in_rank_order_and_bad_counts_are_refused():
         parallel.run_local_processes(lambda i: [sys.executable, "-c", "pass"], 0, timeout=60)
     with pytest.raises(ValueError, match="timeout"):
         parallel.run_local_processes(lambda i: [sys.executable, "-c", "pass"], 1, timeout=-1)
+
+
+@pytest.mark.parametrize("bad", ["samples", [1, 2], 2])
+def test_a_mesh_that_is_not_a_mesh_is_refused(bad):
+    with pytest.raises(TypeError, match="mesh must be a jax.sharding.Mesh"):
+        parallel.check_mesh(bad)

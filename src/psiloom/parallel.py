@@ -104,6 +104,18 @@ def sample_mesh(devices: Sequence | int | None = None, *, processes: int | None 
     return Mesh(np.array(chosen), (SAMPLE_AXIS,), axis_types=(AxisType.Auto,))
 
 
+def check_mesh(mesh) -> Mesh:
+    """``mesh`` if it is a :class:`jax.sharding.Mesh` with the axis :data:`SAMPLE_AXIS` (as
+    :func:`sample_mesh` builds), else a ``TypeError``/``ValueError`` that says so."""
+    if not isinstance(mesh, Mesh):
+        raise TypeError(f"mesh must be a jax.sharding.Mesh such as psiloom.parallel.sample_mesh(), "
+                        f"got {mesh!r} ({type(mesh).__name__})")
+    if SAMPLE_AXIS not in mesh.shape:
+        raise ValueError(f"mesh must have an axis named {SAMPLE_AXIS!r} (psiloom.parallel.sample_mesh() builds one), "
+                         f"got axes {tuple(mesh.shape)}")
+    return mesh
+
+
 def n_devices(mesh: Mesh | None) -> int:
     """Number of devices along the sample axis (1 without a mesh)."""
     return 1 if mesh is None else int(mesh.shape[SAMPLE_AXIS])

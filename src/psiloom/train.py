@@ -146,7 +146,7 @@ class GroundStateSearch:
             clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
         _check_same_system(model, hamiltonian, sampler)
         if mesh is not None:  # chains split evenly over the devices
-            parallel.check_divisible("n_chains", sampler.n_chains, mesh)
+            parallel.check_divisible("n_chains", sampler.n_chains, parallel.check_mesh(mesh))
         self.mesh = mesh
         self.model = model
         self.hamiltonian = hamiltonian
