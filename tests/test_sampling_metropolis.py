@@ -356,3 +356,14 @@ def test_single_flip_on_constrained_space_raises(n):
     with pytest.raises(ValueError) as err:
         MetropolisSampler(SpinSpace(n, total_sz=0), move=single_flip)
     assert "total_sz=0.0" in str(err.value)
+
+
+def test_bonds_that_never_move_a_site_are_refused():
+    """An exchange over bonds that miss a site would keep that site at its starting value in every
+    chain (a wrong distribution without a word): refused, naming the sites."""
+    space = SpinSpace(6, total_sz=0)
+    with pytest.raises(ValueError, match=r"never moves sites \[4, 5\]"):
+        MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3)])
+    with pytest.raises(ValueError, match=r"never moves sites \[5\]"):
+        MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4)], order="sequential")
+    MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4), (4, 5)])  # an open chain: fine

@@ -103,6 +103,10 @@ class Move:
     def check(self, n_sites: int) -> None:
         """Raise ``ValueError`` unless every proposal stays within ``n_sites`` sites."""
 
+    def moved_sites(self, n_sites: int) -> np.ndarray | None:
+        """The sites some proposal can change (sorted), or ``None`` for all of them."""
+        return None
+
     def entry_table(self, n_sites: int) -> tuple[np.ndarray, str] | None:
         """``(table (P, K) int64, kind)`` when each proposal picks a row of ``table`` uniformly
         per chain by :func:`draw_entries` (kind ``"flip"``: K = 1; ``"exchange"``: K = 2, the two
@@ -170,6 +174,9 @@ class BondExchange(Move):
 
     def check(self, n_sites):
         _check_table(self.array, n_sites, "bond_exchange bonds")
+
+    def moved_sites(self, n_sites):
+        return np.unique(self.array)
 
     def entry_table(self, n_sites):
         return self.array, EXCHANGE
@@ -282,6 +289,10 @@ class Mixture(Move):
         for m in self.components:
             m.check(n_sites)
 
+    def moved_sites(self, n_sites):
+        parts = [m.moved_sites(n_sites) for m in self.components]
+        return None if any(p is None for p in parts) else np.unique(np.concatenate(parts))
+
     def width(self, n_sites):
         return max(m.width(n_sites) for m in self.components)
 
@@ -357,6 +368,9 @@ class OrderedMove(Move):
     def check(self, n_sites):
         _check_table(self.array, n_sites, f"ordered {self.kind} table")
 
+    def moved_sites(self, n_sites):
+        return np.unique(self.array)
+
     def entry_table(self, n_sites):
         return self.array, self.kind
 
@@ -404,4 +418,10 @@ def choose_move(space, move: Move | None = None, bonds=None) -> Move:
             "use an exchange move"
         )
     move.check(space.n_sites)
+    moved = move.moved_sites(space.n_sites)
+    if moved is not None and moved.size < space.n_sites:
+        still = sorted(set(range(space.n_sites)) - set(moved.tolist()))
+        raise ValueError(f"{move!r} never moves sites {still}: the chains would keep their starting values "
+                         "there and sample a wrong distribution; give bonds that touch every site (e.g. "
+                         "lattice.bonds) or use pair_exchange")
     return move
