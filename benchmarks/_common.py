@@ -97,7 +97,7 @@ def lattice_system(
     model: str,
     lattice: str,
     extent: Sequence[int],
-    pbc: bool,
+    periodic: bool,
     units: str,
     **couplings: float,
 ) -> dict:
@@ -117,7 +117,7 @@ def lattice_system(
         "model": model,
         "lattice": lattice,
         "extent": [int(e) for e in extent],
-        "pbc": bool(pbc),
+        "pbc": bool(periodic),
     }
     for name, value in couplings.items():
         system[name] = float(value)

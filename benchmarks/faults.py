@@ -121,7 +121,7 @@ def _fixtures():
 
     fx = {"pl": pl, "jax": jax, "jnp": jnp, "np": np, "optax": optax}
     fx["lat"] = pl.lattices.chain(6)
-    fx["space"] = pl.spaces.SpinSpace(6, total_sz=0)
+    fx["space"] = pl.spaces.SpinSpace(6, magnetisation=0)
     fx["free"] = pl.spaces.SpinSpace(6)
     fx["ham"] = pl.operators.heisenberg(fx["lat"])
     fx["x"] = jnp.array([[1.0, -1.0, 1.0, -1.0, 1.0, -1.0], [1.0, 1.0, -1.0, -1.0, 1.0, -1.0]])
@@ -131,7 +131,7 @@ def _fixtures():
 
 def _search(fx, optimizer=None, **kw):
     pl, optax = fx["pl"], fx["optax"]
-    sampler = pl.sampling.MetropolisSampler(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
+    sampler = pl.sampling.MetropolisChains(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05)) \
         if optimizer is None else optimizer
     args = dict(n_samples=16)
@@ -185,12 +185,12 @@ def input_probes(fx):
     shapes = [np.zeros((0,)), "abc", np.zeros((2, 3, 4)), None, [[1.0, "a"]]]
     finite_or_off = [NAN, -INF, -1.0, 0.0, True, "1", 1 + 1j, [1.0]]  # inf means "no bound" there
     P = [
-        ("lattices.chain", "length", "count", lambda v: pl.lattices.chain(v)),
-        ("lattices.chain", "pbc", "flag", lambda v: pl.lattices.chain(6, pbc=v)),
+        ("lattices.chain", "n_sites", "count", lambda v: pl.lattices.chain(v)),
+        ("lattices.chain", "pbc", "flag", lambda v: pl.lattices.chain(6, periodic=v)),
         ("lattices.square", "lx", "count", lambda v: pl.lattices.square(v, 3)),
         ("lattices.square", "ly", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]], lambda v: pl.lattices.square(3, v)),
         ("spaces.SpinSpace", "n_sites", "count", lambda v: pl.spaces.SpinSpace(v)),
-        ("spaces.SpinSpace", "total_sz", "sz6", lambda v: pl.spaces.SpinSpace(6, total_sz=v)),
+        ("spaces.SpinSpace", "magnetisation", "sz6", lambda v: pl.spaces.SpinSpace(6, magnetisation=v)),
         ("operators.pauli", "n_sites", "count", lambda v: ops.pauli(v, "X", 0)),
         ("operators.pauli", "letters", ["Q", "XX", "", 5, None], lambda v: ops.pauli(6, v, 0)),
         ("operators.pauli", "sites", "site6", lambda v: ops.pauli(6, "X", v)),
@@ -211,13 +211,13 @@ def input_probes(fx):
          lambda v: init_state(st.FeedForward(hidden=v))),
         # features = 0 is a documented, normalised state (only the direct linear term): not a fault
         ("states.ChainRuleState.init", "features", "count0", lambda v: init_state(st.ChainRuleState(features=v))),
-        ("states.ChainRuleState.init", "total_sz", "sz6", lambda v: init_state(st.ChainRuleState(total_sz=v))),
-        ("sampling.MetropolisSampler", "n_chains", "count", lambda v: sampler(smp.MetropolisSampler, n_chains=v)),
-        ("sampling.MetropolisSampler", "sweep", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]], lambda v: sampler(smp.MetropolisSampler, sweep=v)),
-        ("sampling.MetropolisSampler", "burn_in", "count0", lambda v: sampler(smp.MetropolisSampler, burn_in=v)),
-        ("sampling.MetropolisSampler", "order", ["sideways", 3, None], lambda v: sampler(smp.MetropolisSampler, order=v)),
-        ("sampling.MetropolisSampler", "bonds", [[(0, 9)], [(0, 0)], [(0, 1.5)], "01"],
-         lambda v: sampler(smp.MetropolisSampler, bonds=v)),
+        ("states.ChainRuleState.init", "magnetisation", "sz6", lambda v: init_state(st.ChainRuleState(magnetisation=v))),
+        ("sampling.MetropolisChains", "n_chains", "count", lambda v: sampler(smp.MetropolisChains, n_chains=v)),
+        ("sampling.MetropolisChains", "sweep", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]], lambda v: sampler(smp.MetropolisChains, sweep=v)),
+        ("sampling.MetropolisChains", "burn_in", "count0", lambda v: sampler(smp.MetropolisChains, burn_in=v)),
+        ("sampling.MetropolisChains", "order", ["sideways", 3, None], lambda v: sampler(smp.MetropolisChains, order=v)),
+        ("sampling.MetropolisChains", "bonds", [[(0, 9)], [(0, 0)], [(0, 1.5)], "01"],
+         lambda v: sampler(smp.MetropolisChains, bonds=v)),
         ("sampling.BlockGibbsSampler", "n_chains", "count", lambda v: sampler(smp.BlockGibbsSampler, n_chains=v)),
         ("sampling.TemperingSampler", "betas", [(1.0, NAN), (1.0, -0.5), (0.5, 1.0), (1.0, 1.5), (), "1"],
          lambda v: sampler(smp.TemperingSampler, betas=v)),
@@ -233,11 +233,11 @@ def input_probes(fx):
          lambda v: pl.optimize.stochastic_reconfiguration(max_metric_norm=v)),
         ("optimize.stochastic_reconfiguration", "relative_shift", "nonneg",
          lambda v: pl.optimize.stochastic_reconfiguration(relative_shift=v)),
-        ("optimize.clip_local_energies", "width", finite_or_off,
-         lambda v: pl.optimize.clip_local_energies(fx["jnp"].zeros(4), v)),
+        ("optimize.winsorize_local_energies", "width", finite_or_off,
+         lambda v: pl.optimize.winsorize_local_energies(fx["jnp"].zeros(4), v)),
         ("GroundStateSearch", "n_samples", "count", lambda v: _search(fx, n_samples=v)),
         ("GroundStateSearch", "chunk", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]], lambda v: _search(fx, chunk=v)),
-        ("GroundStateSearch", "energy_clip", finite_or_off, lambda v: _search(fx, energy_clip=v)),
+        ("GroundStateSearch", "winsorize", finite_or_off, lambda v: _search(fx, winsorize=v)),
         ("GroundStateSearch.run", "n_steps", "count0", lambda v: run_with(n_steps=v)),
         ("GroundStateSearch.run", "checkpoint_every", "count", lambda v: run_with(checkpoint_every=v)),
         ("GroundStateSearch.run", "print_every", "count", lambda v: run_with(print_every=v)),
@@ -418,7 +418,7 @@ def divergence(args, tmp) -> dict:
 
     counts, findings = {k: 0 for k in OUTCOMES}, []
     steps = [2, 5] if args.quick else [2, 3, 4, 5, 7, 8, 11]
-    sampler = pl.sampling.MetropolisSampler(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
+    sampler = pl.sampling.MetropolisChains(fx["space"], n_chains=4, bonds=fx["lat"].bonds)
     search = pl.train.GroundStateSearch(pl.states.RBM(alpha=1.0, init_scale=0.05), fx["ham"], sampler,
                                         sgd_failing_at(), n_samples=16)
     for k in steps:
@@ -463,7 +463,7 @@ NAN_SAMPLING_CASES = ("kernel:nan", "hidden_bias:nan", "visible_bias:inf", "kern
 def nan_sampling_probes(fx):
     """Sampling an RBM whose parameters hold NaN / inf (or a huge finite weight): the call returns
     its own outcome; a death by signal is counted by the parent."""
-    return [("MetropolisSampler.sample", "params", case, lambda v: nan_sampling(fx, v),
+    return [("MetropolisChains.sample", "params", case, lambda v: nan_sampling(fx, v),
              ("nan", "non-finite", "not finite", "inf", "overflow", "underflow", "bound"))
             for case in NAN_SAMPLING_CASES]
 
@@ -476,7 +476,7 @@ def nan_sampling(fx, case: str):
     value = {"nan": jnp.nan, "inf": jnp.inf, "huge": 1e6}[kind]
     params = dict(variables["params"])
     params[leaf] = params[leaf].at[(0,) * params[leaf].ndim].set(value)
-    sampler = pl.sampling.MetropolisSampler(fx["free"], n_chains=8)
+    sampler = pl.sampling.MetropolisChains(fx["free"], n_chains=8)
     state = sampler.init(jax.random.PRNGKey(3), _bind(fx, model, variables))  # finite state first
     bad = _bind(fx, model, {"params": params})
     state = sampler.refresh(state, bad)
@@ -586,18 +586,18 @@ def resume_mismatch(args, tmp) -> dict:
     search, path, data, state, history = _saved_checkpoint(fx, tmp)
     counts, findings = {k: 0 for k in OUTCOMES}, []
 
-    def other(n_sites=6, total_sz=0, n_chains=4, complex_params=False, alpha=1.0, n_samples=16):
+    def other(n_sites=6, magnetisation=0, n_chains=4, complex_params=False, alpha=1.0, n_samples=16):
         lat = pl.lattices.chain(n_sites)
-        space = pl.spaces.SpinSpace(n_sites, total_sz=total_sz)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains,
-                                                bonds=lat.bonds if total_sz is not None else None)
+        space = pl.spaces.SpinSpace(n_sites, magnetisation=magnetisation)
+        sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains,
+                                                bonds=lat.bonds if magnetisation is not None else None)
         opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
         return pl.train.GroundStateSearch(pl.states.RBM(alpha=alpha, init_scale=0.05, complex_params=complex_params),
                                           pl.operators.heisenberg(lat), sampler, opt, n_samples=n_samples)
 
     cases = [
-        ("sector", dict(total_sz=1), ("total_sz", "sector")),
-        ("free sector", dict(total_sz=None), ("total_sz", "sector")),
+        ("sector", dict(magnetisation=1), ("magnetisation", "sector")),
+        ("free sector", dict(magnetisation=None), ("magnetisation", "sector")),
         ("chain count", dict(n_chains=8), ("chain",)),
         ("n_sites", dict(n_sites=8), ("n_sites", "sites")),
         ("complex", dict(complex_params=True), ("complex",)),

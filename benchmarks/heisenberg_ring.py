@@ -21,9 +21,9 @@ def run(n_sites: int, alpha: float, n_steps: int, n_samples: int, n_chains: int,
         solver: str, seed: int = 0) -> dict:
     with Timer() as timer:
         lattice = pl.lattices.chain(n_sites)
-        space = pl.spaces.SpinSpace(n_sites, total_sz=0)
-        hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, burn_in=4)
+        space = pl.spaces.SpinSpace(n_sites, magnetisation=0)
+        hamiltonian = pl.operators.heisenberg(lattice, marshall_basis=True)
+        sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lattice.bonds, burn_in=4)
         optimizer = optax.chain(
             pl.optimize.stochastic_reconfiguration(
             shift=optax.exponential_decay(0.1, 1, 0.9, end_value=1e-3), solver=solver),
@@ -33,7 +33,7 @@ def run(n_sites: int, alpha: float, n_steps: int, n_samples: int, n_chains: int,
                                             n_samples=n_samples)
         state, _ = search.run(n_steps, key=jax.random.PRNGKey(seed), progress=progress, print_every=50)
         estimate, acceptance = search.evaluate(state, eval_samples, burn_in_sweeps=8)
-    reference = pl.exact.heisenberg_ring_energy(n_sites)
+    reference = pl.reference.heisenberg_ring_energy(n_sites)
     return {
         "benchmark": "heisenberg_ring",
         "system": lattice_system("heisenberg", "chain", [n_sites], True, "spin", J=1.0),

@@ -50,14 +50,14 @@ SANDVIK_1997_PER_SITE = -0.671549  # Heisenberg square lattice 10×10 PBC, SSE Q
 class Rung:
     name: str
     model: str  # "tfim" | "heisenberg" | "j1j2"
-    extent: tuple[int, ...]
+    shape: tuple[int, ...]
     target: float  # relative-error target
     alpha: float = 1.0
     # "rbm" (dense) | "invariant_rbm" (weights shared over space group × spin flip) |
     # "symmetrized" (translation-invariant RBM projected onto the point group × spin flip, A1, p = +1)
     state: str = "rbm"
     complex_params: bool = False
-    sign_rule: bool = True
+    marshall_basis: bool = True
     n_samples: int = 1024
     n_chains: int = 32
     steps: int = 300
@@ -73,7 +73,7 @@ class Rung:
     seed: int = 0
     order: str = "random"  # Metropolis proposal order ("sequential": systematic scan)
     late_samples: tuple[int, int] | None = None  # (from step, samples per step): more samples late in the run
-    energy_clip: float | None = None  # width of the local-energy clipping fed to the gradient (None: off)
+    winsorize: float | None = None  # width of the local-energy clipping fed to the gradient (None: off)
     trust_radius: float | None = None  # SR step length bound in the metric, sqrt(δᵀSδ) (None: off)
     cache_float32: bool = False  # fast-update tables and caches in float32 (parameters stay float64)
 
@@ -121,41 +121,41 @@ def describe_state(rung: Rung, lattice) -> str:
 
 def build(rung: Rung):
     """Hamiltonian, space, sampler, reference energy, its source and the JSON ``system`` object."""
-    if len(rung.extent) == 1:
-        lat = pl.lattices.chain(rung.extent[0])
+    if len(rung.shape) == 1:
+        lat = pl.lattices.chain(rung.shape[0])
         lattice_name = "chain"
     else:
-        lat = pl.lattices.square(*rung.extent)
+        lat = pl.lattices.square(*rung.shape)
         lattice_name = "square"
     n = lat.n_sites
     if rung.model == "tfim":
         J, h = rung.couplings.get("J", 1.0), rung.couplings.get("h", 1.0)
         ham = pl.operators.transverse_field_ising(lat, J, h)
         space = pl.spaces.SpinSpace(n)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, burn_in=4, order=rung.order)
-        ref = pl.exact.tfim_ring_energy(n, J, h)
+        sampler = pl.sampling.MetropolisChains(space, n_chains=rung.n_chains, burn_in=4, order=rung.order)
+        ref = pl.reference.tfim_ring_energy(n, J, h)
         source = "free fermions (Pfeuty 1970), exact for the periodic ring"
-        system = lattice_system("tfim", lattice_name, rung.extent, True, "pauli", J=J, h=h)
+        system = lattice_system("tfim", lattice_name, rung.shape, True, "pauli", J=J, h=h)
         return ham, sampler, ref, source, system, lat
-    space = pl.spaces.SpinSpace(n, total_sz=0)
+    space = pl.spaces.SpinSpace(n, magnetisation=0)
     if rung.model == "heisenberg":
-        ham = pl.operators.heisenberg(lat, sign_rule=rung.sign_rule)
-        system = lattice_system("heisenberg", lattice_name, rung.extent, True, "spin", J=1.0)
+        ham = pl.operators.heisenberg(lat, marshall_basis=rung.marshall_basis)
+        system = lattice_system("heisenberg", lattice_name, rung.shape, True, "spin", J=1.0)
         bonds = lat.bonds
     elif rung.model == "j1j2":
         J2 = rung.couplings.get("J2", 0.5)
-        ham = pl.operators.j1j2(lat, 1.0, J2, sign_rule=rung.sign_rule)
-        system = lattice_system("j1j2", lattice_name, rung.extent, True, "spin", J=1.0, J2=J2)
+        ham = pl.operators.j1j2(lat, 1.0, J2, marshall_basis=rung.marshall_basis)
+        system = lattice_system("j1j2", lattice_name, rung.shape, True, "spin", J=1.0, J2=J2)
         bonds = np.concatenate([lat.bonds, lat.next_bonds])
     else:
         raise ValueError(f"unknown model {rung.model!r}")
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=rung.n_chains, bonds=bonds, burn_in=4, order=rung.order)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=rung.n_chains, bonds=bonds, burn_in=4, order=rung.order)
     if lattice_name == "chain":
-        ref = pl.exact.heisenberg_ring_energy(n)
+        ref = pl.reference.heisenberg_ring_energy(n)
         source = "Bethe ansatz (Bethe 1931), solved numerically"
     elif space.size <= 2_000_000:
         progress(f"{rung.name}: exact diagonalisation in the Sz=0 sector ({space.size} states)")
-        ref, _ = pl.exact.ground_state(ham, space)
+        ref, _ = pl.reference.ground_state(ham, space)
         source = "exact diagonalisation (Lanczos, Sz=0 sector)"
     else:
         ref = SANDVIK_1997_PER_SITE * n
@@ -203,7 +203,7 @@ def run_rung(rung: Rung, mesh=None) -> dict:
 
         def make_search(n_samples):
             return pl.train.GroundStateSearch(model, ham, sampler, opt, n_samples=n_samples, chunk=chunk,
-                                              energy_clip=rung.energy_clip, mesh=mesh)
+                                              winsorize=rung.winsorize, mesh=mesh)
 
         search = make_search(rung.n_samples)
         state = search.init(jax.random.PRNGKey(rung.seed))
@@ -245,14 +245,14 @@ def run_rung(rung: Rung, mesh=None) -> dict:
         "system": system,
         "method": {
             "trial_state": describe_state(rung, lattice),
-            "sign_rule": rung.sign_rule if rung.model != "tfim" else None,
+            "marshall_basis": rung.marshall_basis if rung.model != "tfim" else None,
             "sampler": f"Metropolis {'single flip' if rung.model == 'tfim' else 'exchange'}, {rung.n_chains} chains, "
                        f"{rung.order} order",
             "optimizer": f"SR ({solver}), shift {rung.shift[0]:g}->{rung.shift[1]:g}, "
                          f"sgd lr {rung.lr[0]:g}->{rung.lr[1]:g}"
                          + (f"->{rung.lr[1] * rung.lr_final:g} (cosine)" if rung.lr_final != 1.0 else ""),
             "samples_per_step_late": list(rung.late_samples) if rung.late_samples else None,
-            "energy_clip": rung.energy_clip,
+            "winsorize": rung.winsorize,
             "trust_radius": rung.trust_radius,
             "cache_dtype": "float32" if rung.cache_float32 else "float64",
             "eval_samples": rung.eval_samples,
@@ -299,7 +299,7 @@ FULL = [
     # in 18 min, machine otherwise idle, Neel starts in the evaluation. Seed 1 (to check it was not
     # luck): 1.62e-3 +- 0.11e-3 in 18 min.
     Rung("j1j2_square_4x4", "j1j2", (4, 4), 2e-3, alpha=4, state="symmetrized", complex_params=True,
-         sign_rule=True, n_samples=1024, n_chains=16, steps=800, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
+         marshall_basis=True, n_samples=1024, n_chains=16, steps=800, lr=(0.003, 0.03), warmup=50, lr_final=0.2,
          shift=(1e-2, 1e-2), eval_samples=32768, couplings={"J2": 0.5},
          order="sequential"),
     # alpha=2 (16 chains, 1350 steps, shift 1e-2 -> 1e-3): 1.83e-3 +- 0.04e-3 in 51 min.
@@ -330,7 +330,7 @@ QUICK = [
          lr=(0.03, 0.05), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096),
     Rung("heisenberg_square_4x4", "heisenberg", (4, 4), 1e-2, alpha=2, n_samples=512, n_chains=32, steps=150,
          lr=(0.03, 0.06), warmup=20, shift=(1e-2, 1e-4), shift_decay_steps=80, eval_samples=4096),
-    Rung("j1j2_square_4x4", "j1j2", (4, 4), 6e-2, alpha=1, complex_params=True, sign_rule=False, n_samples=512,
+    Rung("j1j2_square_4x4", "j1j2", (4, 4), 6e-2, alpha=1, complex_params=True, marshall_basis=False, n_samples=512,
          n_chains=32, steps=150, lr=(0.05, 0.1), warmup=20, shift=(3e-2, 1e-3), shift_decay_steps=80,
          eval_samples=4096, couplings={"J2": 0.5}),
 ]

@@ -79,7 +79,7 @@ def exact_ms2(n: int, coupling: float) -> float:
 
 def check_same_target(rbm: BoundState, ar: BoundState, n: int) -> float:
     """max |p_RBM − p_AR| over all 2^N configurations (both normalised by enumeration)."""
-    x = pl.spaces.SpinSpace(n).all_states()
+    x = pl.spaces.SpinSpace(n).configurations()
     log_w = 2.0 * np.asarray(jax.jit(rbm)(x))
     p_rbm = np.exp(log_w - log_w.max())
     p_rbm /= p_rbm.sum()
@@ -135,16 +135,16 @@ def main() -> None:
     if mismatch > 1e-10:
         raise RuntimeError(f"the RBM and chain-rule states differ (max |Δp| = {mismatch:.2e})")
     space = pl.spaces.SpinSpace(n)
-    lattice = pl.lattices.chain(n, pbc=False)
+    lattice = pl.lattices.chain(n, periodic=False)
     key = jax.random.PRNGKey(0)
     # exact draws: every chain starts in equilibrium
     start = jax.jit(lambda v, k: ar.model.apply(v, k, n_chains, method="sample"))(ar.variables, jax.random.PRNGKey(1))
     exchange = pl.sampling.Mixture((pl.sampling.BondExchange(lattice.bonds), pl.sampling.single_flip), (0.5, 0.5))
     methods = [
         ("single_flip", "Metropolis, single flips, one sweep (N proposals) per sample",
-         pl.sampling.MetropolisSampler(space, n_chains), rbm),
+         pl.sampling.MetropolisChains(space, n_chains), rbm),
         ("exchange", "Metropolis, mixture of nn exchange (p=0.5) and single flips (p=0.5), one sweep per sample",
-         pl.sampling.MetropolisSampler(space, n_chains, move=exchange), rbm),
+         pl.sampling.MetropolisChains(space, n_chains, move=exchange), rbm),
         ("tempering", f"parallel tempering, {len(betas)} replicas, geometric betas down to {betas[-1]:.2f}, "
          "single flips, one sweep of every replica + one exchange round per sample",
          pl.sampling.TemperingSampler(space, n_chains, betas=betas), rbm),

@@ -92,7 +92,7 @@ def run_system(name, cfg, laplacian, quick, seed=0):
         lr = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
         search = pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
-                                            optimizer, n_samples=cfg["n_samples"], energy_clip=5.0)
+                                            optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
         state = search.init(key, params=params)
         state, history = search.run(cfg["steps"], state=state, progress=progress, print_every=50)
         parts, acceptance = el.evaluate_components(search, state, cfg["eval_samples"], burn_in_sweeps=10)

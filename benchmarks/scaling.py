@@ -63,10 +63,10 @@ def worker(args) -> None:
 
     mesh = parallel.sample_mesh(processes=args.processes)
     lat = pl.lattices.chain(args.sites)
-    space = pl.spaces.SpinSpace(args.sites, total_sz=0)
+    space = pl.spaces.SpinSpace(args.sites, magnetisation=0)
     # simulated devices: sweeps in JAX (host callbacks there can deadlock XLA's in-process
     # collectives, see psiloom.parallel); one process per core: compiled sweeps
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=args.chains, bonds=lat.bonds, burn_in=1,
+    sampler = pl.sampling.MetropolisChains(space, n_chains=args.chains, bonds=lat.bonds, burn_in=1,
                                             compiled_sweeps=args.process_id is not None)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
     search = pl.train.GroundStateSearch(pl.states.RBM(alpha=1.0, init_scale=0.05), pl.operators.heisenberg(lat),

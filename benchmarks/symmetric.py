@@ -36,11 +36,11 @@ E_6X6_PER_SITE = -0.678872
 def reference_energy(size: int) -> tuple[float, str]:
     if size == 4:
         lat = pl.lattices.square(4)
-        space = pl.spaces.SpinSpace(16, total_sz=0)
-        ham = pl.operators.heisenberg(lat, sign_rule=True)
+        space = pl.spaces.SpinSpace(16, magnetisation=0)
+        ham = pl.operators.heisenberg(lat, marshall_basis=True)
         sector = sym.sector(sym.product(sym.space_group(lat), sym.spin_flip(lat)), (0, 0), "A1", 1)
-        vals, _ = pl.exact.sector_eigenpairs(ham, space, sector)
-        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.exact); -11.2284832 from memory"
+        vals, _ = pl.reference.sector_eigenpairs(ham, space, sector)
+        return float(vals[0]), "ED in the sector k=0, A1, p=+1 (psiloom.reference); -11.2284832 from memory"
     if size == 6:
         return E_6X6_PER_SITE * 36, "Schulz, Ziman & Poilblanc 1996 (from memory)"
     raise ValueError(f"no reference for {size}x{size}")
@@ -50,8 +50,8 @@ def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, 
         learning_rate: float, seed: int = 0, cache_float32: bool = False) -> dict:
     with Timer() as timer:
         lat = pl.lattices.square(size)
-        space = pl.spaces.SpinSpace(size * size, total_sz=0)
-        ham = pl.operators.heisenberg(lat, sign_rule=True)
+        space = pl.spaces.SpinSpace(size * size, magnetisation=0)
+        ham = pl.operators.heisenberg(lat, marshall_basis=True)
         point = sym.point_group(lat)
         if spin_flip:
             point = sym.product(point, sym.spin_flip(lat))
@@ -61,7 +61,7 @@ def run(size: int, alpha: int, n_steps: int, n_samples: int, eval_samples: int, 
         model = pl.states.Symmetrized(base, sector)
         # sequential bond order: the same bond in every chain, so the projected state's fast updates
         # move each image through shared table rows (psiloom.states.symmetric)
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lat.bonds, burn_in=2, order="sequential")
+        sampler = pl.sampling.MetropolisChains(space, n_chains=16, bonds=lat.bonds, burn_in=2, order="sequential")
         # gentle start (common practice): the learning rate rises over 50 steps while the SR shift
         # decays from 1e-2 to 1e-3; from a near-uniform state a full step at once can lock the
         # chains into a few configurations. Then a cosine decay to 0.2 × learning_rate.

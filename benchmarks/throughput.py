@@ -55,7 +55,7 @@ from _common import Timer, emit, lattice_system, parse_args, progress, summary  
 
 L = 100
 ALPHA = 2
-SWEEPS_PER_CALL = 10  # sweeps per MetropolisSampler.sample call (training stores 16+ per call)
+SWEEPS_PER_CALL = 10  # sweeps per MetropolisChains.sample call (training stores 16+ per call)
 
 
 CPU_TIMES: dict[str, float] = {}  # process CPU seconds of the last best_time call per label
@@ -89,7 +89,7 @@ def _cpu_fields(measured: str, baseline: str) -> dict:
 
 def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
     model = RBM(alpha=ALPHA, init_scale=scale)
-    space = pl.spaces.SpinSpace(n_sites, total_sz=0)
+    space = pl.spaces.SpinSpace(n_sites, magnetisation=0)
     variables = model.init(jax.random.PRNGKey(key), space.random(jax.random.PRNGKey(key), 1))
     return model, variables, space
 
@@ -105,7 +105,7 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
                  "jax": (model, True, False, SWEEPS_PER_CALL), "float32": (model32, True, True, SWEEPS_PER_CALL),
                  "one_per_call": (model, True, True, 1)}
         for path, (m, fast, compiled, n_sweeps) in paths.items():
-            sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order,
+            sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lattice.bonds, order=order,
                                                     compiled_sweeps=compiled)
             amp = BoundState(m, variables, fast=fast)
             chains = sampler.init(jax.random.PRNGKey(1), amp)
@@ -152,7 +152,7 @@ def local_energy(n_samples: int, repeat: int) -> dict:
     with Timer() as timer:
         lattice = pl.lattices.chain(L)
         model, variables, space = _rbm(L)
-        hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+        hamiltonian = pl.operators.heisenberg(lattice, marshall_basis=True)
         x = space.random(jax.random.PRNGKey(3), n_samples)
         model32 = model.clone(cache_dtype=jnp.float32)  # same parameters, float32 cache
         times, values = {}, {}
@@ -203,7 +203,7 @@ def sr_solve(n_sites: int, n_samples: int, repeat: int) -> dict:
     with Timer() as timer:
         lattice = pl.lattices.chain(n_sites)
         model, variables, space = _rbm(n_sites, scale=0.05)
-        hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+        hamiltonian = pl.operators.heisenberg(lattice, marshall_basis=True)
         x = space.random(jax.random.PRNGKey(4), n_samples)
         e_loc = hamiltonian.local_energy(BoundState(model, variables), x)
         geometry = pl.optimize.SampleGeometry(model.apply, variables, x, e_loc)

@@ -38,19 +38,19 @@ import psiloom as pl  # noqa: E402
 
 mesh = parallel.sample_mesh(processes=jax.process_count())
 n_devices = parallel.n_devices(mesh)
-lattice = pl.lattices.chain(16, pbc=True)
-space = pl.spaces.SpinSpace(16, total_sz=0)
+lattice = pl.lattices.chain(16, periodic=True)
+space = pl.spaces.SpinSpace(16, magnetisation=0)
 # compiled (host) sweeps with several simulated CPU devices in one process can deadlock XLA's CPU
 # collectives (psiloom.parallel, "Known limit"): keep the sweeps in JAX there
 simulated = jax.local_device_count() > 1 and jax.devices()[0].platform == "cpu"
-sampler = pl.sampling.MetropolisSampler(space, n_chains=16 * n_devices, bonds=lattice.bonds,
+sampler = pl.sampling.MetropolisChains(space, n_chains=16 * n_devices, bonds=lattice.bonds,
                                         compiled_sweeps=not simulated)
 optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.05))
-search = pl.train.GroundStateSearch(pl.states.RBM(alpha=2), pl.operators.heisenberg(lattice, sign_rule=True),
+search = pl.train.GroundStateSearch(pl.states.RBM(alpha=2), pl.operators.heisenberg(lattice, marshall_basis=True),
                                     sampler, optimizer, n_samples=64 * sampler.n_chains, mesh=mesh)
 # every process runs the same program; process 0 prints and writes the checkpoint
 state, history = search.run(args.steps, key=jax.random.PRNGKey(0), checkpoint="spread_ring.ckpt", print_every=20)
 energy, _ = search.evaluate(state, n_samples=16384)
 if parallel.is_main_process():
     print(f"{n_devices} device(s) in {jax.process_count()} process(es): E = {energy}",
-          "exact:", pl.exact.heisenberg_ring_energy(16))
+          "exact:", pl.reference.heisenberg_ring_energy(16))

@@ -83,8 +83,8 @@ def placement_ok(state, search):
 
 def lattice_search(optimizer, model, compiled=False, mesh=MESH, n_chains=N_CHAINS):
     lat = pl.lattices.chain(L)
-    space = pl.spaces.SpinSpace(L, total_sz=0)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lat.bonds, burn_in=1,
+    space = pl.spaces.SpinSpace(L, magnetisation=0)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lat.bonds, burn_in=1,
                                             compiled_sweeps=compiled)
     return GroundStateSearch(model, pl.operators.heisenberg(lat), sampler, optimizer, n_samples=4 * n_chains,
                              mesh=mesh)

@@ -36,9 +36,9 @@ def compiled(model, method=None):
     return _COMPILED[key]
 
 
-def make_state(n_sites, features=3, phase_features=0, total_sz=None, seed=0, scale=0.8):
+def make_state(n_sites, features=3, phase_features=0, magnetisation=None, seed=0, scale=0.8):
     """A ChainRuleState with Gaussian random parameters of standard deviation ``scale``."""
-    model = ChainRuleState(features=features, phase_features=phase_features, total_sz=total_sz)
+    model = ChainRuleState(features=features, phase_features=phase_features, magnetisation=magnetisation)
     shapes = jax.eval_shape(model.init, jax.random.PRNGKey(0), jnp.ones((1, n_sites)))
     rng = np.random.default_rng(seed)
     variables = jax.tree_util.tree_map(lambda s: jnp.asarray(rng.normal(0.0, scale, s.shape)), shapes)
@@ -59,7 +59,7 @@ def test_probabilities_sum_to_one(n_sites, seed):
     # chain rule of probability: a product of normalised conditionals is normalised (the phase
     # network must not change that)
     state = make_state(n_sites, 2, phase_features=2, seed=seed)
-    total = born(state, pl.spaces.SpinSpace(n_sites).all_states()).sum()
+    total = born(state, pl.spaces.SpinSpace(n_sites).configurations()).sum()
     assert total == pytest.approx(1.0, abs=1e-12)
 
 
@@ -67,11 +67,11 @@ def test_probabilities_sum_to_one(n_sites, seed):
 @settings(max_examples=10)
 def test_sector_probabilities_sum_to_one(n_sites, data, seed):
     n_up = data.draw(st.integers(0, n_sites))
-    total_sz = n_up - n_sites / 2
-    state = make_state(n_sites, 2, total_sz=total_sz, seed=seed)
+    magnetisation = n_up - n_sites / 2
+    state = make_state(n_sites, 2, magnetisation=magnetisation, seed=seed)
     # all 2^N configurations at once: the sector sums to one, everything else has p = 0
-    everything = pl.spaces.SpinSpace(n_sites).all_states()
-    inside = pl.spaces.SpinSpace(n_sites, total_sz=total_sz).contains(everything)
+    everything = pl.spaces.SpinSpace(n_sites).configurations()
+    inside = pl.spaces.SpinSpace(n_sites, magnetisation=magnetisation).contains(everything)
     p = born(state, everything)
     assert p[inside].sum() == pytest.approx(1.0, abs=1e-12)
     assert np.all(p[~inside] == 0.0)
@@ -99,7 +99,7 @@ def test_conditionals_are_causal(site, seed):
 
 def test_log_probability_is_twice_the_real_log_amplitude():
     state = make_state(5, 2, phase_features=3, seed=4)
-    x = pl.spaces.SpinSpace(5).all_states()
+    x = pl.spaces.SpinSpace(5).configurations()
     log_amp = state(x)
     assert jnp.iscomplexobj(log_amp)
     np.testing.assert_allclose(np.asarray(state.apply_method("log_probability", x)),
@@ -112,7 +112,7 @@ def test_log_probability_is_twice_the_real_log_amplitude():
 def chi_square_pvalue(samples, space, probs):
     samples = np.asarray(samples).reshape(-1, space.n_sites)
     assert np.all(space.contains(samples))
-    index = np.searchsorted(pl.spaces.codes(space.all_states()), pl.spaces.codes(samples))
+    index = np.searchsorted(pl.spaces.codes(space.configurations()), pl.spaces.codes(samples))
     counts = np.bincount(index, minlength=len(probs)).astype(float)
     expected = probs * len(samples)
     small = expected < 5.0  # pool sparse bins (common practice)
@@ -122,15 +122,15 @@ def chi_square_pvalue(samples, space, probs):
     return scipy.stats.chisquare(counts, expected).pvalue
 
 
-@pytest.mark.parametrize("n_sites, total_sz, phase", [(7, None, 2), (8, 0, 0)])
-def test_direct_samples_follow_born_rule_and_are_independent(n_sites, total_sz, phase):
-    space = pl.spaces.SpinSpace(n_sites, total_sz=total_sz)
-    state = make_state(n_sites, 3, phase_features=phase, total_sz=total_sz, seed=7)
+@pytest.mark.parametrize("n_sites, magnetisation, phase", [(7, None, 2), (8, 0, 0)])
+def test_direct_samples_follow_born_rule_and_are_independent(n_sites, magnetisation, phase):
+    space = pl.spaces.SpinSpace(n_sites, magnetisation=magnetisation)
+    state = make_state(n_sites, 3, phase_features=phase, magnetisation=magnetisation, seed=7)
     sampler = ChainRuleSampler(space, n_chains=64)
     chains = sampler.init(jax.random.PRNGKey(0), state)
     xs, logs, chains, acc = jax.jit(sampler.sample, static_argnums=3)(jax.random.PRNGKey(1), chains, state, 256)
     assert xs.shape == (256, 64, n_sites) and float(acc) == 1.0
-    everything = space.all_states()
+    everything = space.configurations()
     probs = born(state, everything)
     index = np.searchsorted(pl.spaces.codes(everything), pl.spaces.codes(np.asarray(xs).reshape(-1, n_sites)))
     np.testing.assert_allclose(np.exp(2.0 * np.real(np.asarray(logs))).reshape(-1), probs[index], rtol=1e-10)
@@ -149,8 +149,8 @@ def test_direct_sampler_validation():
     key = jax.random.PRNGKey(0)
     with pytest.raises(ValueError, match="BoundState"):
         ChainRuleSampler(space, 4).init(key, lambda x: state(x))
-    with pytest.raises(ValueError, match="total_sz"):
-        ChainRuleSampler(pl.spaces.SpinSpace(4, total_sz=0), 4).init(key, state)
+    with pytest.raises(ValueError, match="magnetisation"):
+        ChainRuleSampler(pl.spaces.SpinSpace(4, magnetisation=0), 4).init(key, state)
     with pytest.raises(ValueError, match="sites"):
         ChainRuleSampler(pl.spaces.SpinSpace(5), 4).init(key, state)
     with pytest.raises(ValueError, match="n_chains"):
@@ -167,8 +167,8 @@ def test_direct_sampler_validation():
 def test_state_rejects_bad_hyperparameters(features):
     with pytest.raises(ValueError, match="features"):
         ChainRuleState(features=features).init(jax.random.PRNGKey(0), jnp.ones((1, 3)))
-    with pytest.raises(ValueError, match="total_sz"):
-        ChainRuleState(total_sz=0.5).init(jax.random.PRNGKey(0), jnp.ones((1, 4)))
+    with pytest.raises(ValueError, match="magnetisation"):
+        ChainRuleState(magnetisation=0.5).init(jax.random.PRNGKey(0), jnp.ones((1, 4)))
 
 
 # --------------------------------------------------------------------------- training
@@ -182,7 +182,7 @@ def test_stochastic_reconfiguration_with_direct_sampling_lowers_tfim_energy():
     lat = pl.lattices.chain(n)
     space = pl.spaces.SpinSpace(n)
     hamiltonian = pl.operators.transverse_field_ising(lat, 1.0, h)
-    exact = pl.exact.tfim_ring_energy(n, 1.0, h)
+    exact = pl.reference.tfim_ring_energy(n, 1.0, h)
     model = ChainRuleState(features=4, init_scale=0.05)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.1))
     search = pl.train.GroundStateSearch(model, hamiltonian, ChainRuleSampler(space, 16), opt, n_samples=512)

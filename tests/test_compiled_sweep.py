@@ -33,7 +33,7 @@ def _numpy_log_psi(params, x):
 
 
 def _setup(n_sites, constrained, scale, seed, visible_bias=True, hidden_bias=True, cache_dtype=None):
-    space = pl.spaces.SpinSpace(n_sites, total_sz=0 if constrained else None)
+    space = pl.spaces.SpinSpace(n_sites, magnetisation=0 if constrained else None)
     model = RBM(alpha=2, init_scale=scale, visible_bias=visible_bias, hidden_bias=hidden_bias,
                 cache_dtype=cache_dtype)
     variables = model.init(jax.random.PRNGKey(seed), space.random(jax.random.PRNGKey(seed + 1), 1))
@@ -42,8 +42,8 @@ def _setup(n_sites, constrained, scale, seed, visible_bias=True, hidden_bias=Tru
 
 def _run(space, model, variables, order, compiled, n_chains=6, n_per_chain=5, burn_in=2, seed=0):
     lattice = pl.lattices.chain(space.n_sites)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, order=order, burn_in=burn_in,
-                                            bonds=lattice.bonds if space.constrained else None,
+    sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, order=order, burn_in=burn_in,
+                                            bonds=lattice.bonds if space.is_sector else None,
                                             compiled_sweeps=compiled)
     amp = BoundState(model, variables)
     state = sampler.init(jax.random.PRNGKey(seed), amp)
@@ -67,7 +67,7 @@ def test_compiled_log_amplitudes_follow_the_formula(scale, seed, constrained, or
     assert np.all(np.isfinite(logs))
     scale_of_terms = np.abs(np.asarray(variables["params"]["kernel"])).sum() * 2 + 1.0  # ≥ Σ_j |θ_j| bound
     np.testing.assert_allclose(logs, expected, rtol=0, atol=1e-11 * scale_of_terms * 40)
-    if space.constrained:
+    if space.is_sector:
         np.testing.assert_array_equal(xs.sum(-1), 0)  # exchanges conserve the magnetisation
     fresh = model.apply(variables, method="fast_updates").init(end.x)
     np.testing.assert_allclose(np.asarray(end.cache.plus), np.asarray(fresh.plus), rtol=1e-9, atol=1e-12)
@@ -105,7 +105,7 @@ def test_float32_cache_compiled_chain_follows_the_formula(order):
 
 def test_translation_invariant_rbm_uses_compiled_sweeps():
     lattice = pl.lattices.chain(10)
-    space = pl.spaces.SpinSpace(10, total_sz=0)
+    space = pl.spaces.SpinSpace(10, magnetisation=0)
     model = pl.states.TranslationInvariantRBM(pl.symmetry.translations(lattice), alpha=2, init_scale=0.5)
     variables = model.init(jax.random.PRNGKey(1), space.random(jax.random.PRNGKey(2), 1))
     assert fast_updates_of(BoundState(model, variables)).dense_rbm is not None
@@ -119,7 +119,7 @@ def test_translation_invariant_rbm_uses_compiled_sweeps():
 def test_moves_without_an_entry_table_keep_the_jax_path():
     """Pair exchange picks its sites from x, so a kernel cannot draw them: the JAX path runs."""
     space, model, variables = _setup(8, True, 0.3, 2)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=4, move=pl.sampling.pair_exchange)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=4, move=pl.sampling.pair_exchange)
     assert sampler.move.entry_table(8) is None
     amp = BoundState(model, variables)
     xs, logs, _, _ = sampler.sample(jax.random.PRNGKey(0), sampler.init(jax.random.PRNGKey(1), amp), amp, 3)
@@ -129,7 +129,7 @@ def test_moves_without_an_entry_table_keep_the_jax_path():
 def test_sample_vmaps_over_keys():
     """The host call is vmappable (one kernel call per batch entry)."""
     space, model, variables = _setup(8, False, 0.3, 2)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=4, order="sequential")
+    sampler = pl.sampling.MetropolisChains(space, n_chains=4, order="sequential")
     amp = BoundState(model, variables)
     state = sampler.init(jax.random.PRNGKey(1), amp)
     keys = jax.random.split(jax.random.PRNGKey(2), 3)
@@ -155,7 +155,7 @@ def test_bad_inputs_are_refused():
         compiled.run_sweeps(fast.dense_rbm, x, cache, log_amp, np.arange(6)[:, None], jnp.zeros((1, 2, 2), jnp.int32), log_u, "flip")
     for bad in ("yes", 1, None):
         with pytest.raises(ValueError, match="compiled_sweeps must be True or False"):
-            pl.sampling.MetropolisSampler(space, compiled_sweeps=bad)
+            pl.sampling.MetropolisChains(space, compiled_sweeps=bad)
 
 
 def test_complex_rbm_offers_no_compiled_sweeps():
@@ -178,7 +178,7 @@ variables = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(1)
 params = dict(variables["params"])
 params["kernel"] = params["kernel"].at[0, 0].set(jnp.nan)
 amp = BoundState(model, {"params": params})
-sampler = pl.sampling.MetropolisSampler(space, n_chains=4)
+sampler = pl.sampling.MetropolisChains(space, n_chains=4)
 state = sampler.init(jax.random.PRNGKey(2), amp)
 try:
     sampler.sample(jax.random.PRNGKey(3), state, amp, 2)
@@ -212,12 +212,12 @@ def test_hidden_fields_beyond_the_pair_cache_limit_raise():
     """|θ| beyond ~354 (float64) underflows the smaller member of (1 ± tanh θ) and the fast update
     then loses log ψ (see rbm.py); the compiled sweeps refuse instead of returning a finite but
     wrong log ψ. One hidden unit with W = 200: |θ| = 200 |Σx| ≥ 400 at the start."""
-    space = pl.spaces.SpinSpace(6, total_sz=1)
+    space = pl.spaces.SpinSpace(6, magnetisation=1)
     model = RBM(alpha=1 / 6, visible_bias=False, hidden_bias=False)
     variables = {"params": {"kernel": jnp.full((6, 1), 200.0)}}
     assert compiled.pair_cache_limit(np.float64) == pytest.approx(354.5, abs=0.1)
     amp = BoundState(model, variables)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=pl.lattices.chain(6).bonds)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=4, bonds=pl.lattices.chain(6).bonds)
     state = sampler.init(jax.random.PRNGKey(0), amp)
     with pytest.raises(Exception, match="pair cache"):
         sampler.sample(jax.random.PRNGKey(1), state, amp, 2)
@@ -225,8 +225,8 @@ def test_hidden_fields_beyond_the_pair_cache_limit_raise():
     # caught by the per-update check inside the kernel
     variables = {"params": {"kernel": jnp.full((6, 1), 100.0)}}
     amp = BoundState(model, variables)
-    sampler = pl.sampling.MetropolisSampler(pl.spaces.SpinSpace(6), n_chains=4)
-    x0 = space.__class__(6, total_sz=0).random(jax.random.PRNGKey(2), 4)
+    sampler = pl.sampling.MetropolisChains(pl.spaces.SpinSpace(6), n_chains=4)
+    x0 = space.__class__(6, magnetisation=0).random(jax.random.PRNGKey(2), 4)
     state = sampler.refresh(pl.sampling.ChainState(x0, amp(x0)), amp)
     with pytest.raises(Exception, match="pair cache"):
         sampler.sample(jax.random.PRNGKey(3), state, amp, 2)

@@ -28,7 +28,7 @@ def test_short_vmc_run_beats_hartree_fock(name):
     sampler = el.ElectronSampler(system, n_chains=32, sweep=5, burn_in=1, equilibrate=50)
     optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.1))
     search = pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system), sampler, optimizer,
-                                        n_samples=256, energy_clip=5.0)
+                                        n_samples=256, winsorize=5.0)
     state, history = search.run(200, key=jax.random.PRNGKey(0), progress=False)
     # energy: mean of the per-step estimates over the last 60 steps; error from their spread
     tail = history["energy"][-60:]

@@ -1,4 +1,4 @@
-"""Checks of psiloom.exact against an independent exact diagonalisation and known limits.
+"""Checks of psiloom.reference against an independent exact diagonalisation and known limits.
 
 The dense / sparse exact diagonalisation below is built here from Kronecker products of
 Pauli matrices and shares no code with the module under test.
@@ -16,7 +16,7 @@ import scipy.sparse.linalg as spla
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from psiloom.exact import (
+from psiloom.reference import (
     HULTHEN_ENERGY_PER_SITE,
     heisenberg_ring_energy,
     heisenberg_ring_rapidities,
@@ -267,7 +267,7 @@ def _singlet_log_amplitude(x):
 def test_two_site_singlet_by_enumeration():
     # textbook: in the singlet S_1·S_2 = [S(S+1) − 2·(3/4)]/2 = −3/4, ⟨S^z_1 S^z_2⟩ = −1/4
     # and ⟨S^z_1⟩ = 0; the vector is (|↑↓⟩ − |↓↑⟩)/√2 up to a global phase
-    from psiloom.exact import expectation, fidelity, state_vector
+    from psiloom.reference import expectation, fidelity, state_vector
     from psiloom.operators import pauli, spin_correlation
     from psiloom.spaces import SpinSpace
 
@@ -280,8 +280,8 @@ def test_two_site_singlet_by_enumeration():
     assert expectation(pauli(2, "ZZ", (0, 1), 0.25), v) == pytest.approx(-0.25, abs=1e-14)
     assert expectation(pauli(2, "Z", 0, 0.5), v) == pytest.approx(0.0, abs=1e-14)
     # the same from a sparse matrix, and in the Sᶻ = 0 sector (basis ↓↑, ↑↓)
-    assert expectation(spin_correlation(2, 0, 1).to_sparse(), v) == pytest.approx(-0.75, abs=1e-14)
-    sector = SpinSpace(2, total_sz=0)
+    assert expectation(spin_correlation(2, 0, 1).sparse_matrix(), v) == pytest.approx(-0.75, abs=1e-14)
+    sector = SpinSpace(2, magnetisation=0)
     w = state_vector(_singlet_log_amplitude, sector)
     assert expectation(spin_correlation(2, 0, 1), w, sector) == pytest.approx(-0.75, abs=1e-14)
     # a non-Hermitian operator gives a complex value: S⁺_0 S⁻_1 with S^± = (σˣ ± iσʸ)/2 maps
@@ -296,7 +296,7 @@ def test_expectation_matches_scipy_on_a_random_complex_state():
     # normalised, and ⟨H⟩ equals v† H v from scipy.sparse; the ED ground state gives E0 (eigsh)
     import jax.numpy as jnp
 
-    from psiloom.exact import expectation, ground_state, state_vector
+    from psiloom.reference import expectation, ground_state, state_vector
     from psiloom.lattices import chain
     from psiloom.operators import heisenberg
     from psiloom.spaces import SpinSpace
@@ -306,18 +306,18 @@ def test_expectation_matches_scipy_on_a_random_complex_state():
     log_amp = lambda x: jnp.asarray(x) @ jnp.asarray(weights) * 0.3
     space = SpinSpace(4)
     v = state_vector(log_amp, space)
-    direct = np.exp(space.all_states() @ weights * 0.3)
+    direct = np.exp(space.configurations() @ weights * 0.3)
     direct /= np.linalg.norm(direct)
     np.testing.assert_allclose(v, direct, atol=1e-13)
     ham = heisenberg(chain(4))
-    mat = ham.to_sparse(space)
+    mat = ham.sparse_matrix(space)
     assert expectation(ham, v) == pytest.approx(float(np.real(v.conj() @ (mat @ v))), abs=1e-13)
     e0 = spla.eigsh(sp.csr_matrix(mat), k=1, which="SA", return_eigenvectors=False)[0]
     assert expectation(ham, ground_state(ham)[1]) == pytest.approx(e0, abs=1e-10)
 
 
 def test_state_vector_and_expectation_reject_bad_input():
-    from psiloom.exact import expectation, state_vector
+    from psiloom.reference import expectation, state_vector
     from psiloom.operators import pauli
     from psiloom.spaces import SpinSpace
 
@@ -337,36 +337,36 @@ def test_one_diagonaliser_serves_dense_lanczos_and_sectors():
     # the dense solver (≤ DENSE_LIMIT states) and Lanczos (above) agree with the Bethe ansatz
     # (Bethe 1931) on rings of 8 (70 states in Sᶻ = 0) and 12 (924 states); the k = 0 sector
     # of the 8-ring, through the same switch, holds the ground state (L/2 even, from memory)
-    from psiloom import exact, symmetry
+    from psiloom import reference, symmetry
     from psiloom.lattices import chain
     from psiloom.operators import heisenberg
     from psiloom.spaces import SpinSpace
 
     for n in (8, 12):
-        space = SpinSpace(n, total_sz=0)
-        assert (space.size <= exact.DENSE_LIMIT) == (n == 8)
-        e0, _ = exact.ground_state(heisenberg(chain(n)), space)
-        assert e0 == pytest.approx(exact.heisenberg_ring_energy(n), abs=1e-9)
+        space = SpinSpace(n, magnetisation=0)
+        assert (space.size <= reference.DENSE_LIMIT) == (n == 8)
+        e0, _ = reference.ground_state(heisenberg(chain(n)), space)
+        assert e0 == pytest.approx(reference.heisenberg_ring_energy(n), abs=1e-9)
     ring = chain(8)
     sec = symmetry.sector(symmetry.translations(ring), (0.0,))
-    e_sec, vec = exact.ground_state(heisenberg(ring), SpinSpace(8, total_sz=0), sector=sec)
-    assert e_sec == pytest.approx(exact.heisenberg_ring_energy(8), abs=1e-10)
-    assert exact.expectation(heisenberg(ring), vec, SpinSpace(8, total_sz=0)) == pytest.approx(e_sec, abs=1e-10)
+    e_sec, vec = reference.ground_state(heisenberg(ring), SpinSpace(8, magnetisation=0), sector=sec)
+    assert e_sec == pytest.approx(reference.heisenberg_ring_energy(8), abs=1e-10)
+    assert reference.expectation(heisenberg(ring), vec, SpinSpace(8, magnetisation=0)) == pytest.approx(e_sec, abs=1e-10)
 
 
 def test_lowest_eigenpairs_of_a_matrix_and_bad_input():
     # a sparse matrix in the basis of the space is diagonalised like the operator it came from
-    from psiloom import exact
+    from psiloom import reference
     from psiloom.lattices import chain
     from psiloom.operators import heisenberg
 
     ham = heisenberg(chain(4))
-    vals, _ = exact.lowest_eigenpairs(ham.to_sparse(), k=2)
-    np.testing.assert_allclose(vals, np.linalg.eigvalsh(ham.to_dense())[:2], atol=1e-12)
+    vals, _ = reference.lowest_eigenpairs(ham.sparse_matrix(), k=2)
+    np.testing.assert_allclose(vals, np.linalg.eigvalsh(ham.dense_matrix())[:2], atol=1e-12)
     assert vals[0] == pytest.approx(-2.0, abs=1e-12)  # 4-site ring: −2J (Bethe 1931, L = 4)
     with pytest.raises(ValueError, match="Hermitian"):
-        exact.lowest_eigenpairs(sp.csr_matrix(np.array([[0.0, 1.0], [0.0, 0.0]])))
+        reference.lowest_eigenpairs(sp.csr_matrix(np.array([[0.0, 1.0], [0.0, 0.0]])))
     with pytest.raises(ValueError, match="k must be a positive integer"):
-        exact.lowest_eigenpairs(ham, k=0)
+        reference.lowest_eigenpairs(ham, k=0)
     with pytest.raises(ValueError, match="k=17"):
-        exact.lowest_eigenpairs(ham, k=17)
+        reference.lowest_eigenpairs(ham, k=17)

@@ -257,12 +257,12 @@ def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params,
     """The JAX fast path, the compiled sweeps (real parameters) and full re-evaluation give the
     same chain from the same key."""
     lat = pl.lattices.chain(12)
-    space = pl.spaces.SpinSpace(12, total_sz=0 if constrained else None)
+    space = pl.spaces.SpinSpace(12, magnetisation=0 if constrained else None)
     model = RBM(alpha=1, complex_params=complex_params, init_scale=0.3)
     variables = model.init(jax.random.PRNGKey(2), space.random(jax.random.PRNGKey(0), 1))
     runs = {}
     for path, fast, compiled in (("compiled", True, True), ("jax", True, False), ("generic", False, False)):
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds if constrained else None,
+        sampler = pl.sampling.MetropolisChains(space, n_chains=8, bonds=lat.bonds if constrained else None,
                                                 order=order, compiled_sweeps=compiled)
         amp = BoundState(model, variables, fast=fast)
         state = sampler.init(jax.random.PRNGKey(7), amp)
@@ -285,12 +285,12 @@ def test_fast_metropolis_chain_equals_generic_chain(constrained, complex_params,
 def _hamiltonians():
     chain, square = pl.lattices.chain(10), pl.lattices.square(3, 4)
     return {
-        "heisenberg-chain": (pl.operators.heisenberg(chain, sign_rule=True), chain, 0),
+        "heisenberg-chain": (pl.operators.heisenberg(chain, marshall_basis=True), chain, 0),
         "tfim-chain": (pl.operators.transverse_field_ising(chain, 1.0, 0.7), chain, None),
-        "j1j2-chain": (pl.operators.j1j2(chain, 1.0, 0.4, sign_rule=False), chain, 0),
-        "heisenberg-square": (pl.operators.heisenberg(pl.lattices.square(4), sign_rule=True), pl.lattices.square(4), 0),
+        "j1j2-chain": (pl.operators.j1j2(chain, 1.0, 0.4, marshall_basis=False), chain, 0),
+        "heisenberg-square": (pl.operators.heisenberg(pl.lattices.square(4), marshall_basis=True), pl.lattices.square(4), 0),
         "tfim-square": (pl.operators.transverse_field_ising(square, 1.0, 3.0), square, None),
-        "j1j2-square": (pl.operators.j1j2(pl.lattices.square(4), 1.0, 0.5, sign_rule=False), pl.lattices.square(4), 0),
+        "j1j2-square": (pl.operators.j1j2(pl.lattices.square(4), 1.0, 0.5, marshall_basis=False), pl.lattices.square(4), 0),
     }
 
 
@@ -301,7 +301,7 @@ def _hamiltonians():
 )
 def test_fast_local_energy_equals_generic(name, complex_params):
     hamiltonian, lattice, sz = _hamiltonians()[name]
-    space = pl.spaces.SpinSpace(lattice.n_sites, total_sz=sz)
+    space = pl.spaces.SpinSpace(lattice.n_sites, magnetisation=sz)
     model = RBM(alpha=2, complex_params=complex_params, init_scale=0.3)
     variables = model.init(jax.random.PRNGKey(4), space.random(jax.random.PRNGKey(0), 1))
     x = space.random(jax.random.PRNGKey(9), 40)
@@ -324,13 +324,13 @@ def test_fast_local_energy_gives_the_variational_energy_exactly():
     hamiltonian = pl.operators.transverse_field_ising(lattice, 1.0, 0.8) + pl.operators.heisenberg(lattice, 0.5)
     model = RBM(alpha=1, complex_params=True, init_scale=0.4)
     variables = model.init(jax.random.PRNGKey(11), space.random(jax.random.PRNGKey(0), 1))
-    states = jnp.asarray(space.all_states())
+    states = jnp.asarray(space.configurations())
     e_loc = jax.jit(lambda v, x: hamiltonian.local_energy(BoundState(model, v), x, chunk=128))(variables, states)
     e_loc = np.asarray(e_loc)
     psi = np.exp(_numpy_log_psi(variables, np.asarray(states)))  # NumPy amplitude (Carleo & Troyer Eq. 2)
     weights = np.abs(psi) ** 2
     vmc = np.sum(weights * e_loc) / np.sum(weights)
-    dense = np.vdot(psi, hamiltonian.to_dense(space) @ psi) / np.vdot(psi, psi)
+    dense = np.vdot(psi, hamiltonian.dense_matrix(space) @ psi) / np.vdot(psi, psi)
     assert abs(vmc - dense) < 1e-11 * abs(dense)
 
 
@@ -400,11 +400,11 @@ def test_flip_table_describes_the_connections():
                          [(None, 1e-11, 1e-9), (jnp.float32, 4 * 10 * EPS32, 100 * 4 * 10 * EPS32)])
 def test_training_with_fast_path_equals_generic_path(cache_dtype, energy_rtol, param_rtol):
     lattice = pl.lattices.chain(10)
-    space = pl.spaces.SpinSpace(10, total_sz=0)
-    hamiltonian = pl.operators.heisenberg(lattice, sign_rule=True)
+    space = pl.spaces.SpinSpace(10, magnetisation=0)
+    hamiltonian = pl.operators.heisenberg(lattice, marshall_basis=True)
     results = {}
     for fast in (True, False):
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lattice.bonds)
+        sampler = pl.sampling.MetropolisChains(space, n_chains=8, bonds=lattice.bonds)
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
         search = pl.train.GroundStateSearch(RBM(alpha=1, cache_dtype=cache_dtype), hamiltonian, sampler, optimizer,
                                             n_samples=128, fast=fast)
@@ -426,13 +426,13 @@ def _assert_fast_equals_generic(model, lattice, space, orders, n_chains, n_per_c
     ``model`` agree between the fast and the generic path; the chains really move."""
     variables = model.init(jax.random.PRNGKey(3), space.random(jax.random.PRNGKey(4), 1))
     assert fast_updates_of(BoundState(model, variables)) is not None
-    ham = pl.operators.heisenberg(lattice, sign_rule=False)
+    ham = pl.operators.heisenberg(lattice, marshall_basis=False)
     x = space.random(jax.random.PRNGKey(5), 12)
     fast = ham.local_energy(BoundState(model, variables), x)
     generic = ham.local_energy(BoundState(model, variables, fast=False), x)
     np.testing.assert_allclose(np.asarray(fast), np.asarray(generic), rtol=tol, atol=tol)
     for order in orders:
-        sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
+        sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lattice.bonds, order=order)
         runs = {}
         for use_fast in (True, False):
             amp = BoundState(model, variables, fast=use_fast)
@@ -453,7 +453,7 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
     if with_flips:
         group = pl.symmetry.product(pl.symmetry.space_group(lat), pl.symmetry.spin_flip(lat))
     model = pl.states.TranslationInvariantRBM(group, alpha=2, complex_params=complex_params, init_scale=1.0)
-    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(10, total_sz=0), ("sequential",), 6, 6, 1e-11)
+    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(10, magnetisation=0), ("sequential",), 6, 6, 1e-11)
 
 
 # ----------------------------------------------------------------------------- projected states
@@ -481,7 +481,7 @@ def test_symmetrized_fast_path_equals_generic(base_kind, sector_kind, parity):
     model = pl.states.Symmetrized(base, sector, spin_parity=parity)
     variables = model.init(jax.random.PRNGKey(0), jnp.ones((1, 9)))
     assert fast_updates_of(BoundState(model, variables)) is not None
-    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, total_sz=0.5), ("random", "sequential"), 4, 5,
+    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(9, magnetisation=0.5), ("random", "sequential"), 4, 5,
                                 tol)
 
 

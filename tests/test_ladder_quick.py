@@ -2,7 +2,7 @@
 
 Heisenberg ring L=12 (H = Σ S_i·S_{i+1}, S = σ/2, periodic), RBM α=1 trained by stochastic
 reconfiguration; reference: the Bethe ansatz ground-state energy (Bethe 1931), solved
-numerically by psiloom.exact and cross-checked against exact diagonalisation in
+numerically by psiloom.reference and cross-checked against exact diagonalisation in
 tests/test_exact_solutions.py. Target: relative error ≤ 2e-3 (Carleo & Troyer, Science 355,
 602 (2017) report ~1e-4–1e-3 for RBMs on Heisenberg chains at α=1, from memory; a short run
 is looser). The variational principle bounds the estimate from below up to its error bar.
@@ -41,7 +41,7 @@ def test_heisenberg_ring_12_rung(ladder):
                        eval_samples=4096)
     record = ladder.run_rung(rung)
     json.dumps(record)  # JSON-serialisable, as the benchmark contract requires
-    # reference: Bethe ansatz, L = 12 (E0 = −5.387390917 from memory; computed by psiloom.exact here)
+    # reference: Bethe ansatz, L = 12 (E0 = −5.387390917 from memory; computed by psiloom.reference here)
     assert record["reference"] == pytest.approx(-5.387390917, abs=1e-8)
     assert record["rel_error"] <= rung.target, record
     # variational principle: E ≥ E0, up to the (autocorrelation-corrected) error bar

@@ -18,12 +18,12 @@ import numpy as np
 import pytest
 
 import psiloom as pl
-from psiloom import exact, lattices
+from psiloom import reference, lattices
 from psiloom.operators import (
     PauliSum,
     heisenberg,
     j1j2,
-    local_values,
+    local_estimates,
     pauli,
     spin_correlation,
     transverse_field_ising,
@@ -61,9 +61,9 @@ def jitted_apply(model):
 
 
 def dense_local_energy(op: PauliSum, log_psi: np.ndarray, space: SpinSpace) -> np.ndarray:
-    """(Hψ)(x)/ψ(x) with ψ the full amplitude vector in the basis of space.all_states()."""
+    """(Hψ)(x)/ψ(x) with ψ the full amplitude vector in the basis of space.configurations()."""
     psi = np.exp(log_psi.astype(complex))
-    return (op.to_dense(space) @ psi) / psi
+    return (op.dense_matrix(space) @ psi) / psi
 
 
 def estimator(op, model, variables, chunk):
@@ -76,8 +76,8 @@ random_op = (pauli(6, "XY", (0, 3), 0.7) + pauli(6, "ZYX", (1, 2, 5), -0.4j) + p
 
 CASES = {
     "tfim-ring": (lambda: transverse_field_ising(lattices.chain(6), 1.0, 0.7), None),
-    "heisenberg-sign-rule": (lambda: heisenberg(lattices.chain(6), 1.0, sign_rule=True), None),
-    "xxz-open": (lambda: xxz(lattices.chain(6, pbc=False), 0.8, 1.7), None),
+    "heisenberg-sign-rule": (lambda: heisenberg(lattices.chain(6), 1.0, marshall_basis=True), None),
+    "xxz-open": (lambda: xxz(lattices.chain(6, periodic=False), 0.8, 1.7), None),
     "j1j2-square": (lambda: j1j2(lattices.square(3, 2), 1.0, 0.45), None),
     "random-complex": (lambda: random_op, None),
     "heisenberg-sector": (lambda: heisenberg(lattices.chain(8), 1.0), 0),
@@ -88,12 +88,12 @@ CASES = {
 @pytest.mark.parametrize("case", list(CASES))
 @pytest.mark.parametrize("complex_params", [False, True], ids=["real", "complex"])
 def test_local_energy_equals_dense_ratio(case, complex_params):
-    build, total_sz = CASES[case]
+    build, magnetisation = CASES[case]
     op = build()
     n = op.n_sites
-    space = SpinSpace(n, total_sz=total_sz)
+    space = SpinSpace(n, magnetisation=magnetisation)
     model, variables = random_rbm(n, complex_params, seed=1)
-    x = jnp.asarray(space.all_states())
+    x = jnp.asarray(space.configurations())
     log_psi = np.asarray(jitted_apply(model)(variables, x))
     expected = dense_local_energy(op, log_psi, space)
     # chunking must not change anything: chunk 7 does not divide the number of states
@@ -105,21 +105,21 @@ def test_local_energy_equals_dense_ratio(case, complex_params):
     # the average of E_loc over |ψ|² is ⟨ψ|H|ψ⟩/⟨ψ|ψ⟩ (definition of the estimator)
     p = np.exp(2 * log_psi.real)
     psi = np.exp(log_psi.astype(complex))
-    quotient = np.vdot(psi, op.to_dense(space) @ psi) / np.vdot(psi, psi)
+    quotient = np.vdot(psi, op.dense_matrix(space) @ psi) / np.vdot(psi, psi)
     np.testing.assert_allclose(np.sum(p * e_loc) / np.sum(p), quotient, rtol=1e-10)
 
 
 def test_known_log_amplitudes_and_chunks_agree():
     op = transverse_field_ising(lattices.chain(6), 1.0, 0.7)
     model, variables = random_rbm(6, True, seed=1)
-    x = jnp.asarray(SpinSpace(6).all_states())
+    x = jnp.asarray(SpinSpace(6).configurations())
     log_amp = lambda c: model.apply(variables, c)
 
     @jax.jit
     def three_ways(x):
-        plain = local_values(log_amp, op, x)
-        given_logs = local_values(log_amp, op, x, log_amp_x=log_amp(x))
-        chunked = local_values(log_amp, op, x, chunk=64)  # chunk equal to the batch
+        plain = local_estimates(log_amp, op, x)
+        given_logs = local_estimates(log_amp, op, x, log_amp_x=log_amp(x))
+        chunked = local_estimates(log_amp, op, x, chunk=64)  # chunk equal to the batch
         return plain, given_logs, chunked
 
     plain, given_logs, chunked = three_ways(x)
@@ -127,7 +127,7 @@ def test_known_log_amplitudes_and_chunks_agree():
     np.testing.assert_allclose(np.asarray(chunked), np.asarray(plain), rtol=1e-13)
     # the observable S_0·S_3 on the same state: the same dense check holds for any operator
     corr = spin_correlation(6, 0, 3)
-    got = np.asarray(jax.jit(lambda c: local_values(log_amp, corr, c))(x))
+    got = np.asarray(jax.jit(lambda c: local_estimates(log_amp, corr, c))(x))
     expected = dense_local_energy(corr, np.asarray(jax.jit(log_amp)(x)), SpinSpace(6))
     np.testing.assert_allclose(got, expected, rtol=1e-10, atol=1e-12)
 
@@ -135,7 +135,7 @@ def test_known_log_amplitudes_and_chunks_agree():
 def test_bad_configuration_shape_raises():
     op = transverse_field_ising(lattices.chain(4))
     with pytest.raises(ValueError, match=r"\(3, 2, 4\)"):
-        local_values(lambda c: jnp.zeros(c.shape[0]), op, jnp.ones((3, 2, 4)))
+        local_estimates(lambda c: jnp.zeros(c.shape[0]), op, jnp.ones((3, 2, 4)))
     with pytest.raises(ValueError, match="5 sites"):
         op.connections(jnp.ones((2, 5)))
 
@@ -159,7 +159,7 @@ def table_from_vector(vec: np.ndarray, space: SpinSpace) -> np.ndarray:
     """log ψ on all 2^N codes (−inf outside the space); complex when ψ has negative entries."""
     n = space.n_sites
     table = np.full(2**n, -np.inf, dtype=complex)
-    table[codes(space.all_states())] = np.log(vec.astype(complex))
+    table[codes(space.configurations())] = np.log(vec.astype(complex))
     return table if np.any(vec < 0) else table.real
 
 
@@ -167,18 +167,18 @@ def table_from_vector(vec: np.ndarray, space: SpinSpace) -> np.ndarray:
     "name,op,space",
     [
         ("tfim", transverse_field_ising(lattices.chain(8), 1.0, 0.6), SpinSpace(8)),
-        ("heisenberg-sector", heisenberg(lattices.chain(8), 1.0), SpinSpace(8, total_sz=0)),
-        ("j1j2-square-sector", j1j2(lattices.square(4, 2), 1.0, 0.3, sign_rule=True), SpinSpace(8, total_sz=0)),
+        ("heisenberg-sector", heisenberg(lattices.chain(8), 1.0), SpinSpace(8, magnetisation=0)),
+        ("j1j2-square-sector", j1j2(lattices.square(4, 2), 1.0, 0.3, marshall_basis=True), SpinSpace(8, magnetisation=0)),
     ],
 )
 def test_exact_eigenstate_has_zero_variance_local_energy(name, op, space):
     """For an eigenstate Hψ = Eψ the local energy is E at every configuration (zero-variance
     property, e.g. Becca & Sorella 2017)."""
-    e0, vec = exact.ground_state(op, space)
+    e0, vec = reference.ground_state(op, space)
     vec = vec * np.sign(vec[np.argmax(np.abs(vec))])
     assert np.min(np.abs(vec)) > 1e-10, "the lookup needs ψ ≠ 0 on the space"
     model = LookupState(log_table=table_from_vector(vec, space))
-    x = jnp.asarray(space.all_states())
+    x = jnp.asarray(space.configurations())
     e_loc = np.asarray(jax.jit(lambda c: op.local_energy(lambda y: model.apply({}, y), c))(x))
     np.testing.assert_allclose(e_loc, e0, atol=1e-8 * abs(e0))
     assert float(pl.reduce.sample_variance(jnp.asarray(e_loc))) < 1e-14

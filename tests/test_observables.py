@@ -21,7 +21,7 @@ K_SIGMA = 4.0  # tolerance in standard errors for single comparisons (fixed seed
 
 
 class _Table(pl.states.TrialState):
-    """log ψ(x) looked up from a vector over ``space.all_states()`` (codes sorted ascending)."""
+    """log ψ(x) looked up from a vector over ``space.configurations()`` (codes sorted ascending)."""
 
     codes: tuple
     logs: tuple
@@ -35,7 +35,7 @@ class _Table(pl.states.TrialState):
 
 
 def _table_state(space, vector):
-    codes = pl.spaces.codes(space.all_states())
+    codes = pl.spaces.codes(space.configurations())
     mag = np.maximum(np.abs(vector), 1e-300)
     logs = np.log(mag) + 1j * np.angle(vector)
     model = _Table(tuple(codes.tolist()), tuple(logs.tolist()))
@@ -43,14 +43,14 @@ def _table_state(space, vector):
 
 
 def _sample(space, lattice, log_amp, n_per_chain, seed, n_chains=16):
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lattice.bonds, burn_in=16)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lattice.bonds, burn_in=16)
     state = sampler.init(jax.random.PRNGKey(seed), log_amp)
     xs, logs, _, _ = jax.jit(lambda k, s: sampler.sample(k, s, log_amp, n_per_chain))(jax.random.PRNGKey(seed + 1), state)
     return xs, logs
 
 
 def _expect(op, space, v):
-    return float(np.real(np.vdot(v, op.to_sparse(space) @ v)))
+    return float(np.real(np.vdot(v, op.sparse_matrix(space) @ v)))
 
 
 def _exact_correlations(lattice, space, v):
@@ -69,20 +69,20 @@ def _exact_correlations_cached(lattice, space, v_bytes):
 
 
 @functools.lru_cache(maxsize=None)
-def _square_setup(sign_rule):
+def _square_setup(marshall_basis):
     lat = pl.lattices.square(4)
-    space = pl.spaces.SpinSpace(16, total_sz=0)
-    ham = pl.operators.heisenberg(lat, sign_rule=sign_rule)
-    e0, v = pl.exact.ground_state(ham, space)
+    space = pl.spaces.SpinSpace(16, magnetisation=0)
+    ham = pl.operators.heisenberg(lat, marshall_basis=marshall_basis)
+    e0, v = pl.reference.ground_state(ham, space)
     log_amp = _table_state(space, v)
-    xs, logs = _sample(space, lat, log_amp, 256, seed=3 if sign_rule else 5)
+    xs, logs = _sample(space, lat, log_amp, 256, seed=3 if marshall_basis else 5)
     return lat, space, ham, e0, v, log_amp, xs, logs
 
 
 @functools.lru_cache(maxsize=None)
-def _square_correlations(sign_rule, assume_rule):
-    lat, _, _, _, _, log_amp, xs, logs = _square_setup(sign_rule)
-    return obs.spin_correlations(log_amp, lat, xs, logs, sign_rule=assume_rule)
+def _square_correlations(marshall_basis, assume_rule):
+    lat, _, _, _, _, log_amp, xs, logs = _square_setup(marshall_basis)
+    return obs.spin_correlations(log_amp, lat, xs, logs, marshall_basis=assume_rule)
 
 
 def _within(est_mean, est_error, exact, k=K_SIGMA, floor=1e-10):
@@ -127,8 +127,8 @@ def test_structure_factor_sum_rule_and_singlet():
     assert exact_sq[0] == pytest.approx(0.0, abs=1e-10)
 
 
-def test_sign_rule_gives_the_physical_correlations():
-    # a state sampled in the Marshall-rotated basis (sign_rule=True) must report the same
+def test_marshall_basis_gives_the_physical_correlations():
+    # a state sampled in the Marshall-rotated basis (marshall_basis=True) must report the same
     # physical correlations as the unrotated eigenvector (the rotation is a unitary change of
     # basis; Marshall 1955)
     lat, space, _, _, v_rot, log_amp, xs, logs = _square_setup(True)
@@ -165,7 +165,7 @@ def test_discrete_observables_have_honest_rhat():
     # iid samples of |ψ|² for a constant ψ.
     n = 12
     lat = pl.lattices.chain(n)
-    xs = pl.spaces.SpinSpace(n, total_sz=0).random(jax.random.PRNGKey(0), 64 * 4).reshape(64, 4, n)
+    xs = pl.spaces.SpinSpace(n, magnetisation=0).random(jax.random.PRNGKey(0), 64 * 4).reshape(64, 4, n)
     res = obs.magnetizations(lambda x: jnp.zeros(x.shape[0]), lat, xs)
     signs = 1 - 2 * lat.sublattice
     direct = (np.asarray(xs) @ signs / (2 * n)) ** 2
@@ -174,14 +174,14 @@ def test_discrete_observables_have_honest_rhat():
     assert not any("R̂" in message for message in res["m2"].warnings())
 
 
-def test_measure_agrees_with_local_values():
-    # the stacked evaluation must reproduce psiloom.operators.local.local_values term by term
+def test_measure_agrees_with_local_estimates():
+    # the stacked evaluation must reproduce psiloom.operators.local.local_estimates term by term
     lat, space, ham, _, _, log_amp, xs, logs = _square_setup(False)
     ops = {"bond": spin_correlation(16, 0, 1), "ham": ham, "sz": pl.operators.magnetization_z(16)}
     table = obs.local_value_table(log_amp, list(ops.values()), xs[:8], logs[:8])
     flat = xs[:8].reshape(-1, 16)
     for k, op in enumerate(ops.values()):
-        ref = pl.operators.local_values(log_amp, op, flat, logs[:8].reshape(-1))
+        ref = pl.operators.local_estimates(log_amp, op, flat, logs[:8].reshape(-1))
         np.testing.assert_allclose(np.asarray(table[..., k]).reshape(-1), np.asarray(ref), atol=1e-12)
     est = obs.measure(log_amp, ops, xs, logs)
     assert set(est) == set(ops)
@@ -194,12 +194,12 @@ def test_infinite_temperature_energy_is_the_trace():
     lat = pl.lattices.chain(8)
     ham = (pl.operators.heisenberg(lat) + 0.3 + pl.operators.pauli(8, "ZZZ", (0, 2, 5), 0.2)
            + pl.operators.pauli(8, "ZZZZ", (0, 1, 2, 3), -0.7) + pl.operators.transverse_field_ising(lat, 0.4, 0.6))
-    for space in (pl.spaces.SpinSpace(8), pl.spaces.SpinSpace(8, total_sz=0), pl.spaces.SpinSpace(8, total_sz=1)):
-        if space.constrained:  # the transverse field leaves the sector: drop it there
+    for space in (pl.spaces.SpinSpace(8), pl.spaces.SpinSpace(8, magnetisation=0), pl.spaces.SpinSpace(8, magnetisation=1)):
+        if space.is_sector:  # the transverse field leaves the sector: drop it there
             op = ham - pl.operators.transverse_field_ising(lat, 0.0, 0.6)
         else:
             op = ham
-        dense = op.to_dense(space)
+        dense = op.dense_matrix(space)
         assert obs.infinite_temperature_energy(op, space) == pytest.approx(np.trace(dense).real / space.size, abs=1e-12)
 
 
@@ -208,10 +208,10 @@ def test_energy_variance_and_v_score_of_a_non_eigenstate():
     # E = ⟨v|H|v⟩ and Var E = ⟨v|H²|v⟩ − E² from the dense matrices; V = N Var E / (E − E_∞)²
     # (Wu et al., Science 2024)
     lat = pl.lattices.chain(12)
-    space = pl.spaces.SpinSpace(12, total_sz=0)
+    space = pl.spaces.SpinSpace(12, magnetisation=0)
     ham = pl.operators.heisenberg(lat)
-    _, v = pl.exact.ground_state(pl.operators.xxz(lat, delta=2.0), space)
-    h = ham.to_dense(space)
+    _, v = pl.reference.ground_state(pl.operators.xxz(lat, delta=2.0), space)
+    h = ham.dense_matrix(space)
     e_exact = float(v @ h @ v)
     var_exact = float(v @ h @ h @ v) - e_exact**2
     e_inf = np.trace(h) / space.size
@@ -242,7 +242,7 @@ def test_v_score_of_an_exact_eigenstate_vanishes():
         (lambda s: obs.measure(s["f"], {"a": s["ham"]}, s["xs"], s["logs"][:3]), "log_amps must have shape"),
         (lambda s: obs.measure(s["f"], {"a": pl.operators.heisenberg(pl.lattices.chain(8))}, s["xs"]), "8 sites"),
         (lambda s: obs.correlation_operators(pl.lattices.chain(8), component="xy"), "component"),
-        (lambda s: obs.correlation_operators(pl.lattices.chain(5), sign_rule=True), "bipartite"),
+        (lambda s: obs.correlation_operators(pl.lattices.chain(5), marshall_basis=True), "bipartite"),
         (lambda s: obs.v_score(-1.0, 0.1, 4, -1.0), "undefined"),
         (lambda s: obs.infinite_temperature_energy(s["ham"], pl.spaces.SpinSpace(8)), "8 sites"),
         (lambda s: obs.local_value_table(s["f"], [], s["xs"]), "at least one operator"),
@@ -260,11 +260,11 @@ def test_correlation_components_on_an_open_chain_match_exact_diagonalisation():
     # L − r pairs that exist equals ⟨v|·|v⟩ of operators built pair by pair; SU(2) invariance of
     # the singlet gives C_xx = C_yy = C_zz = C/3 (textbook). Samples: iid from |v|² (exact).
     n = 6
-    lat = pl.lattices.chain(n, pbc=False)
+    lat = pl.lattices.chain(n, periodic=False)
     space = pl.spaces.SpinSpace(n)  # full space: S^x S^x alone leaves the Sᶻ = 0 sector
-    e0, v = pl.exact.ground_state(pl.operators.heisenberg(lat), space)
+    e0, v = pl.reference.ground_state(pl.operators.heisenberg(lat), space)
     log_amp = _table_state(space, v)
-    states = space.all_states()
+    states = space.configurations()
     pick = np.random.default_rng(7).choice(len(states), size=(256, 8), p=np.abs(v) ** 2 / np.sum(np.abs(v) ** 2))
     xs = jnp.asarray(states[pick])
     full = obs.spin_correlations(log_amp, lat, xs)
@@ -275,11 +275,11 @@ def test_correlation_components_on_an_open_chain_match_exact_diagonalisation():
         for r in range(n):
             pairs = [pl.operators.pauli(n, letter + letter, (i, i + r), 0.25) if r else
                      pl.operators.PauliSum.identity(n, 0.25) for i in range(n - r)]
-            exact.append(pl.exact.expectation(pl.operators.total(pairs, n) / (n - r), v, space))
+            exact.append(pl.reference.expectation(pl.operators.total(pairs, n) / (n - r), v, space))
         exact = np.array(exact)
         _within(res.correlation.mean, res.correlation.error, exact)
         # the singlet: one component is a third of the full correlation (exact, from ED)
-        full_exact = np.array([pl.exact.expectation(op, v, space) for op in obs.correlation_operators(lat)[1]])
+        full_exact = np.array([pl.reference.expectation(op, v, space) for op in obs.correlation_operators(lat)[1]])
         np.testing.assert_allclose(exact, full_exact / 3, atol=1e-10)
         assert float(res.correlation.mean[0]) == pytest.approx(0.25, abs=1e-12)
     # nearest-neighbour correlation of the open chain: E0 / (L − 1) (ED)

@@ -22,7 +22,7 @@ import psiloom as pl
 from psiloom.sampling import (
     BlockGibbsSampler,
     ChainState,
-    MetropolisSampler,
+    MetropolisChains,
     TemperingSampler,
     BondExchange,
     Mixture,
@@ -46,18 +46,18 @@ def random_rbm(n_sites=N_SITES, scale=0.3, seed=0):
 
 
 def born_probabilities(state, space, power=1.0):
-    """|ψ(x)|^{2·power} normalised over space.all_states() (exact enumeration)."""
-    log_w = 2.0 * power * np.real(np.asarray(state(space.all_states())))
+    """|ψ(x)|^{2·power} normalised over space.configurations() (exact enumeration)."""
+    log_w = 2.0 * power * np.real(np.asarray(state(space.configurations())))
     w = np.exp(log_w - log_w.max())
     return w / w.sum()
 
 
 def chi_square_pvalue(samples, space, probs):
-    """Pearson chi-square p-value of samples (n, N) against probs over space.all_states();
+    """Pearson chi-square p-value of samples (n, N) against probs over space.configurations();
     bins with expected count < 5 are pooled into one (common practice)."""
     samples = np.asarray(samples).reshape(-1, space.n_sites)
     assert np.all(space.contains(samples)), "sampler left the configuration space"
-    index = np.searchsorted(pl.spaces.codes(space.all_states()), pl.spaces.codes(samples))
+    index = np.searchsorted(pl.spaces.codes(space.configurations()), pl.spaces.codes(samples))
     counts = np.bincount(index, minlength=len(probs)).astype(float)
     expected = probs * len(samples)
     small = expected < 5.0
@@ -85,7 +85,7 @@ def test_metropolis_mixture_samples_born_distribution():
     lat = pl.lattices.chain(N_SITES)
     state = random_rbm()
     move = Mixture((single_flip, BondExchange(lat.bonds), pair_exchange), (0.5, 0.25, 0.25))
-    sampler = MetropolisSampler(space, N_CHAINS, move=move)
+    sampler = MetropolisChains(space, N_CHAINS, move=move)
     x, _, acc = final_states(sampler, state, jax.random.PRNGKey(11), burn_in=60)
     assert 0.05 < acc < 1.0
     assert chi_square_pvalue(x, space, born_probabilities(state, space)) > P_MIN
@@ -93,11 +93,11 @@ def test_metropolis_mixture_samples_born_distribution():
 
 def test_exchange_mixture_in_fixed_sector_samples_born_distribution():
     # Sᶻ_tot = 0 sector of 8 spins (70 states); |ψ|² restricted to the sector (exact enumeration).
-    space = pl.spaces.SpinSpace(8, total_sz=0)
+    space = pl.spaces.SpinSpace(8, magnetisation=0)
     lat = pl.lattices.chain(8)
     state = random_rbm(8, scale=0.3, seed=3)
     move = Mixture((BondExchange(lat.bonds), pair_exchange), (0.6, 0.4))
-    sampler = MetropolisSampler(space, N_CHAINS, move=move)
+    sampler = MetropolisChains(space, N_CHAINS, move=move)
     x, _, _ = final_states(sampler, state, jax.random.PRNGKey(12), burn_in=60)
     assert chi_square_pvalue(x, space, born_probabilities(state, space)) > P_MIN
 
@@ -199,15 +199,15 @@ def test_mixture_rejects_malformed_components():
         Mixture((single_flip,), ())
     # a mixture that flips single spins cannot serve a fixed-magnetisation space
     with pytest.raises(ValueError, match="SingleFlip"):
-        MetropolisSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=Mixture((pair_exchange, single_flip), (0.5, 0.5)))
+        MetropolisChains(pl.spaces.SpinSpace(4, magnetisation=0), 2, move=Mixture((pair_exchange, single_flip), (0.5, 0.5)))
 
 
 # --------------------------------------------------------------------------- validation
 
 
 def test_block_gibbs_rejects_constrained_space_and_complex_or_foreign_states():
-    with pytest.raises(ValueError, match="total_sz"):
-        BlockGibbsSampler(pl.spaces.SpinSpace(4, total_sz=0))
+    with pytest.raises(ValueError, match="magnetisation"):
+        BlockGibbsSampler(pl.spaces.SpinSpace(4, magnetisation=0))
     space = pl.spaces.SpinSpace(4)
     sampler = BlockGibbsSampler(space, 4)
     key = jax.random.PRNGKey(0)
@@ -248,10 +248,10 @@ def test_geometric_ladder():
     with pytest.raises(ValueError, match="beta_min"):
         geometric_betas(3, 1.5)
     with pytest.raises(ValueError, match="SingleFlip"):
-        TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=single_flip)
+        TemperingSampler(pl.spaces.SpinSpace(4, magnetisation=0), 2, move=single_flip)
     with pytest.raises(ValueError, match="SingleFlip"):  # also hidden inside a mixture
-        TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=Mixture((pair_exchange, single_flip), (0.5, 0.5)))
-    TemperingSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=Mixture((pair_exchange,), (1.0,)))
+        TemperingSampler(pl.spaces.SpinSpace(4, magnetisation=0), 2, move=Mixture((pair_exchange, single_flip), (0.5, 0.5)))
+    TemperingSampler(pl.spaces.SpinSpace(4, magnetisation=0), 2, move=Mixture((pair_exchange,), (1.0,)))
 
 
 # --------------------------------------------------------------------------- stuck chains and R̂
@@ -271,7 +271,7 @@ def test_rhat_flags_chains_stuck_in_two_modes():
     # there. A weakly coupled state started the same way mixes and must not be flagged.
     n, chains = 8, 8
     space = pl.spaces.SpinSpace(n)
-    sampler = MetropolisSampler(space, chains)
+    sampler = MetropolisChains(space, chains)
     run = jax.jit(sampler.sample, static_argnums=3)
     x0 = jnp.concatenate([jnp.ones((chains // 2, n)), -jnp.ones((chains // 2, n))])
     results = {}
@@ -306,7 +306,7 @@ def test_training_with_tempering_keeps_chains_and_records_tau_and_rhat():
     lat = pl.lattices.chain(6)
     space = pl.spaces.SpinSpace(6)
     hamiltonian = pl.operators.transverse_field_ising(lat, 1.0, 1.0)
-    exact = pl.exact.tfim_ring_energy(6, 1.0, 1.0)
+    exact = pl.reference.tfim_ring_energy(6, 1.0, 1.0)
     sampler = TemperingSampler(space, 16, betas=(1.0, 0.5))
     search = pl.train.GroundStateSearch(RBM(alpha=1.0), hamiltonian, sampler, optax.sgd(0.02), n_samples=256)
     state = search.init(jax.random.PRNGKey(2))

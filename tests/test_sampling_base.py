@@ -21,7 +21,7 @@ from psiloom import electrons as el
 from psiloom.electrons.basis import BasisFunction
 from psiloom.sampling import (
     GlobalFlip,
-    MetropolisSampler,
+    MetropolisChains,
     Mixture,
     Sampler,
     TemperingSampler,
@@ -66,9 +66,9 @@ def test_every_kernel_decides_through_the_one_acceptance_step(monkeypatch):
     space = pl.spaces.SpinSpace(N_SITES)
     model, variables = _rbm()
     runs = {
-        "metropolis generic": (MetropolisSampler(space, 4), BoundState(model, variables, fast=False)),
-        "metropolis fast random": (MetropolisSampler(space, 4, compiled_sweeps=False), BoundState(model, variables)),
-        "metropolis fast sequential": (MetropolisSampler(space, 4, order="sequential", compiled_sweeps=False),
+        "metropolis generic": (MetropolisChains(space, 4), BoundState(model, variables, fast=False)),
+        "metropolis fast random": (MetropolisChains(space, 4, compiled_sweeps=False), BoundState(model, variables)),
+        "metropolis fast sequential": (MetropolisChains(space, 4, order="sequential", compiled_sweeps=False),
                                        BoundState(model, variables)),
         "tempering": (TemperingSampler(space, 4, betas=(1.0, 0.5)), BoundState(model, variables)),
         "tempering generic": (TemperingSampler(space, 4, betas=(1.0, 0.5)), BoundState(model, variables, fast=False)),
@@ -127,7 +127,7 @@ def test_global_flip_mixture_samples_born_distribution_on_both_paths():
     space = pl.spaces.SpinSpace(N_SITES)
     model, variables = _bimodal_rbm()
     move = Mixture((single_flip, global_flip), (0.7, 0.3))
-    sampler = MetropolisSampler(space, 2048, move=move, burn_in=40)
+    sampler = MetropolisChains(space, 2048, move=move, burn_in=40)
     out = {}
     for fast in (True, False):
         amp = BoundState(model, variables, fast=fast)
@@ -137,10 +137,10 @@ def test_global_flip_mixture_samples_born_distribution_on_both_paths():
     np.testing.assert_array_equal(np.asarray(out[True][0]), np.asarray(out[False][0]))
     np.testing.assert_allclose(np.asarray(out[True][1]), np.asarray(out[False][1]), atol=1e-11)
     x = np.asarray(out[True][0][-1])
-    log_w = 2.0 * np.asarray(model.apply(variables, space.all_states()))
+    log_w = 2.0 * np.asarray(model.apply(variables, space.configurations()))
     probs = np.exp(log_w - log_w.max())
     probs /= probs.sum()
-    index = np.searchsorted(pl.spaces.codes(space.all_states()), pl.spaces.codes(x))
+    index = np.searchsorted(pl.spaces.codes(space.configurations()), pl.spaces.codes(x))
     counts = np.bincount(index, minlength=len(probs)).astype(float)
     expected = probs * len(x)
     small = expected < 5.0  # pool bins with fewer than 5 expected counts (common practice)
@@ -159,7 +159,7 @@ def test_global_flip_is_accepted_with_the_metropolis_probability():
     n = 20_000
     x = jnp.ones((n, N_SITES))
     state = pl.sampling.ChainState(x, amp(x), None)
-    sampler = MetropolisSampler(space, n, move=global_flip)
+    sampler = MetropolisChains(space, n, move=global_flip)
     new, info = jax.jit(lambda k, s: sampler.step(k, s, amp))(jax.random.PRNGKey(5), state)
     accepted = np.asarray(info.accepted)
     assert np.all(np.asarray(new.x)[accepted] == -1.0) and np.all(np.asarray(new.x)[~accepted] == 1.0)
@@ -172,11 +172,11 @@ def test_global_flip_is_accepted_with_the_metropolis_probability():
 
 
 def test_global_flip_keeps_only_the_zero_magnetisation_sector():
-    MetropolisSampler(pl.spaces.SpinSpace(4, total_sz=0), 2, move=global_flip)
+    MetropolisChains(pl.spaces.SpinSpace(4, magnetisation=0), 2, move=global_flip)
     with pytest.raises(ValueError, match="GlobalFlip"):
-        MetropolisSampler(pl.spaces.SpinSpace(4, total_sz=1), 2, move=global_flip)
+        MetropolisChains(pl.spaces.SpinSpace(4, magnetisation=1), 2, move=global_flip)
     with pytest.raises(ValueError, match="order='sequential'"):
-        MetropolisSampler(pl.spaces.SpinSpace(4), 2, move=global_flip, order="sequential")
+        MetropolisChains(pl.spaces.SpinSpace(4), 2, move=global_flip, order="sequential")
     assert GlobalFlip() == global_flip and hash(GlobalFlip()) == hash(global_flip)
     x, sites = global_flip(jax.random.PRNGKey(0), jnp.asarray([[1.0, -1.0, 1.0]]))
     np.testing.assert_array_equal(np.asarray(x), [[-1.0, 1.0, -1.0]])
@@ -191,13 +191,13 @@ def test_moves_are_static_under_jit():
     out = jax.jit(lambda m, k, x: m(k, x))(move, jax.random.PRNGKey(0), x)
     np.testing.assert_array_equal(np.asarray(out[0]), np.asarray(move(jax.random.PRNGKey(0), x)[0]))
     with pytest.raises(TypeError, match="Move"):
-        MetropolisSampler(pl.spaces.SpinSpace(4), 2, move=lambda k, x: (x, jnp.zeros((x.shape[0], 1), int)))
+        MetropolisChains(pl.spaces.SpinSpace(4), 2, move=lambda k, x: (x, jnp.zeros((x.shape[0], 1), int)))
 
 
 def test_every_sampler_offers_the_sampler_interface():
     space = pl.spaces.SpinSpace(4)
     system, _ = _electrons()
-    for sampler in (MetropolisSampler(space, 2), TemperingSampler(space, 2), pl.sampling.BlockGibbsSampler(space, 2),
+    for sampler in (MetropolisChains(space, 2), TemperingSampler(space, 2), pl.sampling.BlockGibbsSampler(space, 2),
                     pl.sampling.ChainRuleSampler(space, 2), el.ElectronSampler(system, n_chains=2)):
         assert isinstance(sampler, Sampler), type(sampler).__name__
     assert not isinstance(object(), Sampler)

@@ -24,7 +24,7 @@ from scipy.stats import binomtest, chisquare
 from psiloom import lattices
 from psiloom.sampling import (
     BondExchange,
-    MetropolisSampler,
+    MetropolisChains,
     SingleFlip,
     metropolis_step,
     pair_exchange,
@@ -114,16 +114,16 @@ def test_bad_bonds_raise_naming_them(bonds, n_sites, sampler):
     path: two different, both wrong, distributions)."""
     from psiloom.sampling import TemperingSampler
 
-    make = MetropolisSampler if sampler == "metropolis" else TemperingSampler
+    make = MetropolisChains if sampler == "metropolis" else TemperingSampler
     bad = [b for b in bonds if min(b) < 0 or max(b) >= n_sites or b[0] == b[1]]
-    for space in (SpinSpace(n_sites), SpinSpace(n_sites, total_sz=0 if n_sites % 2 == 0 else 0.5)):
+    for space in (SpinSpace(n_sites), SpinSpace(n_sites, magnetisation=0 if n_sites % 2 == 0 else 0.5)):
         if bad:
             with pytest.raises(ValueError) as err:
                 make(space, 2, bonds=bonds)
             assert any(str(list(b)) in str(err.value) for b in bad)
         else:
             made = make(space, 2, bonds=bonds)
-            if space.constrained:
+            if space.is_sector:
                 assert made.move == BondExchange(bonds)
     if bad:
         with pytest.raises(ValueError):
@@ -152,7 +152,7 @@ def rbm_state(n_sites: int, seed: int, scale: float, bound: bool = False):
     return jax.jit(lambda x: model.apply(variables, x))
 
 
-def final_configurations(sampler: MetropolisSampler, log_amp, seed: int) -> np.ndarray:
+def final_configurations(sampler: MetropolisChains, log_amp, seed: int) -> np.ndarray:
     @jax.jit
     def run(key):
         k_init, k_run = jax.random.split(key)
@@ -167,7 +167,7 @@ def final_configurations(sampler: MetropolisSampler, log_amp, seed: int) -> np.n
 
 def goodness_of_fit(samples: np.ndarray, space: SpinSpace, probabilities: np.ndarray) -> float:
     """Pearson chi-square p-value; bins with expected count < 5 are pooled (common practice)."""
-    states = space.all_states()
+    states = space.configurations()
     index = np.searchsorted(codes(states), codes(samples))
     assert np.array_equal(codes(states)[index], codes(samples)), "sample outside the space"
     counts = np.bincount(index, minlength=len(states)).astype(float)
@@ -181,7 +181,7 @@ def goodness_of_fit(samples: np.ndarray, space: SpinSpace, probabilities: np.nda
 
 
 @pytest.mark.parametrize(
-    "name,n_sites,total_sz,move,order",
+    "name,n_sites,magnetisation,move,order",
     [
         ("single-flip", 8, None, None, "random"),
         ("bond-exchange", 10, 0, "bonds", "random"),
@@ -192,15 +192,15 @@ def goodness_of_fit(samples: np.ndarray, space: SpinSpace, probabilities: np.nda
         ("compiled-sequential-exchange", 10, 0, "bonds", "sequential"),
     ],
 )
-def test_histogram_converges_to_psi_squared(name, n_sites, total_sz, move, order):
-    space = SpinSpace(n_sites, total_sz=total_sz)
+def test_histogram_converges_to_psi_squared(name, n_sites, magnetisation, move, order):
+    space = SpinSpace(n_sites, magnetisation=magnetisation)
     log_amp = rbm_state(n_sites, 3, 0.25, bound=name.startswith("compiled"))
     if name.startswith("compiled"):  # the compiled sweep kernel, checked against |ψ|² itself
         assert fast_updates_of(log_amp).dense_rbm is not None
     mv = {None: None, "bonds": BondExchange(lattices.chain(n_sites).bonds), "pairs": pair_exchange}[move]
-    sampler = MetropolisSampler(space, n_chains=6000, move=mv, burn_in=30, order=order)
+    sampler = MetropolisChains(space, n_chains=6000, move=mv, burn_in=30, order=order)
     samples = final_configurations(sampler, log_amp, seed=7)
-    log_psi = np.asarray(log_amp(jnp.asarray(space.all_states())))
+    log_psi = np.asarray(log_amp(jnp.asarray(space.configurations())))
     target = np.exp(2 * (log_psi - log_psi.max()))
     assert goodness_of_fit(samples, space, target) > 1e-3
     # the same counts reject a wrong target |ψ| (not squared): the test has power
@@ -234,7 +234,7 @@ def test_metropolis_acceptance_probability():
 def test_chains_persist_between_sample_calls():
     space = SpinSpace(8)
     log_amp = rbm_state(8, 3, 0.25)
-    sampler = MetropolisSampler(space, n_chains=64, sweep=1)
+    sampler = MetropolisChains(space, n_chains=64, sweep=1)
 
     @jax.jit
     def draw(key, state):
@@ -257,7 +257,7 @@ def test_chains_persist_between_sample_calls():
 
 def test_refresh_recomputes_cached_log_amplitudes():
     space = SpinSpace(8)
-    sampler = MetropolisSampler(space, n_chains=4)
+    sampler = MetropolisChains(space, n_chains=4)
     old, new = rbm_state(8, 3, 0.25), rbm_state(8, 4, 0.25)
     state = sampler.init(jax.random.PRNGKey(0), old)
     refreshed = sampler.refresh(state, new)
@@ -267,8 +267,8 @@ def test_refresh_recomputes_cached_log_amplitudes():
 
 def test_constant_amplitude_accepts_everything():
     # |ψ(x')/ψ(x)|² = 1 for every proposal (null swaps of equal spins included): acceptance 1
-    space = SpinSpace(6, total_sz=0)
-    sampler = MetropolisSampler(space, n_chains=8, bonds=lattices.chain(6).bonds, burn_in=1)
+    space = SpinSpace(6, magnetisation=0)
+    sampler = MetropolisChains(space, n_chains=8, bonds=lattices.chain(6).bonds, burn_in=1)
     flat = lambda x: jnp.zeros(x.shape[0])
     state = sampler.init(jax.random.PRNGKey(0), flat)
     xs, _, _, acc = jax.jit(lambda k, s: sampler.sample(k, s, flat, 3))(jax.random.PRNGKey(1), state)
@@ -303,19 +303,19 @@ def test_ordered_moves_visit_their_table_in_every_chain(position):
 
 def test_sequential_order_needs_an_orderable_move():
     with pytest.raises(ValueError, match="order='sequential'"):
-        MetropolisSampler(SpinSpace(4, total_sz=0), order="sequential")  # pair exchange by default
+        MetropolisChains(SpinSpace(4, magnetisation=0), order="sequential")  # pair exchange by default
     with pytest.raises(ValueError, match="'diagonal'"):
-        MetropolisSampler(SpinSpace(4), order="diagonal")
-    ordered = MetropolisSampler(SpinSpace(4, total_sz=0), bonds=lattices.chain(4).bonds, order="sequential")
+        MetropolisChains(SpinSpace(4), order="diagonal")
+    ordered = MetropolisChains(SpinSpace(4, magnetisation=0), bonds=lattices.chain(4).bonds, order="sequential")
     assert ordered.ordered.kind == "exchange" and ordered.ordered.n_positions == 4
     # an ordered move given to a random-order sampler falls back to its randomised version
-    assert MetropolisSampler(SpinSpace(4), move=SingleFlip().ordered(4)).move == single_flip
+    assert MetropolisChains(SpinSpace(4), move=SingleFlip().ordered(4)).move == single_flip
 
 
 def test_default_moves():
-    assert MetropolisSampler(SpinSpace(4)).move == single_flip
-    assert MetropolisSampler(SpinSpace(4, total_sz=0)).move == pair_exchange
-    assert MetropolisSampler(SpinSpace(4, total_sz=0)).sweep == 4
+    assert MetropolisChains(SpinSpace(4)).move == single_flip
+    assert MetropolisChains(SpinSpace(4, magnetisation=0)).move == pair_exchange
+    assert MetropolisChains(SpinSpace(4, magnetisation=0)).sweep == 4
 
 
 # --------------------------------------------------------------------------- bad input
@@ -324,19 +324,19 @@ def test_default_moves():
 @given(st.one_of(st.integers(max_value=0), st.just(2.5), st.just(True)))
 def test_bad_chain_count_raises(n_chains):
     with pytest.raises(ValueError) as err:
-        MetropolisSampler(SpinSpace(4), n_chains=n_chains)
+        MetropolisChains(SpinSpace(4), n_chains=n_chains)
     assert repr(n_chains) in str(err.value)
 
 
 @given(st.integers(max_value=-1))
 def test_negative_counts_raise(count):
     with pytest.raises(ValueError) as err:
-        MetropolisSampler(SpinSpace(4), burn_in=count)
+        MetropolisChains(SpinSpace(4), burn_in=count)
     assert str(count) in str(err.value)
     with pytest.raises(ValueError) as err:
-        MetropolisSampler(SpinSpace(4), sweep=count)
+        MetropolisChains(SpinSpace(4), sweep=count)
     assert str(count) in str(err.value)
-    sampler = MetropolisSampler(SpinSpace(4), n_chains=2)
+    sampler = MetropolisChains(SpinSpace(4), n_chains=2)
     flat = lambda x: jnp.zeros(x.shape[0])
     state = sampler.init(jax.random.PRNGKey(0), flat)
     with pytest.raises(ValueError) as err:
@@ -345,7 +345,7 @@ def test_negative_counts_raise(count):
 
 
 def test_zero_samples_per_chain_raises():
-    sampler = MetropolisSampler(SpinSpace(4), n_chains=2)
+    sampler = MetropolisChains(SpinSpace(4), n_chains=2)
     flat = lambda x: jnp.zeros(x.shape[0])
     with pytest.raises(ValueError, match="n_per_chain"):
         sampler.sample(jax.random.PRNGKey(1), sampler.init(jax.random.PRNGKey(0), flat), flat, 0)
@@ -354,16 +354,16 @@ def test_zero_samples_per_chain_raises():
 @given(st.integers(2, 12).filter(lambda n: n % 2 == 0))
 def test_single_flip_on_constrained_space_raises(n):
     with pytest.raises(ValueError) as err:
-        MetropolisSampler(SpinSpace(n, total_sz=0), move=single_flip)
-    assert "total_sz=0.0" in str(err.value)
+        MetropolisChains(SpinSpace(n, magnetisation=0), move=single_flip)
+    assert "magnetisation=0.0" in str(err.value)
 
 
 def test_bonds_that_never_move_a_site_are_refused():
     """An exchange over bonds that miss a site would keep that site at its starting value in every
     chain (a wrong distribution without a word): refused, naming the sites."""
-    space = SpinSpace(6, total_sz=0)
+    space = SpinSpace(6, magnetisation=0)
     with pytest.raises(ValueError, match=r"never moves sites \[4, 5\]"):
-        MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3)])
+        MetropolisChains(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3)])
     with pytest.raises(ValueError, match=r"never moves sites \[5\]"):
-        MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4)], order="sequential")
-    MetropolisSampler(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4), (4, 5)])  # an open chain: fine
+        MetropolisChains(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4)], order="sequential")
+    MetropolisChains(space, n_chains=4, bonds=[(0, 1), (1, 2), (2, 3), (3, 4), (4, 5)])  # an open chain: fine

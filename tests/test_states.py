@@ -73,7 +73,7 @@ def test_rbm_equals_explicit_sum_over_hidden_units(complex_params, alpha, biases
     assert m == max(1, round(alpha * n))
     a = p.get("visible_bias", np.zeros(n))
     b = p.get("hidden_bias", np.zeros(m))
-    x = space.all_states()
+    x = space.configurations()
     expected = np.zeros(len(x), dtype=complex)
     for h in itertools.product([-1.0, 1.0], repeat=m):
         h = np.array(h)
@@ -171,7 +171,7 @@ def test_jastrow_equals_double_sum(complex_params, one_body):
     space = SpinSpace(n)
     v = random_variables(model, n, 2, 0.5)
     p = jax.tree_util.tree_map(np.asarray, v)["params"]
-    x = space.all_states()
+    x = space.configurations()
     expected = np.zeros(len(x), dtype=complex)
     for i in range(n):
         for j in range(i + 1, n):
@@ -193,7 +193,7 @@ def test_product_state_is_sum_of_factors():
     model = ProductState(factors)
     space = SpinSpace(n)
     v = random_variables(model, n, 4, 0.3)
-    x = space.all_states()
+    x = space.configurations()
     total = jax.jit(model.apply)(v, x)
     parts = [jax.jit(f.apply)({"params": v["params"][f"factors_{k}"]}, x) for k, f in enumerate(factors)]
     np.testing.assert_allclose(np.asarray(total), np.asarray(sum(parts)), atol=1e-12)
@@ -218,7 +218,7 @@ def test_empty_product_raises():
 def test_output_dtypes_and_leading_shapes(model, dtype):
     space = SpinSpace(4)
     v = random_variables(model, 4, 0, 0.3)
-    x = jnp.asarray(space.all_states()[:6])
+    x = jnp.asarray(space.configurations()[:6])
     out = model.apply(v, x)
     assert out.shape == (6,) and out.dtype == dtype
     # any leading batch shape, and a single configuration, give the same values
@@ -234,7 +234,7 @@ def test_feedforward_phase_head_is_the_imaginary_part():
     cplx = FeedForward(hidden=(1.0,), complex_output=True)
     v = init_parameters(cplx, space, jax.random.PRNGKey(8))
     real_v = {"params": {k: w for k, w in v["params"].items() if k != "phase"}}
-    x = space.all_states()
+    x = space.configurations()
     np.testing.assert_allclose(np.real(cplx.apply(v, x)), FeedForward(hidden=(1.0,)).apply(real_v, x), atol=1e-13)
     assert float(jnp.max(jnp.abs(jnp.imag(cplx.apply(v, x))))) > 0
 
@@ -266,7 +266,7 @@ def test_user_defined_trial_state_end_to_end():
     lat = pl.lattices.chain(L)
     H = pl.operators.transverse_field_ising(lat, J, h)
     space = SpinSpace(L)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=32, burn_in=2)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=32, burn_in=2)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.1))
     run = pl.train.GroundStateSearch(FieldProduct(), H, sampler, opt, n_samples=512)
     state = run.init(jax.random.PRNGKey(0))
@@ -280,10 +280,10 @@ def test_user_defined_trial_state_end_to_end():
     assert 0.0 < acc <= 1.0
     e_mf = L * (-J - h * h / (4 * J))
     # variational: the mean-field energy lies above the exact one (Pfeuty 1970)
-    assert e_mf > pl.exact.tfim_ring_energy(L, J, h)
+    assert e_mf > pl.reference.tfim_ring_energy(L, J, h)
     assert abs(float(est.mean) - e_mf) < 5 * float(est.error) + 0.01
     # the same state's local energy on all configurations averaged with |ψ|² gives ⟨H⟩ exactly
-    x = space.all_states()
+    x = space.configurations()
     log_amp = lambda c: run.model.apply(state.params, c)
     p = np.exp(2 * np.asarray(log_amp(x)))
     e_loc = np.asarray(H.local_energy(log_amp, jnp.asarray(x)))
@@ -320,7 +320,7 @@ def test_ground_state_search_init_rejects_foreign_parameters():
     shapes = jax.eval_shape(model.init, jax.random.PRNGKey(0), jax.ShapeDtypeStruct((1, 6), jnp.float64))
     params = jax.tree_util.tree_map(lambda s: np.zeros(s.shape, s.dtype), shapes)
     lat = pl.lattices.chain(8)
-    sampler = pl.sampling.MetropolisSampler(SpinSpace(8), n_chains=4)
+    sampler = pl.sampling.MetropolisChains(SpinSpace(8), n_chains=4)
     run = pl.train.GroundStateSearch(model, pl.operators.transverse_field_ising(lat), sampler, optax.sgd(0.1),
                                      n_samples=8)
     with pytest.raises(ValueError) as err:

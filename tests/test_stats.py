@@ -5,6 +5,7 @@ import jax
 jax.config.update("jax_enable_x64", True)
 
 import math
+import re
 import warnings
 
 import jax.numpy as jnp
@@ -16,6 +17,7 @@ from scipy.signal import lfilter
 
 from psiloom import stats
 from psiloom.stats import (
+    parenthesis_notation,
     Estimate,
     autocorrelation,
     blocking_analysis,
@@ -413,31 +415,61 @@ def test_bad_shapes_raise(shape):
 # --------------------------------------------------------------------------- formatting
 
 
-def test_format_matches_digits_to_error():
-    result = Estimate(
-        mean=-7.142351, error=0.00034, variance=0.012, tau=1.8, ess=5000.0, rhat=1.002
-    )
+def test_format_uses_parenthesis_notation():
+    # parenthesis notation as in the CODATA tables: 1.23456(34) means 1.23456 ± 0.00034
+    result = Estimate(mean=-7.142351, error=0.00034, variance=0.012, tau=1.8, ess=5000.0, rhat=1.002)
     text = str(result)
-    assert "-7.14235" in text and "0.00034" in text
-    assert "-7.142351" not in text  # digits of the mean matched to the error
-    assert text == result.format()
+    assert text.startswith("-7.14235(34)  | ")
+    assert "var 0.012" in text and "τ 1.8" in text and "R̂ 1.002" in text
+    assert "±" not in text and text == result.format()
+
+
+@pytest.mark.parametrize("value, error, expected", [
+    (1.23456, 0.00034, "1.23456(34)"),    # the example of the notation itself
+    (-7.142351, 0.000341, "-7.14235(34)"),
+    (0.5, 0.05, "0.500(50)"),
+    (1.0, 0.000996, "1.0000(10)"),        # 0.000996 rounds up to 0.0010: one decimal fewer
+    (12.34, 3.4, "12.3(3.4)"),            # an error ≥ 1 keeps its decimal point
+    (1234.0, 56.0, "1234(56)"),
+    (123456.0, 3400.0, "123500(3400)"),
+    (1e-18, 3e-19, "1.00(30)e-18"),
+    (2.5, 0.0, "2.5(0)"),
+])
+def test_parenthesis_notation_examples(value, error, expected):
+    assert parenthesis_notation(value, error) == expected
+
+
+@settings(max_examples=200, deadline=None)
+@given(value=st.floats(-1e6, 1e6, allow_nan=False), error=st.floats(1e-9, 1e4))
+def test_parenthesis_notation_reads_back_within_rounding(value, error):
+    # read the string back as a physicist would: value to its last digit, error in those units
+    text = parenthesis_notation(value, error)
+    match = re.fullmatch(r"([+-]?\d+)(?:\.(\d+))?\(([\d.]+)\)", text)
+    assert match, text
+    digits_after_point = len(match.group(2) or "")
+    shown = float(match.group(1) + "." + (match.group(2) or "0"))
+    if digits_after_point:
+        unit = 10.0 ** -digits_after_point
+        err = float(match.group(3)) if "." in match.group(3) else int(match.group(3)) * unit
+    else:  # errors of 10 and more: the value is rounded to the error's second digit
+        err = float(match.group(3))
+        unit = 10.0 ** (math.floor(math.log10(err)) - 1)
+    assert abs(shown - value) <= 0.5 * unit * (1 + 1e-9) + 1e-12 * abs(value)
+    assert abs(err - error) <= 0.5 * unit * (1 + 1e-9)
+    assert 10 <= round(err / unit) <= 99  # two significant digits
 
 
 def test_format_of_jax_estimate_contains_mean_and_error():
     values = ar1(17, 0.5, 2000, 4) + 3.0
     result = estimate(values)  # fields are 0-d jax arrays
-    text = str(result)
-    error = float(result.error)
-    decimals = 1 - math.floor(math.log10(error))
-    assert f"{float(result.mean):.{decimals}f}" in text
-    assert f"{error:.{decimals}f}" in text
+    assert str(result).startswith(parenthesis_notation(float(result.mean), float(result.error)) + "  | ")
 
 
 def test_format_complex_and_degenerate():
     text = Estimate(1.0 + 0.5j, 0.01, 1.0, 1.0, 1000.0, float("nan")).format()
-    assert "1.000+0.500j" in text and "0.010" in text and "R̂" not in text
+    assert text.startswith("1.000(10)+0.500(10)j") and "R̂" not in text
     text = Estimate(2.5, 0.0, 0.0, 1.0, 10.0, float("nan")).format()
-    assert "2.5" in text
+    assert text.startswith("2.5(0)")
 
 
 def test_warnings_with_plain_floats():
@@ -503,7 +535,7 @@ def test_unreliable_small_tau_never_shrinks_the_error_bar():
         assert float(result.tau) >= 1.0 and float(result.tau) >= raw
         assert float(result.error) >= naive * (1 - 1e-12)
         assert any("chain length" in m for m in result.warnings())
-        assert "τ=" in str(result) and "?" in str(result)
+        assert "τ " in str(result) and "?" in str(result)
     # a long iid chain keeps its (reliable) estimate
     long = estimate(rng.standard_normal((4000, 4)))
     assert bool(long.tau_reliable)
@@ -533,6 +565,6 @@ def stuck_warnings(values):
 def test_format_of_zero_and_rounding_noise():
     # an exactly-zero observable must not print as 0.000000000000000 ± 0.000000000000000
     text = str(Estimate(1e-18, 3e-19, 1e-34, 1.0, 1000.0, float("nan")))
-    assert text.startswith("1e-18 ± 3e-19")
-    assert str(Estimate(0.0, 0.0, 0.0, 1.0, 1000.0, float("nan"))).startswith("0 ± 0")
+    assert text.startswith("1.00(30)e-18")
+    assert str(Estimate(0.0, 0.0, 0.0, 1.0, 1000.0, float("nan"))).startswith("0(0)")
     assert "0.000000000000000" not in str(estimate(np.zeros((8, 4))))

@@ -67,13 +67,13 @@ _SQ_JIT = _Jitted(_SQ_MODEL)
 def _free_configuration(group, space):
     """A configuration whose orbit has |G| distinct members (ψ_χ cannot vanish there for
     every base state), so that a batch always holds one amplitude of the typical size."""
-    for x in space.all_states():
+    for x in space.configurations():
         if len({tuple(y) for y in group.orbit(x)}) == len(group):
             return x
     raise AssertionError("no free orbit")
 
 
-_SQ_FREE = _free_configuration(_SQ_GROUP, pl.spaces.SpinSpace(16, total_sz=0))
+_SQ_FREE = _free_configuration(_SQ_GROUP, pl.spaces.SpinSpace(16, magnetisation=0))
 
 
 @settings(max_examples=20)
@@ -91,7 +91,7 @@ def test_spin_parity_projection(parity):
     model = Symmetrized(pl.states.RBM(alpha=1, complex_params=True, init_scale=0.5), _RING_T, spin_parity=parity)
     variables = _init(model, 6)
     flip = sym.spin_flip(6)
-    x = pl.spaces.SpinSpace(6).all_states()
+    x = pl.spaces.SpinSpace(6).configurations()
     assert_covariant(model, variables, flip, [1.0, parity], x)
     # and it stays translation invariant
     assert_invariant(model, variables, _RING_T, x)
@@ -106,7 +106,7 @@ def test_symmetrization_is_the_exact_projection(sector_index):
     base = pl.states.RBM(alpha=1, complex_params=True, init_scale=0.5)
     model = Symmetrized(base, sec)
     space = pl.spaces.SpinSpace(6)
-    x = space.all_states()
+    x = space.configurations()
     variables = _init(model, 6)
     psi_base = np.exp(np.asarray(base.apply({"params": variables["params"]["base"]}, x)))
     psi_sym = np.exp(np.asarray(model.apply(variables, x), dtype=complex))
@@ -128,7 +128,7 @@ def test_log_sum_exp_is_stable_for_huge_amplitudes():
     # exp(±2000) overflows/underflows float64; the phase-aware log-sum-exp must still give
     # log ψ_χ(x; shift) = log ψ_χ(x; 0) + shift exactly (linearity of the projection)
     sec = _RING_SECTORS[1]
-    x = pl.spaces.SpinSpace(6).all_states()
+    x = pl.spaces.SpinSpace(6).configurations()
     plain = Symmetrized(_Shifted(0.0), sec)
     variables = _init(plain, 6)
     ref = np.asarray(plain.apply(variables, x))
@@ -178,7 +178,7 @@ def test_weight_sharing_reduces_parameters():
 def test_rbm_shared_over_the_full_group_is_invariant():
     model = TranslationInvariantRBM(_SQ_GROUP, alpha=1, init_scale=2.0)
     variables = _init(model, 16)
-    x = np.asarray(pl.spaces.SpinSpace(16, total_sz=0).random(jax.random.PRNGKey(3), 6))
+    x = np.asarray(pl.spaces.SpinSpace(16, magnetisation=0).random(jax.random.PRNGKey(3), 6))
     assert_invariant(model, variables, _SQ_GROUP, x, elements=range(0, 256, 5))
 
 
@@ -265,12 +265,12 @@ def test_vmc_in_the_symmetric_sector_reaches_the_sector_ground_state():
     # (E ≥ E_sector − 4σ) and a stated variational gap of 2e-3 relative for this small state
     # after 100 SR steps (Carleo & Troyer 2017 report ~1e-3 relative errors for 2-D RBMs).
     lat = _SQ
-    space = pl.spaces.SpinSpace(16, total_sz=0)
-    ham = pl.operators.heisenberg(lat, sign_rule=True)
+    space = pl.spaces.SpinSpace(16, magnetisation=0)
+    ham = pl.operators.heisenberg(lat, marshall_basis=True)
     sec = sym.sector(sym.point_group(lat), None, "A1")
-    e_sector = pl.exact.sector_eigenpairs(ham, space, sym.sector(sym.space_group(lat), (0, 0), "A1"))[0][0]
+    e_sector = pl.reference.sector_eigenpairs(ham, space, sym.sector(sym.space_group(lat), (0, 0), "A1"))[0][0]
     model = Symmetrized(TranslationInvariantRBM(lat, alpha=2), sec)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=16, bonds=lat.bonds, burn_in=2)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=16, bonds=lat.bonds, burn_in=2)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.05))
     run = pl.train.GroundStateSearch(model, ham, sampler, opt, n_samples=512)
     state, _ = run.run(100, key=jax.random.PRNGKey(1), progress=False)

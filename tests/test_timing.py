@@ -21,10 +21,10 @@ PHASES = ("sampling", "local_energy", "gradient", "solve")
 @pytest.fixture(scope="module")
 def search():
     lattice = pl.lattices.chain(6)
-    space = pl.spaces.SpinSpace(6, total_sz=0)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=4, bonds=lattice.bonds)
+    space = pl.spaces.SpinSpace(6, magnetisation=0)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=4, bonds=lattice.bonds)
     optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
-    return pl.train.GroundStateSearch(pl.states.RBM(alpha=1), pl.operators.heisenberg(lattice, sign_rule=True),
+    return pl.train.GroundStateSearch(pl.states.RBM(alpha=1), pl.operators.heisenberg(lattice, marshall_basis=True),
                                       sampler, optimizer, n_samples=32)
 
 

@@ -21,8 +21,8 @@ L = 6
 
 def make_search(model=None, optimizer=None, n_samples=64, n_chains=8):
     lat = pl.lattices.chain(L)
-    space = SpinSpace(L, total_sz=0)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lat.bonds, burn_in=1)
+    space = SpinSpace(L, magnetisation=0)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lat.bonds, burn_in=1)
     if optimizer is None:
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
     model = RBM(alpha=1.0, complex_params=True, init_scale=0.05) if model is None else model
@@ -152,8 +152,8 @@ def test_infinite_energy_names_step():
             counter = jnp.exp(-log_amplitude(jnp.zeros((1, L)))[0])  # = 1/(T − c) for x = 0
             return jnp.where(counter > 1.0 / 2.5, jnp.inf, e)  # c > 7.5 → inf (step 9 sees c = 8)
 
-    space = SpinSpace(L, total_sz=0)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=8, bonds=lat.bonds)
+    space = SpinSpace(L, magnetisation=0)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=8, bonds=lat.bonds)
     run = GroundStateSearch(BreaksAtThreshold(threshold=10.0), Wrapped(), sampler, count_steps(), n_samples=64)
     with pytest.raises(NonFiniteError) as err:
         run.run(20, key=jax.random.PRNGKey(1), progress=False)
@@ -195,7 +195,7 @@ def test_bad_evaluation_samples_raises(search, start, n_samples):
 
 
 def test_hamiltonian_and_space_sizes_must_agree():
-    sampler = pl.sampling.MetropolisSampler(SpinSpace(4), n_chains=2)
+    sampler = pl.sampling.MetropolisChains(SpinSpace(4), n_chains=2)
     with pytest.raises(ValueError, match="6 sites.*4"):
         GroundStateSearch(RBM(), pl.operators.heisenberg(pl.lattices.chain(6)), sampler, optax.sgd(0.1), n_samples=4)
 
@@ -216,7 +216,7 @@ def spike_search(weight: float):
     entropy in nats): once per ~10^7 sweeps. w = 0 is a healthy (uniform) state."""
     lat = pl.lattices.chain(N_SPIKE)
     space = SpinSpace(N_SPIKE)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=8)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=8)
     model = RBM(alpha=1.0 / N_SPIKE)
     search = GroundStateSearch(model, pl.operators.transverse_field_ising(lat, J=1.0, h=0.5), sampler,
                                optax.sgd(0.0), n_samples=64)
@@ -279,9 +279,9 @@ def test_measure_matches_the_exact_state_vector(search):
     out = search.measure(state, ops, n_samples=4096, burn_in_sweeps=4)
     assert set(out) == set(ops)
     space = search.sampler.space
-    vector = pl.exact.state_vector(search.vmc.bind(state.params), space)
+    vector = pl.reference.state_vector(search.vmc.bind(state.params), space)
     for name, op in ops.items():
-        exact = pl.exact.expectation(op, vector, space)
+        exact = pl.reference.expectation(op, vector, space)
         est = out[name]
         assert abs(float(np.real(est.mean)) - exact) < 5 * float(est.error) + 1e-12, (name, est, exact)
 

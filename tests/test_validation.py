@@ -82,7 +82,7 @@ def test_finite_complex_and_probability_and_choices():
                        st.lists(st.booleans(), max_size=2), st.sampled_from([np.True_, np.False_, np.array(True)])))
 def test_boolean_takes_only_true_or_false(value):
     if isinstance(value, (bool, np.bool_)) or (isinstance(value, np.ndarray) and value.dtype == bool):
-        assert v.boolean("pbc", value) is bool(value)
+        assert v.boolean("periodic", value) is bool(value)
     else:
-        with pytest.raises(TypeError, match="pbc must be True or False"):
-            v.boolean("pbc", value)
+        with pytest.raises(TypeError, match="periodic must be True or False"):
+            v.boolean("periodic", value)

@@ -3,7 +3,7 @@ ground-state energies of two solvable 16-site rings.
 
 References:
 * Heisenberg ring H = J Σ S_i·S_{i+1} (spin-1/2, S = σ/2), L = 16, periodic: Bethe-ansatz
-  energy (Bethe 1931), computed by psiloom.exact and cross-checked against exact
+  energy (Bethe 1931), computed by psiloom.reference and cross-checked against exact
   diagonalisation in test_operators.py / test_exact_solutions.py.
 * Transverse-field Ising ring H = −J Σ σᶻσᶻ − h Σ σˣ (Pauli), L = 16, h = J: free-fermion
   energy (Pfeuty 1970).
@@ -29,7 +29,7 @@ SEED = 1
 
 
 def train_and_evaluate(hamiltonian, space, bonds, alpha, n_steps, n_eval):
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=128, bonds=bonds, burn_in=2)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=128, bonds=bonds, burn_in=2)
     # SR diagonal shift decaying from 0.1 to 1e-3 (×0.9 per step): a small shift on the first
     # steps, where S is nearly singular, can throw the parameters far off (common practice)
     shift = optax.exponential_decay(0.1, transition_steps=1, decay_rate=0.9, end_value=1e-3)
@@ -52,9 +52,9 @@ def check(energy, error, exact, tolerance):
 @pytest.mark.slow
 def test_heisenberg_ring_16_reaches_bethe_energy():
     lat = pl.lattices.chain(L)
-    space = pl.spaces.SpinSpace(L, total_sz=0)
-    H = pl.operators.heisenberg(lat, J=1.0, sign_rule=True)
-    exact = pl.exact.heisenberg_ring_energy(L)  # Bethe 1931; equals ED at L = 16 (test_operators.py)
+    space = pl.spaces.SpinSpace(L, magnetisation=0)
+    H = pl.operators.heisenberg(lat, J=1.0, marshall_basis=True)
+    exact = pl.reference.heisenberg_ring_energy(L)  # Bethe 1931; equals ED at L = 16 (test_operators.py)
     energy, error = train_and_evaluate(H, space, lat.bonds, alpha=1.0, n_steps=80, n_eval=16384)
     check(energy, error, exact, tolerance=1e-3)
 
@@ -64,6 +64,6 @@ def test_tfim_ring_16_at_critical_field_reaches_free_fermion_energy():
     lat = pl.lattices.chain(L)
     space = pl.spaces.SpinSpace(L)
     H = pl.operators.transverse_field_ising(lat, J=1.0, h=1.0)
-    exact = pl.exact.tfim_ring_energy(L, 1.0, 1.0)  # Pfeuty 1970
+    exact = pl.reference.tfim_ring_energy(L, 1.0, 1.0)  # Pfeuty 1970
     energy, error = train_and_evaluate(H, space, None, alpha=2.0, n_steps=150, n_eval=98304)
     check(energy, error, exact, tolerance=1e-4)

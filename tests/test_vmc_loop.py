@@ -28,10 +28,10 @@ from psiloom.vmc import vmc
 L = 6
 
 
-def parts(n_chains=4, total_sz=0, n_sites=L, alpha=1.0, complex_params=False, optimizer=None):
+def parts(n_chains=4, magnetisation=0, n_sites=L, alpha=1.0, complex_params=False, optimizer=None):
     lat = pl.lattices.chain(n_sites)
-    space = SpinSpace(n_sites, total_sz=total_sz)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=n_chains, bonds=lat.bonds if total_sz is not None else None)
+    space = SpinSpace(n_sites, magnetisation=magnetisation)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lat.bonds if magnetisation is not None else None)
     if optimizer is None:
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.05))
     model = RBM(alpha=alpha, complex_params=complex_params, init_scale=0.05)
@@ -199,7 +199,7 @@ def test_checkpoint_header_is_json_and_describes_the_run(saved, search):
     magic, n_head, _ = first.split(b" ")
     header = json.loads(rest[: int(n_head)])
     assert magic == b"psiloom-checkpoint" and header["n_chains"] == 4 and header["x64"] is True
-    assert header["space"] == {"type": "SpinSpace", "n_sites": L, "total_sz": 0}
+    assert header["space"] == {"type": "SpinSpace", "n_sites": L, "magnetisation": 0}
     assert header["psiloom_version"] == pl.__version__
     assert [leaf[1] for leaf in header["state"]["params"]["leaves"]] == [[L], [L, L], [L]]
     back, hist = search.resume(path)
@@ -274,7 +274,7 @@ def test_crafted_files_are_never_executed(search, saved, tmp_path):
 
 @pytest.mark.parametrize("other, words", [
     (dict(n_chains=8), "chain count: 4 in the checkpoint, 8 in this run"),
-    (dict(total_sz=1), "magnetisation sector total_sz: 0 in the checkpoint, 1 in this run"),
+    (dict(magnetisation=1), "magnetisation sector magnetisation: 0 in the checkpoint, 1 in this run"),
     (dict(n_sites=8), "n_sites: 6 in the checkpoint, 8 in this run"),
     (dict(complex_params=True), "parameters are real in the checkpoint but complex in this run"),
     (dict(alpha=2.0), "model parameter .*kernel.* has shape \\[6, 6\\] in the checkpoint, \\[6, 12\\]"),
@@ -297,7 +297,7 @@ def test_run_refuses_a_state_of_another_search(start):
     with pytest.raises(ValueError, match="chain count: 4 in the given state, 8 in this search"):
         other.run(3, state=start, progress=False)
     wrong_sector = start._replace(chains=start.chains._replace(x=jnp.ones_like(start.chains.x)))
-    with pytest.raises(ValueError, match="magnetisation sector: chains have total_sz=3"):
+    with pytest.raises(ValueError, match="magnetisation sector: chains have magnetisation=3"):
         make().run(3, state=wrong_sector, progress=False)
 
 

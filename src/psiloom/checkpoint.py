@@ -176,9 +176,9 @@ def describe_state(state) -> dict:
 
 
 def describe_space(space) -> dict:
-    """Type, ``n_sites`` and magnetisation sector (``total_sz``) of a configuration space."""
+    """Type, ``n_sites`` and magnetisation sector (``magnetisation``) of a configuration space."""
     out = {"type": type(space).__name__}
-    for attr in ("n_sites", "total_sz", "n_electrons"):
+    for attr in ("n_sites", "magnetisation", "n_electrons"):
         value = getattr(space, attr, None)
         if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool):
             out[attr] = value.item() if hasattr(value, "item") else value
@@ -248,7 +248,7 @@ def compare_meta(found: dict, expected: dict, found_name: str = "the checkpoint"
             and found["n_chains"] != expected["n_chains"]:
         problems.append(f"chain count: {found['n_chains']} in {found_name}, {expected['n_chains']} in {expected_name}")
     fs, es = found.get("space") or {}, expected.get("space") or {}
-    for attr, words in (("type", "space type"), ("n_sites", "n_sites"), ("total_sz", "magnetisation sector total_sz"),
+    for attr, words in (("type", "space type"), ("n_sites", "n_sites"), ("magnetisation", "magnetisation sector magnetisation"),
                         ("n_electrons", "number of electrons")):
         if fs.get(attr) != es.get(attr) and (attr in fs or attr in es):
             show = lambda v: f"{v:g}" if isinstance(v, float) else ("none" if v is None else str(v))

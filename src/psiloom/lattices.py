@@ -25,7 +25,7 @@ import numpy as np
 from psiloom._validation import boolean, positive_int
 
 
-def _check_extent(name: str, value) -> int:
+def _check_size(name: str, value) -> int:
     return positive_int(f"lattice {name}", value)
 
 
@@ -34,8 +34,8 @@ class Lattice:
     """An immutable lattice (see module docstring for the array conventions)."""
 
     kind: str
-    extent: tuple[int, ...]
-    pbc: bool
+    shape: tuple[int, ...]
+    periodic: bool
     coords: np.ndarray
     bonds: np.ndarray
     next_bonds: np.ndarray
@@ -48,7 +48,7 @@ class Lattice:
 
     @property
     def dim(self) -> int:
-        return len(self.extent)
+        return len(self.shape)
 
     @property
     def is_bipartite(self) -> bool:
@@ -59,33 +59,33 @@ class Lattice:
         if len(position) != self.dim:
             raise ValueError(f"expected {self.dim} coordinates, got {position!r}")
         idx, stride = 0, 1
-        for p, n in zip(position, self.extent):
-            if self.pbc:
+        for p, n in zip(position, self.shape):
+            if self.periodic:
                 p %= n
             elif not 0 <= p < n:
-                raise ValueError(f"position {position!r} lies outside the open lattice {self.extent}")
+                raise ValueError(f"position {position!r} lies outside the open lattice {self.shape}")
             idx += p * stride
             stride *= n
         return idx
 
     def __repr__(self) -> str:
-        bc = "periodic" if self.pbc else "open"
-        return f"Lattice({self.kind}, extent={self.extent}, {bc}, n_sites={self.n_sites})"
+        bc = "periodic" if self.periodic else "open"
+        return f"Lattice({self.kind}, shape={self.shape}, {bc}, n_sites={self.n_sites})"
 
 
-def _build(kind: str, extent: tuple[int, ...], pbc: bool, nn_shifts, nnn_shifts) -> Lattice:
-    grids = np.meshgrid(*[np.arange(n) for n in extent], indexing="ij")
+def _build(kind: str, shape: tuple[int, ...], periodic: bool, nn_shifts, nnn_shifts) -> Lattice:
+    grids = np.meshgrid(*[np.arange(n) for n in shape], indexing="ij")
     # site index i = x + Lx*y: flatten with x fastest
-    coords = np.stack([g.transpose().reshape(-1) for g in grids], axis=-1) if len(extent) > 1 else grids[0].reshape(-1, 1)
-    ext = np.array(extent)
-    strides = np.cumprod([1, *extent[:-1]])
+    coords = np.stack([g.transpose().reshape(-1) for g in grids], axis=-1) if len(shape) > 1 else grids[0].reshape(-1, 1)
+    ext = np.array(shape)
+    strides = np.cumprod([1, *shape[:-1]])
 
     def pairs(shifts):
         found: set[tuple[int, int]] = set()
         duplicates = False
         for shift in shifts:
             target = coords + np.array(shift)
-            if pbc:
+            if periodic:
                 target = target % ext
                 valid = np.ones(len(coords), dtype=bool)
             else:
@@ -108,8 +108,8 @@ def _build(kind: str, extent: tuple[int, ...], pbc: bool, nn_shifts, nnn_shifts)
     bipartite = len(bonds) == 0 or bool(np.all(parity[bonds[:, 0]] != parity[bonds[:, 1]]))
     return Lattice(
         kind=kind,
-        extent=extent,
-        pbc=pbc,
+        shape=shape,
+        periodic=periodic,
         coords=coords.astype(np.int64),
         bonds=bonds,
         next_bonds=next_bonds,
@@ -118,17 +118,17 @@ def _build(kind: str, extent: tuple[int, ...], pbc: bool, nn_shifts, nnn_shifts)
     )
 
 
-def chain(length: int, pbc: bool = True) -> Lattice:
-    """A one-dimensional chain of ``length`` sites (a ring when ``pbc``)."""
-    n = _check_extent("length", length)
-    return _build("chain", (n,), boolean("pbc", pbc), [(1,)], [(2,)])
+def chain(n_sites: int, periodic: bool = True) -> Lattice:
+    """A one-dimensional chain of ``n_sites`` sites (a ring when ``periodic``)."""
+    n = _check_size("n_sites", n_sites)
+    return _build("chain", (n,), boolean("periodic", periodic), [(1,)], [(2,)])
 
 
-def square(lx: int, ly: int | None = None, pbc: bool = True) -> Lattice:
+def square(lx: int, ly: int | None = None, periodic: bool = True) -> Lattice:
     """A rectangular ``lx × ly`` square lattice (``ly = lx`` by default); site ``i = x + lx*y``.
 
     Nearest neighbours along x and y; next-nearest neighbours along both diagonals.
     """
-    nx = _check_extent("lx", lx)
-    ny = nx if ly is None else _check_extent("ly", ly)
-    return _build("square", (nx, ny), boolean("pbc", pbc), [(1, 0), (0, 1)], [(1, 1), (1, -1)])
+    nx = _check_size("lx", lx)
+    ny = nx if ly is None else _check_size("ly", ly)
+    return _build("square", (nx, ny), boolean("periodic", periodic), [(1, 0), (0, 1)], [(1, 1), (1, -1)])

@@ -39,6 +39,7 @@ import jax
 import numpy as np
 
 from psiloom.checkpoint import CheckpointLock, save_checkpoint
+from psiloom.stats import parenthesis_notation
 from psiloom.history import History
 from psiloom.vmc import non_finite_names
 
@@ -93,7 +94,8 @@ class Hook:
 
 def format_progress(step: int, total: int, row: dict) -> str:
     """One progress line of (1-based) step ``step`` from its history row."""
-    return (f"step {step:>5d}/{total}  E = {row['energy']:+.6f} ± {row['error']:.6f}"
+    energy = parenthesis_notation(row["energy"], row["error"], sign=True)
+    return (f"step {step:>5d}/{total}  E = {energy}"
             f"  var {row['variance']:.4g}  acc {row['acceptance']:.3f}  {row['seconds'] * 1e3:.1f} ms/step")
 
 

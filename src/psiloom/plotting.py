@@ -141,7 +141,7 @@ def plot_autocorrelation(values, ax=None, max_lag: int | None = None):
 
 def _lattice_image(x: np.ndarray, lattice) -> np.ndarray:
     """Values of one configuration on the (Ly, Lx) grid of a 2-D lattice (row = y, column = x)."""
-    lx, ly = lattice.extent
+    lx, ly = lattice.shape
     img = np.full((ly, lx), np.nan)
     img[lattice.coords[:, 1], lattice.coords[:, 0]] = x
     return img
@@ -194,11 +194,11 @@ def plot_snapshots(samples, lattice=None, chain: int = 0, every: int = 1, max_sn
         tiles = []
         for k, frame in enumerate(frames):
             if k:
-                tiles.append(np.full((lattice.extent[1], 1), np.nan))
+                tiles.append(np.full((lattice.shape[1], 1), np.nan))
             tiles.append(_lattice_image(frame, lattice))
         ax.imshow(np.concatenate(tiles, axis=1), cmap=SPIN_CMAP, vmin=-1, vmax=1, origin="lower",
                   interpolation="nearest")
-        lx = lattice.extent[0]
+        lx = lattice.shape[0]
         ax.set_xticks([k * (lx + 1) + (lx - 1) / 2 for k in range(len(times))])
         ax.set_xticklabels([str(t) for t in times])
         ax.set_yticks([])

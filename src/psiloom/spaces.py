@@ -6,8 +6,8 @@ Batches have shape ``(n_samples, n_sites)``, sample axis leading, in the default
 dtype (float64 when ``jax_enable_x64`` is on).
 
 Optionally the space is restricted to a sector of fixed total magnetisation
-``Sᶻ_tot = ½ Σ_i x_i`` (in units of ħ), given as ``total_sz``; then the number of up spins is
-``n_up = n_sites/2 + total_sz``, which must be an integer in ``[0, n_sites]``.
+``Sᶻ_tot = ½ Σ_i x_i`` (in units of ħ), given as ``magnetisation``; then the number of up spins is
+``n_up = n_sites/2 + magnetisation``, which must be an integer in ``[0, n_sites]``.
 """
 
 from __future__ import annotations
@@ -21,52 +21,52 @@ import numpy as np
 
 from psiloom._validation import finite_real, nonnegative_int, positive_int
 
-#: Largest space that :meth:`SpinSpace.all_states` will enumerate.
+#: Largest space that :meth:`SpinSpace.configurations` will enumerate.
 MAX_ENUMERATION = 2**26
 
 
 @dataclass(frozen=True)
 class SpinSpace:
-    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``total_sz``.
+    """Spin-1/2 configurations ``x ∈ {−1, +1}^n_sites``, optionally with fixed ``magnetisation``.
 
-    ``n_sites`` is a positive integer; ``total_sz`` is ``None`` or a finite real number (an
-    integer or half-integer, in units of ħ) such that ``n_sites/2 + total_sz`` is an integer
+    ``n_sites`` is a positive integer; ``magnetisation`` is ``None`` or a finite real number (an
+    integer or half-integer, in units of ħ) such that ``n_sites/2 + magnetisation`` is an integer
     in ``[0, n_sites]``. Anything else raises (a TypeError, which is also a ValueError, for a
     wrong type such as ``True``, ``'0'`` or a complex number).
     """
 
     n_sites: int
-    total_sz: float | None = None
+    magnetisation: float | None = None
 
     def __post_init__(self):
         n = self.n_sites
         n = positive_int("n_sites", n)
         object.__setattr__(self, "n_sites", n)
-        if self.total_sz is not None:
+        if self.magnetisation is not None:
             # a bool, a string ('0') or a complex number is refused rather than converted
-            sz = finite_real("total_sz", self.total_sz)
+            sz = finite_real("magnetisation", self.magnetisation)
             n_up = n / 2 + sz
             if abs(n_up - round(n_up)) > 1e-12:
                 parity = "odd" if n % 2 else "even"
                 raise ValueError(
-                    f"total_sz={self.total_sz!r} is impossible for n_sites={n} ({parity}): "
-                    f"n_sites/2 + total_sz must be an integer "
-                    f"(total_sz=0 needs an even number of sites)"
+                    f"magnetisation={self.magnetisation!r} is impossible for n_sites={n} ({parity}): "
+                    f"n_sites/2 + magnetisation must be an integer "
+                    f"(magnetisation=0 needs an even number of sites)"
                 )
             if not 0 <= round(n_up) <= n:
                 raise ValueError(
-                    f"total_sz={self.total_sz!r} is outside [-{n / 2}, {n / 2}] for n_sites={n}"
+                    f"magnetisation={self.magnetisation!r} is outside [-{n / 2}, {n / 2}] for n_sites={n}"
                 )
-            object.__setattr__(self, "total_sz", sz)
+            object.__setattr__(self, "magnetisation", sz)
 
     @property
-    def constrained(self) -> bool:
-        return self.total_sz is not None
+    def is_sector(self) -> bool:
+        return self.magnetisation is not None
 
     @property
     def n_up(self) -> int | None:
         """Number of up spins in the fixed-magnetisation sector (None when unconstrained)."""
-        return None if self.total_sz is None else int(round(self.n_sites / 2 + self.total_sz))
+        return None if self.magnetisation is None else int(round(self.n_sites / 2 + self.magnetisation))
 
     @property
     def size(self) -> int:
@@ -82,7 +82,7 @@ class SpinSpace:
         keys = jax.random.split(key, n)
         return jax.vmap(lambda k: jax.random.permutation(k, base))(keys)
 
-    def all_states(self) -> np.ndarray:
+    def configurations(self) -> np.ndarray:
         """All basis states as a NumPy array ``(size, n_sites)`` of ±1, in increasing order of
         the integer code :func:`codes` (site 0 is the most significant bit, up = 1)."""
         if self.size > MAX_ENUMERATION:

@@ -102,6 +102,39 @@ TIE_RTOL = 1e-12
 _MIN_TIME_FOR_DIAGNOSTICS = 4
 
 
+def parenthesis_notation(value: float, error: float, sign: bool = False) -> str:
+    """``value`` with its standard ``error`` in parenthesis notation, e.g. ``1.23456(34)``.
+
+    The error is rounded to two significant digits and ``value`` to the same decimal place;
+    the digits in parentheses count units of the last printed digit of ``value``. Errors of 1
+    or more are written with their decimal point when ``value`` has one (``12.3(3.4)``).
+    ``sign=True`` always prints the sign (for the imaginary part of a complex number).
+    Errors below 1e-14 switch to scientific notation (``1.00(30)e-18``); a zero error prints
+    ``(0)`` and a non-finite one ``(nan)`` or ``(inf)``.
+    """
+    plus = "+" if sign else ""
+    if not math.isfinite(error) or not math.isfinite(value):
+        return f"{value:{plus}.10g}({error})"
+    if error == 0.0:
+        return f"{value:{plus}.10g}(0)"
+    if error < 1e-14:  # rounding noise: scientific, so the digits are not buried in zeros
+        exponent = math.floor(math.log10(max(abs(value), error)))
+        scale = 10.0 ** exponent
+        return f"{parenthesis_notation(value / scale, error / scale, sign)}e{exponent}"
+    decimals = 1 - math.floor(math.log10(error))
+    digits = round(error * 10.0 ** decimals)
+    if digits >= 100:  # 0.000996 rounds to 0.0010: one decimal fewer
+        decimals -= 1
+        digits = round(error * 10.0 ** decimals)
+    if decimals > 0:
+        text = f"{value:{plus}.{decimals}f}"
+        err = str(digits) if error < 1.0 else f"{digits / 10 ** decimals:.{decimals}f}"
+        return f"{text}({err})"
+    scale = 10.0 ** (-decimals)  # error >= 10: round value to tens, hundreds, ...
+    text = f"{round(value / scale) * scale:{plus}.0f}"
+    return f"{text}({round(error / scale) * scale:.0f})"
+
+
 class Estimate(NamedTuple):
     """A Monte Carlo estimate of a mean with its diagnostics.
 
@@ -144,12 +177,18 @@ class Estimate(NamedTuple):
         return Estimate(*(pick(a) for a in self))
 
     def format(self) -> str:
-        """Compact one-line form, e.g. ``-7.14235 ± 0.00034  [σ²=0.012 τ=1.8 R̂=1.002]``.
+        """One line: the value in parenthesis notation, then the diagnostics after a bar.
 
-        The mean is printed to the decimal place of the second significant digit of the error.
-        An error below 1e-14 (rounding noise, e.g. of an observable that is exactly zero) is
-        printed in scientific notation instead of as 15 zeros. An array estimate gives one
-        line per component, prefixed by its index.
+        E.g. ``-7.14235(34)  | var 0.012 · τ 1.8 · R̂ 1.002``. The digits in parentheses are the
+        standard error in units of the last printed digit: ``1.23456(34)`` means 1.23456 ± 0.00034
+        (the usual convention of the trade, e.g. CODATA tables). The error is rounded to two
+        significant digits and the mean to the same decimal place; an error of 1 or more keeps
+        its decimal point where the mean has none (``1234(56)``, ``12.3(3.4)``). A complex mean
+        prints both parts with the same error, ``-1.2345(12)+0.0031(12)j``. An error below
+        1e-14 (rounding noise, e.g. of an observable that is exactly zero) switches to
+        scientific notation, ``1.00(30)e-18``; a non-finite one prints ``(nan)``/``(inf)``. ``τ`` carries a ``?`` when the
+        chains were too short to trust it; ``R̂`` is omitted when undefined (one chain). An
+        array estimate gives one line per component, prefixed by its index.
         """
         if self.shape:
             return "\n".join(
@@ -157,28 +196,17 @@ class Estimate(NamedTuple):
                 for i in np.ndindex(*self.shape)
             )
         mean = complex(np.asarray(self.mean))
-        error = float(self.error)
-        if math.isfinite(error) and error >= 1e-14:
-            decimals = max(0, 1 - math.floor(math.log10(error)))
-            real_str = f"{mean.real:.{decimals}f}"
-            imag_str = f"{mean.imag:+.{decimals}f}j"
-            error_str = f"{error:.{decimals}f}"
-        elif math.isfinite(error) and error > 0.0:
-            real_str = f"{mean.real:.2g}"
-            imag_str = f"{mean.imag:+.2g}j"
-            error_str = f"{error:.2g}"
-        else:
-            real_str = f"{mean.real:.8g}"
-            imag_str = f"{mean.imag:+.8g}j"
-            error_str = f"{error:.2g}"
-        mean_str = real_str + (imag_str if mean.imag != 0.0 else "")
-        details = [f"σ²={float(self.variance):.2g}", f"τ={float(self.tau):.3g}"]
+        value = parenthesis_notation(mean.real, float(self.error))
+        if mean.imag != 0.0:
+            value += parenthesis_notation(mean.imag, float(self.error), sign=True) + "j"
+        tau = f"τ {float(self.tau):.3g}"
         if self.tau_reliable is not None and not bool(self.tau_reliable):
-            details[-1] += "?"  # too short a chain for τ (module docstring)
+            tau += "?"  # too short a chain for τ (module docstring)
+        details = [f"var {float(self.variance):.2g}", tau]
         rhat = float(self.rhat)
         if not math.isnan(rhat):
-            details.append(f"R̂={rhat:.3f}")
-        return f"{mean_str} ± {error_str}  [{' '.join(details)}]"
+            details.append(f"R̂ {rhat:.3f}")
+        return f"{value}  | {' · '.join(details)}"
 
     def __str__(self) -> str:
         return self.format()

@@ -12,7 +12,7 @@ This is a left action, ``g·(h·x) = (gh)·x`` with ``(gh)(i) = g(h(i))``. Array
 ``g·x = flips[g] * x[..., perms[g]]`` (see :meth:`SymmetryGroup.act`).
 
 Space-group elements carry an affine label ``r ↦ R r + t`` on integer site coordinates
-(``R`` an integer matrix of the point group, ``t`` a translation, taken modulo the extent on
+(``R`` an integer matrix of the point group, ``t`` a translation, taken modulo the lattice shape on
 periodic lattices). On open lattices the point operations act about the centre of the lattice,
 ``r ↦ R (r − c) + c``. Labels compose as ``(R₁, t₁)(R₂, t₂) = (R₁R₂, R₁t₂ + t₁)``. On very small
 lattices two different labels can move the sites identically (e.g. the mirror of a 2-site
@@ -42,8 +42,8 @@ a representation of the whole group only when ``R`` leaves ``k`` invariant modul
 lattice vectors (``Rᵀk ≡ k``) for every ``R`` present — e.g. ``k = 0`` and ``k = (π, π)`` on the
 square lattice with C4v, any ``k`` with translations alone. :func:`sector` checks this.
 
-Exact diagonalisation in a sector (:func:`psiloom.exact.sector_eigenpairs`, which lives with
-every other diagonaliser in :mod:`psiloom.exact`) uses the orthonormal orbit basis
+Exact diagonalisation in a sector (:func:`psiloom.reference.sector_eigenpairs`, which lives with
+every other diagonaliser in :mod:`psiloom.reference`) uses the orthonormal orbit basis
 :func:`sector_basis` ``|r_χ⟩ ∝ Σ_g χ(g)* |g·r⟩`` over orbit representatives ``r``; these
 vectors span exactly the states with ``ψ(g·x) = χ(g)* ψ(x)``.
 """
@@ -88,9 +88,9 @@ class SymmetryGroup:
         flips: ``(n_elements,)`` of ±1, the spin-flip part of each element.
         linear: ``(n_elements, dim, dim)`` integer point-operation matrices ``R`` (``dim = 0``
             for groups without spatial labels).
-        shifts: ``(n_elements, dim)`` translation parts ``t`` (reduced modulo ``extent`` when
+        shifts: ``(n_elements, dim)`` translation parts ``t`` (reduced modulo ``lattice_shape`` when
             periodic).
-        extent / pbc: the lattice the labels refer to (``extent = ()`` without labels).
+        lattice_shape / periodic: the lattice the labels refer to (``lattice_shape = ()`` without labels).
         name: a short description, e.g. ``"T(4x4) x C4v"``.
 
     Element 0 is always the identity. Instances are immutable and hashable by identity, so
@@ -101,8 +101,8 @@ class SymmetryGroup:
     flips: np.ndarray
     linear: np.ndarray
     shifts: np.ndarray
-    extent: tuple[int, ...] = ()
-    pbc: bool = True
+    lattice_shape: tuple[int, ...] = ()
+    periodic: bool = True
     name: str = "group"
     _index: dict = field(default=None, repr=False, compare=False)
 
@@ -124,7 +124,7 @@ class SymmetryGroup:
         for name, arr in (("perms", perms), ("flips", flips), ("linear", linear), ("shifts", shifts)):
             arr.setflags(write=False)
             object.__setattr__(self, name, arr)
-        object.__setattr__(self, "extent", tuple(int(e) for e in self.extent))
+        object.__setattr__(self, "lattice_shape", tuple(int(e) for e in self.lattice_shape))
         index = {}
         for g in range(len(perms)):
             index.setdefault(self._key(g), g)
@@ -194,18 +194,18 @@ class SymmetryGroup:
 
     # ------------------------------------------------------------------ group structure
     def _reduce(self, shift: np.ndarray) -> np.ndarray:
-        if self.pbc and self.extent:
-            return np.mod(shift, np.asarray(self.extent))
+        if self.periodic and self.lattice_shape:
+            return np.mod(shift, np.asarray(self.lattice_shape))
         return shift
 
     def _label_codes(self, linear, shifts, flips) -> np.ndarray:
         """Integer code of affine labels (R entries in {−1, 0, 1}, shifts reduced, flip)."""
         shifts = self._reduce(shifts)
-        if self.pbc:
-            radix = np.asarray(self.extent, dtype=np.int64)
+        if self.periodic:
+            radix = np.asarray(self.lattice_shape, dtype=np.int64)
         else:
-            shifts = shifts + 2 * np.asarray(self.extent)  # open lattices: shifts are small
-            radix = 4 * np.asarray(self.extent, dtype=np.int64)
+            shifts = shifts + 2 * np.asarray(self.lattice_shape)  # open lattices: shifts are small
+            radix = 4 * np.asarray(self.lattice_shape, dtype=np.int64)
         code = (flips < 0).astype(np.int64)
         for entry in linear.reshape(len(linear), -1).T:
             code = code * 3 + (entry + 1)
@@ -294,18 +294,18 @@ class SymmetryGroup:
 # ---------------------------------------------------------------------- lattice groups
 def _site_images(lattice: Lattice, linear: np.ndarray, shift: np.ndarray) -> np.ndarray:
     coords = lattice.coords
-    ext = np.asarray(lattice.extent)
-    if lattice.pbc:
+    ext = np.asarray(lattice.shape)
+    if lattice.periodic:
         target = np.mod(coords @ linear.T + shift, ext)
     else:
         centre2 = ext - 1  # twice the centre, to stay in integers
         target2 = (2 * coords - centre2) @ linear.T + centre2 + 2 * shift
         if np.any(target2 % 2):
-            raise ValueError(f"point operation {linear.tolist()} does not map the open lattice {lattice.extent} onto itself")
+            raise ValueError(f"point operation {linear.tolist()} does not map the open lattice {lattice.shape} onto itself")
         target = target2 // 2
         if np.any((target < 0) | (target >= ext)):
-            raise ValueError(f"operation {linear.tolist()} does not map the open lattice {lattice.extent} onto itself")
-    strides = np.cumprod([1, *lattice.extent[:-1]])
+            raise ValueError(f"operation {linear.tolist()} does not map the open lattice {lattice.shape} onto itself")
+    strides = np.cumprod([1, *lattice.shape[:-1]])
     return target @ strides
 
 
@@ -318,7 +318,7 @@ def _from_labels(lattice: Lattice, linear: np.ndarray, shifts: np.ndarray, flips
         gather = np.empty_like(images)
         gather[images] = np.arange(lattice.n_sites)
         perms.append(gather)
-    return SymmetryGroup(np.stack(perms), flips, linear, shifts, lattice.extent, lattice.pbc, name)
+    return SymmetryGroup(np.stack(perms), flips, linear, shifts, lattice.shape, lattice.periodic, name)
 
 
 def _check_lattice(lattice) -> Lattice:
@@ -327,8 +327,8 @@ def _check_lattice(lattice) -> Lattice:
     return lattice
 
 
-def _extent_name(lattice: Lattice) -> str:
-    return "x".join(str(e) for e in lattice.extent)
+def _shape_name(lattice: Lattice) -> str:
+    return "x".join(str(e) for e in lattice.shape)
 
 
 def translations(lattice: Lattice) -> SymmetryGroup:
@@ -338,12 +338,12 @@ def translations(lattice: Lattice) -> SymmetryGroup:
     ``(T_t x)_{i+t} = x_i``.
     """
     lattice = _check_lattice(lattice)
-    if not lattice.pbc:
+    if not lattice.periodic:
         raise ValueError(f"translations need periodic boundary conditions; {lattice!r} is open")
     d = lattice.dim
     linear = np.broadcast_to(np.eye(d, dtype=np.int64), (lattice.n_sites, d, d)).copy()
     shifts = lattice.coords.astype(np.int64)
-    return _from_labels(lattice, linear, shifts, np.ones(lattice.n_sites, np.int64), f"T({_extent_name(lattice)})")
+    return _from_labels(lattice, linear, shifts, np.ones(lattice.n_sites, np.int64), f"T({_shape_name(lattice)})")
 
 
 def point_group(lattice: Lattice) -> SymmetryGroup:
@@ -356,7 +356,7 @@ def point_group(lattice: Lattice) -> SymmetryGroup:
     if lattice.kind == "chain":
         mats, label = _CHAIN_MIRROR, "Cs"
     elif lattice.kind == "square":
-        lx, ly = lattice.extent
+        lx, ly = lattice.shape
         mats, label = (_SQUARE_C4V, "C4v") if lx == ly else (_SQUARE_C2V, "C2v")
     else:
         raise ValueError(f"no point group known for lattice kind {lattice.kind!r}")
@@ -388,7 +388,7 @@ def spin_flip(lattice_or_sites: Lattice | int) -> SymmetryGroup:
         d, n = lat.dim, lat.n_sites
         linear = np.broadcast_to(np.eye(d, dtype=np.int64), (2, d, d)).copy()
         return SymmetryGroup(np.tile(np.arange(n), (2, 1)), np.array([1, -1]), linear, np.zeros((2, d), np.int64),
-                             lat.extent, lat.pbc, "Z2")
+                             lat.shape, lat.periodic, "Z2")
     try:
         n = positive_int("lattice_or_sites", lattice_or_sites)
     except ValueError as err:  # ArgumentTypeError is a ValueError too; keep its type
@@ -406,8 +406,8 @@ def product(a: SymmetryGroup, b: SymmetryGroup) -> SymmetryGroup:
     if a.n_sites != b.n_sites:
         raise ValueError(f"cannot combine groups on {a.n_sites} and {b.n_sites} sites")
     labelled = a.has_labels or b.has_labels
-    if a.has_labels and b.has_labels and (a.extent != b.extent or a.pbc != b.pbc):
-        raise ValueError(f"groups refer to different lattices: {a.extent} and {b.extent}")
+    if a.has_labels and b.has_labels and (a.lattice_shape != b.lattice_shape or a.periodic != b.periodic):
+        raise ValueError(f"groups refer to different lattices: {a.lattice_shape} and {b.lattice_shape}")
     if labelled and not (a.has_labels and b.has_labels):
         # a group without labels may join only if all its elements are pure spin flips
         plain = b if a.has_labels else a
@@ -426,13 +426,13 @@ def product(a: SymmetryGroup, b: SymmetryGroup) -> SymmetryGroup:
 
     def key_of(perm, flip, lin, sh):
         if labelled:
-            sh = np.mod(sh, np.asarray(ref.extent)) if ref.pbc else sh
+            sh = np.mod(sh, np.asarray(ref.lattice_shape)) if ref.periodic else sh
             return (lin.tobytes(), sh.tobytes(), flip)
         return (perm.tobytes(), flip)
 
     def add(perm, flip, lin, sh):
-        if labelled and ref.pbc:
-            sh = np.mod(sh, np.asarray(ref.extent))
+        if labelled and ref.periodic:
+            sh = np.mod(sh, np.asarray(ref.lattice_shape))
         k = key_of(perm, flip, lin, sh)
         if k not in seen:
             seen[k] = len(elements)
@@ -458,7 +458,7 @@ def product(a: SymmetryGroup, b: SymmetryGroup) -> SymmetryGroup:
     flips = np.array([e[1] for e in elements])
     linear = np.stack([e[2] for e in elements]) if labelled else np.zeros((len(elements), 0, 0), np.int64)
     shifts = np.stack([e[3] for e in elements]) if labelled else np.zeros((len(elements), 0), np.int64)
-    return SymmetryGroup(perms, flips, linear, shifts, ref.extent, ref.pbc, f"{a.name} x {b.name}")
+    return SymmetryGroup(perms, flips, linear, shifts, ref.lattice_shape, ref.periodic, f"{a.name} x {b.name}")
 
 
 # ---------------------------------------------------------------------- momenta and characters
@@ -467,9 +467,9 @@ def momenta(lattice: Lattice) -> np.ndarray:
     spacing in ``(−π, π]``. Row ``i`` is ``k = 2π n / L`` with ``n = coords[i]`` (so the
     momenta are ordered like the sites)."""
     lattice = _check_lattice(lattice)
-    if not lattice.pbc:
+    if not lattice.periodic:
         raise ValueError(f"lattice momenta need periodic boundary conditions; {lattice!r} is open")
-    ext = np.asarray(lattice.extent, dtype=float)
+    ext = np.asarray(lattice.shape, dtype=float)
     k = 2.0 * np.pi * lattice.coords / ext
     return np.where(k > np.pi + 1e-12, k - 2.0 * np.pi, k)
 
@@ -520,12 +520,12 @@ def characters(group: SymmetryGroup, momentum=None, point_irrep: str = "A1", spi
         k = np.atleast_1d(np.asarray(momentum, dtype=float))
         if k.shape != (group.dim,) or not np.all(np.isfinite(k)):
             raise ValueError(f"momentum must be {group.dim} finite numbers, got {momentum!r}")
-        if group.pbc and np.any(np.abs(np.exp(1j * k * np.asarray(group.extent)) - 1) > 1e-9):
-            raise ValueError(f"momentum {k.tolist()} is not a lattice momentum of extent {group.extent} "
+        if group.periodic and np.any(np.abs(np.exp(1j * k * np.asarray(group.lattice_shape)) - 1) > 1e-9):
+            raise ValueError(f"momentum {k.tolist()} is not a lattice momentum of lattice shape {group.lattice_shape} "
                              "(need k_a = 2π n_a / L_a)")
         rotated = np.einsum("gba,b->ga", group.linear, k)  # Rᵀ k
         diff = rotated - k[None, :]
-        ok = np.all(np.abs(np.exp(1j * diff) - 1) < 1e-9, axis=1) if group.pbc else np.all(np.abs(diff) < 1e-12, axis=1)
+        ok = np.all(np.abs(np.exp(1j * diff) - 1) < 1e-9, axis=1) if group.periodic else np.all(np.abs(diff) < 1e-12, axis=1)
         if not np.all(ok):
             bad = int(np.argmin(ok))
             raise ValueError(f"momentum {k.tolist()} is not invariant under the point operation "
@@ -600,16 +600,16 @@ def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_m
     """Orthonormal basis of the sector inside ``space``: a sparse ``(space.size, n_sector)`` matrix.
 
     Column ``r`` is ``Σ_g χ(g)* |g·x_r⟩`` normalised, for each orbit representative ``x_r``
-    (the orbit member with the smallest index in ``space.all_states()``); orbits on which this
+    (the orbit member with the smallest index in ``space.configurations()``); orbits on which this
     vanishes carry no state of the sector and are dropped. ``B B†`` is the orthogonal projector
     ``(1/|G|) Σ_g χ(g)* U_g`` onto the sector.
     """
     group = sec.group
     if space.n_sites != group.n_sites:
         raise ValueError(f"space has {space.n_sites} sites, the group acts on {group.n_sites}")
-    if space.constrained and np.any(group.flips < 0) and space.total_sz != 0:
-        raise ValueError(f"spin flips leave the space total_sz={space.total_sz} (only total_sz=0 is invariant)")
-    states = space.all_states()
+    if space.is_sector and np.any(group.flips < 0) and space.magnetisation != 0:
+        raise ValueError(f"spin flips leave the space magnetisation={space.magnetisation} (only magnetisation=0 is invariant)")
+    states = space.configurations()
     state_codes = codes(states)
     dim = len(states)
     n = space.n_sites

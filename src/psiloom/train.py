@@ -40,7 +40,7 @@ from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descrip
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
 from psiloom.loop import Callback, Checkpointer, as_hook, NonFiniteError, ProgressPrinter, Profiler, format_progress, run_loop
-from psiloom.optimize.clipping import clip_local_energies
+from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.states.base import count_real_parameters
 from psiloom.vmc import StepOutput, VMCState, vmc
 
@@ -109,14 +109,14 @@ class GroundStateSearch:
         model: a trial state (Flax module; ``model.apply(variables, x) -> log ψ``).
         hamiltonian: anything with ``local_energy(log_amplitude, x, log_amp_x, chunk)``
             (a :class:`~psiloom.operators.PauliSum` for lattices).
-        sampler: e.g. :class:`psiloom.sampling.MetropolisSampler`; its ``n_chains`` must
+        sampler: e.g. :class:`psiloom.sampling.MetropolisChains`; its ``n_chains`` must
             divide ``n_samples``.
         optimizer: an optax transformation; transformations that accept the extra keyword
             ``geometry`` (stochastic reconfiguration) receive the sample geometry.
         n_samples: samples per step (``n_samples / n_chains`` stored per chain).
         chunk: evaluate local energies and log-derivatives in chunks of this many samples.
-        energy_clip: if set, the width k of local-energy clipping around the median
-            (:func:`psiloom.optimize.clip_local_energies`) applied to the values feeding the
+        winsorize: if set, the width k of local-energy clipping around the median
+            (:func:`psiloom.optimize.winsorize_local_energies`) applied to the values feeding the
             gradient and the SR geometry; the reported energy estimate stays unclipped.
         fast: use the trial state's fast amplitude updates (if it has them) in sampling and
             local energies; ``False`` forces full re-evaluation (same results, slower).
@@ -132,7 +132,7 @@ class GroundStateSearch:
     PHASES = ("sampling", "local_energy", "gradient", "solve")
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
-                 n_samples: int = 1024, chunk: int | None = None, energy_clip: float | None = None,
+                 n_samples: int = 1024, chunk: int | None = None, winsorize: float | None = None,
                  fast: bool = True, mesh=None):
         positive_int("n_samples", n_samples)
         if n_samples % sampler.n_chains:
@@ -142,8 +142,8 @@ class GroundStateSearch:
         h_sites, s_sites = getattr(hamiltonian, "n_sites", None), getattr(sampler.space, "n_sites", None)
         if h_sites is not None and s_sites is not None and h_sites != s_sites:
             raise ValueError(f"Hamiltonian acts on {h_sites} sites, the space has {s_sites}")
-        if energy_clip is not None:
-            clip_local_energies(jnp.zeros(1), energy_clip)  # validates the width (ValueError)
+        if winsorize is not None:
+            winsorize_local_energies(jnp.zeros(1), winsorize)  # validates the width (ValueError)
         _check_same_system(model, hamiltonian, sampler)
         if mesh is not None:  # chains split evenly over the devices
             parallel.check_divisible("n_chains", sampler.n_chains, parallel.check_mesh(mesh))
@@ -155,10 +155,10 @@ class GroundStateSearch:
         self.n_samples = int(n_samples)
         self.n_per_chain = self.n_samples // sampler.n_chains
         self.chunk = None if chunk is None else int(chunk)
-        self.energy_clip = energy_clip
+        self.winsorize = winsorize
         self.fast = bool(fast)
         self.vmc = vmc(model, hamiltonian, sampler, optimizer, self.n_samples, chunk=self.chunk,
-                       energy_clip=energy_clip, fast=self.fast)
+                       winsorize=winsorize, fast=self.fast)
         self._phases = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
         self._multi = {}  # steps_per_visit -> compiled multi_step
@@ -343,9 +343,9 @@ class GroundStateSearch:
         :func:`psiloom.operators.observables.measure`). Returns ``{name: Estimate}``.
 
         Operators follow the Hamiltonian's basis: for a state trained with a Marshall-rotated
-        Hamiltonian (``sign_rule=True``) pass operators rotated the same way (e.g. the
+        Hamiltonian (``marshall_basis=True``) pass operators rotated the same way (e.g. the
         correlation operators of :func:`psiloom.operators.observables.correlation_operators`
-        with ``sign_rule=True``); diagonal operators need no rotation.
+        with ``marshall_basis=True``); diagonal operators need no rotation.
         """
         from psiloom.operators.observables import measure as measure_local
 
@@ -400,13 +400,13 @@ class GroundStateSearch:
                                         "the given state", "this search")
         space = self.sampler.space
         x = getattr(state.chains, "x", None)
-        if not problems and x is not None and hasattr(space, "contains") and getattr(space, "total_sz", None) is not None:
+        if not problems and x is not None and hasattr(space, "contains") and getattr(space, "magnetisation", None) is not None:
             x = parallel.to_host(x)  # whole chains on every process (a collective when spread)
             inside = np.asarray(space.contains(x))
             if not inside.all():
                 sz = 0.5 * np.sum(x[~inside][0])
-                problems.append(f"magnetisation sector: chains have total_sz={sz:g}, this space has "
-                                f"total_sz={space.total_sz:g}")
+                problems.append(f"magnetisation sector: chains have magnetisation={sz:g}, this space has "
+                                f"magnetisation={space.magnetisation:g}")
         if history is not None and len(history):
             step = int(state.step)
             steps = [int(s) for s in history.columns["step"] if s <= step]

@@ -40,7 +40,7 @@ import jax.numpy as jnp
 import optax
 
 from psiloom import stats
-from psiloom.optimize.clipping import clip_local_energies
+from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.optimize.flatten import tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.states.base import check_input_size
@@ -110,7 +110,7 @@ def strong(tree):
 
 
 def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_samples: int,
-        chunk: int | None = None, energy_clip: float | None = None, fast: bool = True) -> VMC:
+        chunk: int | None = None, winsorize: float | None = None, fast: bool = True) -> VMC:
     """The pure functions of a VMC search (arguments as for :class:`psiloom.train.GroundStateSearch`,
     which validates them). ``optimizer`` receives the keyword ``geometry`` (the sample geometry,
     for stochastic reconfiguration) through :func:`optax.with_extra_args_support`."""
@@ -145,8 +145,8 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
 
     def gradient(params, x, e_loc):
         estimate = stats.estimate(e_loc.reshape(-1, sampler.n_chains))
-        if energy_clip is not None:
-            e_loc = clip_local_energies(e_loc, energy_clip)
+        if winsorize is not None:
+            e_loc = winsorize_local_energies(e_loc, winsorize)
         _, grad = energy_gradient(model.apply, params, x, e_loc)
         return estimate, grad, e_loc
 

@@ -11,7 +11,7 @@ from psiloom.operators.models import (
     transverse_field_ising,
     xxz,
 )
-from psiloom.operators.local import local_values
+from psiloom.operators.local import local_estimates
 from psiloom.operators import observables
 from psiloom.operators.observables import (
     correlation_operators,
@@ -24,6 +24,6 @@ from psiloom.operators.observables import (
 __all__ = [
     "PauliSum", "pauli", "total", "heisenberg", "j1j2", "magnetization_z", "spin_correlation",
     "spin_correlation_component", "staggered_magnetization_z", "transverse_field_ising", "xxz",
-    "local_values", "observables", "correlation_operators", "energy_statistics", "magnetizations",
+    "local_estimates", "observables", "correlation_operators", "energy_statistics", "magnetizations",
     "spin_correlations", "v_score",
 ]

@@ -99,7 +99,7 @@ def _fast_local_block(fast: FastUpdates, operator, x):
     return jnp.sum(terms, axis=-1)
 
 
-def local_values(
+def local_estimates(
     log_amplitude: LogAmplitudeFn,
     operator,
     x: jax.Array,

@@ -7,7 +7,7 @@ Conventions (stated per builder, since both are in common use):
 * :func:`heisenberg`, :func:`xxz` and :func:`j1j2` use **spin-1/2** operators ``S = σ/2``,
   ``H = J Σ_⟨ij⟩ (Sˣ_i Sˣ_j + Sʸ_i Sʸ_j + Δ Sᶻ_i Sᶻ_j)``, i.e. Pauli coefficients ``J/4``.
 
-Marshall sign rule (``sign_rule=True``, bipartite lattices only): rotating every spin of
+Marshall sign rule (``marshall_basis=True``, bipartite lattices only): rotating every spin of
 sublattice B by π about z, ``U = Π_{i∈B} σᶻ_i``, maps ``Sˣ_iSˣ_j + Sʸ_iSʸ_j → −(…)`` on every
 bond joining the two sublattices and leaves all other terms alone. The spectrum is unchanged;
 for the unfrustrated antiferromagnet the rotated ground state has non-negative amplitudes.
@@ -34,8 +34,8 @@ def _lattice(lattice) -> Lattice:
     return lattice
 
 
-def _sign_rule(sign_rule) -> bool:
-    return boolean("sign_rule", sign_rule)
+def _marshall_flag(marshall_basis) -> bool:
+    return boolean("marshall_basis", marshall_basis)
 
 
 def transverse_field_ising(lattice: Lattice, J: float = 1.0, h: float = 1.0) -> PauliSum:
@@ -60,35 +60,35 @@ def _exchange_bonds(n: int, bonds, J: float, delta: float, flip_xy: np.ndarray |
 
 def _marshall(lattice: Lattice, bonds) -> np.ndarray:
     if not lattice.is_bipartite:
-        raise ValueError(f"sign_rule=True needs a bipartite lattice; {lattice!r} is not bipartite")
+        raise ValueError(f"marshall_basis=True needs a bipartite lattice; {lattice!r} is not bipartite")
     sub = lattice.sublattice
     return sub[bonds[:, 0]] != sub[bonds[:, 1]] if len(bonds) else np.zeros(0, bool)
 
 
-def xxz(lattice: Lattice, J: float = 1.0, delta: float = 1.0, sign_rule: bool = False) -> PauliSum:
+def xxz(lattice: Lattice, J: float = 1.0, delta: float = 1.0, marshall_basis: bool = False) -> PauliSum:
     """``H = J Σ_⟨ij⟩ (Sˣ_iSˣ_j + Sʸ_iSʸ_j + Δ Sᶻ_iSᶻ_j)`` with spin-1/2 operators ``S = σ/2``."""
-    lattice, sign_rule = _lattice(lattice), _sign_rule(sign_rule)
+    lattice, marshall_basis = _lattice(lattice), _marshall_flag(marshall_basis)
     J, delta = _real("J", J), _real("delta", delta)
     bonds = lattice.bonds
-    flip = _marshall(lattice, bonds) if sign_rule else None
+    flip = _marshall(lattice, bonds) if marshall_basis else None
     return total(_exchange_bonds(lattice.n_sites, bonds, J, delta, flip), lattice.n_sites)
 
 
-def heisenberg(lattice: Lattice, J: float = 1.0, sign_rule: bool = False) -> PauliSum:
+def heisenberg(lattice: Lattice, J: float = 1.0, marshall_basis: bool = False) -> PauliSum:
     """``H = J Σ_⟨ij⟩ S_i·S_j`` with spin-1/2 operators (the isotropic case Δ = 1 of :func:`xxz`)."""
-    return xxz(lattice, J=J, delta=1.0, sign_rule=sign_rule)
+    return xxz(lattice, J=J, delta=1.0, marshall_basis=marshall_basis)
 
 
-def j1j2(lattice: Lattice, J1: float = 1.0, J2: float = 0.5, sign_rule: bool = False) -> PauliSum:
+def j1j2(lattice: Lattice, J1: float = 1.0, J2: float = 0.5, marshall_basis: bool = False) -> PauliSum:
     """``H = J1 Σ_⟨ij⟩ S_i·S_j + J2 Σ_⟨⟨ij⟩⟩ S_i·S_j`` (spin-1/2 operators; nearest and next-nearest
-    neighbour bonds of the lattice). ``sign_rule`` applies the Marshall rotation, which makes
+    neighbour bonds of the lattice). ``marshall_basis`` applies the Marshall rotation, which makes
     the J1 part sign-free but *not* the J2 part (next-nearest bonds join the same sublattice)."""
-    lattice, sign_rule = _lattice(lattice), _sign_rule(sign_rule)
+    lattice, marshall_basis = _lattice(lattice), _marshall_flag(marshall_basis)
     J1, J2 = _real("J1", J1), _real("J2", J2)
     n = lattice.n_sites
     nn, nnn = lattice.bonds, lattice.next_bonds
-    ops = _exchange_bonds(n, nn, J1, 1.0, _marshall(lattice, nn) if sign_rule else None)
-    ops += _exchange_bonds(n, nnn, J2, 1.0, _marshall(lattice, nnn) if sign_rule else None)
+    ops = _exchange_bonds(n, nn, J1, 1.0, _marshall(lattice, nn) if marshall_basis else None)
+    ops += _exchange_bonds(n, nnn, J2, 1.0, _marshall(lattice, nnn) if marshall_basis else None)
     return total(ops, n)
 
 

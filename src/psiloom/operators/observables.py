@@ -3,7 +3,7 @@
 Every quantity here is the mean of per-sample *local values* (``psiloom.operators.local``)
 over samples ``x ∼ |ψ|²``; errors, autocorrelation times and R̂ come from
 :func:`psiloom.stats.estimate`. Samples must keep the Markov-chain layout of
-:meth:`psiloom.sampling.MetropolisSampler.sample`: shape ``(n_time, n_chains, n_sites)``, with
+:meth:`psiloom.sampling.MetropolisChains.sample`: shape ``(n_time, n_chains, n_sites)``, with
 ``log ψ`` of shape ``(n_time, n_chains)`` when already known.
 
 Conventions (spin-1/2 operators ``S = σ/2``, ``ħ = 1``):
@@ -22,8 +22,8 @@ Conventions (spin-1/2 operators ``S = σ/2``, ``ħ = 1``):
   ``V = N · Var E / (E − E_∞)²`` with ``E_∞ = Tr H / dim`` the infinite-temperature energy
   over the configuration space used (a fixed-magnetisation sector changes it).
 
-Marshall sign rule: a state optimised for a Hamiltonian built with ``sign_rule=True`` lives in
-the rotated basis ``U = Π_{i∈B} σᶻ_i``. Pass ``sign_rule=True`` here too; then ``S_i·S_j`` on
+Marshall sign rule: a state optimised for a Hamiltonian built with ``marshall_basis=True`` lives in
+the rotated basis ``U = Π_{i∈B} σᶻ_i``. Pass ``marshall_basis=True`` here too; then ``S_i·S_j`` on
 pairs joining the two sublattices is rotated the same way (``SˣSˣ + SʸSʸ → −(…)``), giving the
 correlations of the physical, unrotated state. Diagonal observables are unaffected.
 """
@@ -107,7 +107,7 @@ _MAX_ENTRIES = 1 << 24
 def local_value_table(log_amplitude: LogAmplitudeFn, operators, samples, log_amps=None, chunk: int | None = None):
     """Local values of several operators on the same samples: ``(n_time, n_chains, n_ops)``.
 
-    ``O_loc(x) = Σ_x' ⟨x|O|x'⟩ ψ(x')/ψ(x)`` exactly as :func:`psiloom.operators.local.local_values`,
+    ``O_loc(x) = Σ_x' ⟨x|O|x'⟩ ψ(x')/ψ(x)`` exactly as :func:`psiloom.operators.local.local_estimates`,
     for all operators at once: their connected configurations are concatenated so that
     ``log ψ`` is evaluated in one call (one compilation) and ``log ψ(x)`` is shared. Without
     ``chunk``, samples are processed in chunks holding at most ~16 M configuration entries.
@@ -199,7 +199,7 @@ def _pair_operator(n: int, i: int, j: int, coef: float, flip_xy: bool, component
     return total([pauli(n, a + a, (i, j), (-1.0 if flip_xy and a in "XY" else 1.0) * coef) for a in letters], n)
 
 
-def correlation_operators(lattice: Lattice, sign_rule: bool = False,
+def correlation_operators(lattice: Lattice, marshall_basis: bool = False,
                           component: str = "all") -> tuple[np.ndarray, list[PauliSum]]:
     """``(displacements, operators)`` for the spin correlation by displacement ``r``.
 
@@ -211,24 +211,24 @@ def correlation_operators(lattice: Lattice, sign_rule: bool = False,
 
     Displacement ``k`` is ``coords[k]`` (so ``k = 0`` is ``r = 0``): on an open lattice these
     are the displacements with non-negative components (in 2-D, directions such as
-    ``(1, −1)`` are not included). With ``sign_rule`` the exchange (xx, yy) part of pairs
+    ``(1, −1)`` are not included). With ``marshall_basis`` the exchange (xx, yy) part of pairs
     joining the two sublattices changes sign (see module docstring).
     """
     if not isinstance(lattice, Lattice):
         raise ValueError(f"expected a psiloom Lattice, got {lattice!r}")
     component = one_of("component", component, COMPONENTS)
-    if sign_rule and not lattice.is_bipartite:
-        raise ValueError(f"sign_rule=True needs a bipartite lattice; {lattice!r} is not bipartite")
+    if marshall_basis and not lattice.is_bipartite:
+        raise ValueError(f"marshall_basis=True needs a bipartite lattice; {lattice!r} is not bipartite")
     n = lattice.n_sites
     coords = lattice.coords
-    extent = np.asarray(lattice.extent)
+    dims = np.asarray(lattice.shape)
     per_component = 0.75 if component == "all" else 0.25
     ops = []
     for r in coords:
-        if lattice.pbc:
+        if lattice.periodic:
             starts = range(n)
         else:
-            starts = [i for i in range(n) if np.all(coords[i] + r < extent)]
+            starts = [i for i in range(n) if np.all(coords[i] + r < dims)]
         weight = 1.0 / len(starts)
         terms = []
         for i in starts:
@@ -236,16 +236,16 @@ def correlation_operators(lattice: Lattice, sign_rule: bool = False,
             if i == j:
                 terms.append(PauliSum.identity(n, per_component * weight))
                 continue
-            flip = bool(sign_rule and lattice.sublattice[i] != lattice.sublattice[j])
+            flip = bool(marshall_basis and lattice.sublattice[i] != lattice.sublattice[j])
             terms.append(_pair_operator(n, i, j, 0.25 * weight, flip, component))
         ops.append(total(terms, n))
     return coords.copy(), ops
 
 
 def _minimum_image(lattice: Lattice, displacements: np.ndarray) -> np.ndarray:
-    if not lattice.pbc:
+    if not lattice.periodic:
         return np.sqrt(np.sum(displacements.astype(float) ** 2, axis=-1))
-    ext = np.asarray(lattice.extent)
+    ext = np.asarray(lattice.shape)
     d = np.mod(displacements, ext)
     d = np.minimum(d, ext - d)
     return np.sqrt(np.sum(d.astype(float) ** 2, axis=-1))
@@ -275,7 +275,7 @@ class SpinCorrelations(NamedTuple):
 
 
 def spin_correlations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, log_amps=None,
-                      sign_rule: bool = False, chunk: int | None = None,
+                      marshall_basis: bool = False, chunk: int | None = None,
                       component: str = "all") -> SpinCorrelations:
     """``C(r)`` for all displacements, its shell averages, and ``S(q)`` on all lattice momenta.
 
@@ -287,10 +287,10 @@ def spin_correlations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, 
     ``C(r)`` averages the pairs that exist (:func:`correlation_operators`), shells use plain
     distances and there is no ``S(q)``.
     """
-    disp, ops = correlation_operators(lattice, sign_rule, component)
+    disp, ops = correlation_operators(lattice, marshall_basis, component)
     table = jnp.real(local_value_table(log_amplitude, ops, samples, log_amps, chunk))  # (T, C, N)
     scales = np.array([operator_scale(op) for op in ops])
-    if lattice.pbc:
+    if lattice.periodic:
         q = lattice_momenta(lattice)
         phase = np.cos(q @ disp.T)  # (n_q, n_r)
         sq = table @ jnp.asarray(phase.T, dtype=table.dtype)

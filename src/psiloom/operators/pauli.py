@@ -296,9 +296,9 @@ class PauliSum:
 
     def local_energy(self, log_amplitude, x, log_amp_x=None, chunk: int | None = None):
         """Local values O_loc(x) = Σ_x' ⟨x|O|x'⟩ ψ(x')/ψ(x) (see :mod:`psiloom.operators.local`)."""
-        from psiloom.operators.local import local_values
+        from psiloom.operators.local import local_estimates
 
-        return local_values(log_amplitude, self, x, log_amp_x, chunk=chunk)
+        return local_estimates(log_amplitude, self, x, log_amp_x, chunk=chunk)
 
     def diagonal(self, x):
         """⟨x|O|x⟩ for a batch (the connection with an empty flip set)."""
@@ -308,16 +308,16 @@ class PauliSum:
         return xp.sum(xp.where(same, mels, 0), axis=-1)
 
     # ----------------------------------------------------------------- exact matrices
-    def to_sparse(self, space: SpinSpace | None = None, max_states_per_block: int = 1 << 16) -> sp.csr_matrix:
+    def sparse_matrix(self, space: SpinSpace | None = None, max_states_per_block: int = 1 << 16) -> sp.csr_matrix:
         """The matrix ``⟨x|O|x'⟩`` on ``space`` (default: the full 2^N space) as CSR.
 
-        Basis order is that of :meth:`SpinSpace.all_states`. Raises when the operator has
+        Basis order is that of :meth:`SpinSpace.configurations`. Raises when the operator has
         non-zero elements leaving a fixed-magnetisation sector.
         """
         space = SpinSpace(self.n_sites) if space is None else space
         if space.n_sites != self.n_sites:
             raise ValueError(f"space has {space.n_sites} sites, operator acts on {self.n_sites}")
-        states = space.all_states()
+        states = space.configurations()
         state_codes = codes(states)
         rows, cols, vals = [], [], []
         for start in range(0, len(states), max_states_per_block):
@@ -342,8 +342,8 @@ class PauliSum:
         )
         return mat.tocsr()
 
-    def to_dense(self, space: SpinSpace | None = None) -> np.ndarray:
-        return self.to_sparse(space).toarray()
+    def dense_matrix(self, space: SpinSpace | None = None) -> np.ndarray:
+        return self.sparse_matrix(space).toarray()
 
 
 def pauli(n_sites: int, letters: str, sites: Sequence[int] | int, coefficient: complex = 1.0) -> PauliSum:

@@ -1,12 +1,12 @@
 """Gradients and preconditioners: energy gradient, sample geometry, stochastic reconfiguration
 (dense, sample-space and matrix-free CG solvers), local-energy clipping."""
 
-from psiloom.optimize.clipping import clip_local_energies
+from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.optimize.flatten import conj_complex_leaves, ravel_real, tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
 from psiloom.optimize.sr import SRState, stochastic_reconfiguration
 
 __all__ = [
     "conj_complex_leaves", "ravel_real", "tree_norm", "SampleGeometry", "energy_gradient",
-    "SRState", "stochastic_reconfiguration", "clip_local_energies",
+    "SRState", "stochastic_reconfiguration", "winsorize_local_energies",
 ]

@@ -8,7 +8,7 @@ collection driver), ``moves`` (typed proposal moves), ``metropolis``, ``temperin
 from psiloom.sampling.base import Sampler, burn_in_and_collect, metropolis_accept
 from psiloom.sampling.direct import ChainRuleSampler, DrawInfo
 from psiloom.sampling.gibbs import BlockGibbsSampler, GibbsInfo, RBMWeights, gibbs_update, rbm_weights
-from psiloom.sampling.metropolis import ChainState, MetropolisSampler, StepInfo, metropolis_step
+from psiloom.sampling.metropolis import ChainState, MetropolisChains, StepInfo, metropolis_step
 from psiloom.sampling.moves import (
     BondExchange,
     GlobalFlip,
@@ -32,7 +32,7 @@ from psiloom.sampling.tempering import (
 
 __all__ = [
     "Sampler", "metropolis_accept", "burn_in_and_collect",
-    "ChainState", "MetropolisSampler", "StepInfo", "metropolis_step",
+    "ChainState", "MetropolisChains", "StepInfo", "metropolis_step",
     "Move", "SingleFlip", "BondExchange", "PairExchange", "GlobalFlip", "Mixture", "OrderedMove",
     "single_flip", "pair_exchange", "global_flip",
     "BlockGibbsSampler", "GibbsInfo", "RBMWeights", "gibbs_update", "rbm_weights",

@@ -31,7 +31,7 @@ sampler falls back to the JAX path for everything else (complex parameters, move
 pair exchange or mixtures, a non-CPU backend, or Numba absent). Both give the same chain for
 the same random numbers to rounding of the log-ratios (``tests/test_compiled_sweep.py``). The
 random numbers are drawn in JAX and passed in: the kernel itself is deterministic. All sweeps
-of one :meth:`~psiloom.sampling.MetropolisSampler.sample` call go to the kernel in one host
+of one :meth:`~psiloom.sampling.MetropolisChains.sample` call go to the kernel in one host
 call (:func:`host_call`, the only place that calls back to the host).
 
 Guards (raised as exceptions from the host call, never a crash or a silently wrong chain):

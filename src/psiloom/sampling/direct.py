@@ -33,7 +33,7 @@ class ChainRuleSampler:
     """Exact independent draws from an autoregressive trial state, ``n_chains`` per row.
 
     Args:
-        space: the configuration space; its ``total_sz`` must match the model's.
+        space: the configuration space; its ``magnetisation`` must match the model's.
         n_chains: samples per row of the returned ``(n_per_chain, n_chains, N)`` array.
     """
 
@@ -50,11 +50,11 @@ class ChainRuleSampler:
         model = log_amplitude.model
         if not callable(getattr(model, "sample", None)):
             raise ValueError(f"{type(model).__name__} has no sample(key, n_samples) method for direct sampling")
-        model_sz = getattr(model, "total_sz", None)
-        space_sz = self.space.total_sz
+        model_sz = getattr(model, "magnetisation", None)
+        space_sz = self.space.magnetisation
         if (model_sz is None) != (space_sz is None) or (model_sz is not None and float(model_sz) != space_sz):
             raise ValueError(
-                f"the model samples total_sz={model_sz!r} but the space has total_sz={space_sz!r}"
+                f"the model samples magnetisation={model_sz!r} but the space has magnetisation={space_sz!r}"
             )
         return log_amplitude
 

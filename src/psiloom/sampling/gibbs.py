@@ -122,10 +122,10 @@ class BlockGibbsSampler:
     """
 
     def __init__(self, space: SpinSpace, n_chains: int = 16, sweep: int = 1, burn_in: int = 0):
-        if space.constrained:
+        if space.is_sector:
             raise ValueError(
                 f"block Gibbs sampling resamples every spin independently and cannot keep "
-                f"total_sz={space.total_sz} fixed: use an unconstrained SpinSpace"
+                f"magnetisation={space.magnetisation} fixed: use an unconstrained SpinSpace"
             )
         self.space = space
         self.n_chains = positive_int("n_chains", n_chains)

@@ -13,9 +13,9 @@ The proposal is built here; the acceptance itself is the one step shared by ever
 :func:`psiloom.sampling.base.metropolis_accept`, and the burn-in / collection loop is
 :func:`psiloom.sampling.base.burn_in_and_collect`.
 
-:class:`MetropolisSampler` bundles a move with chain counts, burn-in and thinning (a *sweep*
+:class:`MetropolisChains` bundles a move with chain counts, burn-in and thinning (a *sweep*
 of ``n_sites`` proposals between stored samples by default). Chains persist between
-optimisation steps: after a parameter update call :meth:`MetropolisSampler.refresh` to
+optimisation steps: after a parameter update call :meth:`MetropolisChains.refresh` to
 recompute the cached log-amplitudes, then continue sampling from where the chains stood.
 
 Samples come out with shape ``(n_per_chain, n_chains, n_sites)`` — time along the chain
@@ -31,12 +31,12 @@ and writes only the K changed sites of ``x`` instead of building every ``x'``.
 
 Compiled sweeps: when the trial state hands out its plain RBM arrays (the real RBM and its
 weight-shared variants; ``FastUpdates.dense_rbm``), all sweeps of a
-:meth:`MetropolisSampler.sample` call run on the CPU in the sampler's Numba kernel
+:meth:`MetropolisChains.sample` call run on the CPU in the sampler's Numba kernel
 (:mod:`psiloom.sampling.compiled`), in one host call, when the move is single flips or a bond
 exchange (either order; :meth:`~psiloom.sampling.moves.Move.entry_table`): the
 proposals and uniforms are drawn in JAX exactly as on the JAX path and passed in, so both give
 the same chains (``compiled_sweeps=False`` keeps the JAX loop). A sequential sweep continues
-the cycle across sweeps of one :meth:`MetropolisSampler.sample` call and restarts it at
+the cycle across sweeps of one :meth:`MetropolisChains.sample` call and restarts it at
 position 0 in every call.
 
 Fast updates: when ``log_amplitude`` is a bound trial state implementing the protocol of
@@ -45,7 +45,7 @@ Fast updates: when ``log_amplitude`` is a bound trial state implementing the pro
 move changed, instead of a full O(N·M) evaluation. The random numbers are drawn exactly as
 on the generic path, so both paths produce the same chain for the same key (to rounding of
 the log-ratios). The cached log-amplitude is then accumulated, ``log ψ(x') = log ψ(x) + Δ``;
-:meth:`MetropolisSampler.refresh` (called by the training loop every step) recomputes both.
+:meth:`MetropolisChains.refresh` (called by the training loop every step) recomputes both.
 """
 
 from __future__ import annotations
@@ -148,7 +148,7 @@ def metropolis_step(move: Move) -> Callable:
     return step
 
 
-class MetropolisSampler:
+class MetropolisChains:
     """Metropolis sampler over ``n_chains`` independent chains.
 
     Args:

@@ -98,7 +98,7 @@ class Move:
 
     def keeps_sector(self, space) -> bool:
         """Whether every proposal stays in ``space`` (its fixed magnetisation, if any)."""
-        return not space.constrained or self.conserves_magnetisation
+        return not space.is_sector or self.conserves_magnetisation
 
     def check(self, n_sites: int) -> None:
         """Raise ``ValueError`` unless every proposal stays within ``n_sites`` sites."""
@@ -220,7 +220,7 @@ class GlobalFlip(Move):
     On its own it is not ergodic; mixed with local moves (:class:`Mixture`) it lets a chain jump
     between the two mirror-image modes of |ψ|² in the ordered phase of the transverse-field
     Ising model, where local flips cross between them only through improbable domain walls.
-    It negates the magnetisation, so it keeps only the ``total_sz = 0`` sector. All ``N`` sites
+    It negates the magnetisation, so it keeps only the ``magnetisation = 0`` sector. All ``N`` sites
     change: on the fast path its update costs about one full evaluation.
     """
 
@@ -232,7 +232,7 @@ class GlobalFlip(Move):
         return n_sites
 
     def keeps_sector(self, space):
-        return not space.constrained or space.total_sz == 0
+        return not space.is_sector or space.magnetisation == 0
 
 
 @jax.tree_util.register_static
@@ -406,7 +406,7 @@ def choose_move(space, move: Move | None = None, bonds=None) -> Move:
         exchange = BondExchange(bonds)
         exchange.check(space.n_sites)  # bad bonds are refused even where single flips are the default
     if move is None:
-        if space.constrained:
+        if space.is_sector:
             move = exchange if bonds is not None else pair_exchange
         else:
             move = single_flip
@@ -414,7 +414,7 @@ def choose_move(space, move: Move | None = None, bonds=None) -> Move:
         raise TypeError(f"move must be a psiloom.sampling.Move (e.g. single_flip, BondExchange(bonds)), got {move!r}")
     if not move.keeps_sector(space):
         raise ValueError(
-            f"{move!r} changes the magnetisation but the space fixes total_sz={space.total_sz}; "
+            f"{move!r} changes the magnetisation but the space fixes magnetisation={space.magnetisation}; "
             "use an exchange move"
         )
     move.check(space.n_sites)

@@ -161,7 +161,7 @@ class TemperingSampler:
         betas: inverse temperatures, ``betas[0] = 1`` then strictly decreasing to ≥ 0
             (e.g. :func:`geometric_betas`).
         move, bonds: the Metropolis proposal, chosen as in
-            :class:`~psiloom.sampling.MetropolisSampler`.
+            :class:`~psiloom.sampling.MetropolisChains`.
         sweep: Metropolis proposals per replica between exchange rounds (default ``n_sites``);
             one sweep plus one exchange round make a :meth:`step`, and samples are stored one
             step apart.

@@ -19,7 +19,7 @@ The logit of site i reads only the sites before it, through a strictly lower-tri
 x_k·V_{·k·} to the pre-activations of all later sites, so a draw of all N sites costs
 O(N² d) per sample.
 
-Fixed magnetisation (``total_sz``, with ``n_up = N/2 + total_sz``): with u_i up spins among
+Fixed magnetisation (``magnetisation``, with ``n_up = N/2 + magnetisation``): with u_i up spins among
 x_<i and N − i sites left (site i included), site i is forced down when u_i = n_up and forced
 up when n_up − u_i = N − i; otherwise the network's conditional is used. Every conditional
 stays normalised and p vanishes outside the sector (log ψ = −∞ there), so Σ_{x ∈ sector} p = 1.
@@ -56,13 +56,13 @@ def conditional_logits(params, x: jax.Array) -> jax.Array:
     return params["site_bias"] + linear + jnp.einsum("bia,ia->bi", jnp.tanh(pre), params["readout"])
 
 
-def _check_n_up(n: int, total_sz) -> int | None:
-    if total_sz is None:
+def _check_n_up(n: int, magnetisation) -> int | None:
+    if magnetisation is None:
         return None
-    total_sz = finite_real("total_sz", total_sz)
-    n_up = n / 2 + total_sz
+    magnetisation = finite_real("magnetisation", magnetisation)
+    n_up = n / 2 + magnetisation
     if abs(n_up - round(n_up)) > 1e-12 or not 0 <= round(n_up) <= n:
-        raise ValueError(f"total_sz={total_sz!r} is impossible for {n} sites")
+        raise ValueError(f"magnetisation={magnetisation!r} is impossible for {n} sites")
     return int(round(n_up))
 
 
@@ -119,7 +119,7 @@ class ChainRuleState(TrialState):
     Attributes:
         features: hidden units per site in the causal summary (d ≥ 0; 0 leaves only the
             direct linear term).
-        total_sz: restrict to the sector of fixed Sᶻ_tot = ½ Σ x_i (None: all 2^N states).
+        magnetisation: restrict to the sector of fixed Sᶻ_tot = ½ Σ x_i (None: all 2^N states).
         phase_features: width P of the phase network (0: ψ real and positive).
         init_scale: standard deviation of the Gaussian initial weights (small values start
             close to the uniform distribution).
@@ -130,7 +130,7 @@ class ChainRuleState(TrialState):
     """
 
     features: int = 4
-    total_sz: float | None = None
+    magnetisation: float | None = None
     phase_features: int = 0
     init_scale: float = 0.1
     param_dtype: Any = None
@@ -144,7 +144,7 @@ class ChainRuleState(TrialState):
     def log_amplitude(self, x):
         self._check()
         n = x.shape[-1]
-        n_up = _check_n_up(n, self.total_sz)
+        n_up = _check_n_up(n, self.magnetisation)
         dtype = self.param_dtype or default_real_dtype()
         init = nn.initializers.normal(self.init_scale)
         d = int(self.features)
@@ -187,7 +187,7 @@ class ChainRuleState(TrialState):
         x = jnp.asarray(x)
         lead, n = x.shape[:-1], x.shape[-1]
         flat = x.reshape(-1, n)
-        n_up = _check_n_up(n, self.total_sz)
+        n_up = _check_n_up(n, self.magnetisation)
         return jnp.sum(log_conditionals(conditional_logits(self._params(), flat), flat, n_up), axis=-1).reshape(lead)
 
     def sample(self, key: jax.Array, n_samples: int):
@@ -197,4 +197,4 @@ class ChainRuleState(TrialState):
         params = self._params()
         n = int(params["site_bias"].shape[0])
         dtype = jnp.result_type(float)
-        return draw(params, key, int(n_samples), _check_n_up(n, self.total_sz), dtype)
+        return draw(params, key, int(n_samples), _check_n_up(n, self.magnetisation), dtype)

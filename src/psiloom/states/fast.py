@@ -38,8 +38,8 @@ compiled sweep kernels (:mod:`psiloom.sampling.compiled`):
 Consumers never call the method themselves. They receive ``log ψ`` as a
 :class:`~psiloom.states.BoundState` (callable as ``x -> log ψ(x)``, which the training loop
 passes) and ask :func:`fast_updates_of` once per call (per ``sample`` or local-energy call,
-never per proposal): :class:`psiloom.sampling.MetropolisSampler`,
-:class:`psiloom.sampling.TemperingSampler` and :func:`psiloom.operators.local_values` (hence
+never per proposal): :class:`psiloom.sampling.MetropolisChains`,
+:class:`psiloom.sampling.TemperingSampler` and :func:`psiloom.operators.local_estimates` (hence
 ``PauliSum.local_energy``) do so automatically. A trial state without the method, a plain
 function, or ``BoundState(model, variables, fast=False)`` takes the generic path of full
 re-evaluation. Both paths give the same results to rounding (``tests/test_fast_updates.py``).

@@ -50,7 +50,7 @@ updates accumulates only over one step's sweeps. In float32 the tables overflow 
 ``|W| > 44``. It is an opt-in: the default keeps the parameters' precision.
 
 Compiled sweeps. For real parameters the fast updates also hand out the plain arrays of the
-state (``dense_rbm``: W, a and the tables e^{±2W}); :class:`~psiloom.sampling.MetropolisSampler`
+state (``dense_rbm``: W, a and the tables e^{±2W}); :class:`~psiloom.sampling.MetropolisChains`
 feeds them to its compiled CPU sweeps (:mod:`psiloom.sampling.compiled`, the same update in one
 Numba loop nest) for single flips and bond exchanges.
 """

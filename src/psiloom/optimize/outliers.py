@@ -1,4 +1,4 @@
-"""Local-energy outlier clipping for the gradient (common practice).
+"""Winsorized local energies for the gradient: outliers pulled to a window around the median.
 
 Near nodes of ψ, or early in an optimisation, a few samples can carry local energies far from
 the bulk. They barely move the mean but dominate the gradient's noise. The clipped values
@@ -10,6 +10,11 @@ replace E_loc in the gradient and in the SR residual only; the reported energy e
 unclipped. For complex local energies the real part is clipped around the median of the real
 part and the imaginary part is kept. ``k`` (``width``) of a few units touches only far outliers;
 ``k → ∞`` leaves every value unchanged.
+
+The window (median ± k mean absolute deviations, k = 5) is the rule used for neural
+wavefunctions of molecules by Pfau, Spencer, Matthews & Foulkes, Phys. Rev. Research 2, 033429
+(2020), Methods (from memory); pulling outliers to the window edge instead of dropping them is
+winsorizing in the statistician's sense. ``GroundStateSearch(winsorize=k)`` switches it on.
 
 Gradient-norm clipping and learning-rate schedules are optax's own
 (``optax.clip_by_global_norm``, ``optax.linear_schedule``, ...) and compose with
@@ -30,7 +35,7 @@ def _check_width(width) -> float:
     return positive_real("clipping width", width)
 
 
-def clip_local_energies(e_loc: jax.Array, width: float = 5.0) -> jax.Array:
+def winsorize_local_energies(e_loc: jax.Array, width: float = 5.0) -> jax.Array:
     """Clip local energies to ``median ± width · mean|E_loc − median|`` (see module docstring).
 
     Args:

@@ -1,8 +1,8 @@
 """Exact state vectors and expectation values on small spaces (comparing a trial state with ED).
 
-A state vector ``v`` has one amplitude per configuration of ``space.all_states()`` (the basis
-order of :meth:`psiloom.operators.PauliSum.to_sparse` and of the eigenvectors of
-:func:`psiloom.exact.lowest_eigenpairs`). For a trial state with batched ``log ψ`` the exact,
+A state vector ``v`` has one amplitude per configuration of ``space.configurations()`` (the basis
+order of :meth:`psiloom.operators.PauliSum.sparse_matrix` and of the eigenvectors of
+:func:`psiloom.reference.lowest_eigenpairs`). For a trial state with batched ``log ψ`` the exact,
 normalised vector is obtained by enumeration,
 
     v_x = exp(log ψ(x) − c) / sqrt(Σ_y |exp(log ψ(y) − c)|²),     c = max_x Re log ψ(x),
@@ -22,7 +22,7 @@ from typing import Callable
 import numpy as np
 
 from psiloom._validation import positive_int
-from psiloom.exact.lanczos import operator_matrix
+from psiloom.reference.lanczos import operator_matrix
 from psiloom.spaces import SpinSpace
 
 __all__ = ["state_vector", "expectation", "fidelity"]
@@ -39,12 +39,12 @@ def state_vector(log_amplitude: Callable, space: SpinSpace, chunk: int = 1 << 14
 
     Returns:
         ``(space.size,)`` complex128 (float64 when ``log ψ`` is real), unit norm, in the basis
-        order of ``space.all_states()``.
+        order of ``space.configurations()``.
     """
     if not isinstance(space, SpinSpace):
         raise TypeError(f"space must be a SpinSpace, got {type(space).__name__}")
     chunk = positive_int("chunk", chunk)
-    states = space.all_states()
+    states = space.configurations()
     logs = np.concatenate([
         np.asarray(log_amplitude(states[start:start + chunk])).reshape(-1)
         for start in range(0, len(states), chunk)
@@ -83,8 +83,8 @@ def expectation(operator, vector, space: SpinSpace | None = None):
 
     Args:
         operator: a PauliSum (its matrix on ``space`` is built) or a square matrix in the basis
-            of ``space.all_states()``.
-        vector: amplitudes over ``space.all_states()`` (need not be normalised).
+            of ``space.configurations()``.
+        vector: amplitudes over ``space.configurations()`` (need not be normalised).
         space: the space of ``vector`` (default: all ``2^N`` configurations of a PauliSum).
 
     Returns:

@@ -12,12 +12,12 @@ __all__ = [
     "tfim_ring_energy_per_site_infinite",
 ]
 
-from psiloom.exact.lanczos import (  # noqa: E402
+from psiloom.reference.lanczos import (  # noqa: E402
     DENSE_LIMIT, ground_state, lowest_eigenpairs, operator_matrix, sector_eigenpairs,
 )
 
 __all__ += ["DENSE_LIMIT", "ground_state", "lowest_eigenpairs", "operator_matrix", "sector_eigenpairs"]
 
-from psiloom.exact.vectors import expectation, fidelity, state_vector  # noqa: E402
+from psiloom.reference.vectors import expectation, fidelity, state_vector  # noqa: E402
 
 __all__ += ["expectation", "fidelity", "state_vector"]

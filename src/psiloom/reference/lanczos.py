@@ -9,7 +9,7 @@ where Lanczos does not apply).
 A symmetry sector (:class:`psiloom.symmetry.Sector`) restricts the problem to the orthonormal
 orbit basis ``B`` of :func:`psiloom.symmetry.sector_basis`: the block ``B† H B`` is
 diagonalised and its eigenvectors are mapped back, ``ψ = B φ``, so that vectors always come
-in the basis order of ``space.all_states()``. The operator must commute with the group.
+in the basis order of ``space.configurations()``. The operator must commute with the group.
 """
 
 from __future__ import annotations
@@ -30,14 +30,14 @@ DENSE_LIMIT = 256
 
 
 def operator_matrix(operator, space: SpinSpace | None = None):
-    """The matrix of ``operator`` on ``space`` (basis order of ``space.all_states()``).
+    """The matrix of ``operator`` on ``space`` (basis order of ``space.configurations()``).
 
-    ``operator`` is anything with ``to_sparse(space)`` (a :class:`~psiloom.operators.PauliSum`)
+    ``operator`` is anything with ``sparse_matrix(space)`` (a :class:`~psiloom.operators.PauliSum`)
     or a SciPy sparse matrix / 2-D NumPy array already written in that basis (its size is then
     checked against ``space`` when a space is given). Returns a CSR matrix.
     """
-    if hasattr(operator, "to_sparse"):
-        return sp.csr_matrix(operator.to_sparse(space))
+    if hasattr(operator, "sparse_matrix"):
+        return sp.csr_matrix(operator.sparse_matrix(space))
     if sp.issparse(operator) or isinstance(operator, np.ndarray):
         mat = sp.csr_matrix(operator)
         if mat.ndim != 2 or mat.shape[0] != mat.shape[1]:
@@ -48,7 +48,7 @@ def operator_matrix(operator, space: SpinSpace | None = None):
             )
         return mat
     raise TypeError(
-        f"operator must be a PauliSum (anything with to_sparse) or a square matrix, "
+        f"operator must be a PauliSum (anything with sparse_matrix) or a square matrix, "
         f"got {type(operator).__name__}"
     )
 
@@ -81,7 +81,7 @@ def lowest_eigenpairs(operator, space: SpinSpace | None = None, k: int = 1, tol:
 
     Args:
         operator: a Hermitian PauliSum, or a Hermitian sparse/dense matrix in the basis of
-            ``space.all_states()``.
+            ``space.configurations()``.
         space: the configuration space (default: all ``2^N`` configurations of the operator).
         k: number of eigenpairs.
         tol: Lanczos tolerance (unused by the dense solver).
@@ -89,7 +89,7 @@ def lowest_eigenpairs(operator, space: SpinSpace | None = None, k: int = 1, tol:
             sector are returned (the operator must commute with its group).
 
     Returns:
-        ``(values, vectors)``; the vectors are in the basis order of ``space.all_states()``.
+        ``(values, vectors)``; the vectors are in the basis order of ``space.configurations()``.
     """
     k = positive_int("k", k)
     if hasattr(operator, "is_hermitian") and not operator.is_hermitian():
@@ -119,7 +119,7 @@ def sector_eigenpairs(operator, space: SpinSpace, sector, k: int = 1, tol: float
     """The ``k`` lowest eigenpairs of ``operator`` restricted to a symmetry sector.
 
     Same as ``lowest_eigenpairs(operator, space, k, tol, sector=sector)``; the eigenvectors are
-    in the basis of ``space.all_states()``. Raises ValueError if the sector is empty or smaller
+    in the basis of ``space.configurations()``. Raises ValueError if the sector is empty or smaller
     than ``k``.
     """
     return lowest_eigenpairs(operator, space, k=k, tol=tol, sector=sector)

@@ -20,7 +20,7 @@ from hypothesis import given, strategies as st
 from hypothesis.extra import numpy as hnp
 
 import psiloom as pl
-from psiloom.optimize import clip_local_energies, energy_gradient, stochastic_reconfiguration, tree_norm
+from psiloom.optimize import winsorize_local_energies, energy_gradient, stochastic_reconfiguration, tree_norm
 
 
 def numpy_clip(e, k):
@@ -37,7 +37,7 @@ finite = st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)
 
 @given(e=hnp.arrays(np.float64, st.sampled_from([1, 2, 7, 40]), elements=finite), k=st.floats(0.1, 20.0))
 def test_clip_matches_definition(e, k):
-    got = np.asarray(clip_local_energies(jnp.asarray(e), k))
+    got = np.asarray(winsorize_local_energies(jnp.asarray(e), k))
     np.testing.assert_allclose(got, numpy_clip(e, k), rtol=1e-12, atol=1e-9)
     # window property: nothing further than k·mean|e − median| from the median
     m = np.median(e)
@@ -47,7 +47,7 @@ def test_clip_matches_definition(e, k):
 @given(e=hnp.arrays(np.float64, st.sampled_from([1, 2, 7, 40]), elements=finite))
 def test_clip_is_monotone_and_keeps_the_median(e):
     # clipping is a monotone map (order of samples preserved) and the median is a fixed point
-    got = np.asarray(clip_local_energies(jnp.asarray(e), 2.0))
+    got = np.asarray(winsorize_local_energies(jnp.asarray(e), 2.0))
     order = np.argsort(e, kind="stable")
     assert np.all(np.diff(got[order]) >= -1e-9)
     np.testing.assert_allclose(np.median(got), np.median(e), rtol=1e-12, atol=1e-9)
@@ -56,12 +56,12 @@ def test_clip_is_monotone_and_keeps_the_median(e):
 def test_clip_worked_example_and_complex():
     # e = [0,1,2,3,100]: median 2, mean|e−2| = (2+1+0+1+98)/5 = 20.4, k = 1 → 100 ↦ 22.4
     e = jnp.array([0.0, 1.0, 2.0, 3.0, 100.0])
-    np.testing.assert_allclose(np.asarray(clip_local_energies(e, 1.0)), [0, 1, 2, 3, 22.4], rtol=1e-14)
+    np.testing.assert_allclose(np.asarray(winsorize_local_energies(e, 1.0)), [0, 1, 2, 3, 22.4], rtol=1e-14)
     # large k: unchanged
-    np.testing.assert_array_equal(np.asarray(clip_local_energies(e, 1e3)), np.asarray(e))
+    np.testing.assert_array_equal(np.asarray(winsorize_local_energies(e, 1e3)), np.asarray(e))
     # complex: real part clipped, imaginary part kept
     ec = e + 1j * jnp.arange(5.0)
-    got = np.asarray(clip_local_energies(ec, 1.0))
+    got = np.asarray(winsorize_local_energies(ec, 1.0))
     np.testing.assert_allclose(got.real, [0, 1, 2, 3, 22.4], rtol=1e-14)
     np.testing.assert_array_equal(got.imag, np.arange(5.0))
 
@@ -69,12 +69,12 @@ def test_clip_worked_example_and_complex():
 @given(k=st.one_of(st.floats(max_value=0.0), st.just(float("nan")), st.just("wide")))
 def test_bad_width_rejected(k):
     with pytest.raises(ValueError, match="width"):
-        clip_local_energies(jnp.ones(3), k)
+        winsorize_local_energies(jnp.ones(3), k)
 
 
 def test_bad_shape_rejected():
     with pytest.raises(ValueError, match=r"\(2, 3\)"):
-        clip_local_energies(jnp.ones((2, 3)), 3.0)
+        winsorize_local_energies(jnp.ones((2, 3)), 3.0)
 
 
 # ----------------------------------------------------------------------------- in the training step
@@ -83,7 +83,7 @@ def small_problem():
     lat = pl.lattices.chain(6)
     space = pl.spaces.SpinSpace(6)
     ham = pl.operators.transverse_field_ising(lat, 1.0, 1.0)
-    sampler = pl.sampling.MetropolisSampler(space, n_chains=8)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=8)
     return ham, sampler
 
 
@@ -105,12 +105,12 @@ def spy_transformation(n_samples, n_sites, params):
     return optax.GradientTransformationExtraArgs(init, update)
 
 
-def test_energy_clip_changes_gradient_not_estimate(small_problem):
+def test_winsorize_changes_gradient_not_estimate(small_problem):
     ham, sampler = small_problem
     model = pl.states.RBM(alpha=1, init_scale=0.5)
     params = model.init(jax.random.PRNGKey(0), jnp.ones((1, 6)))
     opt = optax.chain(spy_transformation(64, 6, params), optax.sgd(0.0))
-    search = pl.train.GroundStateSearch(model, ham, sampler, opt, n_samples=64, energy_clip=0.5)
+    search = pl.train.GroundStateSearch(model, ham, sampler, opt, n_samples=64, winsorize=0.5)
     new, out = search.step(search.init(jax.random.PRNGKey(0), params))
     spy = new.opt_state[0]
     # unclipped local energies of the step's samples, recomputed here by the generic path
@@ -129,10 +129,10 @@ def test_energy_clip_changes_gradient_not_estimate(small_problem):
     assert abs(float(out.grad_norm) - float(tree_norm(g_plain))) > 1e-6
 
 
-def test_energy_clip_validated(small_problem):
+def test_winsorize_validated(small_problem):
     ham, sampler = small_problem
     with pytest.raises(ValueError, match="width"):
-        pl.train.GroundStateSearch(pl.states.RBM(), ham, sampler, optax.sgd(0.1), n_samples=64, energy_clip=-1.0)
+        pl.train.GroundStateSearch(pl.states.RBM(), ham, sampler, optax.sgd(0.1), n_samples=64, winsorize=-1.0)
 
 
 # ----------------------------------------------------------------------------- optax composition
