@@ -112,6 +112,7 @@ class CheckpointLock:
         self.held = False
 
     def acquire(self) -> "CheckpointLock":
+        """Take the lock (write ``<path>.lock`` with this pid); refuse when a live process holds it."""
         if self.held or not parallel.is_main_process():
             return self
         os.makedirs(os.path.dirname(self.path), exist_ok=True)
@@ -142,6 +143,7 @@ class CheckpointLock:
         raise CheckpointError(f"could not take the lock {self.path!r} (another process keeps recreating it)")
 
     def release(self) -> None:
+        """Remove the lock file if this object holds it (idempotent)."""
         if self.held:
             self.held = False
             try:

@@ -77,18 +77,23 @@ class Hook:
     """Base class of loop hooks (all methods optional; see the module docstring)."""
 
     def stops_at(self, step: int, n_steps: int) -> bool:
+        """Whether the loop must return to the host after ``step`` (1-based) of ``n_steps``."""
         return False
 
     def start(self, state, n_steps: int) -> None:
+        """Called once before the first visit with the starting state."""
         pass
 
     def before(self, state) -> dict | None:
+        """Called before each visit; a returned dict is merged into that visit's extra row fields."""
         return None
 
     def after(self, visit: Visit) -> None:
+        """Called after each visit with its rows (not after a visit that raised)."""
         pass
 
     def close(self) -> None:
+        """Called once when the run ends, also after an error."""
         pass
 
 

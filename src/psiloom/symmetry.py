@@ -140,10 +140,12 @@ class SymmetryGroup:
 
     @property
     def n_sites(self) -> int:
+        """Number of sites the permutations act on."""
         return int(self.perms.shape[1])
 
     @property
     def dim(self) -> int:
+        """Spatial dimension of the linear parts (0 when there are none)."""
         return int(self.linear.shape[1]) if self.linear.ndim == 3 else 0
 
     @property
@@ -567,10 +569,12 @@ class Sector:
 
     @property
     def is_real(self) -> bool:
+        """True when every character is real."""
         return bool(np.all(np.abs(self.characters.imag) < 1e-12))
 
     @property
     def is_trivial(self) -> bool:
+        """True for the trivial representation (all characters 1)."""
         return bool(np.all(np.abs(self.characters - 1) < 1e-12))
 
     def check_representation(self, atol: float = 1e-9) -> None:

@@ -219,6 +219,7 @@ class GroundStateSearch:
         return est, acc, parallel.constrain_chains(chains, self.mesh, self.sampler.n_chains)
 
     def n_parameters(self, state: TrainState) -> int:
+        """Number of real parameters of ``state`` (a complex one counts twice)."""
         return count_real_parameters(state.params)
 
     def template(self):

@@ -60,6 +60,7 @@ class VMCState(NamedTuple):
 
 
 class StepOutput(NamedTuple):
+    """What one VMC step reports: the energy estimate, the acceptance and the SR diagnostics."""
     energy: stats.Estimate
     acceptance: jax.Array
     grad_norm: jax.Array

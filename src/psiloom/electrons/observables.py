@@ -35,6 +35,7 @@ class EnergyComponents(NamedTuple):
     virial_ratio: float  # −⟨V⟩ / ⟨T⟩
 
     def format(self) -> str:
+        """One line per component, aligned, in parenthesis notation (hartree)."""
         labels = (("total E", self.total), ("kinetic T", self.kinetic), ("potential V", self.potential),
                   ("electron-nuclear", self.electron_nuclear), ("electron-electron", self.electron_electron))
         width = max(len(label) for label, _ in labels)

@@ -110,10 +110,12 @@ class Molecule:
     # ------------------------------------------------------------------ derived quantities
     @property
     def n_nuclei(self) -> int:
+        """Number of nuclei."""
         return int(self.charges.size)
 
     @property
     def n_electrons(self) -> int:
+        """Number of electrons, n_up + n_down."""
         return self.n_up + self.n_down
 
     @property

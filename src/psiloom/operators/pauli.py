@@ -135,6 +135,7 @@ class PauliSum:
 
     @classmethod
     def identity(cls, n_sites: int, coefficient: complex = 1.0) -> "PauliSum":
+        """``coefficient`` times the identity on ``n_sites`` sites."""
         return cls(n_sites, {(): coefficient})
 
     # ----------------------------------------------------------------- algebra
@@ -195,6 +196,7 @@ class PauliSum:
         return PauliSum(self.n_sites, {s: np.conj(c) for s, c in self.terms.items()})
 
     def is_hermitian(self, atol: float = 1e-12) -> bool:
+        """True when every coefficient is real to ``atol`` (Pauli strings are Hermitian)."""
         return all(abs(np.imag(c)) <= atol for c in self.terms.values())
 
     def trace_per_dim(self) -> complex:
@@ -343,6 +345,7 @@ class PauliSum:
         return mat.tocsr()
 
     def dense_matrix(self, space: SpinSpace | None = None) -> np.ndarray:
+        """Dense matrix in the σᶻ basis of ``space`` (see :meth:`sparse_matrix`)."""
         return self.sparse_matrix(space).toarray()
 
 

@@ -64,12 +64,14 @@ from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
 
 class ChainState(NamedTuple):
+    """State of the Metropolis chains: configurations, log ψ there and the fast-update cache."""
     x: jax.Array  # (n_chains, n_sites) current configurations
     log_amp: jax.Array  # (n_chains,) log ψ at x
     cache: Any = None  # fast-update cache of x (leading axis n_chains), None on the generic path
 
 
 class StepInfo(NamedTuple):
+    """What one Metropolis sweep did, per chain."""
     accepted: jax.Array  # (n_chains,) bool: whether each chain moved
     log_ratio: jax.Array  # (n_chains,) 2 Re[log ψ(x') − log ψ(x)]
 

@@ -160,6 +160,7 @@ class BondExchange(Move):
 
     @property
     def array(self) -> np.ndarray:
+        """The bonds as an ``(n_bonds, 2)`` int64 array."""
         return np.asarray(self.bonds, dtype=np.int64)
 
     def __call__(self, key, x):
@@ -338,10 +339,12 @@ class OrderedMove(Move):
 
     @property
     def array(self) -> np.ndarray:
+        """The table as an int64 array (one row of sites per scan position)."""
         return np.asarray(self.table, dtype=np.int64)
 
     @property
     def n_positions(self) -> int:
+        """Number of positions of the systematic scan (rows of the table)."""
         return len(self.table)
 
     @property
@@ -390,8 +393,11 @@ class OrderedMove(Move):
         return f"OrderedMove({self.kind}, {self.n_positions} positions)"
 
 
+#: The single-spin flip (a ready instance of :class:`SingleFlip`).
 single_flip = SingleFlip()
+#: Swap of a random up spin with a random down spin (a ready :class:`PairExchange`).
 pair_exchange = PairExchange()
+#: Flip of every spin (a ready :class:`GlobalFlip`).
 global_flip = GlobalFlip()
 
 

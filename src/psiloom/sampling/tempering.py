@@ -50,6 +50,7 @@ from psiloom.states.fast import FastUpdates, fast_updates_of
 
 
 class TemperingState(NamedTuple):
+    """Replicas ``(R, C, N)`` of every chain at the inverse temperatures ``betas``."""
     x: jax.Array  # (R, C, N) configurations of every replica of every chain
     log_amp: jax.Array  # (R, C) log ψ at x
     parity: jax.Array  # () int32: which pair set (even r or odd r) the next exchange round tries
@@ -59,6 +60,7 @@ class TemperingState(NamedTuple):
 
 
 class TemperingInfo(NamedTuple):
+    """Acceptance of the Metropolis steps and of the replica exchanges of one step."""
     acceptance: jax.Array  # (R,) mean Metropolis acceptance of each replica in this step
     attempted: jax.Array  # (R−1,) bool: which neighbouring pairs were tried in this step
     swapped: jax.Array  # (R−1, C) bool: which pairs of which chains were exchanged
