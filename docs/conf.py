@@ -43,7 +43,13 @@ myst_heading_anchors = 3
 # other libraries' objects (numpy, jax, flax, optax, the standard library) are not resolved: no
 # inventory is fetched, since the build must work without network access.
 nitpicky = True
-nitpick_ignore_regex = [(r"py:.*", r"(?!psiloom(\.|$)).*")]
+_BUILTINS = ("int|float|complex|bool|str|bytes|object|None|type|tuple|list|dict|set|frozenset|slice|"
+             "Ellipsis|NotImplemented|callable|Exception|ValueError|TypeError|FloatingPointError|"
+             "RuntimeError|OSError|KeyError|IndexError|AttributeError")
+nitpick_ignore_regex = [
+    (r"py:.*", r"(?!psiloom\.)[A-Za-z_]\w*\..+"),  # dotted names outside psiloom (jax.Array, numpy.ndarray)
+    (r"py:.*", rf"({_BUILTINS})(\[.*)?"),  # builtins (and the head of a generic, dict[str, int])
+]
 
 autodoc_default_options = {"members": True, "show-inheritance": True, "member-order": "bysource"}
 autodoc_typehints = "signature"
@@ -55,6 +61,7 @@ napoleon_google_docstring = True
 napoleon_numpy_docstring = False
 napoleon_use_rtype = False
 napoleon_use_ivar = True
+napoleon_use_param = False  # 'a / b: ...' and 'a, b: ...' entries stay names, not types
 
 html_theme = "alabaster"
 html_title = f"psiloom {release}"

@@ -129,6 +129,7 @@ def skip_member(app, what, name, obj, skip, options):
     return None
 
 
+_FIELD = re.compile(r"^(\s*:(?:ivar|cvar|var|param|parameter|arg|argument|keyword|kwarg) )([^:`]+?)(:.*)$")
 _LITERAL = re.compile(r"(``.*?``)")
 
 
@@ -157,7 +158,13 @@ def process_docstring(app, what, name, obj, options, lines):
         short = name.rsplit(".", 1)[-1]
         if short in attribute_docs():
             lines[:] = list(attribute_docs()[short]) + [""]
-    elif what == "class" and inspect.isclass(obj) and _generated_doc(obj):
+    for i, line in enumerate(lines):
+        # napoleon turns "a / b: text" and "a, b: text" entries into ":ivar a / b:", which
+        # Sphinx would read as a type "a /" and a name "b": keep the names as one word
+        field = _FIELD.match(line)
+        if field and " " in field.group(2).strip():
+            lines[i] = field.group(1) + re.sub(r"\s*([/,])\s*", r"\1", field.group(2).strip()) + field.group(3)
+    if what == "class" and inspect.isclass(obj) and _generated_doc(obj):
         lines[:] = []
 
 
@@ -215,6 +222,20 @@ def missing_reference(app, env, node, contnode):
             found = domain.resolve_xref(env, node.get("refdoc", ""), app.builder, role, full, node, contnode)
             if found is not None:
                 return found
+    # a short name used in a docstring of a package's page for a name that one of the package's
+    # modules documents (``:func:`infinite_temperature_energy``` in psiloom.operators)
+    if "." not in target and module:
+        names = env.get_domain("py").objects
+        parts = module.split(".")
+        for cut in range(len(parts), 0, -1):
+            prefix = ".".join(parts[:cut]) + "."
+            found = [n for n, entry in names.items() if n.startswith(prefix) and n.endswith("." + target)
+                     and not getattr(entry, "aliased", False)]
+            if len(found) == 1:
+                domain = env.get_domain("py")
+                return domain.resolve_xref(env, node.get("refdoc", ""), app.builder, "obj", found[0], node, contnode)
+            if found:
+                break
     return None
 
 

@@ -62,6 +62,7 @@ import jax.numpy  # noqa: F401  (jax.numpy.asarray in _put)
 import numpy as np
 from jax.sharding import AxisType, Mesh, NamedSharding, PartitionSpec
 
+#: Name of the mesh axis along which samples (chains, walkers) are split.
 SAMPLE_AXIS = "samples"
 
 

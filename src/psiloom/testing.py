@@ -114,7 +114,7 @@ def assert_covariant(model, variables, group, characters, x, elements=None, atol
         scale: reference ``log|ψ|``; default the largest in the batch. Pass it when a batch may
             consist of zeros of ψ only (e.g. hypothesis drawing only symmetric configurations).
     Raises:
-        AssertionError naming the first violating sample.
+        AssertionError: naming the first violating sample.
     """
     x = np.asarray(x, dtype=np.float64)
     if x.ndim != 2:

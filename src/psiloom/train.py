@@ -192,7 +192,8 @@ class GroundStateSearch:
         chains = parallel.constrain_chains(state.chains, self.mesh, self.sampler.n_chains)
         return (TrainState(step, params, opt_state, chains, key), *outputs)
 
-    EVALUATION_PROGRAMS = 4  # compiled evaluation passes kept (least recently used dropped)
+    #: Compiled evaluation passes kept (the least recently used is dropped).
+    EVALUATION_PROGRAMS = 4
 
     def _program(self, kind: str, n_per_chain: int, burn_in: int):
         """The compiled evaluation pass ``(params, chains, key) -> ...`` of one sample count and

@@ -190,7 +190,7 @@ def magnetizations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, log
 
 
 # ---------------------------------------------------------------------- correlations
-#: Components of the spin correlation: the full S_i·S_j or one of its diagonal parts S^a_i S^a_j.
+#: Components of the spin correlation — the full S_i·S_j or one of its diagonal parts S^a_i S^a_j.
 COMPONENTS = ("all", "xx", "yy", "zz")
 
 

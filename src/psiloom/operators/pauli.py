@@ -104,7 +104,7 @@ class PauliSum:
         coefficient is a finite real or complex number.
 
         Raises:
-            TypeError (also a ValueError): letters not a string, a site not an integer (a
+            TypeError: (also a ValueError) letters not a string, a site not an integer (a
                 fractional site is never truncated), a coefficient that is not a number.
             ValueError: unknown letters, sites outside the lattice or repeated, a non-finite
                 coefficient, or as many letters as sites not given.

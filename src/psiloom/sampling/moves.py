@@ -148,7 +148,7 @@ class BondExchange(Move):
     lattice); conserves the magnetisation. A bond with equal spins gives a null move.
 
     ``bonds``: pairs of distinct, non-negative site indices (any array-like of shape (B, 2));
-    kept as a tuple of pairs. Sites beyond the configuration are refused by :meth:`check`
+    kept as a tuple of pairs. Sites beyond the configuration are refused by :meth:`Move.check`
     (the samplers call it with their space) and when proposing.
     """
 
@@ -386,7 +386,7 @@ class OrderedMove(Move):
 
     def proposed_values(self, old: jax.Array) -> jax.Array:
         """New values at the sites of one proposal from the old ones ``(n, K)``: ``−x_s`` for a
-        flip, the two values swapped for an exchange (what :meth:`__call__` writes into ``x``)."""
+        flip, the two values swapped for an exchange (what a call of the move writes into ``x``)."""
         return -old if self.kind == FLIP else old[:, ::-1]
 
     def __repr__(self) -> str:
