@@ -8,6 +8,7 @@ documented with their remaining public names, so no object appears twice.
 from __future__ import annotations
 
 import importlib
+import inspect
 import os
 import pkgutil
 import types
@@ -32,7 +33,8 @@ def public_modules() -> list[str]:
 
 
 def reexported(module_name: str) -> set[str]:
-    """Names of ``module_name`` that its parent package lists in ``__all__`` (documented there)."""
+    """Functions and classes of ``module_name`` that its parent package lists in ``__all__``
+    (documented there). Constants are documented in the module that assigns them."""
     if "." not in module_name:
         return set()
     parent = importlib.import_module(module_name.rsplit(".", 1)[0])
@@ -41,7 +43,9 @@ def reexported(module_name: str) -> set[str]:
     for name in getattr(parent, "__all__", ()):
         if hasattr(module, name) and getattr(module, name) is getattr(parent, name, None):
             obj = getattr(module, name)
-            if getattr(obj, "__module__", module_name) == module_name or name in getattr(module, "__all__", ()):
+            if not (inspect.isclass(obj) or inspect.isroutine(obj) or hasattr(obj, "__wrapped__")):
+                continue  # a constant stays where its "#:" comment is
+            if getattr(obj, "__module__", None) == module_name or name in getattr(module, "__all__", ()):
                 names.add(name)
     return names
 

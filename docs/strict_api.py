@@ -6,8 +6,8 @@
   assigned). A missing one is a warning, so ``sphinx -W`` fails.
 * A reference written against the defining submodule (``psiloom.states.rbm.RBM``) or produced by
   a type annotation resolves to where the object is documented (``psiloom.states.RBM``).
-* A constant listed in a package's ``__all__`` but assigned (with its ``#:`` comment) in a
-  submodule is documented at the package with that comment.
+* A constant listed in a package's ``__all__`` is documented in the submodule that assigns it
+  (with its ``#:`` comment); references through the package resolve there.
 """
 
 from __future__ import annotations
@@ -123,9 +123,6 @@ def _generated_doc(cls) -> bool:
 def skip_member(app, what, name, obj, skip, options):
     if what == "module" and inspect.ismodule(obj):
         return True  # submodules have their own pages
-    if what == "module" and skip and not name.startswith("_") and not _is_routine_or_class(obj) \
-            and not inspect.ismodule(obj) and name in attribute_docs():
-        return False
     return None
 
 
@@ -224,6 +221,10 @@ def missing_reference(app, env, node, contnode):
                 return found
     # a short name used in a docstring of a package's page for a name that one of the package's
     # modules documents (``:func:`infinite_temperature_energy``` in psiloom.operators)
+    # a constant is documented where its "#:" comment is (psiloom.electrons.system.BOHR_PER_ANGSTROM);
+    # a reference to it through the package (psiloom.electrons.BOHR_PER_ANGSTROM) resolves there
+    if target.startswith("psiloom.") and _import(target) is not None:
+        module, target = target.rsplit(".", 1)
     if "." not in target and module:
         names = env.get_domain("py").objects
         parts = module.split(".")
