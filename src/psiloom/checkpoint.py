@@ -179,7 +179,7 @@ def describe_state(state) -> dict:
 
 def describe_space(space) -> dict:
     """Type, ``n_sites`` and magnetisation sector (``magnetisation``) of a configuration space."""
-    out = {"type": type(space).__name__}
+    out: dict[str, Any] = {"type": type(space).__name__}
     for attr in ("n_sites", "magnetisation", "n_electrons"):
         value = getattr(space, attr, None)
         if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool):
@@ -260,7 +260,7 @@ def compare_meta(found: dict, expected: dict, found_name: str = "the checkpoint"
 
 def run_meta(sampler=None, n_chains: int | None = None) -> dict:
     """The run description stored in a checkpoint header and checked on load."""
-    meta = {"x64": bool(jax.config.jax_enable_x64)}
+    meta: dict[str, Any] = {"x64": bool(jax.config.read("jax_enable_x64"))}
     if sampler is not None:
         meta["n_chains"] = int(sampler.n_chains)
         space = getattr(sampler, "space", None)

@@ -104,7 +104,7 @@ class SymmetryGroup:
     lattice_shape: tuple[int, ...] = ()
     periodic: bool = True
     name: str = "group"
-    _index: dict = field(default=None, repr=False, compare=False)
+    _index: dict | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self):
         perms = np.asarray(self.perms, dtype=np.int64)
@@ -246,7 +246,8 @@ class SymmetryGroup:
             fl = self.flips[:, None] * self.flips[None, :]
             keys = [(comp[g, h].tobytes(), int(fl[g, h])) for g in range(n) for h in range(n)]
             try:
-                table = np.array([self._index[k] for k in keys], dtype=np.int64).reshape(n, n)
+                index = self._index if self._index is not None else {}
+                table = np.array([index[k] for k in keys], dtype=np.int64).reshape(n, n)
             except KeyError:
                 raise ValueError(f"{self!r} is not closed under composition") from None
         table.setflags(write=False)
@@ -355,6 +356,7 @@ def point_group(lattice: Lattice) -> SymmetryGroup:
     90° and four mirrors). Rectangle ``Lx ≠ Ly``: C2v (order 4).
     """
     lattice = _check_lattice(lattice)
+    mats: tuple
     if lattice.kind == "chain":
         mats, label = _CHAIN_MIRROR, "Cs"
     elif lattice.kind == "square":
@@ -423,7 +425,7 @@ def product(a: SymmetryGroup, b: SymmetryGroup) -> SymmetryGroup:
             return grp.linear[g], grp.shifts[g]
         return np.eye(d, dtype=np.int64), np.zeros(d, np.int64)
 
-    elements = []  # (perm, flip, linear, shift)
+    elements: list[tuple] = []  # (perm, flip, linear, shift)
     seen = {}
 
     def key_of(perm, flip, lin, sh):

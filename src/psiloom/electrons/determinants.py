@@ -84,7 +84,7 @@ class SlaterJastrow(ElectronState):
 def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True, width: int = 16,
                    layers: int = 2) -> SlaterJastrow:
     """Slater–Jastrow state: analytic Slater-type orbitals, cusp Jastrow (+ neural Jastrow)."""
-    jastrows = [CuspJastrow(system)]
+    jastrows: list[nn.Module] = [CuspJastrow(system)]
     if neural_jastrow:
         jastrows.append(NeuralJastrow(system, width=width, layers=layers))
     return SlaterJastrow(SlaterTypeOrbitals(system, n_det), tuple(jastrows))

@@ -24,7 +24,7 @@ with Adam; every determinant is pulled toward the same HF orbitals.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import NamedTuple, cast
 
 import flax.linen as nn
 import jax
@@ -195,7 +195,7 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
     n_steps = positive_int("n_steps", n_steps)
     system = hf.orbitals.system
     sampler = ElectronSampler(system, n_chains=n_walkers, burn_in=0, equilibrate=50)
-    hf_log = lambda x: hf.state.apply({}, x)
+    hf_log = lambda x: cast(jax.Array, hf.state.apply({}, x))
     k_init, k_run = jax.random.split(key)
     walkers = sampler.init(k_init, hf_log)
     opt = optax.adam(learning_rate)

@@ -95,7 +95,7 @@ class PauliSum:
 
     # ----------------------------------------------------------------- construction
     @classmethod
-    def term(cls, n_sites: int, letters: str, sites: Sequence[int], coefficient: complex = 1.0) -> "PauliSum":
+    def term(cls, n_sites: int, letters: str, sites: Sequence[int] | int, coefficient: complex = 1.0) -> "PauliSum":
         """``coefficient · Π_k σ^{letters[k]}_{sites[k]}`` on distinct sites.
 
         ``sites`` are integers in ``[0, n_sites)``, each named once (a site named twice would

@@ -97,7 +97,7 @@ SOLVERS = ("dense", "sample_space", "cg", "auto")
 
 class SRState(NamedTuple):
     """Optax state of :func:`stochastic_reconfiguration`: the update count and the CG warm start."""
-    count: jax.Array  # number of updates made (the schedules' argument)
+    count: jax.Array  # type: ignore[assignment]  # number of updates made (Optax's name; shadows tuple.count)
     previous: Any = None  # last δ (real vector) when the CG solver warm-starts, else None
 
 

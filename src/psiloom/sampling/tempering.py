@@ -94,7 +94,7 @@ def _check_betas(betas) -> np.ndarray:
     return arr
 
 
-def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
+def tempered_metropolis_step(move: Move, betas: Sequence[float] | np.ndarray) -> Callable:
     """Pure kernel for one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ)):
 
         step(key, x (R,C,N), log_amp (R,C), log_amplitude, log_u=None, cache=None, fast=None)
@@ -125,13 +125,13 @@ def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
     return step
 
 
-def replica_exchange(betas: Sequence[float]) -> Callable:
+def replica_exchange(betas: Sequence[float] | np.ndarray) -> Callable:
     """Pure kernel ``exchange(key, x, log_amp, parity, cache=None) -> (x, log_amp, cache, attempted (R−1,),
     swapped (R−1,C))``: one round of neighbour exchanges over the pairs (r, r+1) with r ≡ parity (mod 2);
     a fast-update cache (leading axis R·C) travels with its configuration."""
     betas = _check_betas(betas)
     n_rep = len(betas)
-    dbeta = np.asarray(betas[:-1] - betas[1:])  # (R−1,) > 0
+    dbeta = -np.diff(betas)  # (R−1,) β_r − β_{r+1} > 0
 
     def exchange(key, x, log_amp, parity, cache=None):
         if n_rep == 1:

@@ -220,6 +220,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
                 delta = delta + dv[:, k] * visible_bias[idx[..., k]]
         if e_plus is None:  # K = 0: nothing changes
             return delta, cache
+        assert e_minus is not None  # set together with e_plus
         plus, minus = cache.plus * e_plus, cache.minus * e_minus
         ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
         inverse = 1.0 / ratio

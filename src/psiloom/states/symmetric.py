@@ -35,7 +35,7 @@ log-sum-exp again.
 
 from __future__ import annotations
 
-from typing import Any, NamedTuple
+from typing import Any, NamedTuple, cast
 
 import jax
 import jax.numpy as jnp
@@ -155,7 +155,7 @@ class Symmetrized(TrialState):
         perms, flips, chi = self._elements()
         base = self.base.clone(parent=None)
         base_vars = {col: tree["base"] for col, tree in self.variables.items() if "base" in tree}
-        base_fast = base.apply(base_vars, method="fast_updates")
+        base_fast = cast("FastUpdates | None", base.apply(base_vars, method="fast_updates"))
         if base_fast is None:
             return None
         images_tab = jnp.asarray(np.argsort(perms, axis=1))  # e(i): where site i goes
