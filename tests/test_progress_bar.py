@@ -55,3 +55,10 @@ def test_bar_shows_energy_in_parenthesis_notation_and_acceptance_on_a_terminal()
 
 def test_postfix_rounds_like_the_estimate_printout():
     assert format_bar_postfix({"energy": 1.23456, "error": 0.00034, "acceptance": 0.25}) == "E = 1.23456(34)  acc 0.250"
+
+
+def test_default_output_that_is_not_a_terminal_turns_the_bar_off(monkeypatch):
+    # outside a notebook kernel, tqdm's auto mode is the text bar; a redirected stderr (a log
+    # file, CI) is no terminal, so the bar stays off and GroundStateSearch prints lines instead
+    monkeypatch.setattr("sys.stderr", io.StringIO())
+    assert not ProgressBar().enabled

@@ -133,14 +133,15 @@ class ProgressBar(Hook):
     def __init__(self, file=None, enabled: bool | None = None, description: str = "VMC"):
         try:
             from tqdm import auto as tqdm_auto
-            from tqdm import std as tqdm_std
+            from tqdm.notebook import tqdm_notebook
         except ImportError as err:  # pragma: no cover - tqdm is an optional dependency
             raise ImportError("the progress bar needs tqdm: pip install 'psiloom[progress]'") from err
         import sys
 
         self.file = sys.stderr if file is None else file
         self._tqdm = tqdm_auto.tqdm
-        notebook = tqdm_auto.tqdm is not tqdm_std.tqdm and file is None
+        # tqdm's auto mode picks its widget bar only inside a notebook kernel with ipywidgets
+        notebook = issubclass(tqdm_auto.tqdm, tqdm_notebook) and file is None
         if enabled is None:
             isatty = getattr(self.file, "isatty", None)
             enabled = notebook or bool(isatty is not None and isatty())
