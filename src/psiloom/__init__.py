@@ -14,6 +14,7 @@ from psiloom import batching, compilation, reference, lattices, operators, optim
 from psiloom import checkpoint, history, loop, vmc  # the pieces behind train.GroundStateSearch
 from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 
+#: The package version (also in ``pyproject.toml``).
 __version__ = "0.1.0"
 
 __all__ = ["batching", "compilation", "reference", "lattices", "operators", "optimize", "parallel", "plotting", "reduce", "sampling", "spaces", "states",
