@@ -94,28 +94,42 @@ def _configurations(n_sites: int):
     return jnp.asarray(SpinSpace(n_sites).configurations())
 
 
-def _padded(tables, chunk: int):
+def _chunks(tables, chunk: int):
+    """The shots of ``tables`` as device arrays in chunks of ``chunk`` (the last padded, masked)."""
     s = tables.outcomes.shape[0]
-    n_chunks = -(-s // chunk)
-    pad = n_chunks * chunk - s
+    out = []
+    for start in range(0, s, chunk):
+        stop = min(start + chunk, s)
+        pad = chunk - (stop - start)
+        parts = []
+        for a in tables:
+            part = a[start:stop]
+            if pad:
+                part = np.concatenate([part, np.broadcast_to(a[:1], (pad,) + a.shape[1:])])
+            parts.append(jnp.asarray(part))
+        mask = jnp.asarray(np.arange(chunk) < stop - start)
+        out.append((*parts, mask))
+    return out
 
-    def reshape(a, fill):
-        a = np.concatenate([a, np.broadcast_to(fill, (pad,) + a.shape[1:])]) if pad else a
-        return jnp.asarray(a.reshape((n_chunks, chunk) + a.shape[1:]))
 
-    mask = np.concatenate([np.ones(s), np.zeros(pad)]).reshape(n_chunks, chunk)
-    return (reshape(tables.outcomes, tables.outcomes[0]), reshape(tables.sites, tables.sites[0]),
-            reshape(tables.factors, tables.factors[0]), jnp.asarray(mask))
+class _Evaluator:
+    """Exact NLL per shot over chunked records: one compiled program per chunk shape."""
 
+    def __init__(self, model, configurations):
+        self.configurations = configurations
 
-def _mean_log_probability(model, variables, outcomes, sites, factors, mask):
-    """Masked mean of the unnormalised 2 Re log ψ_b(s) over chunked shots."""
-    def one(args):
-        o, s, f, m = args
-        lp = lk.shot_log_probabilities(model, variables, o, s, f)
-        return jnp.sum(jnp.where(m > 0, lp, 0.0))
+        @jax.jit
+        def chunk_sum(variables, outcomes, sites, factors, mask):
+            lp = lk.shot_log_probabilities(model, variables, outcomes, sites, factors)
+            return jnp.sum(jnp.where(mask, lp, 0.0))
 
-    return jnp.sum(jax.lax.map(one, (outcomes, sites, factors, mask))) / jnp.sum(mask)
+        self.chunk_sum = chunk_sum
+        self.log_z = (jax.jit(lambda v: lk.log_normaliser(model, v, configurations))
+                      if configurations is not None else (lambda v: 0.0))
+
+    def __call__(self, variables, chunks, n_shots: int) -> float:
+        total = sum(float(self.chunk_sum(variables, *c)) for c in chunks)
+        return -total / n_shots + float(self.log_z(variables))
 
 
 def record_nll(model, variables, record: MeasurementRecord, normaliser: str = "exact",
@@ -125,11 +139,9 @@ def record_nll(model, variables, record: MeasurementRecord, normaliser: str = "e
     normaliser = one_of("normaliser", normaliser, ("exact", "normalised"))
     if not isinstance(record, MeasurementRecord):
         raise ArgumentTypeError(f"record must be a MeasurementRecord, got {type(record).__name__}")
-    log_z = 0.0
-    if normaliser == "exact":
-        log_z = lk.log_normaliser(model, variables, _configurations(record.n_sites))
-    args = _padded(shot_tables(record, n_rotated), min(EVALUATION_CHUNK, record.n_shots))
-    return float(-_mean_log_probability(model, variables, *args) + log_z)
+    configurations = _configurations(record.n_sites) if normaliser == "exact" else None
+    chunks = _chunks(shot_tables(record, n_rotated), min(EVALUATION_CHUNK, record.n_shots))
+    return _Evaluator(model, configurations)(variables, chunks, record.n_shots)
 
 
 def _check_target(target, n_sites: int):
@@ -250,20 +262,15 @@ def learn_from_shots(model, record: MeasurementRecord, optimizer: optax.Gradient
 
     epoch = jax.jit(epoch)
 
-    def nll_of(tabs):
-        if not (exact_eval or mode == "normalised"):
-            return None
-        args = _padded(tabs, min(EVALUATION_CHUNK, tabs.outcomes.shape[0]))
-
-        @jax.jit
-        def f(variables):
-            log_z = lk.log_normaliser(model, variables, configurations) if exact_eval else 0.0
-            return -_mean_log_probability(model, variables, *args) + log_z
-
-        return f
-
-    train_nll = nll_of(tables)
-    held_nll = nll_of(shot_tables(held, k_rot)) if held is not None else None
+    train_nll = held_nll = None
+    if exact_eval or mode == "normalised":
+        evaluator = _Evaluator(model, configurations if exact_eval else None)
+        chunk = min(EVALUATION_CHUNK, n_train)
+        train_chunks = _chunks(tables, chunk)
+        train_nll = lambda v: evaluator(v, train_chunks, n_train)  # noqa: E731
+        if held is not None:
+            held_chunks = _chunks(shot_tables(held, k_rot), chunk)
+            held_nll = lambda v: evaluator(v, held_chunks, held.n_shots)  # noqa: E731
     if patience is not None and held_nll is None:
         raise ValueError(f"early stopping needs the exact validation NLL, which normaliser={mode!r} on "
                          f"{n} sites cannot provide (enumerate up to {AUTO_EXACT_SITES} sites or use ChainRuleState)")
