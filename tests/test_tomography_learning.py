@@ -118,3 +118,18 @@ def test_sign_structure_needs_rotated_shots():
     # Z shots alone fix |ψ| (its fidelity with |ψ0| is high) but not the signs
     assert pl.reference.fidelity(np.abs(vec), np.abs(v0)) > 0.9
     assert tm.state_fidelity(z_only.model, z_only.variables, v0) < 0.5
+
+
+@pytest.mark.parametrize("normaliser", ["contrastive", "persistent"])
+def test_sampled_gradients_train_an_rbm(normaliser):
+    # TFIM L = 6 from Z shots with the model term from block Gibbs chains (CD-2 / PCD-2); the
+    # uniform starting state has fidelity (Σ|ψ0|)²/64 ≈ 0.53 with ψ0
+    n = 6
+    _, v0 = _tfim(n)
+    record = tm.simulate_record(jax.random.PRNGKey(0), v0, "Z" * n, 4000)
+    epochs, steps = 10, 10 * (3600 // 200)
+    optimizer = optax.adam(optax.cosine_decay_schedule(0.02, steps, 0.1))
+    result = tm.learn_from_shots(S.RBM(alpha=1), record, optimizer, jax.random.PRNGKey(1), epochs=epochs,
+                                 batch_size=200, normaliser=normaliser, gibbs_updates=2)
+    assert result.normaliser == normaliser
+    assert tm.state_fidelity(result.model, result.variables, v0) > 0.95

@@ -60,8 +60,8 @@ def test_autoregressive_state_learns_with_its_exact_likelihood():
     v0 = _tfim_state(n)
     record = tm.simulate_record(jax.random.PRNGKey(1), v0, "Z" * n, 4000)
     model = S.ChainRuleState(features=2)
-    result = tm.learn_from_shots(model, record, optax.adam(0.02), jax.random.PRNGKey(2), epochs=8,
-                                 batch_size=250, target=v0)
+    result = tm.learn_from_shots(model, record, optax.adam(0.02), jax.random.PRNGKey(2), epochs=6,
+                                 batch_size=250)
     assert result.normaliser == "normalised"
     # log Z = 0 by construction: the normalised NLL equals the enumerated one
     held = record.subset(slice(0, 500))
@@ -69,7 +69,7 @@ def test_autoregressive_state_learns_with_its_exact_likelihood():
                       tm.record_nll(model, result.variables, held, "exact"), atol=1e-10)
     h = result.history
     assert h["validation_nll"][-1] < h["validation_nll"][0]
-    assert h["fidelity"][-1] > 0.97
+    assert tm.state_fidelity(model, result.variables, v0) > 0.97
 
 
 def test_bad_training_input_is_refused():
