@@ -9,7 +9,9 @@ is one compiled ``lax.scan``; Python only loops over epochs.
 After each epoch the history (:class:`psiloom.history.History`, ``step`` = epoch, 1-based)
 receives ``train_nll`` and ``validation_nll`` (the exact NLL per shot, where log Z is known:
 enumerable or normalised states; NaN otherwise), ``fidelity`` with a known target vector (when
-given) and ``seconds``. With held-out shots, the returned variables are those of the epoch with
+given) and ``seconds``. CD-k chains start at the first ``n_chains`` shots of each batch
+(outcomes of rotated shots are not σᶻ configurations, but any start is valid for a Markov
+chain); persistent chains start at the first training shots. With held-out shots, the returned variables are those of the epoch with
 the lowest validation NLL; ``patience`` stops the run after that many epochs without an
 improvement larger than ``min_improvement`` (early stopping, common practice).
 """
