@@ -100,3 +100,26 @@ def test_bad_training_input_is_refused():
         tm.simulate_record(key, np.ones(4), "ZQ", 10)
     with pytest.raises(ValueError, match="n_shots"):
         tm.simulate_record(key, np.ones(4), "ZZ", 0)
+
+
+def test_early_stopping_keeps_the_best_epoch():
+    # a zero learning rate never improves the validation NLL after the first epoch
+    n = 4
+    record = tm.simulate_record(jax.random.PRNGKey(0), _tfim_state(n), "Z" * n, 200)
+    result = tm.learn_from_shots(S.RBM(alpha=1), record, optax.sgd(0.0), jax.random.PRNGKey(1), epochs=10,
+                                 batch_size=50, patience=2)
+    assert len(result.history) == 3 and result.best_epoch == 1
+    np.testing.assert_allclose(result.history["validation_nll"], result.history["validation_nll"][0])
+
+
+def test_sector_vectors_are_embedded_in_the_full_space():
+    n = 4
+    space = pl.spaces.SpinSpace(n, magnetisation=0)
+    H = pl.operators.heisenberg(pl.lattices.chain(n))
+    _, sector_vector = pl.reference.ground_state(H, space)
+    _, full = pl.reference.ground_state(H)
+    for basis in ("ZZZZ", "XYZZ"):
+        np.testing.assert_allclose(tm.measurement_probabilities(sector_vector, basis, space),
+                                   tm.measurement_probabilities(full, basis), atol=1e-12)
+    record = tm.simulate_record(jax.random.PRNGKey(2), sector_vector, "ZZZZ", 50, space=space)
+    assert np.all(record.outcomes.sum(axis=1) == 0)
