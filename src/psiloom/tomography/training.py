@@ -26,7 +26,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
-from psiloom._validation import ArgumentTypeError, finite_real, nonnegative_int, one_of, positive_int
+from psiloom._validation import ArgumentTypeError, finite_real, one_of, positive_int
 from psiloom.history import History
 from psiloom.spaces import SpinSpace
 from psiloom.states.autoregressive import ChainRuleState
