@@ -80,6 +80,8 @@ def test_bad_text_names_the_line(tmp_path, text, message):
 
 
 def test_bad_arrays():
+    with pytest.raises(ValueError, match="different lengths"):
+        MeasurementRecord.from_arrays([[1, -1, 1], [1, -1]])
     with pytest.raises(ValueError, match="at least one shot"):
         MeasurementRecord.from_arrays(np.zeros((0, 3)))
     with pytest.raises(ValueError, match="bits=True"):

@@ -60,7 +60,11 @@ def basis_string(codes) -> str:
 
 
 def _outcome_array(outcomes, bits: bool) -> np.ndarray:
-    arr = np.asarray(outcomes)
+    try:
+        arr = np.asarray(outcomes)
+    except ValueError as err:  # ragged nested sequences
+        lengths = sorted({len(row) for row in outcomes}) if hasattr(outcomes, "__iter__") else "?"
+        raise ValueError(f"shots of different lengths {lengths}: every shot needs one outcome per site") from err
     if arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool):
         raise ArgumentTypeError(f"outcomes must be a numeric array, got dtype {arr.dtype}")
     if arr.ndim != 2:
