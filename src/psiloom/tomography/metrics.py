@@ -19,7 +19,7 @@ estimate (f_t = 0) makes the operator unmeasurable and raises.
 
 from __future__ import annotations
 
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import jax
 import numpy as np
@@ -40,12 +40,16 @@ __all__ = ["ShotEstimate", "learned_vector", "state_fidelity", "measured_kl", "s
 class ShotEstimate(NamedTuple):
     """An expectation value estimated from independent shots: mean and one standard error."""
 
-    mean: float
+    mean: float | complex
     error: float
     n_shots: int  # shots that contributed to at least one term
 
     def __str__(self) -> str:
-        return stats.parenthesis_notation(self.mean, self.error)
+        mean = complex(self.mean)
+        text = stats.parenthesis_notation(mean.real, self.error)
+        if mean.imag != 0.0:
+            text += stats.parenthesis_notation(mean.imag, self.error, sign=True) + "j"
+        return text
 
 
 def learned_vector(model, variables, n_sites: int) -> np.ndarray:
@@ -137,6 +141,7 @@ def state_expectation(model, variables, operator: PauliSum, key: jax.Array | Non
     space = SpinSpace(n)
     bound = BoundState(model, variables)
     n_chains = 16
+    sampler: Any  # three sampler classes; only init/sample are used
     if isinstance(model, ChainRuleState):
         sampler = sampling.ChainRuleSampler(space, n_chains=n_chains)
     elif isinstance(model, RBM) and not model.complex_params:

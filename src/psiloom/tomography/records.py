@@ -156,10 +156,12 @@ class MeasurementRecord:
     # ------------------------------------------------------------------ views
     @property
     def n_shots(self) -> int:
+        """Number of shots (rows)."""
         return int(self.outcomes.shape[0])
 
     @property
     def n_sites(self) -> int:
+        """Number of sites measured in every shot (columns)."""
         return int(self.outcomes.shape[1])
 
     def __len__(self) -> int:

@@ -33,7 +33,7 @@ import numpy as np
 from psiloom.tomography.records import MeasurementRecord, basis_codes
 
 _SQ = 1.0 / np.sqrt(2.0)
-#: ⟨s|_b x⟩ indexed [basis code, outcome index (0: +1, 1: −1), x index (0: +1, 1: −1)].
+#: Overlaps ``⟨s|_b x⟩`` indexed ``[basis code, outcome index (0: +1, 1: −1), x index (0: +1, 1: −1)]``.
 OVERLAPS = np.array([
     [[1.0, 0.0], [0.0, 1.0]],
     [[_SQ, _SQ], [_SQ, -_SQ]],
@@ -81,6 +81,7 @@ class ShotTables(NamedTuple):
 
     @property
     def n_rotated(self) -> int:
+        """K, the largest number of non-Z sites of any shot (rotated sites per row, padded)."""
         return int(self.sites.shape[1])
 
 

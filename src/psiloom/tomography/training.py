@@ -44,6 +44,7 @@ AUTO_EXACT_SITES = 16
 #: Shots per evaluation chunk (bounds the memory of NLL passes over large records).
 EVALUATION_CHUNK = 2048
 
+#: Columns of the learning-curve history (epoch, training and held-out NLL per shot, fidelity, seconds).
 LEARNING_COLUMNS = ("step", "train_nll", "validation_nll", "fidelity", "seconds")
 
 __all__ = ["LearnedState", "learn_from_shots", "resolve_normaliser", "record_nll", "ENUMERATION_LIMIT",
@@ -64,6 +65,7 @@ class LearnedState(NamedTuple):
         return self.model.apply(self.variables, x)
 
     def bound(self) -> BoundState:
+        """The learned state bound to its variables (a callable log ψ)."""
         return BoundState(self.model, self.variables)
 
 
@@ -285,7 +287,7 @@ def learn_from_shots(model, record: MeasurementRecord, optimizer: optax.Gradient
     for e in range(epochs):
         t0 = time.perf_counter()
         variables, opt_state, chains = epoch(variables, opt_state, chains, keys[e], outcomes, sites, factors)
-        row = {"step": e + 1}
+        row: dict[str, float] = {"step": e + 1}
         row["train_nll"] = float(train_nll(variables)) if train_nll else float("nan")
         row["validation_nll"] = float(held_nll(variables)) if held_nll else float("nan")
         row["fidelity"] = float(fid(variables)) if fid else float("nan")
