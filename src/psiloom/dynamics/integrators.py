@@ -102,40 +102,42 @@ def tableau(name) -> Tableau:
     return TABLEAUS[one_of("integrator", name, tuple(TABLEAUS))]
 
 
-def _axpy(y, terms):
-    """y + Σ_j coef_j · tree_j over pytrees (``terms``: list of (coef, tree), coef a traced scalar)."""
-    def combine(leaf, *others):
-        out = leaf
-        for (coef, _), o in zip(terms, others):
-            out = out + (coef * o).astype(leaf.dtype)
-        return out
-    if not terms:
-        return y
-    return jax.tree_util.tree_map(combine, y, *[t for _, t in terms])
-
-
 def runge_kutta_step(f: Callable, tab: Tableau, t, y, h, carry, key, error_norm: Callable | None = None):
     """One step of ``tab`` from (t, y) with step ``h``.
 
     Returns ``(y_new, carry, error, info)``: ``error`` is ``error_norm(e, info)`` of the
     embedded estimate (0 for fixed-step methods; Euclidean norm when ``error_norm`` is None) and
     ``info`` is the right-hand side's info at the first stage.
+
+    The stages run in one ``lax.scan`` (the stage derivatives k_i stacked along a leading axis,
+    y_i = y + h Σ_j a_ij k_j with the zero upper triangle included), so ``f`` is traced and
+    compiled once whatever the number of stages.
     """
-    keys = jax.random.split(key, tab.stages)
-    ks = []
-    info0 = None
-    for i in range(tab.stages):
-        terms = [(h * tab.a[i][j], ks[j]) for j in range(i) if tab.a[i][j] != 0.0]
-        yi = _axpy(y, terms)
-        k, carry, info = f(t + tab.c[i] * h, yi, carry, keys[i])
-        if i == 0:
-            info0 = info
-        ks.append(k)
-    y_new = _axpy(y, [(h * b, k) for b, k in zip(tab.b, ks) if b != 0.0])
+    s = tab.stages
+    keys = jax.random.split(key, s)
+    a = jnp.asarray(tab.a, jnp.result_type(float))
+    c = jnp.asarray(tab.c, jnp.result_type(float))
+    k_shape = jax.eval_shape(lambda yy, cc, kk: f(t, yy, cc, kk)[0], y, carry, keys[0])
+    ks0 = jax.tree_util.tree_map(lambda l: jnp.zeros((s, *l.shape), l.dtype), k_shape)
+
+    def combine(base, weights, ks):
+        return jax.tree_util.tree_map(
+            lambda l, kk: l + (h * jnp.tensordot(weights.astype(kk.dtype), kk, axes=1)).astype(l.dtype), base, ks)
+
+    def stage(state, inputs):
+        ks, cry = state
+        i, a_row, c_i, k_i = inputs
+        yi = combine(y, a_row, ks)
+        k, cry, info = f(t + c_i * h, yi, cry, k_i)
+        ks = jax.tree_util.tree_map(lambda stack, new: stack.at[i].set(new), ks, k)
+        return (ks, cry), info
+
+    (ks, carry), infos = jax.lax.scan(stage, (ks0, carry), (jnp.arange(s), a, c, keys))
+    info0 = jax.tree_util.tree_map(lambda l: l[0], infos)
+    y_new = combine(y, jnp.asarray(tab.b, a.dtype), ks)
     if tab.adaptive:
-        diff = [(h * (b - bl), k) for b, bl, k in zip(tab.b, tab.b_low, ks) if b != bl]
         zero = jax.tree_util.tree_map(jnp.zeros_like, y)
-        e = _axpy(zero, diff)
+        e = combine(zero, jnp.asarray(tab.b, a.dtype) - jnp.asarray(tab.b_low, a.dtype), ks)
         if error_norm is None:
             error = jnp.sqrt(sum(jnp.sum(jnp.abs(l) ** 2) for l in jax.tree_util.tree_leaves(e)))
         else:

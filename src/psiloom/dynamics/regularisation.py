@@ -77,12 +77,18 @@ def _eigh(system: TDVPSystem):
     return sigma, v
 
 
+def _soft(ratio):
+    """1/(1 + ratio⁶) for ratio ≥ 0, without overflow (ratio may be huge or inf)."""
+    r = jnp.minimum(ratio, 1e30)
+    return 1.0 / (1.0 + r ** 6)
+
+
 def _spectral_filter(sigma, rcond, soft):
     top = jnp.max(sigma)
     cut = rcond * top
     if soft:
         safe = jnp.where(sigma > 0, sigma, 1.0)
-        return jnp.where(sigma > 0, 1.0 / (1.0 + (cut / safe) ** 6), 0.0)
+        return jnp.where(sigma > 0, _soft(cut / safe), 0.0)
     return (sigma > cut).astype(sigma.dtype)
 
 
@@ -110,7 +116,7 @@ class SignalToNoise:
     """Signal-to-noise damping of the eigenmodes of S (Schmitt & Heyl 2020; module docstring)."""
 
     threshold: float = 4.0
-    rcond: float = 1e-10
+    rcond: float = 1e-8
 
     def __post_init__(self):
         object.__setattr__(self, "threshold", _nonnegative("threshold", self.threshold))
@@ -129,7 +135,7 @@ class SignalToNoise:
         sigma, v = _eigh(system)
         rho = jnp.conj(v).T @ system.rhs.astype(v.dtype)
         snr = self.signal_to_noise(system, v)
-        damp = jnp.where(jnp.isinf(snr), 1.0, 1.0 / (1.0 + (self.threshold / jnp.where(snr > 0, snr, 1e-300)) ** 6))
+        damp = jnp.where(snr > 0, _soft(self.threshold / jnp.where(snr > 0, snr, 1.0)), 0.0)
         keep = _spectral_filter(sigma, self.rcond, soft=True) * damp
         inv = jnp.where(sigma > 0, keep / jnp.where(sigma > 0, sigma, 1.0), 0.0)
         return v @ (inv * rho)
