@@ -25,8 +25,8 @@ with ``local_energy``), an estimator of the TDVP system and an integrator:
   autocorrelation-aware error bars (:mod:`psiloom.stats`); exact expectation values (error 0)
   with a ``SpinSpace``.
 * **History.** One row per accepted integrator step (1-based ``step``): ``time``, ``dt``,
-  ``energy`` (real part of ⟨H⟩ at the step's start), ``error`` (σ/√n of that mean, no τ; 0 when
-  exact), ``variance``, ``residual`` (the TDVP residual r² of the first stage),
+  ``energy`` (real part of ⟨H⟩ at the step's start), ``error`` (its standard error from the
+  spread of the per-chain means, which includes autocorrelation; 0 when exact), ``variance``, ``residual`` (the TDVP residual r² of the first stage),
   ``acceptance``, ``rejected`` (adaptive attempts rejected before it), ``seconds``. The row of
   the step landing on a grid time (or a row of its own at the first grid time) also holds each
   observable ``name``, ``name:error`` and, for complex values, ``name:imag``.
@@ -84,6 +84,7 @@ class StageInfo(NamedTuple):
 
     metric: jax.Array
     energy: jax.Array
+    energy_error: jax.Array
     variance: jax.Array
     residual: jax.Array
     acceptance: jax.Array
@@ -247,7 +248,7 @@ class TimeEvolution:
         return logs, w / jnp.sum(w)
 
     def system(self, params, chains, key):
-        """``(TDVPSystem, chains, acceptance)`` at ``params`` (sampled or exact)."""
+        """``(TDVPSystem, chains, acceptance, energy error)`` at ``params`` (sampled or exact)."""
         log_amp = self.bind(params)
         if self.exact:
             x = self._configs
@@ -261,14 +262,20 @@ class TimeEvolution:
         if w is not None:  # configurations of zero amplitude carry no weight (and may give nan)
             e_loc = jnp.where(w > 0, e_loc, 0)
             o = jnp.where(w[:, None] > 0, o, 0)
-        return tdvp_system(o, e_loc, w, self.holomorphic, self.imaginary), chains, jnp.mean(acc)
+        sys = tdvp_system(o, e_loc, w, self.holomorphic, self.imaginary)
+        if self.exact:
+            err = jnp.zeros((), jnp.real(sys.energy).dtype)
+        else:  # standard error from the means of the independent chains (includes autocorrelation)
+            means = jnp.mean(jnp.real(e_loc).reshape(self.n_per_chain, -1), axis=0)
+            err = jnp.std(means, ddof=1) / jnp.sqrt(means.shape[0])
+        return sys, chains, jnp.mean(acc), err
 
     def rates(self, t, params, chains, key):
         """The right-hand side ``(θ̇ as a pytree like params, chains, StageInfo)``."""
-        sys, chains, acc = self.system(params, chains, key)
+        sys, chains, acc, err = self.system(params, chains, key)
         theta_dot = self.regularisation.solve(sys)
         _, unravel = flatten_parameters(params, self.holomorphic)
-        info = StageInfo(sys.matrix, sys.energy, sys.variance, residual(sys, theta_dot), acc,
+        info = StageInfo(sys.matrix, sys.energy, err, sys.variance, residual(sys, theta_dot), acc,
                          jnp.all(jnp.isfinite(theta_dot)))
         return unravel(theta_dot), chains, info
 
@@ -371,6 +378,9 @@ class TimeEvolution:
         history = History() if history is None else history
         attempt = self._attempt_program()
         lock = CheckpointLock(checkpoint + ".lock").acquire() if checkpoint else None
+        # a resumed run whose first grid time was measured before the checkpoint skips it
+        measured = bool(obs) and len(history) > 0 and history.columns.get("time", [None])[-1] == t_now \
+            and all(np.isfinite(history.columns.get(k, [np.nan])[-1]) for k in obs)
         try:
             n_taken = 0
             for i, target in enumerate(grid):
@@ -399,17 +409,18 @@ class TimeEvolution:
                     t_now = target if h == target - t_now else t_now + h
                     state = EvolutionState(jnp.asarray(t_now, state.time.dtype), state.step + 1,
                                            jnp.asarray(new_dt, state.dt.dtype), params, chains, key)
-                    n = 1 if self.exact else self.n_per_chain * self.sampler.n_chains
                     var = float(info.variance)
                     history.append_row({
                         "step": int(state.step), "time": t_now, "dt": h, "energy": float(np.real(info.energy)),
-                        "error": 0.0 if self.exact else float(np.sqrt(var / n)), "variance": var,
+                        "error": float(info.energy_error), "variance": var,
                         "residual": float(info.residual), "acceptance": float(info.acceptance),
                         "rejected": rejected, "seconds": _time.perf_counter() - t0})
                     rejected = 0
                     n_taken += 1
                     if n_taken > max_steps:
                         raise RuntimeError(f"more than max_steps={max_steps} steps before t = {target!r}")
+                if i == 0 and measured and abs(target - t_now) <= eps:
+                    continue
                 values, errors, state = self.measure(state, obs)
                 if obs:
                     self._record(history, state, t_now, values, errors)
