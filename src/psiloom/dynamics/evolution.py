@@ -217,18 +217,44 @@ class TimeEvolution:
     def bind(self, params) -> BoundState:
         return BoundState(self.model, params)
 
-    def init(self, params, key: jax.Array, time: float = 0.0) -> EvolutionState:
+    def init(self, params, key: jax.Array, time: float = 0.0, starts=None) -> EvolutionState:
         """The state at ``time`` with parameters ``params`` (e.g. a trained ground state of another
-        Hamiltonian, or :func:`psiloom.dynamics.product_state_rbm`)."""
+        Hamiltonian, or :func:`psiloom.dynamics.product_state_rbm`).
+
+        ``starts``: configurations ``(k, n_sites)`` (or one configuration) for the first k chains
+        instead of random ones; needed where |ψ|² is concentrated on few configurations (a
+        product state near the Néel state), which chains from random starts may never reach.
+        """
         time = finite_real("time", time)
         if self.holomorphic and not all_complex(params):
             raise ValueError("holomorphic=True needs complex parameters (every leaf complex); "
                              "use holomorphic=False for real or mixed parameters")
         k_chain, k_run = jax.random.split(key)
-        chains = jnp.zeros((), jnp.int32) if self.exact else self.sampler.init(k_chain, self.bind(params))
+        if self.exact:
+            if starts is not None:
+                raise ValueError("starts= applies to Markov chains, not to exact enumeration")
+            chains = jnp.zeros((), jnp.int32)
+        else:
+            chains = self.sampler.init(k_chain, self.bind(params))
+            if starts is not None:
+                chains = self.sampler.refresh(chains._replace(x=self._with_starts(chains.x, starts)),
+                                              self.bind(params))
         return strong(EvolutionState(jnp.asarray(time, jnp.float64 if jax.config.jax_enable_x64 else jnp.float32),
                                      jnp.zeros((), jnp.int32), jnp.asarray(self.dt, jnp.result_type(float)),
                                      params, chains, k_run))
+
+    def _with_starts(self, x, starts):
+        space = self.space
+        starts = np.asarray(starts, dtype=np.float64)
+        if starts.ndim == 1:
+            starts = starts[None]
+        if starts.ndim != 2 or starts.shape[1] != x.shape[1] or not 1 <= starts.shape[0] <= x.shape[0]:
+            raise ValueError(f"starts must have shape (k, {x.shape[1]}) with 1 <= k <= n_chains = {x.shape[0]}, "
+                             f"got {starts.shape}")
+        bad = np.flatnonzero(~space.contains(starts))
+        if bad.size:
+            raise ValueError(f"starts row {int(bad[0])} is not a configuration of the space: {starts[bad[0]].tolist()}")
+        return x.at[: starts.shape[0]].set(jnp.asarray(starts, x.dtype))
 
     # ------------------------------------------------------------------ right-hand side
     def _samples(self, params, chains, key, n_per_chain):
