@@ -11,7 +11,7 @@ from hypothesis import given, settings, strategies as st
 
 import psiloom as pl
 from psiloom.dynamics import (DiagonalShift, NonFiniteEvolution, PseudoInverse, SignalToNoise, TimeEvolution,
-                              tdvp_system)
+                              product_state_rbm, tdvp_system)
 from psiloom.reference import evolve_expectations
 from psiloom.states import TrialState
 
@@ -216,3 +216,36 @@ def test_observable_outside_the_lattice_and_grid_before_the_state_are_refused(sm
         evo.run(state, [0.0, 0.1], {"far": pl.operators.pauli(L + 2, "Z", L + 1)})
     with pytest.raises(ValueError, match="start at or after"):
         evo.run(state._replace(time=jnp.asarray(1.0)), [0.0, 2.0])
+
+
+def test_product_state_rbm_is_the_requested_product_state():
+    # reference: the tensor product of the site amplitudes, built with numpy.kron
+    n = 4
+    rng = np.random.default_rng(7)
+    amps = rng.uniform(0.2, 1.0, size=(n, 2)) * np.exp(1j * rng.uniform(0, 2 * np.pi, size=(n, 2)))
+    space = pl.spaces.SpinSpace(n)
+    expected = np.ones(1)
+    for i in range(n):
+        expected = np.kron(expected, amps[i])  # basis order of configurations(): first site slowest, +1 first
+    configs = space.configurations()
+    order = np.lexsort([-configs[:, i] for i in reversed(range(n))])
+    target = np.empty(space.size, complex)
+    target[order] = expected
+    model = pl.states.RBM(alpha=1, complex_params=True)
+    for scale, tol in ((0.0, 1e-12), (1e-3, 1e-5)):
+        params = product_state_rbm(model, amps, jax.random.PRNGKey(0), kernel_scale=scale)
+        v = pl.reference.state_vector(lambda x: model.apply(params, x), space)
+        assert pl.reference.fidelity(v, target) > 1 - tol
+    with pytest.raises(ValueError, match="non-zero"):
+        product_state_rbm(model, np.array([[1.0, 0.0]] * n), jax.random.PRNGKey(0))
+    with pytest.raises(ValueError, match="complex"):
+        product_state_rbm(pl.states.RBM(alpha=1), amps, jax.random.PRNGKey(0))
+
+
+def test_real_time_of_a_real_state_is_refused(mean_field):
+    _, _, space, _ = mean_field
+    model = pl.states.RBM(alpha=1)
+    params = model.init(jax.random.PRNGKey(0), jnp.ones((1, L)))
+    evo = TimeEvolution(model, _field_hamiltonian(L), space, dt=0.1)
+    with pytest.raises(ValueError, match="complex log"):
+        evo.init(params, jax.random.PRNGKey(0))

@@ -51,11 +51,11 @@ import numpy as np
 from psiloom import stats
 from psiloom._validation import boolean, finite_real, nonnegative_int, positive_int, positive_real
 from psiloom.batching import map_in_chunks
-from psiloom.checkpoint import CheckpointError, CheckpointLock, load_checkpoint, run_meta, save_checkpoint
+from psiloom.checkpoint import CheckpointLock, load_checkpoint, run_meta, save_checkpoint
 from psiloom.dynamics.equation import (all_complex, flatten_parameters, log_derivatives, residual,
                                        tdvp_system)
 from psiloom.dynamics.integrators import next_step_size, runge_kutta_step, tableau
-from psiloom.dynamics.regularisation import DiagonalShift, PseudoInverse, SignalToNoise
+from psiloom.dynamics.regularisation import DiagonalShift, PseudoInverse
 from psiloom.history import History
 from psiloom.operators.observables import _Stacked, _estimates, operator_scale
 from psiloom.reference.evolution import check_time_grid
@@ -237,6 +237,11 @@ class TimeEvolution:
         if self.holomorphic and not all_complex(params):
             raise ValueError("holomorphic=True needs complex parameters (every leaf complex); "
                              "use holomorphic=False for real or mixed parameters")
+        if not self.imaginary:
+            out = jax.eval_shape(self.model.apply, params, jax.ShapeDtypeStruct((1, self.n_sites), jnp.result_type(float)))
+            if not jnp.issubdtype(out.dtype, jnp.complexfloating):
+                raise ValueError("real-time evolution needs a complex log ψ (complex parameters, e.g. "
+                                 "RBM(complex_params=True)): a real state cannot carry the phases exp(−iHt) creates")
         k_chain, k_run = jax.random.split(key)
         if self.exact:
             if starts is not None:
