@@ -5,7 +5,7 @@ the samples do not resolve. Three regularisations, each a small frozen dataclass
 ``solve(system) -> θ̇`` is a pure, jit-compatible function:
 
 :class:`DiagonalShift` (``shift``, ``relative``)
-    θ̇ = (S + ε I + ε_rel diag S)⁻¹ G, by Cholesky (S is Hermitian positive semi-definite).
+    θ̇ = (S + ε I + ε_rel diag S)⁻¹ G (an LU solve of the shifted, positive definite matrix).
 
 :class:`PseudoInverse` (``rcond``)
     With the eigendecomposition S = V diag(σ) V†, keep only σ_k > rcond · σ_max:
@@ -37,7 +37,6 @@ import dataclasses
 
 import jax
 import jax.numpy as jnp
-import jax.scipy.linalg
 
 from psiloom._validation import boolean, finite_real, one_of
 from psiloom.dynamics.equation import TDVPSystem
@@ -67,8 +66,9 @@ class DiagonalShift:
         diag = jnp.real(jnp.diagonal(s))
         lam = self.shift + self.relative * diag
         a = s + jnp.diag(lam).astype(s.dtype)
-        factor = jax.scipy.linalg.cho_factor(a, lower=True)
-        return jax.scipy.linalg.cho_solve(factor, system.rhs.astype(s.dtype))
+        # LU, not Cholesky: on the CPU, jax's Cholesky of an 80×80 complex matrix took ~180 ms
+        # against 0.25 ms for jnp.linalg.solve (measured on a loaded 2-core machine)
+        return jnp.linalg.solve(a, system.rhs.astype(s.dtype))
 
 
 def _eigh(system: TDVPSystem):
