@@ -22,10 +22,14 @@ time grid, the observable with its error bars, the exact curve, the largest abso
 over the window, the first time the deviation exceeds 1e-2 (null if never), the wall time, and
 the cost split of one step (sampling, S and F, solve, in milliseconds, measured after compilation).
 
-``--quick`` (< 3 min on two cores): L = 10 rings, t ≤ 1; Heisenberg L = 8, t ≤ 0.5.
-Full (< 60 min expected, not measured here): L = 20 rings, t ∈ [0, 2], α = 2, 4096 samples;
-Heisenberg L = 12, t ∈ [0, 1.5]. Targets of the full mode: TFIM h1 = 1.0 deviation ≤ 5e-3,
-Heisenberg ≤ 1e-2.
+``--quick``: L = 10 rings (1024 samples per stage, 150 SR steps), t ≤ 1; Heisenberg L = 8
+(512 samples), t ≤ 0.5; dt = 0.02 and 0.01. Measured on a 2-core machine shared with other jobs
+(load ~18): about 8 min; an idle machine should take under 3 min (not measured).
+Full (not run yet; rough estimate 30-60 min, dominated by forming S = O†O for 840 complex
+parameters from 4096 samples, ~2·10¹⁰ flops per stage, 400 stages per quench): L = 20 rings,
+α = 2, 4096 samples, dt = 0.01, t ∈ [0, 2]; Heisenberg L = 12, α = 2, 4096 samples, dt = 0.005,
+t ∈ [0, 1.5]. Targets of the full mode: TFIM h1 = 1.0 deviation ≤ 5e-3, Heisenberg ≤ 1e-2.
+``--cases tfim`` or ``--cases heisenberg`` runs a subset.
 """
 
 from __future__ import annotations
@@ -178,10 +182,10 @@ def main():
     cases = set(args.cases.split(","))
     key = jax.random.PRNGKey(0)
     if args.quick:
-        tfim = dict(n=10, t_end=1.0, n_grid=6, alpha=1, n_samples=512, dt=0.02, sr_steps=150)
+        tfim = dict(n=10, t_end=1.0, n_grid=6, alpha=1, n_samples=1024, dt=0.02, sr_steps=150)
         heis = dict(n=8, t_end=0.5, n_grid=6, alpha=1, n_samples=512, dt=0.01)
     else:
-        tfim = dict(n=20, t_end=2.0, n_grid=21, alpha=2, n_samples=4096, dt=0.005, sr_steps=400)
+        tfim = dict(n=20, t_end=2.0, n_grid=21, alpha=2, n_samples=4096, dt=0.01, sr_steps=400)
         heis = dict(n=12, t_end=1.5, n_grid=16, alpha=2, n_samples=4096, dt=0.005)
     records = []
     if "tfim" in cases:

@@ -445,7 +445,8 @@ class TimeEvolution:
                         new_dt = h_next if h == h_try else max(h_try, h_next)
                     else:
                         new_dt = h_try
-                    t_now = target if h == target - t_now else t_now + h
+                    # land exactly on the grid time (no sliver step from rounded sums of dt)
+                    t_now = target if target - (t_now + h) <= eps else t_now + h
                     state = EvolutionState(jnp.asarray(t_now, state.time.dtype), state.step + 1,
                                            jnp.asarray(new_dt, state.dt.dtype), params, chains, key)
                     var = float(info.variance)
