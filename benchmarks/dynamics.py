@@ -23,8 +23,8 @@ over the window, the first time the deviation exceeds 1e-2 (null if never), the 
 the cost split of one step (sampling, S and F, solve, in milliseconds, measured after compilation).
 
 ``--quick``: L = 10 rings (1024 samples per stage, 150 SR steps), t ≤ 1; Heisenberg L = 8
-(512 samples), t ≤ 0.5; dt = 0.02 and 0.01. Measured on a 2-core machine shared with other jobs
-(load ~18): about 8 min; an idle machine should take under 3 min (not measured).
+(512 samples), t ≤ 0.5; dt = 0.02 and 0.01. Measured: 191 s on a 2-core machine shared with
+other jobs (about 8 min at its busiest), so under 3 min when idle is expected, not measured.
 Full (not run yet; rough estimate 30-60 min, dominated by forming S = O†O for 840 complex
 parameters from 4096 samples, ~2·10¹⁰ flops per stage, 400 stages per quench): L = 20 rings,
 α = 2, 4096 samples, dt = 0.01, t ∈ [0, 2]; Heisenberg L = 12, α = 2, 4096 samples, dt = 0.005,
