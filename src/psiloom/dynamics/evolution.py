@@ -223,6 +223,7 @@ class TimeEvolution:
 
     # ------------------------------------------------------------------ state
     def bind(self, params) -> BoundState:
+        """The trial state bound to ``params`` (a callable log ψ)."""
         return BoundState(self.model, params)
 
     def init(self, params, key: jax.Array, time: float = 0.0, starts=None) -> EvolutionState:
@@ -252,7 +253,7 @@ class TimeEvolution:
             if starts is not None:
                 chains = self.sampler.refresh(chains._replace(x=self._with_starts(chains.x, starts)),
                                               self.bind(params))
-        return strong(EvolutionState(jnp.asarray(time, jnp.float64 if jax.config.jax_enable_x64 else jnp.float32),
+        return strong(EvolutionState(jnp.asarray(time, jnp.result_type(float)),
                                      jnp.zeros((), jnp.int32), jnp.asarray(self.dt, jnp.result_type(float)),
                                      params, chains, k_run))
 
@@ -382,12 +383,15 @@ class TimeEvolution:
 
     # ------------------------------------------------------------------ checkpoints
     def meta(self) -> dict:
+        """Run metadata stored in checkpoints (sampler settings; ``None`` sampler for exact sums)."""
         return run_meta(None if self.exact else self.sampler)
 
     def template(self, params) -> EvolutionState:
+        """Shapes and dtypes of the state :meth:`init` returns (no computation), for loading checkpoints."""
         return jax.eval_shape(lambda p, k: self.init(p, k), params, jax.random.PRNGKey(0))
 
     def save(self, path: str, state: EvolutionState, history: History | None = None) -> None:
+        """Write ``state`` and ``history`` to a checkpoint file at ``path`` (see :mod:`psiloom.checkpoint`)."""
         save_checkpoint(path, state, history, self.meta())
 
     def resume(self, path: str, params_like) -> tuple[EvolutionState, History]:
@@ -432,6 +436,7 @@ class TimeEvolution:
                     if not bool(finite):
                         raise NonFiniteEvolution(t_now, int(state.step) + 1, h, state, history, checkpoint)
                     if self.tableau.adaptive:
+                        assert self.tableau.low_order is not None  # adaptive tableaus carry an embedded order
                         ok, h_next = next_step_size(h, float(error), self.tol, self.tableau.low_order)
                         if not ok:
                             rejected += 1

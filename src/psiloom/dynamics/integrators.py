@@ -55,10 +55,12 @@ class Tableau(NamedTuple):
 
     @property
     def adaptive(self) -> bool:
+        """True when the tableau carries an embedded lower-order solution (error estimate)."""
         return self.b_low is not None
 
     @property
     def stages(self) -> int:
+        """Number of stages s (evaluations of the TDVP right-hand side per step)."""
         return len(self.b)
 
 
@@ -70,6 +72,7 @@ def _v(row):
     return tuple(float(Fr(v)) for v in row)
 
 
+#: The Butcher tableaus by name (euler, heun, rk4; adaptive rk23 and rk45).
 TABLEAUS = {
     "euler": Tableau("euler", _f([[0]]), _v([1]), _v([0]), 1),
     "heun": Tableau("heun", _f([[0, 0], [1, 0]]), _v(["1/2", "1/2"]), _v([0, 1]), 2),

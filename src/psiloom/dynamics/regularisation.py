@@ -17,7 +17,7 @@ the samples do not resolve. Three regularisations, each a small frozen dataclass
     ρ_k = V_k† G = Σ_s w_s Q_sk (Q_sk = V_k† g_s, the per-sample contributions) carry Monte Carlo
     noise; their signal-to-noise ratio
 
-        SNR_k = |ρ_k| / (σ(Q_·k)/√n)
+        SNR_k = |ρ_k| / (σ(Q_{·k})/√n)
 
     (σ the standard deviation over the samples) decides which modes are kept. Following the paper
     (form from memory) each mode is damped smoothly,
@@ -62,6 +62,7 @@ class DiagonalShift:
             raise ValueError("DiagonalShift needs shift > 0 or relative > 0 (else S may be singular)")
 
     def solve(self, system: TDVPSystem) -> jax.Array:
+        """θ̇ solving the regularised ``S θ̇ = rhs`` of ``system`` (see the class docstring)."""
         s = system.matrix
         diag = jnp.real(jnp.diagonal(s))
         lam = self.shift + self.relative * diag
@@ -104,6 +105,7 @@ class PseudoInverse:
         object.__setattr__(self, "soft", boolean("soft", self.soft))
 
     def solve(self, system: TDVPSystem) -> jax.Array:
+        """θ̇ solving the regularised ``S θ̇ = rhs`` of ``system`` (see the class docstring)."""
         sigma, v = _eigh(system)
         keep = _spectral_filter(sigma, self.rcond, self.soft)
         rho = jnp.conj(v).T @ system.rhs.astype(v.dtype)
@@ -132,6 +134,7 @@ class SignalToNoise:
         return jnp.where(noise > 0, jnp.abs(rho) / jnp.where(noise > 0, noise, 1.0), jnp.inf)
 
     def solve(self, system: TDVPSystem) -> jax.Array:
+        """θ̇ solving the regularised ``S θ̇ = rhs`` of ``system`` (see the class docstring)."""
         sigma, v = _eigh(system)
         rho = jnp.conj(v).T @ system.rhs.astype(v.dtype)
         snr = self.signal_to_noise(system, v)
@@ -141,6 +144,7 @@ class SignalToNoise:
         return v @ (inv * rho)
 
 
+#: Regularisations of the S solve by name, for :func:`make_regularisation`.
 REGULARISATIONS = {"shift": DiagonalShift, "pinv": PseudoInverse, "snr": SignalToNoise}
 
 
