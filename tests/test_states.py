@@ -141,8 +141,10 @@ def test_log_two_cosh_is_stable_for_large_arguments(z):
         assert float(jax.grad(log_two_cosh)(jnp.asarray(z))) == pytest.approx(np.sign(z))
 
 
-@given(st.lists(st.floats(-800, 800), min_size=1, max_size=40), st.integers(1, 3))
+@given(st.lists(st.floats(-800, 800), min_size=12, max_size=12), st.integers(1, 3))
 def test_sum_log_two_cosh_matches_elementwise_sum(values, rows):
+    # one length of ``values`` (three shapes in all): each new shape would compile the jitted
+    # sums and their gradients again, and the property does not depend on the length
     """The real-valued sum equals Σ log(2 cosh z) computed term by term with
     NumPy, log(2cosh z) = |z| + log1p(e^{−2|z|}), at any |z|; its gradient is tanh z."""
     z = np.tile(np.asarray(values), (rows, 1)) * np.linspace(1.0, 0.5, rows)[:, None]
