@@ -89,10 +89,17 @@ class MolecularProblem:
     mol: Any = field(repr=False)
     scf: Any = field(repr=False)
 
-    def hartree_fock_guess(self) -> OrbitalGuess:
-        """The Hartree-Fock determinant in this MO basis: the lowest N↑ and N↓ orbitals."""
-        eye = np.eye(self.space.n_orbitals)
-        return OrbitalGuess.from_arrays(self.space, eye, eye)
+    def hartree_fock_guess(self, noise: float = 0.0, seed: int = 0) -> OrbitalGuess:
+        """The Hartree-Fock determinant in this MO basis (the lowest N↑ and N↓ orbitals), plus
+        ``noise`` × standard normal numbers (generator ``seed``). The exact HF determinant is zero
+        on every other configuration and HF is stationary: chains could not leave it and the
+        energy gradient would vanish, so give a small ``noise`` (e.g. 0.05) to start VMC."""
+        noise = finite_real("noise", noise, minimum=0.0)
+        m = self.space.n_orbitals
+        rng = np.random.default_rng(nonnegative_int("seed", seed))
+        up = np.eye(m) + noise * rng.standard_normal((m, m))
+        down = np.eye(m) + noise * rng.standard_normal((m, m))
+        return OrbitalGuess.from_arrays(self.space, up, down)
 
     def hartree_fock_configuration(self) -> np.ndarray:
         """Occupations of the Hartree-Fock determinant, ``(n_spin_orbitals,)``."""
@@ -148,7 +155,7 @@ def molecular_hamiltonian(atoms, basis: str = "sto-3g", units: str = "bohr", cha
         mol = gto.M(atom=pyscf_atoms, unit="bohr", basis=basis, charge=int(round(system.charge)),
                     spin=system.spin, verbose=verbose)
     except Exception as err:  # PySCF raises various types for unknown bases
-        raise ValueError(f"PySCF could not build basis {basis!r} for {system.formula()}: {err}") from err
+        raise ValueError(f"PySCF could not build basis {basis!r} for {system.formula}: {err}") from err
     n_mo = mol.nao
     if n_frozen > system.n_down:
         raise ValueError(f"n_frozen={n_frozen} doubly occupied core orbitals need {2 * n_frozen} electrons with "
