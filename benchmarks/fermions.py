@@ -40,10 +40,14 @@ def _optimizer(lr: float, steps: int):
                        optax.sgd(lr))
 
 
-def _train(model, hamiltonian, space, move, steps, samples, chains, eval_samples, lr, seed=0):
+def _train(model, hamiltonian, space, move, steps, samples, chains, eval_samples, lr, seed=0, start=None):
     sampler = pl.sampling.MetropolisChains(space, n_chains=chains, move=move, burn_in=2)
     search = pl.train.GroundStateSearch(model, hamiltonian, sampler, _optimizer(lr, steps), n_samples=samples)
-    state, _ = search.run(steps, key=jax.random.PRNGKey(seed), progress=progress, print_every=max(1, steps // 10))
+    state = search.init(jax.random.PRNGKey(seed))
+    if start is not None:  # chains start at a given configuration (e.g. the HF determinant)
+        x = jax.numpy.tile(jax.numpy.asarray(start, state.chains.x.dtype), (chains, 1))
+        state = state._replace(chains=sampler.refresh(state.chains._replace(x=x), pl.states.BoundState(model, state.params)))
+    state, _ = search.run(steps, state=state, progress=progress, print_every=max(1, steps // 10))
     estimate, acceptance = search.evaluate(state, eval_samples, burn_in_sweeps=4)
     return search, state, estimate, acceptance
 
@@ -84,22 +88,22 @@ def n2(bond: float):
     return [("N", (0.0, 0.0, 0.0)), ("N", (0.0, 0.0, bond))]
 
 
-def molecule_case(name, atoms, steps, samples, chains, eval_samples, hidden, lr) -> dict:
+def molecule_case(name, atoms, steps, samples, chains, eval_samples, hidden, lr, noise=0.2) -> dict:
     with Timer() as timer:
         problem = fm.molecular_hamiltonian(atoms, "sto-3g", units="angstrom")
         reference = problem.fci_energy()
         progress(f"{name}: {problem.space!r}, {problem.hamiltonian!r}, max connections "
                  f"{problem.hamiltonian.max_connections}; HF {problem.hartree_fock_energy:.6f}, FCI {reference:.6f}")
-        model = fm.BackflowDeterminant(problem.space, problem.hartree_fock_guess(noise=0.05), hidden=hidden)
+        model = fm.BackflowDeterminant(problem.space, problem.hartree_fock_guess(noise=noise), hidden=hidden)
         search, state, est, acc = _train(model, problem.hamiltonian, problem.space, fm.any_hop(), steps, samples,
-                                         chains, eval_samples, lr)
+                                         chains, eval_samples, lr, start=problem.hartree_fock_configuration())
     energy = float(np.real(est.mean))
     return {
         "benchmark": "fermions",
         "system": {"model": "molecule_basis", "name": name, "basis": "sto-3g",
                    "atoms": [[s, list(p)] for s, p in problem.atoms], "units": "bohr",
                    "n_up": problem.space.n_up, "n_down": problem.space.n_down},
-        "method": {"trial_state": f"backflow determinant (hidden={hidden}), HF orbitals + noise 0.05",
+        "method": {"trial_state": f"backflow determinant (hidden={hidden}), HF orbitals + noise {noise}",
                    "sampler": f"Metropolis any-orbital hops, {chains} chains", "optimizer": f"SR + sgd {lr}",
                    "hartree_fock": problem.hartree_fock_energy, "tau": float(est.tau), "acceptance": acc},
         "energy": energy, "error_bar": float(est.error), "reference": reference,

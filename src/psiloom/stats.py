@@ -120,6 +120,8 @@ def parenthesis_notation(value: float, error: float, sign: bool = False) -> str:
     if error < 1e-14:  # rounding noise: scientific, so the digits are not buried in zeros
         exponent = math.floor(math.log10(max(abs(value), error)))
         scale = 10.0 ** exponent
+        if error / scale < 1e-14:  # negligible against the value (e.g. 1e-12 ± 1e-30): no digits to show
+            return f"{value:{plus}.10g}(0)"
         return f"{parenthesis_notation(value / scale, error / scale, sign)}e{exponent}"
     decimals = 1 - math.floor(math.log10(error))
     digits = round(error * 10.0 ** decimals)

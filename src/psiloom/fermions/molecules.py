@@ -93,7 +93,7 @@ class MolecularProblem:
         """The Hartree-Fock determinant in this MO basis (the lowest N↑ and N↓ orbitals), plus
         ``noise`` × standard normal numbers (generator ``seed``). The exact HF determinant is zero
         on every other configuration and HF is stationary: chains could not leave it and the
-        energy gradient would vanish, so give a small ``noise`` (e.g. 0.05) to start VMC."""
+        energy gradient would vanish, so give some ``noise`` (e.g. 0.2) to start VMC."""
         noise = finite_real("noise", noise, minimum=0.0)
         m = self.space.n_orbitals
         rng = np.random.default_rng(nonnegative_int("seed", seed))

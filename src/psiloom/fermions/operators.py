@@ -49,6 +49,7 @@ Ladder = tuple[int, int]  # (spin-orbital, 1 for c†, 0 for c)
 Term = tuple[Ladder, ...]
 
 CREATE, ANNIHILATE = 1, 0
+EXACT_COUNT_LIMIT = 200_000  # sectors up to this size count their non-zero connections exactly
 
 
 def _normal_order(ops: Term, coef: complex, out: dict) -> None:
@@ -323,12 +324,18 @@ class FermionOperator:
     @functools.cached_property
     def max_connections(self) -> int:
         """Largest number of connections that can be non-zero in one row of the sector (all of
-        them without a sector): per kind of flip set (k_up, k_down flipped spin-orbitals), at most
-        C(N↑, k_up/2) C(M−N↑, k_up/2) C(N↓, k_down/2) C(M−N↓, k_down/2) of them."""
+        them without a sector): counted over every configuration for sectors of at most
+        ``EXACT_COUNT_LIMIT`` states, else bounded per kind of flip set (k_up, k_down flipped
+        spin-orbitals) by C(N↑, k_up/2) C(M−N↑, k_up/2) C(N↓, k_down/2) C(M−N↓, k_down/2)."""
         flips = self.flip_masks
         if self.sector is None:
             return flips.shape[0]
         s, m = self.sector, self.n_orbitals
+        if s.size <= EXACT_COUNT_LIMIT:  # small sector: the exact largest count of non-zero elements per row
+            states = s.configurations()
+            most = max(int(np.max(np.sum(np.abs(self.matrix_elements(states[i:i + 4096])) > 0, axis=1)))
+                       for i in range(0, len(states), 4096))
+            return max(1, most)
         k_up = flips[:, :m].sum(axis=1).astype(int)
         k_dn = flips[:, m:].sum(axis=1).astype(int) if not self.spinless else np.zeros_like(k_up)
         total = 0
