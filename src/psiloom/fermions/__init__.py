@@ -3,7 +3,7 @@ and t-V models, molecules in a Gaussian basis (PySCF integrals), determinant tri
 (Slater, Slater-Jastrow, neural backflow) and particle-number-conserving moves.
 
 Conventions (signs, ordering, units) are in :mod:`psiloom.fermions.space` and
-:mod:`psiloom.fermions.operators`. The states plug into :class:`psiloom.GroundStateSearch` with a
+:mod:`psiloom.fermions.operators`. The states plug into :class:`psiloom.train.GroundStateSearch` with a
 :class:`psiloom.sampling.MetropolisChains` over a :class:`FermionSpace` (which picks hops).
 """
 
@@ -12,7 +12,7 @@ from psiloom.fermions.operators import FermionOperator, annihilation, creation, 
 from psiloom.fermions.jordan_wigner import jordan_wigner
 from psiloom.fermions.models import hubbard, one_body_matrix, spinless_tv
 from psiloom.fermions.determinants import (
-    DeterminantState, OrbitalGuess, SlaterDeterminant, SlaterJastrow, determinant_fast_updates, lowest_orbitals,
+    DeterminantState, OrbitalGuess, SlaterDeterminant, SlaterDensityJastrow, determinant_fast_updates, lowest_orbitals,
 )
 from psiloom.fermions.backflow import BackflowDeterminant
 from psiloom.fermions.moves import AnyHop, FermionMove, Hop, SpinExchange, any_hop
@@ -21,7 +21,7 @@ from psiloom.fermions.molecules import MolecularProblem, integrals_operator, mol
 __all__ = [
     "FermionSpace", "occupation_codes", "spinless_space", "FermionOperator", "annihilation", "creation", "fermion",
     "number", "jordan_wigner", "hubbard", "one_body_matrix", "spinless_tv", "DeterminantState", "OrbitalGuess",
-    "SlaterDeterminant", "SlaterJastrow", "determinant_fast_updates", "lowest_orbitals", "BackflowDeterminant",
+    "SlaterDeterminant", "SlaterDensityJastrow", "determinant_fast_updates", "lowest_orbitals", "BackflowDeterminant",
     "AnyHop", "FermionMove", "Hop", "SpinExchange", "any_hop", "MolecularProblem", "integrals_operator",
     "molecular_hamiltonian",
 ]

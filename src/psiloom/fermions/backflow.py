@@ -12,7 +12,7 @@ h_{l+1} = tanh(W_l h_l + b_l) of width ``hidden`` (default 2 × the number of sp
 and the last hidden layer feeds **one output head per spin** with its own gain: the heads
 ``W_σ`` start at zero, so the state starts as the plain Slater determinant of its guess (a
 backflow that starts as mean field). The optional density-density Jastrow factor of
-:class:`~psiloom.fermions.SlaterJastrow` can be multiplied in (``jastrow=True``).
+:class:`~psiloom.fermions.SlaterDensityJastrow` can be multiplied in (``jastrow=True``).
 
 Cost: O(B · (P·H + H·M·N)) for the orbitals and O(B·N³) for the determinants; no fast updates
 (every change of n changes every orbital).

@@ -13,7 +13,7 @@ complex number: log|ψ| + iπ for a negative amplitude.
 
 * :class:`SlaterDeterminant` — the mean field: Φ↑, Φ↓ are parameters (unrestricted), started
   from given orbitals (:class:`OrbitalGuess`, e.g. Hartree-Fock or the U = 0 band) or at random.
-* :class:`SlaterJastrow` — times the density-density Jastrow factor
+* :class:`SlaterDensityJastrow` — times the density-density Jastrow factor
   J(n) = −½ Σ_{ij} v_ij n_i n_j with n_i = n_i↑ + n_i↓ and v symmetric; its diagonal is the
   Gutzwiller factor (n_i² = n_i + 2 n_i↑ n_i↓).
 
@@ -67,6 +67,7 @@ class OrbitalGuess:
                    _as_tuple(down, m, space.n_down, "down orbitals") if space.n_down else ())
 
     def arrays(self, space: FermionSpace):
+        """``(up (M, N↑), down (M, N↓))`` as NumPy arrays."""
         m = space.n_orbitals
         up = np.asarray(self.up, dtype=np.float64).reshape(m, space.n_up)
         down = np.asarray(self.down, dtype=np.float64).reshape(m, space.n_down)
@@ -114,6 +115,7 @@ class DeterminantState(TrialState):
     guess: OrbitalGuess | None = None
 
     def check_attributes(self):
+        """Raise TypeError for a ``space`` that is not a FermionSpace or a bad ``guess``."""
         if not isinstance(self.space, FermionSpace):
             raise TypeError(f"{type(self).__name__}.space must be a FermionSpace, got {self.space!r}")
         if self.guess is not None and not isinstance(self.guess, OrbitalGuess):
@@ -170,11 +172,12 @@ class SlaterDeterminant(DeterminantState):
     offers fast updates for hops."""
 
     def fast_updates(self) -> FastUpdates:
+        """Sherman-Morrison hop updates (:func:`determinant_fast_updates`)."""
         params = self.variables["params"]
         return determinant_fast_updates(self.space, params["orbitals_up"], params["orbitals_down"])
 
 
-class SlaterJastrow(DeterminantState):
+class SlaterDensityJastrow(DeterminantState):
     """Slater determinant times the density-density (Gutzwiller on the diagonal) Jastrow factor
     exp(−½ Σ_ij v_ij n_i n_j), v = (w + wᵀ)/2 with the parameter ``jastrow`` w (M × M, zeros)."""
 

@@ -57,8 +57,8 @@ def integrals_operator(one_body, two_body, constant: float = 0.0, threshold: flo
     terms: dict = {(): constant} if constant else {}
     for s in (0, 1):
         for p, q in zip(*np.nonzero(np.abs(h) > threshold)):
-            key = ((int(p) + s * m, 1), (int(q) + s * m, 0))
-            terms[key] = terms.get(key, 0.0) + h[p, q]
+            one: tuple = ((int(p) + s * m, 1), (int(q) + s * m, 0))
+            terms[one] = terms.get(one, 0.0) + h[p, q]
     idx = np.argwhere(np.abs(g) > threshold)
     for s in (0, 1):
         for t in (0, 1):
@@ -66,8 +66,8 @@ def integrals_operator(one_body, two_body, constant: float = 0.0, threshold: flo
                 a, b, c, d = int(p) + s * m, int(r) + t * m, int(u) + t * m, int(q) + s * m
                 if a == b or c == d:
                     continue  # c†c† or cc on one spin-orbital vanishes
-                key = ((a, 1), (b, 1), (c, 0), (d, 0))
-                terms[key] = terms.get(key, 0.0) + 0.5 * g[p, q, r, u]
+                two: tuple = ((a, 1), (b, 1), (c, 0), (d, 0))
+                terms[two] = terms.get(two, 0.0) + 0.5 * g[p, q, r, u]
     return FermionOperator(m, terms)
 
 
@@ -123,6 +123,7 @@ class MolecularProblem:
         return float(cas.kernel()[0])
 
     def describe(self) -> dict:
+        """Atoms (bohr), basis and electron counts as plain Python values."""
         return {"atoms": [[sym, list(pos)] for sym, pos in self.atoms], "basis": self.basis,
                 "n_orbitals": self.space.n_orbitals, "n_up": self.space.n_up, "n_down": self.space.n_down,
                 "n_frozen": self.n_frozen, "units": "bohr"}

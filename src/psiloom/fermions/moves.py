@@ -51,6 +51,7 @@ def is_fermionic(move) -> bool:
 
 
 def check_fermionic(move, space) -> None:
+    """:meth:`FermionMove.check_space` of ``move`` or of every component of a mixture."""
     if isinstance(move, Mixture):
         for m in move.components:
             check_fermionic(m, space)
@@ -95,6 +96,7 @@ class Hop(FermionMove):
 
     @property
     def array(self) -> np.ndarray:
+        """The pairs as an int64 array (P, 2)."""
         return np.asarray(self.pairs, dtype=np.int64)
 
     def __call__(self, key, x):

@@ -84,13 +84,13 @@ def _ket_action(ops: Term, n_modes: int):
         seq = [d for q, d in ops if q == p]
         ok = []
         for start in (0, 1):
-            n = start
+            n, alive = start, True
             for d in reversed(seq):
-                if (d == CREATE) == bool(n):
-                    n = None
+                if (d == CREATE) == bool(n):  # c† on an occupied or c on an empty spin-orbital
+                    alive = False
                     break
                 n = 1 - n
-            if n is not None:
+            if alive:
                 ok.append(start)
         if not ok:
             return None
@@ -168,6 +168,7 @@ class FermionOperator:
 
     @classmethod
     def identity(cls, n_orbitals: int, coefficient: complex = 1.0, spinless: bool = False) -> "FermionOperator":
+        """``coefficient`` times the identity."""
         return cls(n_orbitals, {(): coefficient}, spinless=spinless)
 
     def in_sector(self, space: FermionSpace) -> "FermionOperator":
@@ -235,11 +236,13 @@ class FermionOperator:
         return self._like({tuple((p, 1 - d) for p, d in reversed(t)): np.conj(c) for t, c in self.terms.items()})
 
     def is_hermitian(self, atol: float = 1e-12) -> bool:
+        """Whether the canonical terms equal those of the adjoint (to ``atol``)."""
         adj = self.adjoint().terms
         keys = set(adj) | set(self.terms)
         return all(abs(self.terms.get(k, 0) - adj.get(k, 0)) <= atol for k in keys)
 
     def is_zero(self, atol: float = 1e-12) -> bool:
+        """Whether every canonical coefficient is below ``atol`` in magnitude."""
         return all(abs(c) <= atol for c in self.terms.values())
 
     def conserves_particle_numbers(self) -> bool:
@@ -314,6 +317,7 @@ class FermionOperator:
 
     @property
     def is_real(self) -> bool:
+        """Whether all matrix elements in the occupation basis are real."""
         return not np.iscomplexobj(self._tables["coef"])
 
     @property
@@ -443,6 +447,7 @@ class FermionOperator:
         return mat.tocsr()
 
     def dense_matrix(self, space: FermionSpace | None = None) -> np.ndarray:
+        """:meth:`sparse_matrix` as a dense NumPy array."""
         return self.sparse_matrix(space).toarray()
 
 

@@ -76,10 +76,12 @@ class FermionSpace:
     # ------------------------------------------------------------------ sizes
     @property
     def n_spins(self) -> int:
+        """1 for spinless fermions, else 2."""
         return 1 if self.spinless else 2
 
     @property
     def n_spin_orbitals(self) -> int:
+        """``n_spins × n_orbitals``."""
         return self.n_spins * self.n_orbitals
 
     @property
@@ -89,11 +91,12 @@ class FermionSpace:
 
     @property
     def n_electrons(self) -> int:
+        """``n_up + n_down``."""
         return self.n_up + self.n_down
 
     @property
     def is_sector(self) -> bool:
-        """Always True: the electron numbers are fixed (samplers need conserving moves)."""
+        """Whether the electron numbers are fixed (always, so samplers need moves that conserve them)."""
         return True
 
     #: no spin-1/2 magnetisation sector (the counts are ``n_up``, ``n_down``)
@@ -101,6 +104,7 @@ class FermionSpace:
 
     @property
     def size(self) -> int:
+        """Number of configurations, C(M, N↑)·C(M, N↓)."""
         return comb(self.n_orbitals, self.n_up) * (1 if self.spinless else comb(self.n_orbitals, self.n_down))
 
     def spin_orbital(self, orbital: int, spin: int = 0) -> int:
