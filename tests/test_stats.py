@@ -433,6 +433,8 @@ def test_format_uses_parenthesis_notation():
     (1234.0, 56.0, "1234(56)"),
     (123456.0, 3400.0, "123500(3400)"),
     (1e-18, 3e-19, "1.00(30)e-18"),
+    (1.0, 3e-15, "1.0000000000000000(30)"),  # tiny error on an ordinary value: fixed point
+    (1e-12, 1e-30, "1e-12(0)"),              # no digit of the error to show
     (2.5, 0.0, "2.5(0)"),
 ])
 def test_parenthesis_notation_examples(value, error, expected):

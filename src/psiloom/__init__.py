@@ -16,10 +16,11 @@ from psiloom import checkpoint, history, loop, vmc  # the pieces behind train.Gr
 from psiloom import tomography  # learning a state from measurement shots
 from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 from psiloom import dynamics  # time evolution by the TDVP (real and imaginary time)
+from psiloom import fermions  # electrons in an orbital or site basis (second quantisation)
 
 #: The package version (also in ``pyproject.toml``).
 __version__ = "0.1.0"
 
 __all__ = ["batching", "compilation", "reference", "lattices", "operators", "optimize", "parallel", "plotting", "reduce", "sampling", "spaces", "states",
            "stats", "symmetry", "train", "vmc", "loop", "history", "checkpoint", "electrons", "tomography", "dynamics",
-           "__version__"]
+           "fermions", "__version__"]

@@ -109,17 +109,20 @@ def parenthesis_notation(value: float, error: float, sign: bool = False) -> str:
     the digits in parentheses count units of the last printed digit of ``value``. Errors of 1
     or more are written with their decimal point when ``value`` has one (``12.3(3.4)``).
     ``sign=True`` always prints the sign (for the imaginary part of a complex number).
-    Errors below 1e-14 switch to scientific notation (``1.00(30)e-18``); a zero error prints
-    ``(0)`` and a non-finite one ``(nan)`` or ``(inf)``.
+    Tiny numbers (error below 1e-14 and ``|value|`` below 1e-6) switch to scientific notation
+    (``1.00(30)e-18``); an error below 1e-14 of the value's leading digit prints ``(0)``, as
+    does a zero error; a non-finite error prints ``(nan)`` or ``(inf)``.
     """
     plus = "+" if sign else ""
     if not math.isfinite(error) or not math.isfinite(value):
         return f"{value:{plus}.10g}({error})"
     if error == 0.0:
         return f"{value:{plus}.10g}(0)"
-    if error < 1e-14:  # rounding noise: scientific, so the digits are not buried in zeros
+    if error < 1e-14 and max(abs(value), error) < 1e-6:  # tiny numbers: scientific, not buried in zeros
         exponent = math.floor(math.log10(max(abs(value), error)))
         scale = 10.0 ** exponent
+        if error / scale < 1e-14:  # negligible against the value (e.g. 1e-12 ± 1e-30): no digits to show
+            return f"{value:{plus}.10g}(0)"
         return f"{parenthesis_notation(value / scale, error / scale, sign)}e{exponent}"
     decimals = 1 - math.floor(math.log10(error))
     digits = round(error * 10.0 ** decimals)
@@ -184,9 +187,9 @@ class Estimate(NamedTuple):
         (the usual convention of the trade, e.g. CODATA tables). The error is rounded to two
         significant digits and the mean to the same decimal place; an error of 1 or more keeps
         its decimal point where the mean has none (``1234(56)``, ``12.3(3.4)``). A complex mean
-        prints both parts with the same error, ``-1.2345(12)+0.0031(12)j``. An error below
-        1e-14 (rounding noise, e.g. of an observable that is exactly zero) switches to
-        scientific notation, ``1.00(30)e-18``; a non-finite one prints ``(nan)``/``(inf)``. ``τ`` carries a ``?`` when the
+        prints both parts with the same error, ``-1.2345(12)+0.0031(12)j``. Tiny numbers
+        (rounding noise, e.g. of an observable that is exactly zero) switch to scientific
+        notation, ``1.00(30)e-18``; a non-finite one prints ``(nan)``/``(inf)``. ``τ`` carries a ``?`` when the
         chains were too short to trust it; ``R̂`` is omitted when undefined (one chain). An
         array estimate gives one line per component, prefixed by its index.
         """

@@ -3,12 +3,14 @@ sector), closed-form energies (free-fermion TFIM ring, Bethe-ansatz Heisenberg r
 evolution of state vectors (sparse matrix exponential) and the free-fermion TFIM ring quench."""
 
 from .bethe import HULTHEN_ENERGY_PER_SITE, heisenberg_ring_energy, heisenberg_ring_rapidities
+from .hubbard import hubbard_chain_energy_per_site
 from .tfim import tfim_ring_energy, tfim_ring_energy_per_site_infinite
 
 __all__ = [
     "HULTHEN_ENERGY_PER_SITE",
     "heisenberg_ring_energy",
     "heisenberg_ring_rapidities",
+    "hubbard_chain_energy_per_site",
     "tfim_ring_energy",
     "tfim_ring_energy_per_site_infinite",
 ]

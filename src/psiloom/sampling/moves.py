@@ -405,7 +405,11 @@ def choose_move(space, move: Move | None = None, bonds=None) -> Move:
     """The move a sampler uses on ``space``: ``move`` itself after checking that it is a
     :class:`Move`, keeps the space's sector and stays within its sites, or the default — single
     flips for an unconstrained space, nearest-neighbour exchange over ``bonds`` (any-pair
-    exchange without bonds) otherwise."""
+    exchange without bonds) otherwise. A space with its own ``choose_move(move, bonds)`` method
+    (:class:`psiloom.fermions.FermionSpace`) makes that choice itself."""
+    own = getattr(space, "choose_move", None)
+    if own is not None:  # spaces with their own moves (fermions) choose and check them
+        return own(move, bonds)
     if move is not None and bonds is not None:
         raise ValueError("give either move= or bonds=, not both (bonds= picks a BondExchange move)")
     if bonds is not None:

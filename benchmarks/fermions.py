@@ -1,0 +1,164 @@
+"""Benchmark: fermions in second quantisation — Hubbard models and molecules in a Gaussian basis.
+
+Cases (one JSON line each, benchmarks/README.md):
+
+* Hubbard rings at half filling, U = 4t, neural backflow determinant vs exact diagonalisation
+  (full: L = 8 and L = 12; ``--quick``: L = 6); the Lieb & Wu (1968) infinite-chain energy per
+  site is reported beside the ring as ``lieb_wu_per_site``.
+* Hubbard 4×4 square lattice, U = 4t, half filling (full only): energy per site against the
+  exact-diagonalisation value E/site = −0.8514 (from memory; ED of the 4×4 periodic cluster).
+* Molecules in STO-3G against PySCF's FCI in the same basis: H2O and N2 at their experimental
+  equilibrium geometries and N2 at five bond lengths (full; the largest error of the curve is
+  in the summary); ``--quick``: LiH.
+* Throughput of Metropolis hop proposals for a Slater determinant with and without the
+  Sherman-Morrison fast updates (ratio).
+
+Targets (the issue's): ≤ 1e-3 relative on the rings, ≤ 1e-2 on 4×4, ≤ 1 mHa on molecules.
+"""
+
+from __future__ import annotations
+
+import time
+
+import jax
+
+jax.config.update("jax_enable_x64", True)
+
+import numpy as np  # noqa: E402
+import optax  # noqa: E402
+
+import psiloom as pl  # noqa: E402
+from psiloom import fermions as fm  # noqa: E402
+from _common import Timer, emit, parse_args, progress, relative_error, summary  # noqa: E402
+
+SQUARE_4x4_U4_PER_SITE = -0.8514  # ED of the periodic 4×4 Hubbard cluster at U = 4t, half filling (from memory)
+
+
+def _optimizer(lr: float, steps: int):
+    return optax.chain(pl.optimize.stochastic_reconfiguration(shift=optax.exponential_decay(1e-2, steps // 4, 0.1,
+                                                                                            end_value=1e-4)),
+                       optax.sgd(lr))
+
+
+def _train(model, hamiltonian, space, move, steps, samples, chains, eval_samples, lr, seed=0, start=None):
+    sampler = pl.sampling.MetropolisChains(space, n_chains=chains, move=move, burn_in=2)
+    search = pl.train.GroundStateSearch(model, hamiltonian, sampler, _optimizer(lr, steps), n_samples=samples)
+    state = search.init(jax.random.PRNGKey(seed))
+    if start is not None:  # chains start at a given configuration (e.g. the HF determinant)
+        x = jax.numpy.tile(jax.numpy.asarray(start, state.chains.x.dtype), (chains, 1))
+        state = state._replace(chains=sampler.refresh(state.chains._replace(x=x), pl.states.BoundState(model, state.params)))
+    state, _ = search.run(steps, state=state, progress=progress, print_every=max(1, steps // 10))
+    estimate, acceptance = search.evaluate(state, eval_samples, burn_in_sweeps=4)
+    return search, state, estimate, acceptance
+
+
+def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, reference=None, source="ED") -> dict:
+    with Timer() as timer:
+        lattice = pl.lattices.chain(extent[0]) if len(extent) == 1 else pl.lattices.square(*extent)
+        n = lattice.n_sites
+        space = fm.FermionSpace(n, n // 2, n // 2)
+        H = fm.hubbard(lattice, t=1.0, U=4.0)
+        if reference is None:
+            progress(f"ED of {space!r} ({space.size} states)")
+            reference, _ = pl.reference.ground_state(H, space, tol=1e-10)
+        guess = fm.lowest_orbitals(space, fm.one_body_matrix(H) + 1e-3 * np.diag(np.arange(n) / n))
+        model = fm.BackflowDeterminant(space, guess, hidden=hidden, jastrow=True)
+        search, state, est, acc = _train(model, H, space, fm.Hop.along(lattice.bonds, space), steps, samples, chains,
+                                         eval_samples, lr)
+    record = {
+        "benchmark": "fermions",
+        "system": {"model": "hubbard", "lattice": lattice.kind, "extent": list(extent), "pbc": True, "t": 1.0,
+                   "U": 4.0, "n_up": space.n_up, "n_down": space.n_down},
+        "method": {"trial_state": f"backflow determinant (hidden={hidden}) x density Jastrow, U=0 orbitals",
+                   "sampler": f"Metropolis hops along bonds, {chains} chains", "optimizer": f"SR + sgd {lr}",
+                   "tau": float(est.tau), "rhat": float(est.rhat), "acceptance": acc},
+        "energy": float(np.real(est.mean)), "error_bar": float(est.error), "reference": float(reference),
+        "reference_source": source, "rel_error": relative_error(float(np.real(est.mean)), float(reference)),
+        "seconds": timer.seconds, "steps": steps, "samples_per_step": samples, "n_params": search.n_parameters(state),
+    }
+    if len(extent) == 1:
+        record["lieb_wu_per_site"] = pl.reference.hubbard_chain_energy_per_site(4.0)
+    return record
+
+
+H2O = [("O", (0.0, 0.0, 0.0)), ("H", (0.0, 0.7572, 0.5865)), ("H", (0.0, -0.7572, 0.5865))]  # Å, experiment
+
+
+def n2(bond: float):
+    return [("N", (0.0, 0.0, 0.0)), ("N", (0.0, 0.0, bond))]
+
+
+def molecule_case(name, atoms, steps, samples, chains, eval_samples, hidden, lr, noise=0.2) -> dict:
+    with Timer() as timer:
+        problem = fm.molecular_hamiltonian(atoms, "sto-3g", units="angstrom")
+        reference = problem.fci_energy()
+        progress(f"{name}: {problem.space!r}, {problem.hamiltonian!r}, max connections "
+                 f"{problem.hamiltonian.max_connections}; HF {problem.hartree_fock_energy:.6f}, FCI {reference:.6f}")
+        model = fm.BackflowDeterminant(problem.space, problem.hartree_fock_guess(noise=noise), hidden=hidden)
+        search, state, est, acc = _train(model, problem.hamiltonian, problem.space, fm.any_hop(), steps, samples,
+                                         chains, eval_samples, lr, start=problem.hartree_fock_configuration())
+    energy = float(np.real(est.mean))
+    return {
+        "benchmark": "fermions",
+        "system": {"model": "molecule_basis", "name": name, "basis": "sto-3g",
+                   "atoms": [[s, list(p)] for s, p in problem.atoms], "units": "bohr",
+                   "n_up": problem.space.n_up, "n_down": problem.space.n_down},
+        "method": {"trial_state": f"backflow determinant (hidden={hidden}), HF orbitals + noise {noise}",
+                   "sampler": f"Metropolis any-orbital hops, {chains} chains", "optimizer": f"SR + sgd {lr}",
+                   "hartree_fock": problem.hartree_fock_energy, "tau": float(est.tau), "acceptance": acc},
+        "energy": energy, "error_bar": float(est.error), "reference": reference,
+        "reference_source": "PySCF FCI, same basis", "rel_error": relative_error(energy, reference),
+        "abs_error_mha": abs(energy - reference) * 1000.0, "seconds": timer.seconds, "steps": steps,
+        "samples_per_step": samples, "n_params": search.n_parameters(state),
+    }
+
+
+def throughput_case(extent, chains, sweeps) -> dict:
+    lattice = pl.lattices.square(*extent)
+    n = lattice.n_sites
+    space = fm.FermionSpace(n, n // 2, n // 2)
+    model = fm.SlaterDeterminant(space)
+    params = model.init(jax.random.PRNGKey(0), space.random(jax.random.PRNGKey(1), 1))
+    sampler = pl.sampling.MetropolisChains(space, n_chains=chains, bonds=lattice.bonds)
+    rates = {}
+    for fast in (True, False):
+        bound = pl.states.BoundState(model, params, fast=fast)
+        run = jax.jit(lambda key, st, b: sampler.sample(key, st, b, sweeps)[:3])
+        st = sampler.init(jax.random.PRNGKey(2), bound)
+        jax.block_until_ready(run(jax.random.PRNGKey(3), st, bound))  # compile
+        t0 = time.perf_counter()
+        jax.block_until_ready(run(jax.random.PRNGKey(4), st, bound))
+        rates[fast] = sweeps * sampler.sweep * chains / (time.perf_counter() - t0)
+    return {"benchmark": "fermions", "system": {"model": "hubbard", "lattice": "square", "extent": list(extent),
+                                                "pbc": True, "n_up": space.n_up, "n_down": space.n_down},
+            "method": {"trial_state": "Slater determinant", "sampler": f"Metropolis hops, {chains} chains"},
+            "metric": "hop proposals per second, fast determinant updates", "value": rates[True],
+            "unit": "proposals/s", "baseline": rates[False], "ratio": rates[True] / rates[False]}
+
+
+def main() -> None:
+    args = parse_args("fermions", "Hubbard models and molecules in a basis: backflow VMC vs ED / FCI")
+    records = []
+    if args.quick:
+        records.append(emit(hubbard_case([6], 100, 256, 16, 4096, 24, 0.05)))
+        records.append(emit(molecule_case("LiH", [("Li", (0, 0, 0)), ("H", (0, 0, 1.5949))], 60, 256, 16, 2048,
+                                          16, 0.05)))
+        records.append(emit(throughput_case((4, 4), 16, 4)))
+        summary(records, benchmark="fermions", quick=True)
+        return
+    records.append(emit(hubbard_case([8], 1500, 2048, 32, 32768, 32, 0.05)))
+    records.append(emit(hubbard_case([12], 2000, 2048, 32, 32768, 48, 0.05)))
+    records.append(emit(hubbard_case([4, 4], 2000, 2048, 32, 32768, 64, 0.03,
+                                     reference=16 * SQUARE_4x4_U4_PER_SITE, source="ED 4x4 (from memory)")))
+    records.append(emit(molecule_case("H2O", H2O, 1500, 1024, 32, 16384, 32, 0.05)))
+    curve = []
+    for bond in (1.0977, 0.9, 1.3, 1.7, 2.2):
+        rec = emit(molecule_case(f"N2 r={bond} A", n2(bond), 1500, 1024, 32, 16384, 40, 0.05))
+        records.append(rec)
+        curve.append(rec["abs_error_mha"])
+    records.append(emit(throughput_case((4, 4), 16, 16)))
+    summary(records, benchmark="fermions", quick=False, n2_curve_largest_error_mha=max(curve))
+
+
+if __name__ == "__main__":
+    main()
