@@ -121,6 +121,11 @@ def test_bad_bonds_raise_naming_them(bonds, n_sites, sampler):
             with pytest.raises(ValueError) as err:
                 make(space, 2, bonds=bonds)
             assert any(str(list(b)) in str(err.value) for b in bad)
+        elif space.is_sector and len({s for bond in bonds for s in bond}) < n_sites:
+            # valid bonds that leave a site untouched cannot be the sector's move (a chain would
+            # keep that site at its start): refused, naming the sites
+            with pytest.raises(ValueError, match="never moves sites"):
+                make(space, 2, bonds=bonds)
         else:
             made = make(space, 2, bonds=bonds)
             if space.is_sector:
