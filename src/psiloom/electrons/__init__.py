@@ -26,7 +26,7 @@ from psiloom.electrons.laplacian import forward_laplacian, hessian_laplacian, va
 from psiloom.electrons.observables import EnergyComponents, energy_components, evaluate_components
 from psiloom.electrons.orbitals import NeuralOrbitals, SlaterTypeOrbitals
 from psiloom.electrons.sampler import ElectronSampler, WalkerState
-from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, molecule
+from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, from_xyz, hund_spin, molecule, parse_xyz
 
 __all__ = [
     "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "SlaterJastrow",
@@ -34,5 +34,5 @@ __all__ = [
     "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
     "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "NeuralOrbitals",
     "SlaterTypeOrbitals", "ElectronSampler", "WalkerState", "BOHR_PER_ANGSTROM", "Molecule", "atom",
-    "molecule",
+    "from_xyz", "hund_spin", "molecule", "parse_xyz",
 ]
