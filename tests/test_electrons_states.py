@@ -194,6 +194,26 @@ def test_folx_laplacian_agrees_with_own_forward_laplacian():
     assert float(l1) == pytest.approx(float(l0), rel=1e-10, abs=1e-10)
 
 
+def test_primitive_without_rule_is_never_a_silent_slow_path():
+    # lax.bessel_i1e has no forward-Laplacian rule: the test configuration turns the warning into
+    # an error; a user (default warning filter) is told once per primitive, and the generic rule
+    # still gives the exact Laplacian (compared with the jvp-of-gradient method).
+    import warnings
+    from psiloom.electrons.laplacian import UnknownPrimitiveWarning
+
+    f = lambda y: jnp.sum(jax.lax.bessel_i1e(y) * y)
+    x = jnp.asarray([0.3, -0.7, 1.1])
+    with pytest.raises(UnknownPrimitiveWarning, match="bessel_i1e"):
+        el.value_grad_laplacian(f, x, "forward")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("default")
+        results = [el.value_grad_laplacian(f, x, "forward") for _ in range(3)]
+    assert [w.category for w in caught] == [UnknownPrimitiveWarning]
+    _, g0, l0 = el.value_grad_laplacian(f, x, "hessian")
+    np.testing.assert_allclose(np.asarray(results[0][1]), np.asarray(g0), rtol=1e-12)
+    assert float(results[0][2]) == pytest.approx(float(l0), rel=1e-12)
+
+
 def test_unknown_laplacian_method_raises():
     with pytest.raises(ValueError, match="unknown laplacian"):
         el.CoulombHamiltonian(LI, laplacian="magic")
