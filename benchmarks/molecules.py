@@ -30,6 +30,8 @@ training (default: forward); ``--scale`` to shorten runs for a smoke test.
   and one per ionisation energy (``abs_error_mha`` of the difference).
 * ``properties`` — He radial density and LiH axial density with error bars and the LiH dipole
   moment (one line each; the density lines hold the profiles).
+* ``cost`` — seconds per optimisation step for He, Li, Be, B, C, N (one line each) and the
+  fitted exponent p of seconds ∝ N^p (no energies: its summary's error fields are empty).
 
 Every case's summary line carries ``max_abs_error_mha`` and ``errors_mha``.
 """
@@ -302,7 +304,34 @@ def case_properties(configs, laplacian, quick, seed=0):
     return records
 
 
-CASES = ("energies", "scan", "ionisation", "properties")
+def case_cost(configs, laplacian, quick, seed=0):
+    """Seconds per optimisation step against the number of electrons (He … N); fitted exponent."""
+    names = ("He", "Li", "Be", "B", "C", "N")
+    steps = 6 if quick else 30
+    cfg = dict(configs["Be"], steps=steps, n_det=1)
+    sizes, seconds, records = [], [], []
+    for name in names:
+        system = el.atom(name)
+        search = _search(system, cfg, laplacian)
+        state, history = search.run(steps, key=jax.random.PRNGKey(seed), progress=False)
+        per_step = float(np.median(history["seconds"][1:]))
+        sizes.append(system.n_electrons)
+        seconds.append(per_step)
+        progress(f"{name}: {per_step:.3f} s per step ({system.n_electrons} electrons)")
+        records.append(emit({
+            "benchmark": "molecules", "system": system.describe(),
+            "method": {"trial_state": f"{cfg['state']} n_det=1", "laplacian": laplacian},
+            "metric": "seconds_per_optimisation_step", "value": per_step, "unit": "s",
+            "samples_per_step": cfg["n_samples"], "seconds": float(np.sum(history["seconds"])),
+        }))
+    exponent = float(np.polyfit(np.log(sizes), np.log(seconds), 1)[0])
+    progress(f"cost ∝ N^{exponent:.2f}")
+    records.append(emit({"benchmark": "molecules", "metric": "cost_exponent", "value": exponent,
+                         "unit": "fitted p in seconds per step ∝ N^p", "electrons": sizes, "seconds": 0.0}))
+    return records
+
+
+CASES = ("energies", "scan", "ionisation", "properties", "cost")
 
 
 def main() -> None:
@@ -312,7 +341,8 @@ def main() -> None:
         parser.add_argument("--scale", type=float, default=1.0,
                             help="multiply optimisation steps and evaluation samples (smoke tests)")
         parser.add_argument("--case", default="energies", choices=CASES,
-                            help="energies (default), scan (H2/LiH bond curves), ionisation (Li, Be), properties")
+                            help="energies (default), scan (H2/LiH bond curves), ionisation (Li, Be), properties, "
+                                 "cost (seconds per step against electron count)")
 
     args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
     names = [n.strip() for n in args.systems.split(",") if n.strip()]
@@ -324,7 +354,8 @@ def main() -> None:
         configs = {k: dict(v, steps=max(2, int(v["steps"] * args.scale)),
                            eval_samples=max(N_CHAINS, int(v["eval_samples"] * args.scale))) for k, v in configs.items()}
     if args.case != "energies":
-        run_case = {"scan": case_scan, "ionisation": case_ionisation, "properties": case_properties}[args.case]
+        run_case = {"scan": case_scan, "ionisation": case_ionisation, "properties": case_properties,
+                    "cost": case_cost}[args.case]
         records = run_case(configs, args.laplacian, args.quick)
         energy_records = [r for r in records if r.get("abs_error_mha") is not None]
         summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,
