@@ -201,7 +201,7 @@ def _energy_line(system, cfg, evaluation, reference, source, seconds, extra=None
     record = {
         "benchmark": "molecules", "system": system.describe(),
         "method": {"trial_state": f"{cfg['state']} n_det={cfg['n_det']}", "tau": float(total.tau),
-                   "acceptance": evaluation.acceptance, **(extra or {})},
+                   "acceptance": evaluation.acceptance, "charge": system.charge, **(extra or {})},
         "energy": energy, "error_bar": error, "reference": reference, "reference_source": source,
         "rel_error": relative_error(energy, reference),
         "abs_error_mha": None if reference is None else abs(energy - reference) * 1e3,
@@ -360,7 +360,8 @@ def main() -> None:
         energy_records = [r for r in records if r.get("abs_error_mha") is not None]
         summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,
                 max_abs_error_mha=max((r["abs_error_mha"] for r in energy_records), default=None),
-                errors_mha={f"{r['system']['name']}" + (f"@{r['method']['bond_length_bohr']:g}"
+                errors_mha={f"{r['system']['name']}" + ("+" if r.get("method", {}).get("charge", 0) > 0 else "")
+                            + (f"@{r['method']['bond_length_bohr']:g}"
                                                           if "bond_length_bohr" in r.get("method", {}) else "")
                             + ("(IE)" if "quantity" in r.get("method", {}) else ""): r["abs_error_mha"]
                             for r in energy_records})
