@@ -227,7 +227,7 @@ def case_scan(configs, laplacian, quick, seed=0):
                                   eval_samples=cfg["eval_samples"])
         for point, reference in zip(points, references):
             r = float(np.linalg.norm(point.system.positions[1] - point.system.positions[0]))
-            line_cfg = dict(cfg, steps=cfg["steps"] if point.index == 0 else warm_steps)
+            line_cfg = dict(cfg, steps=cfg["steps"] if point.geometry == 0 else warm_steps)
             records.append(_energy_line(point.system, line_cfg, point.evaluation, reference,
                                         "Kolos & Wolniewicz (from memory)" if reference is not None else "pending",
                                         point.seconds, {"bond_length_bohr": r, "warm_start": point.warm_start}))

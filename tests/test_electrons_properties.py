@@ -128,7 +128,7 @@ def test_geometry_scan_warm_starts_from_the_previous_geometry():
 
     points = list(el.geometry_scan(geometries, build, steps=1, key=jax.random.PRNGKey(0), eval_samples=256,
                                    burn_in_sweeps=2))
-    assert [p.index for p in points] == [0, 1] and [p.warm_start for p in points] == [False, True]
+    assert [p.geometry for p in points] == [0, 1] and [p.warm_start for p in points] == [False, True]
     # with a zero learning rate the warm-started parameters are exactly the first geometry's
     same = jax.tree_util.tree_map(lambda a, b: bool(jnp.all(a == b)), points[0].state.params, points[1].state.params)
     assert all(jax.tree_util.tree_leaves(same))

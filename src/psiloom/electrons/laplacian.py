@@ -20,7 +20,7 @@ implementations sit behind :func:`value_grad_laplacian`'s ``method`` option:
         product a·b:         (ab,   a∇b + b∇a,      a∇²b + b∇²a + 2∇a·∇b)
 
     (dot products and matrix products follow the product rule). A listed set of further
-    primitives (:data:`GENERIC_RULE`: LU and other factorisations, maxima, control flow) uses
+    primitives (``GENERIC_RULE``: LU and other factorisations, maxima, control flow) uses
     the exact generic rule ``∇²(g∘y) = J_g ∇²y + Σ_k (∂_k y)ᵀ H_g (∂_k y)`` evaluated with
     nested forward-mode derivatives of that primitive alone. Custom-derivative functions are
     entered through their primal program.
@@ -200,7 +200,7 @@ _ZERO_DERIVATIVE = {
     "not", "xor", "stop_gradient", "argmax", "argmin", "iota", "nextafter", "population_count",
     "reduce_and", "reduce_or", "shift_left", "shift_right_logical", "shift_right_arithmetic",
 }
-# Primitives known to need the exact generic rule (no cheaper structure exploited).
+#: Primitives known to need the exact generic rule (no cheaper structure exploited).
 GENERIC_RULE = frozenset({
     "lu", "lu_pivots_to_permutation", "triangular_solve", "cholesky", "qr", "householder_product", "eigh",
     "svd", "custom_linear_solve", "reduce_max", "reduce_min", "max", "min", "clamp", "atan2", "rem",

@@ -180,9 +180,9 @@ def orbital_loss(model, params, target: GaussianOrbitals, x):
     """Mean squared difference of all determinants' orbital matrices from the target's, the
     target divided by the model's one-electron Jastrow factors e^{j_i} (module docstring)."""
     up, down = model.apply(params, x, method=model.orbital_matrices)
-    t_up, t_down = target.apply({}, x)
+    t_up, t_down = cast(tuple, target.apply({}, x))
     if hasattr(model, "one_electron_log_factors"):
-        scale = jnp.exp(-model.apply(params, x, method=model.one_electron_log_factors))[:, None, :, None]
+        scale = jnp.exp(-jnp.asarray(model.apply(params, x, method=model.one_electron_log_factors)))[:, None, :, None]
         nu = t_up.shape[-2]
         t_up, t_down = t_up * scale[:, :, :nu], t_down * scale[:, :, nu:]
     per_sample = jnp.sum((up - t_up) ** 2, axis=(1, 2, 3)) + jnp.sum((down - t_down) ** 2, axis=(1, 2, 3))

@@ -60,6 +60,7 @@ class Difference(NamedTuple):
     correlated: bool  # True: estimated from paired samples (covariance included)
 
     def format(self) -> str:
+        """The difference in parenthesis notation, e.g. ``0.19812(43)`` (hartree)."""
         return stats.parenthesis_notation(self.value, self.error)
 
     def __str__(self) -> str:
@@ -157,7 +158,7 @@ def energy_difference(a, b) -> Difference:
     included) or :class:`psiloom.stats.Estimate` objects of independent runs (quadrature).
     """
     if isinstance(a, stats.Estimate) and isinstance(b, stats.Estimate):
-        value = float(np.real(a.mean)) - float(np.real(b.mean))
+        value = float(np.real(np.asarray(a.mean))) - float(np.real(np.asarray(b.mean)))
         return Difference(value, float(np.hypot(float(a.error), float(b.error))), False)
     a, b = np.asarray(a), np.asarray(b)
     if a.ndim != 2 or a.shape != b.shape:
@@ -166,4 +167,4 @@ def energy_difference(a, b) -> Difference:
     if not (np.all(np.isfinite(a)) and np.all(np.isfinite(b))):
         raise ValueError("local energies must be finite")
     est = stats.estimate(jnp.asarray(np.real(a - b)))
-    return Difference(float(est.mean), float(est.error), True)
+    return Difference(float(np.real(np.asarray(est.mean))), float(np.asarray(est.error)), True)

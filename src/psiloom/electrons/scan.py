@@ -18,7 +18,7 @@ energies and samples, for densities, dipoles and differences; see
 from __future__ import annotations
 
 import time
-from typing import Callable, Iterator, NamedTuple, Sequence
+from typing import Any, Callable, Iterator, NamedTuple, Sequence
 
 import jax
 import jax.numpy as jnp
@@ -31,11 +31,15 @@ from psiloom.electrons.system import Molecule
 
 
 class ScanPoint(NamedTuple):
-    index: int
+    """One geometry of a scan: its position in the list, the molecule, the evaluation pass, the
+    final training state and history, wall seconds (compilation included), and whether it was
+    warm-started."""
+
+    geometry: int
     system: Molecule
     evaluation: EvaluationPass
-    state: object  # the TrainState at the end of this point's optimisation
-    history: object
+    state: Any  # the TrainState at the end of this point's optimisation
+    history: Any
     seconds: float
     warm_start: bool
 
@@ -87,15 +91,16 @@ def geometry_scan(systems: Sequence[Molecule], build_search: Callable, steps: in
     steps = positive_int("steps", steps)
     first_steps = steps if first_steps is None else positive_int("first_steps", first_steps)
     nonnegative_int("burn_in_sweeps", burn_in_sweeps)
-    previous = None
+    previous: ScanPoint | None = None
     for k, system in enumerate(systems):
         start = time.perf_counter()
         search = build_search(system)
         if getattr(search.sampler, "system", system) != system and not _same_geometry(search.sampler.system, system):
             raise ValueError(f"build_search returned a search for {search.sampler.system!r}, expected {system!r}")
         k_init, k_eval = jax.random.split(jax.random.fold_in(key, k))
-        warm = warm_start and previous is not None
-        if warm:
+        warm = False
+        if warm_start and previous is not None:
+            warm = True
             state = search.init(k_init, params=previous.state.params)
             chains = previous.state.chains
             x = follow_nuclei(chains.x, previous.system, system)

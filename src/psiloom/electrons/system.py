@@ -384,7 +384,7 @@ def parse_xyz(text: str) -> list[tuple[str, tuple[float, float, float]]]:
         if len(parts) < 4:
             raise ValueError(f"XYZ line {line!r} needs 'symbol x y z'")
         try:
-            xyz = tuple(float(v) for v in parts[1:4])
+            xyz = (float(parts[1]), float(parts[2]), float(parts[3]))
         except ValueError:
             raise ValueError(f"XYZ line {line!r}: coordinates are not numbers") from None
         if not all(np.isfinite(xyz)):
