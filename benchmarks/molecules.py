@@ -5,7 +5,7 @@ the published exact non-relativistic energies named in ``SYSTEMS`` below (from m
 
 ``--quick``: Slater–Jastrow states (Slater-type orbitals, cusp + neural Jastrow), short runs;
 the He line is the headline (target: within 5 mHa in under 2 minutes on two CPU cores).
-Full mode: neural-orbital multi-determinant states (``neural_slater_jastrow``), Hartree-Fock
+Full mode: backflow multi-determinant states (``neural_slater_jastrow``), Hartree-Fock
 pretraining when PySCF is installed, long runs (targets: He ≤ 0.1 mHa in ≤ 10 min;
 H₂ ≤ 0.3, Li ≤ 1, LiH ≤ 1.6 mHa in ≤ 60 min; Be ≤ 3 mHa).
 
@@ -17,6 +17,23 @@ progress on stderr (benchmarks/README.md).
 
 Options: ``--systems He,Li`` to run a subset; ``--laplacian`` to choose the Laplacian used in
 training (default: forward); ``--scale`` to shorten runs for a smoke test.
+
+``--case`` chooses the question (default ``energies``, the above):
+
+* ``scan`` — H₂ bond curve, geometries run in order with warm starts (parameters and walkers
+  from the previous geometry, :func:`psiloom.electrons.geometry_scan`), one energy line per
+  geometry against Kołos & Wolniewicz (from memory; points without a trusted value carry
+  ``reference: null``). Full mode also scans LiH at 5 bond lengths (no references: the
+  curve's shape and the warm-start cost are what it reports).
+* ``ionisation`` — first ionisation energies of Li and Be as differences of total energies
+  (neutral and cation run independently, so errors add in quadrature), one line per species
+  and one per ionisation energy (``abs_error_mha`` of the difference).
+* ``properties`` — He radial density and LiH axial density with error bars and the LiH dipole
+  moment (one line each; the density lines hold the profiles).
+* ``cost`` — seconds per optimisation step for He, Li, Be, B, C, N (one line each) and the
+  fitted exponent p of seconds ∝ N^p (no energies: its summary's error fields are empty).
+
+Every case's summary line carries ``max_abs_error_mha`` and ``errors_mha``.
 """
 
 from __future__ import annotations
@@ -158,12 +175,174 @@ def laplacian_comparison(name, model, params, n_walkers=256, repeats=5):
     return records
 
 
+# H₂ Born-Oppenheimer energies (Kołos & Wolniewicz 1965/1968, from memory); None: no value
+# trusted to 0.01 mHa from memory — the coordinator fills it from the paper before quoting errors.
+H2_CURVE = {0.8: None, 1.0: -1.1245385, 1.4: -1.1744757, 2.0: -1.1381329, 3.0: -1.0573262, 5.0: None}
+LIH_CURVE = (2.6, 2.8, 3.015, 3.4, 4.0)
+# non-relativistic exact total energies (from memory): neutral atoms as in SYSTEMS, cations
+# Li⁺ −7.279913 Ha and Be⁺ −14.324763 Ha (Pekeris-type Hylleraas values).
+CATIONS = {"Li": -7.279913, "Be": -14.324763}
+# LiH dipole moment: 5.88 D = 2.314 e·bohr (experiment, Wharton, Gold & Klemperer 1962, from memory).
+LIH_DIPOLE_AU = 2.314
+
+
+def _search(system, cfg, laplacian, params=None, key=None):
+    model = build_state(system, cfg)
+    sampler = el.ElectronSampler(system, n_chains=N_CHAINS, sweep=5, burn_in=1, equilibrate=100)
+    lr = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
+    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
+    return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
+                                      optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
+
+
+def _energy_line(system, cfg, evaluation, reference, source, seconds, extra=None):
+    total = evaluation.components.total
+    energy, error = float(np.real(total.mean)), float(total.error)
+    record = {
+        "benchmark": "molecules", "system": system.describe(),
+        "method": {"trial_state": f"{cfg['state']} n_det={cfg['n_det']}", "tau": float(total.tau),
+                   "acceptance": evaluation.acceptance, "charge": system.charge, **(extra or {})},
+        "energy": energy, "error_bar": error, "reference": reference, "reference_source": source,
+        "rel_error": relative_error(energy, reference),
+        "abs_error_mha": None if reference is None else abs(energy - reference) * 1e3,
+        "seconds": seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"], "walkers": N_CHAINS,
+    }
+    progress(f"{system.formula}: E = {total.format()} (reference {reference})")
+    return emit(record)
+
+
+def case_scan(configs, laplacian, quick, seed=0):
+    base = dict(configs["H2"], n_det=1) if quick else configs["H2"]
+    lengths = (1.0, 1.4, 2.0) if quick else tuple(H2_CURVE)
+    records = []
+    curves = [("H2", [el.molecule([("H", (0, 0, 0)), ("H", (0, 0, r))]) for r in lengths], base,
+               [H2_CURVE[r] for r in lengths])]
+    if not quick:
+        curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE], configs["LiH"],
+                       [None] * len(LIH_CURVE)))
+    for name, geometries, cfg, references in curves:
+        warm_steps = max(2, cfg["steps"] // 3)
+        points = el.geometry_scan(geometries, lambda system: _search(system, cfg, laplacian), steps=warm_steps,
+                                  first_steps=cfg["steps"], key=jax.random.PRNGKey(seed),
+                                  eval_samples=cfg["eval_samples"])
+        for point, reference in zip(points, references):
+            r = float(np.linalg.norm(point.system.positions[1] - point.system.positions[0]))
+            line_cfg = dict(cfg, steps=cfg["steps"] if point.geometry == 0 else warm_steps)
+            records.append(_energy_line(point.system, line_cfg, point.evaluation, reference,
+                                        "Kolos & Wolniewicz (from memory)" if reference is not None else "pending",
+                                        point.seconds, {"bond_length_bohr": r, "warm_start": point.warm_start}))
+    return records
+
+
+def case_ionisation(configs, laplacian, quick, seed=0):
+    records = []
+    for name, cation_ref in CATIONS.items():
+        neutral, neutral_ref, _ = SYSTEMS[name]
+        cation = el.atom(name, charge=1)
+        runs = {}
+        for system, reference in ((neutral, neutral_ref), (cation, cation_ref)):
+            cfg = configs[name]
+            with Timer() as timer:
+                search = _search(system, cfg, laplacian)
+                state, _ = search.run(cfg["steps"], key=jax.random.PRNGKey(seed), progress=False)
+                evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
+            runs[system is cation] = evaluation
+            records.append(_energy_line(system, cfg, evaluation, reference, "exact non-relativistic (from memory)",
+                                        timer.seconds))
+        difference = el.energy_difference(runs[True].components.total, runs[False].components.total)
+        reference = cation_ref - SYSTEMS[name][1]
+        progress(f"{name}: ionisation energy {difference.format()} Ha (reference {reference:.6f})")
+        records.append(emit({
+            "benchmark": "molecules", "system": neutral.describe(),
+            "method": {"quantity": "first ionisation energy E(cation) − E(neutral)",
+                       "error": "independent runs, errors in quadrature"},
+            "energy": difference.value, "error_bar": difference.error, "reference": reference,
+            "reference_source": "difference of exact non-relativistic energies (from memory)",
+            "rel_error": relative_error(difference.value, reference),
+            "abs_error_mha": abs(difference.value - reference) * 1e3, "seconds": 0.0,
+            "steps": configs[name]["steps"], "samples_per_step": configs[name]["n_samples"], "walkers": N_CHAINS,
+        }))
+    return records
+
+
+def case_properties(configs, laplacian, quick, seed=0):
+    records = []
+    for name in ("He", "LiH"):
+        system, exact, source = SYSTEMS[name]
+        cfg = configs[name]
+        with Timer() as timer:
+            search = _search(system, cfg, laplacian)
+            state, _ = search.run(cfg["steps"], key=jax.random.PRNGKey(seed), progress=False)
+            evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
+        records.append(_energy_line(system, cfg, evaluation, exact, source, timer.seconds))
+        samples = np.asarray(evaluation.samples)
+        if system.n_nuclei == 1:
+            profile = el.radial_density(samples, np.linspace(0.0, 4.0, 21))
+            kind = "radial density ρ(r) (electrons/bohr³)"
+        else:
+            length = float(np.linalg.norm(system.positions[1] - system.positions[0]))
+            profile = el.axial_density(samples, system, np.linspace(-3.0, length + 3.0, 25))
+            kind = "axial density λ(s) from Li (s = 0) toward H (electrons/bohr)"
+        records.append(emit({
+            "benchmark": "molecules", "system": system.describe(), "metric": kind,
+            "value": {"centres_bohr": profile.centres, "density": profile.values, "error": profile.errors},
+            "unit": "electrons/bohr³" if system.n_nuclei == 1 else "electrons/bohr", "seconds": 0.0,
+        }))
+        if system.n_nuclei > 1:
+            mu = el.dipole_moment(samples, system)
+            axis = (system.positions[1] - system.positions[0]) / length
+            along = float(np.dot(np.asarray(mu.mean), axis))
+            error = float(np.sqrt(np.dot(np.asarray(mu.error) ** 2, axis**2)))
+            progress(f"LiH dipole along Li→H: {pl.stats.parenthesis_notation(along, error)} e·bohr "
+                     f"(published |μ| {LIH_DIPOLE_AU})")
+            records.append(emit({
+                "benchmark": "molecules", "system": system.describe(), "metric": "dipole_moment_along_Li_to_H",
+                "value": along, "error_bar": error, "unit": "e·bohr (negative: Li⁺H⁻ polarity)",
+                "reference": -LIH_DIPOLE_AU, "reference_source": "experiment 5.88 D (Wharton, Gold & Klemperer 1962, from memory)",
+                "debye": along * el.DEBYE_PER_AU, "seconds": 0.0,
+            }))
+    return records
+
+
+def case_cost(configs, laplacian, quick, seed=0):
+    """Seconds per optimisation step against the number of electrons (He … N); fitted exponent."""
+    names = ("He", "Li", "Be", "B", "C", "N")
+    steps = 6 if quick else 30
+    cfg = dict(configs["Be"], steps=steps, n_det=1)
+    sizes, seconds, records = [], [], []
+    for name in names:
+        system = el.atom(name)
+        search = _search(system, cfg, laplacian)
+        state, history = search.run(steps, key=jax.random.PRNGKey(seed), progress=False)
+        per_step = float(np.median(history["seconds"][1:]))
+        sizes.append(system.n_electrons)
+        seconds.append(per_step)
+        progress(f"{name}: {per_step:.3f} s per step ({system.n_electrons} electrons)")
+        records.append(emit({
+            "benchmark": "molecules", "system": system.describe(),
+            "method": {"trial_state": f"{cfg['state']} n_det=1", "laplacian": laplacian},
+            "metric": "seconds_per_optimisation_step", "value": per_step, "unit": "s",
+            "samples_per_step": cfg["n_samples"], "seconds": float(np.sum(history["seconds"])),
+        }))
+    exponent = float(np.polyfit(np.log(sizes), np.log(seconds), 1)[0])
+    progress(f"cost ∝ N^{exponent:.2f}")
+    records.append(emit({"benchmark": "molecules", "metric": "cost_exponent", "value": exponent,
+                         "unit": "fitted p in seconds per step ∝ N^p", "electrons": sizes, "seconds": 0.0}))
+    return records
+
+
+CASES = ("energies", "scan", "ionisation", "properties", "cost")
+
+
 def main() -> None:
     def extra(parser):
         parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS))
         parser.add_argument("--laplacian", default="forward", choices=list(el.laplacian.METHODS))
         parser.add_argument("--scale", type=float, default=1.0,
                             help="multiply optimisation steps and evaluation samples (smoke tests)")
+        parser.add_argument("--case", default="energies", choices=CASES,
+                            help="energies (default), scan (H2/LiH bond curves), ionisation (Li, Be), properties, "
+                                 "cost (seconds per step against electron count)")
 
     args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
     names = [n.strip() for n in args.systems.split(",") if n.strip()]
@@ -174,6 +353,19 @@ def main() -> None:
     if args.scale != 1.0:
         configs = {k: dict(v, steps=max(2, int(v["steps"] * args.scale)),
                            eval_samples=max(N_CHAINS, int(v["eval_samples"] * args.scale))) for k, v in configs.items()}
+    if args.case != "energies":
+        run_case = {"scan": case_scan, "ionisation": case_ionisation, "properties": case_properties,
+                    "cost": case_cost}[args.case]
+        records = run_case(configs, args.laplacian, args.quick)
+        energy_records = [r for r in records if r.get("abs_error_mha") is not None]
+        summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,
+                max_abs_error_mha=max((r["abs_error_mha"] for r in energy_records), default=None),
+                errors_mha={f"{r['system']['name']}" + ("+" if r.get("method", {}).get("charge", 0) > 0 else "")
+                            + (f"@{r['method']['bond_length_bohr']:g}"
+                                                          if "bond_length_bohr" in r.get("method", {}) else "")
+                            + ("(IE)" if "quantity" in r.get("method", {}) else ""): r["abs_error_mha"]
+                            for r in energy_records})
+        return
     records, compare_with = [], None
     for name in names:
         progress(f"{name}: {configs[name]}")

@@ -38,8 +38,10 @@ _FEATURES = jax.jit(_FEATURE_NET.apply)
 
 @pytest.fixture(scope="module")
 def neural_li():
-    # small sizes: these tests check exact identities, and compilation dominates their cost
-    model = el.neural_slater_jastrow(LI, n_det=2, width=4, channels=2, layers=1, jastrow_width=4)
+    # small sizes: these tests check exact identities, and compilation dominates their cost. No
+    # message-passing layer (layers=0): the backflow's pair term already couples all electrons,
+    # and the feature network's own equivariance is tested below with two layers.
+    model = el.neural_slater_jastrow(LI, n_det=2, width=4, channels=2, layers=0, jastrow_width=4)
     params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(1), jnp.zeros((1, 3, 3))))
     return model, params
 
@@ -192,6 +194,26 @@ def test_folx_laplacian_agrees_with_own_forward_laplacian():
     (v1, g1, l1), (v0, g0, l0) = jax.jit(lambda y: [el.value_grad_laplacian(f, y, m) for m in ("folx", "forward")])(x)
     np.testing.assert_allclose(np.asarray(g1), np.asarray(g0), atol=1e-10)
     assert float(l1) == pytest.approx(float(l0), rel=1e-10, abs=1e-10)
+
+
+def test_primitive_without_rule_is_never_a_silent_slow_path():
+    # lax.bessel_i1e has no forward-Laplacian rule: the test configuration turns the warning into
+    # an error; a user (default warning filter) is told once per primitive, and the generic rule
+    # still gives the exact Laplacian (compared with the jvp-of-gradient method).
+    import warnings
+    from psiloom.electrons.laplacian import UnknownPrimitiveWarning
+
+    f = lambda y: jnp.sum(jax.lax.bessel_i1e(y) * y)
+    x = jnp.asarray([0.3, -0.7, 1.1])
+    with pytest.raises(UnknownPrimitiveWarning, match="bessel_i1e"):
+        el.value_grad_laplacian(f, x, "forward")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("default")
+        results = [el.value_grad_laplacian(f, x, "forward") for _ in range(3)]
+    assert [w.category for w in caught] == [UnknownPrimitiveWarning]
+    _, g0, l0 = el.value_grad_laplacian(f, x, "hessian")
+    np.testing.assert_allclose(np.asarray(results[0][1]), np.asarray(g0), rtol=1e-12)
+    assert float(results[0][2]) == pytest.approx(float(l0), rel=1e-12)
 
 
 def test_unknown_laplacian_method_raises():

@@ -119,3 +119,71 @@ def test_energy_components_print_as_labelled_lines():
     assert len(lines) == 6
     assert lines[0].startswith("total E") and str(parts[0]).split()[0] in lines[0] and "Array" not in text
     assert lines[-1].startswith("virial") and float(lines[-1].split()[2]) == pytest.approx(2.0, abs=0.01)
+
+
+# ----------------------------------------------------------------------------- chemist's input
+@pytest.mark.parametrize("symbol, unpaired", [("C", 2), ("N", 3), ("O", 2), ("F", 1), ("Ne", 0), ("Si", 2),
+                                              ("P", 3), ("Cr", 6), ("Mn", 5), ("Fe", 4), ("Cu", 1), ("Zn", 0),
+                                              ("Se", 2), ("Kr", 0)])
+def test_atom_default_spin_follows_hunds_rule(symbol, unpaired):
+    # Ground terms (NIST atomic spectra database, from memory): C ³P, N ⁴S, O ³P, F ²P, Ne ¹S,
+    # Si ³P, P ⁴S, Cr ⁷S (3d⁵4s¹), Mn ⁶S, Fe ⁵D, Cu ²S (3d¹⁰4s¹), Zn ¹S, Se ³P, Kr ¹S.
+    a = el.atom(symbol)
+    assert a.n_up - a.n_down == unpaired
+    assert a.charge == 0
+    assert el.atom(symbol, spin=unpaired % 2).spin == unpaired % 2  # overridable
+
+
+def test_ion_default_spin_from_aufbau_and_hund():
+    # O⁺ (1s²2s²2p³, ⁴S), Be⁺ (2s¹, ²S), Li⁺ (1s², ¹S), N⁻ is refused nowhere: 8 electrons → ³P.
+    assert el.atom("O", charge=1).spin == 3
+    assert el.atom("Be", charge=1).spin == 1
+    assert el.atom("Li", charge=1).spin == 0
+    assert el.atom("N", charge=-1).spin == 2
+    with pytest.raises(ValueError, match="leaves 0 electrons"):
+        el.atom("H", charge=1)  # a cation with no electrons
+
+
+@pytest.mark.parametrize("units", ["Angstrom", "ANGSTROM", "angstrom", "Å"])
+def test_units_are_case_insensitive(units):
+    h2 = el.molecule([("H", (0, 0, 0)), ("H", (0, 0, 0.74))], units=units)
+    assert h2.positions[1, 2] == pytest.approx(0.74 / 0.529177210903, rel=1e-12)  # CODATA 2018 (from memory)
+    assert el.molecule([("H", (0, 0, 0)), ("H", (0, 0, 1.4))], units="Bohr").positions[1, 2] == 1.4
+
+
+def test_geometry_from_xyz_text_and_file(tmp_path):
+    text = "3\nwater, angstrom\nO 0.0 0.0 0.1173\nH 0.0 0.7572 -0.4692\nh 0.0 -0.7572 -0.4692\n"
+    water = el.from_xyz(text)
+    assert water.symbols == ("O", "H", "H") and (water.n_up, water.n_down) == (5, 5)
+    np.testing.assert_allclose(water.positions[1], np.array([0.0, 0.7572, -0.4692]) / 0.529177210903, rtol=1e-12)
+    path = tmp_path / "water.xyz"
+    path.write_text(text)
+    assert np.array_equal(el.from_xyz(path).positions, water.positions)
+    assert np.array_equal(el.from_xyz(str(path)).positions, water.positions)
+    bare = el.from_xyz("Li 0 0 0\nH 0 0 3.015\n", units="bohr")
+    assert bare.positions[1, 2] == 3.015 and bare.formula == "LiH"
+    assert el.from_xyz("O 0 0 0\n").spin == 2  # a single atom gets Hund's spin
+
+
+@pytest.mark.parametrize("text, match", [
+    ("2\nc\nH 0 0 0\n", "announces 2 atoms"),
+    ("H 0 0\n", "symbol x y z"),
+    ("H 0 0 nan\n", "finite"),
+    ("H 0 0 zero\n", "not numbers"),
+    ("Qq 0 0 0\n", "unknown element"),
+    ("\n\n", "no atoms"),
+])
+def test_bad_xyz_input_is_named(text, match):
+    with pytest.raises(ValueError, match=match):
+        el.from_xyz(text)
+
+
+def test_bad_units_and_sources_are_named():
+    with pytest.raises(ValueError, match="units"):
+        el.molecule([("H", (0, 0, 0))], units="nanometre")
+    with pytest.raises(TypeError, match="units"):
+        el.molecule([("H", (0, 0, 0))], units=1.0)
+    with pytest.raises(ValueError, match="neither an existing XYZ file"):
+        el.from_xyz("missing.xyz")
+    with pytest.raises(TypeError, match="from_xyz"):
+        el.molecule("H 0 0 0\n")

@@ -23,16 +23,35 @@ from psiloom.electrons.features import MomentMixer
 from psiloom.electrons.hamiltonian import CoulombHamiltonian, EnergyParts, kinetic_energy, potential_energy
 from psiloom.electrons.jastrow import CuspJastrow, NeuralJastrow
 from psiloom.electrons.laplacian import forward_laplacian, hessian_laplacian, value_grad_laplacian
-from psiloom.electrons.observables import EnergyComponents, energy_components, evaluate_components
-from psiloom.electrons.orbitals import NeuralOrbitals, SlaterTypeOrbitals
+from psiloom.electrons.observables import (
+    EnergyComponents,
+    EvaluationPass,
+    energy_components,
+    evaluate_components,
+    evaluation_pass,
+)
+from psiloom.electrons.properties import (
+    DEBYE_PER_AU,
+    Difference,
+    Profile,
+    axial_density,
+    dipole_moment,
+    energy_difference,
+    radial_density,
+)
+from psiloom.electrons.scan import ScanPoint, check_scan, follow_nuclei, geometry_scan
+from psiloom.electrons.backflow import BackflowShift
+from psiloom.electrons.orbitals import BackflowOrbitals, SlaterTypeOrbitals
 from psiloom.electrons.sampler import ElectronSampler, WalkerState
-from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, molecule
+from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, from_xyz, hund_spin, molecule, parse_xyz
 
 __all__ = [
     "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "SlaterJastrow",
     "neural_slater_jastrow", "signed_log_det", "signed_log_sum_exp", "slater_jastrow", "MomentMixer",
     "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
-    "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "NeuralOrbitals",
+    "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components",
+    "EvaluationPass", "evaluation_pass", "DEBYE_PER_AU", "Difference", "Profile", "axial_density", "dipole_moment",
+    "energy_difference", "radial_density", "ScanPoint", "check_scan", "follow_nuclei", "geometry_scan", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "BackflowOrbitals", "BackflowShift",
     "SlaterTypeOrbitals", "ElectronSampler", "WalkerState", "BOHR_PER_ANGSTROM", "Molecule", "atom",
-    "molecule",
+    "from_xyz", "hund_spin", "molecule", "parse_xyz",
 ]

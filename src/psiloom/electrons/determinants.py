@@ -23,7 +23,7 @@ import jax.numpy as jnp
 
 from psiloom.electrons.base import ElectronState
 from psiloom.electrons.jastrow import CuspJastrow, NeuralJastrow
-from psiloom.electrons.orbitals import NeuralOrbitals, SlaterTypeOrbitals
+from psiloom.electrons.orbitals import BackflowOrbitals, SlaterTypeOrbitals
 from psiloom.electrons.system import Molecule
 
 
@@ -51,7 +51,7 @@ class SlaterJastrow(ElectronState):
 
     Attributes:
         orbitals: a module mapping ``(B, N, 3)`` to ``(up (B, K, n_up, n_up), down (B, K,
-            n_down, n_down))`` (e.g. :class:`SlaterTypeOrbitals`, :class:`NeuralOrbitals`).
+            n_down, n_down))`` (e.g. :class:`SlaterTypeOrbitals`, :class:`BackflowOrbitals`).
         jastrows: modules mapping ``(B, N, 3)`` to ``(B,)``, added to log|ψ|.
     """
 
@@ -78,6 +78,17 @@ class SlaterJastrow(ElectronState):
         """The orbital layer's ``(up, down)`` matrices for a batch ``(B, N, 3)``."""
         return self.orbitals(x)
 
+    def one_electron_log_factors(self, x):
+        """``(B, N)``: the one-electron parts j_i of the Jastrow factors that provide them
+        (``one_electron_terms``, e.g. the electron–nucleus term of :class:`CuspJastrow`).
+        Since e^{Σ_i j_i} det[φ_a(r_i)] = det[φ_a(r_i) e^{j_i}], ψ reproduces a target
+        determinant det[Φ] when the orbitals equal Φ e^{−j} (Hartree-Fock pretraining)."""
+        total = jnp.zeros(x.shape[:-1], x.dtype)
+        for jastrow in self.jastrows:
+            if hasattr(jastrow, "one_electron_terms"):
+                total = total + jastrow.one_electron_terms(x)
+        return total
+
 
 def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True, width: int = 16,
                    layers: int = 2) -> SlaterJastrow:
@@ -89,9 +100,10 @@ def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True
 
 
 def neural_slater_jastrow(system: Molecule, n_det: int = 4, width: int = 16, channels: int = 8, layers: int = 2,
-                          jastrow_width: int = 16) -> SlaterJastrow:
-    """Neural-orbital state: :class:`NeuralOrbitals` determinants, cusp and neural Jastrows."""
+                          jastrow_width: int = 16, envelope_term: bool = False) -> SlaterJastrow:
+    """Backflow state: :class:`BackflowOrbitals` determinants (analytic orbitals at quasi-particle
+    positions r_i + ξ_i(x)), cusp and neural Jastrows."""
     return SlaterJastrow(
-        NeuralOrbitals(system, n_det, width=width, channels=channels, layers=layers),
+        BackflowOrbitals(system, n_det, width=width, channels=channels, layers=layers, envelope_term=envelope_term),
         (CuspJastrow(system), NeuralJastrow(system, width=jastrow_width)),
     )

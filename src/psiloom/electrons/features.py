@@ -28,6 +28,15 @@ pair-weighted *moments* of the other electrons' features, with radial kernels
 and updates  h_i ← h_i + tanh(W h_i + U m_i + V |M_i|² + b)  (|M_i|² squared norm per channel,
 rotation invariant). Relabelling electrons permutes the rows of the output in the same way
 (equivariance): sums over j are symmetric, and the spin contrast depends only on the spin pair.
+
+Published ideas it combines (the combination is psiloom's): learned radial filters of
+interparticle distances weighting neighbours' features (continuous-filter convolutions, Schütt
+et al., NeurIPS 2017); rotation invariants from contracted vector moments of neighbour
+directions (moment tensors, Shapeev, Multiscale Model. Simul. 14, 1153 (2016); Drautz, PRB 99,
+014104 (2019)); residual updates (He et al., CVPR 2016); and one shared network for both spins
+with a continuous spin contrast instead of separate same-spin and opposite-spin streams. In
+psiloom the features feed the backflow displacement (:mod:`psiloom.electrons.backflow`), not
+the orbital values directly.
 """
 
 from __future__ import annotations

@@ -80,6 +80,18 @@ class CuspJastrow(nn.Module):
             total = total - jnp.sum(z * r / (1.0 + r / c), axis=(-2, -1))
         return total
 
+    def one_electron_terms(self, x):
+        """``(B, N)``: each electron's share −Σ_I Z_I r_iI / (1 + r_iI / c_I) of the
+        electron–nucleus term (zeros without it). A product of one-electron factors, so it can
+        be moved into the orbitals (used by Hartree-Fock pretraining). Call on a bound module."""
+        sys_ = self.system
+        _, r2 = electron_nuclear(x, sys_.positions)
+        if not self.nuclear:
+            return jnp.zeros(r2.shape[:-1], x.dtype)
+        c = nn.softplus(self.get_variable("params", "en_length"))
+        r = safe_distance(r2)
+        return -jnp.sum(jnp.asarray(sys_.charges, x.dtype) * r / (1.0 + r / c), axis=-1)
+
 
 class NeuralJastrow(nn.Module):
     """Learnable smooth symmetric Jastrow term ``J_nn`` (see module docstring); shape ``(B,)``.

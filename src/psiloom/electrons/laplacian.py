@@ -19,11 +19,18 @@ implementations sit behind :func:`value_grad_laplacian`'s ``method`` option:
         elementwise φ(y):    (φ(y), φ'(y)∇y,        φ'(y)∇²y + φ''(y)|∇y|²)
         product a·b:         (ab,   a∇b + b∇a,      a∇²b + b∇²a + 2∇a·∇b)
 
-    (dot products and matrix products follow the product rule). Any other primitive (LU
-    factorisations, maxima, control flow) falls back to the exact generic rule
-    ``∇²(g∘y) = J_g ∇²y + Σ_k (∂_k y)ᵀ H_g (∂_k y)`` evaluated with nested forward-mode
-    derivatives of that primitive alone, so every differentiable JAX program is supported.
-    Custom-derivative functions are entered through their primal program.
+    (dot products and matrix products follow the product rule). A listed set of further
+    primitives (``GENERIC_RULE``: LU and other factorisations, maxima, control flow) uses
+    the exact generic rule ``∇²(g∘y) = J_g ∇²y + Σ_k (∂_k y)ᵀ H_g (∂_k y)`` evaluated with
+    nested forward-mode derivatives of that primitive alone. Custom-derivative functions are
+    entered through their primal program.
+
+    No silent slow path: a primitive in none of these lists (a JAX version that renamed or
+    added one) still gets the exact generic rule, but first an :class:`UnknownPrimitiveWarning`
+    names it (once per primitive, Python's default warning filter); psiloom's test suite turns
+    that warning into an error (``filterwarnings`` in ``pyproject.toml``), so CI fails on the
+    JAX versions it tests rather than slowing down. The supported JAX versions are the range
+    pinned in ``pyproject.toml``, which is what CI installs.
 
 ``"folx"`` — the optional forward-Laplacian package ``folx`` (PyPI), when installed.
 
@@ -33,6 +40,7 @@ network and the machine (see ``benchmarks/molecules.py``).
 
 from __future__ import annotations
 
+import warnings
 from typing import Callable, NamedTuple
 
 import jax
@@ -41,6 +49,10 @@ from jax import lax
 from jax.extend import core as jex
 
 METHODS = ("forward", "hessian", "folx")
+
+
+class UnknownPrimitiveWarning(RuntimeWarning):
+    """The forward Laplacian met a JAX primitive without a rule of its own (see module docstring)."""
 
 
 # --------------------------------------------------------------------------- public entry points
@@ -139,7 +151,7 @@ def _eval_jaxpr(jaxpr, consts, args):
         return a.val if isinstance(a, jex.Literal) else env[a]
 
     def write(var, val):
-        if type(var).__name__ != "DropVar":
+        if not isinstance(var, jex.DropVar):
             env[var] = val
 
     for var, val in zip(jaxpr.constvars, consts):
@@ -188,6 +200,13 @@ _ZERO_DERIVATIVE = {
     "not", "xor", "stop_gradient", "argmax", "argmin", "iota", "nextafter", "population_count",
     "reduce_and", "reduce_or", "shift_left", "shift_right_logical", "shift_right_arithmetic",
 }
+#: Primitives known to need the exact generic rule (no cheaper structure exploited).
+GENERIC_RULE = frozenset({
+    "lu", "lu_pivots_to_permutation", "triangular_solve", "cholesky", "qr", "householder_product", "eigh",
+    "svd", "custom_linear_solve", "reduce_max", "reduce_min", "max", "min", "clamp", "atan2", "rem",
+    "cond", "while", "scan", "sort", "cumprod", "cummax", "cummin", "cumlogsumexp", "reduce_prod",
+    "select_and_gather_add", "reduce_window_sum", "conv_general_dilated", "erf_inv",
+})
 _CALLS = {"pjit", "jit", "closed_call", "core_call", "custom_jvp_call", "custom_vjp_call",
           "custom_vjp_call_jaxpr", "remat", "checkpoint", "custom_lin"}
 
@@ -240,7 +259,17 @@ def _apply_rule(eqn, ins):
     if name in _ELEMENTWISE and all(not _is_jet(a) for a in ins[1:]):
         rest = [_value(a) for a in ins[1:]]
         return _unary(lambda t: prim.bind(t, *rest, **params), ins[0])
+    if not _is_known(name):
+        warnings.warn(f"forward_laplacian has no rule for the JAX primitive {name!r} (JAX {jax.__version__}); "
+                      "using the exact but slower generic rule. Supported JAX versions: see psiloom's "
+                      "pyproject.toml", UnknownPrimitiveWarning, stacklevel=2)
     return _generic(eqn, ins)
+
+
+def _is_known(name: str) -> bool:
+    """Whether a primitive has a rule of its own or is listed for the generic rule."""
+    return (name in GENERIC_RULE or name in _LINEAR_ALL or name in _LINEAR_IN or name in _ELEMENTWISE
+            or name in _CALLS or name in ("mul", "dot_general", "div", "convert_element_type"))
 
 
 def _linear(prim, params, ins, slots):

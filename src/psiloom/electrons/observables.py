@@ -49,6 +49,10 @@ class EnergyComponents(NamedTuple):
 
 def energy_components(hamiltonian: CoulombHamiltonian, log_amp_fn, samples, chunk: int | None = None) -> EnergyComponents:
     """Estimates of the energy parts over ``samples`` of shape ``(n_time, n_chains, N, 3)``."""
+    return _components_and_local_energies(hamiltonian, log_amp_fn, samples, chunk)[0]
+
+
+def _components_and_local_energies(hamiltonian, log_amp_fn, samples, chunk=None):
     if samples.ndim != 4:
         raise ValueError(f"samples must have shape (n_time, n_chains, n_electrons, 3), got {samples.shape}")
     t, c = samples.shape[:2]
@@ -63,7 +67,7 @@ def energy_components(hamiltonian: CoulombHamiltonian, log_amp_fn, samples, chun
         electron_nuclear=stats.estimate(shaped(parts.electron_nuclear)),
         electron_electron=stats.estimate(shaped(parts.electron_electron)),
         virial_ratio=-potential.mean / kinetic.mean,
-    )
+    ), shaped(parts.total)
 
 
 def evaluate_components(search, state, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 10,
@@ -75,13 +79,30 @@ def evaluate_components(search, state, n_samples: int, key: jax.Array | None = N
     path as ``search.evaluate`` (fast updates included; default key ``fold_in(state.key, 11)``).
     Returns ``(EnergyComponents, acceptance)``.
     """
+    components, _, _, acceptance = evaluation_pass(search, state, n_samples, key, burn_in_sweeps, chunk)
+    return components, acceptance
+
+
+class EvaluationPass(NamedTuple):
+    """What one evaluation pass at fixed parameters returns (see :func:`evaluation_pass`)."""
+
+    components: EnergyComponents
+    local_energies: jax.Array  # (n_time, n_chains) E_L (hartree), for correlated differences
+    samples: jax.Array  # (n_time, n_chains, N, 3) configurations (bohr), for densities and dipoles
+    acceptance: float
+
+
+def evaluation_pass(search, state, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 10,
+                    chunk: int | None = None) -> EvaluationPass:
+    """Like :func:`evaluate_components`, also returning the local energies and the samples."""
     chains, key, n_per_chain, burn_in = search.evaluation_inputs(state, n_samples, key, burn_in_sweeps, fold=11)
     hamiltonian = search.hamiltonian
 
     @jax.jit
     def run(params, chains, key):
         xs, _, _, acceptance, log_amp = search.vmc.draw(params, chains, key, n_per_chain, burn_in)
-        return energy_components(hamiltonian, log_amp, xs, chunk), acceptance
+        components, local = _components_and_local_energies(hamiltonian, log_amp, xs, chunk)
+        return components, local, xs, acceptance
 
-    components, acceptance = run(state.params, chains, key)
-    return components, float(acceptance)
+    components, local, xs, acceptance = run(state.params, chains, key)
+    return EvaluationPass(components, local, xs, float(acceptance))

@@ -11,16 +11,16 @@ atom-centred Slater-type functions of :mod:`psiloom.electrons.basis`, with learn
 ζ_μ and coefficients C (separate for each spin and determinant). Each entry depends on one
 electron only.
 
-:class:`NeuralOrbitals` — orbitals that depend on the whole configuration through the
-permutation-equivariant features h_i of :class:`~psiloom.electrons.features.MomentMixer`:
+:class:`BackflowOrbitals` — the same analytic orbitals evaluated at backflow quasi-particle
+positions q_i = r_i + ξ_i(x) (:mod:`psiloom.electrons.backflow`), so that every entry depends on
+the whole configuration:
 
-    φ_{d,a}(r_i | x) = χ_{d,a}(r_i) · (1 + g_{d,a}(h_i)) + e_{d,a}(r_i) · f_{d,a}(h_i),
-    e_{d,a}(r) = Σ_I π_{d,a,I} (1 + ζ_{a,I} r_iI) e^{−ζ_{a,I} r_iI}      (decaying envelope)
+    φ_{d,a}(r_i | x) = χ_{d,a}(q_i)  [+ e_{d,a}(r_i) f_{d,a}(h_i)  with ``envelope_term=True``]
 
-where χ is an analytic LCAO orbital, g and f are linear read-outs of h_i (initialised to zero,
-so training starts from the analytic orbitals) and the envelope makes every orbital decay
-exponentially, so ψ stays normalisable. Exchanging two same-spin electrons exchanges two rows
-of a matrix (h is equivariant), hence ψ changes sign exactly.
+where the optional additive term has the decaying envelope
+e_{d,a}(r) = Σ_I π_{d,a,I} (1 + ζ_{a,I} r_iI) e^{−ζ_{a,I} r_iI} and a linear read-out f of the
+backflow features h_i (initialised to zero). Exchanging two same-spin electrons exchanges two
+rows of a matrix (ξ and h are equivariant), hence ψ changes sign exactly.
 
 With ``cusp_free=True`` (default) all pieces are smooth at the nuclei and at electron
 coalescences, leaving the cusps to :class:`~psiloom.electrons.jastrow.CuspJastrow`.
@@ -33,6 +33,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom.electrons.backflow import BackflowShift
 from psiloom.electrons.basis import BasisFunction, aufbau_guess, default_basis, normalisation
 from psiloom.electrons.features import MomentMixer, electron_nuclear, safe_distance
 from psiloom.electrons.system import Molecule
@@ -116,14 +117,16 @@ class SlaterTypeOrbitals(nn.Module):
         return up, down
 
 
-class NeuralOrbitals(nn.Module):
-    """Configuration-dependent orbitals: analytic LCAO orbitals modulated by equivariant features.
+class BackflowOrbitals(nn.Module):
+    """Analytic LCAO orbitals at backflow quasi-particle positions (see module docstring).
 
     Attributes:
         system: the molecule.
-        n_det: number of determinants.
-        width, channels, layers, softening: sizes of the :class:`MomentMixer` feature network.
+        n_det: number of determinants (all share one backflow displacement).
+        width, channels, layers, softening: sizes of the :class:`~psiloom.electrons.backflow.BackflowShift`.
         cusp_free: passed to the analytic orbitals.
+        envelope_term: add the enveloped neural term e(r_i) f(h_i) (off by default: see
+            DEVELOPERS.md for the measurement).
     """
 
     system: Molecule
@@ -133,26 +136,29 @@ class NeuralOrbitals(nn.Module):
     layers: int = 2
     softening: float = 1.0
     cusp_free: bool = True
+    envelope_term: bool = False
 
     @nn.compact
     def __call__(self, x):
         dtype = x.dtype
         sys_ = self.system
-        up, down = SlaterTypeOrbitals(sys_, self.n_det, self.cusp_free, name="analytic")(x)
-        h = MomentMixer(sys_, self.width, self.channels, self.layers, self.softening, name="features")(x)
-        u, r2 = electron_nuclear(x, sys_.positions)
+        if x.shape[-2] != sys_.n_electrons:
+            raise ValueError(f"orbitals were built for {sys_.n_electrons} electrons, got shape {x.shape}")
+        backflow = BackflowShift(sys_, self.width, self.channels, self.layers, self.softening, name="backflow")
+        shift = backflow(x)
+        up, down = SlaterTypeOrbitals(sys_, self.n_det, self.cusp_free, name="analytic")(x + shift)
+        if not self.envelope_term:
+            return up, down
+        h = MomentMixer(sys_, self.width, self.channels, self.layers, self.softening, name="envelope_features")(x)
+        _, r2 = electron_nuclear(x, sys_.positions)
         r = safe_distance(r2)  # (B, N, M)
-        m = sys_.n_nuclei
-        k = self.n_det
-        zeros = nn.initializers.zeros
+        m, k = sys_.n_nuclei, self.n_det
 
         def block(name, hs, rs, base, n_orb):
             if n_orb == 0:
                 return base
             b, n_el = hs.shape[:2]
-            gain = nn.Dense(k * n_orb, name=f"gain_{name}", kernel_init=zeros, param_dtype=dtype)(hs)
-            extra = nn.Dense(k * n_orb, name=f"extra_{name}", kernel_init=zeros, param_dtype=dtype)(hs)
-            gain = gain.reshape(b, n_el, k, n_orb).transpose(0, 2, 1, 3)
+            extra = nn.Dense(k * n_orb, name=f"extra_{name}", kernel_init=nn.initializers.zeros, param_dtype=dtype)(hs)
             extra = extra.reshape(b, n_el, k, n_orb).transpose(0, 2, 1, 3)
             zeta0 = np.sqrt(np.maximum(sys_.charges, 1.0))
             zeta = nn.softplus(self.param(f"envelope_rate_{name}",
@@ -160,9 +166,8 @@ class NeuralOrbitals(nn.Module):
             weight = self.param(f"envelope_weight_{name}", lambda key: jnp.full((k, n_orb, m), 1.0 / m, dtype))
             zr = zeta[None, None] * rs[:, :, None, :]  # (B, n_el, n_orb, M)
             env = jnp.einsum("bian,dan->bdia", (1.0 + zr) * jnp.exp(-zr), weight)
-            return base * (1.0 + gain) + env * extra
+            return base + env * extra
 
         nu = sys_.n_up
-        up = block("up", h[:, :nu], r[:, :nu], up, sys_.n_up)
-        down = block("down", h[:, nu:], r[:, nu:], down, sys_.n_down)
-        return up, down
+        return (block("up", h[:, :nu], r[:, :nu], up, sys_.n_up),
+                block("down", h[:, nu:], r[:, nu:], down, sys_.n_down))

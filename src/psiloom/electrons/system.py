@@ -32,11 +32,44 @@ BOHR_PER_ANGSTROM = 1.0 / 0.529177210903
 ELEMENTS = (
     "X", "H", "He", "Li", "Be", "B", "C", "N", "O", "F", "Ne",
     "Na", "Mg", "Al", "Si", "P", "S", "Cl", "Ar",
+    "K", "Ca", "Sc", "Ti", "V", "Cr", "Mn", "Fe", "Co", "Ni", "Cu", "Zn",
+    "Ga", "Ge", "As", "Se", "Br", "Kr",
 )
+
+#: Unpaired electrons (= 2S) of the neutral atoms' ground terms, H through Kr (NIST atomic
+#: ground levels, from memory): Hund's first rule applied to the ground configurations, including
+#: the two exceptions to aufbau filling, Cr (3d⁵4s¹, ⁷S) and Cu (3d¹⁰4s¹, ²S).
+NEUTRAL_GROUND_SPIN = (
+    None, 1, 0,
+    1, 0, 1, 2, 3, 2, 1, 0,
+    1, 0, 1, 2, 3, 2, 1, 0,
+    1, 0, 1, 2, 3, 6, 5, 4, 3, 2, 1, 0, 1, 2, 3, 2, 1, 0,
+)
+
+# Madelung (n + l, n) filling order of subshells: (n, l) up to 5p, enough for 36 electrons.
+_SUBSHELLS = ((1, 0), (2, 0), (2, 1), (3, 0), (3, 1), (4, 0), (3, 2), (4, 1), (5, 0), (4, 2), (5, 1))
 _CHARGE_OF = {s.lower(): z for z, s in enumerate(ELEMENTS) if z > 0}
 
 #: Nuclei closer than this (bohr) are rejected as coincident.
 MIN_NUCLEAR_DISTANCE = 1e-6
+
+
+def hund_spin(n_electrons: int) -> int:
+    """2S of the lowest term of an aufbau configuration with ``n_electrons`` (Hund's first rule).
+
+    Subshells fill in Madelung order (1s 2s 2p 3s 3p 4s 3d 4p …); the last, open subshell of
+    capacity 2(2l + 1) holding k electrons has min(k, 2(2l + 1) − k) unpaired spins, all
+    parallel (maximum multiplicity). Used for ions; neutral atoms use the observed ground terms
+    of :data:`NEUTRAL_GROUND_SPIN`, which differ only for Cr and Cu.
+    """
+    left = nonnegative_int("n_electrons", n_electrons)
+    for n, l in _SUBSHELLS:
+        capacity = 2 * (2 * l + 1)
+        if left <= capacity:
+            return min(left, capacity - left)
+        left -= capacity
+    raise ValueError(f"hund_spin covers up to {sum(2 * (2 * l + 1) for _, l in _SUBSHELLS)} electrons, "
+                     f"got {n_electrons}")
 
 
 def charge_of(symbol: str) -> int:
@@ -231,11 +264,12 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
 
     Args:
         atoms: pairs of an element symbol (or a positive nuclear charge) and a position.
-        units: ``"bohr"`` or ``"angstrom"`` (converted with :data:`BOHR_PER_ANGSTROM`).
+        units: ``"bohr"`` or ``"angstrom"``, any capitalisation (``"Angstrom"``); ångström are
+            converted with :data:`BOHR_PER_ANGSTROM`. For XYZ text or files see :func:`from_xyz`.
         charge: net charge (electrons = Σ Z − charge).
         spin: n_up − n_down ≥ 0 (spin-up electrons are the majority by convention; the
             mirror state with more spin-down electrons has the same energy); default the lowest
-            possible (0 or 1).
+            possible (0 or 1); :func:`atom` defaults to Hund's rule instead.
         n_up, n_down: give both to set the electron counts directly; a ``charge`` or ``spin``
             given as well must agree with them (``charge = Σ Z − n_up − n_down``,
             ``spin = n_up − n_down``), otherwise ValueError.
@@ -244,8 +278,10 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
         ValueError: (a TypeError, which is also a ValueError, for wrong types) a non-integer ``charge`` (``0.5``, ``'1'``) or
             ``spin``, impossible electron counts, or counts that contradict ``charge``/``spin``.
     """
-    if units not in ("bohr", "angstrom"):
-        raise ValueError(f"units must be 'bohr' or 'angstrom', got {units!r}")
+    units = _units(units)
+    if isinstance(atoms, (str, bytes)) or hasattr(atoms, "__fspath__"):
+        raise TypeError(f"atoms must be a sequence of (symbol, (x, y, z)) pairs, got {type(atoms).__name__} "
+                        "(use from_xyz for XYZ text or files)")
     atoms = list(atoms)
     if not atoms:
         raise ValueError("atoms is empty: a molecule needs at least one nucleus")
@@ -295,6 +331,98 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
 def atom(symbol, charge: int = 0, spin: int | None = None) -> Molecule:
     """A single atom at the origin, e.g. ``atom("Li")`` (n_up = 2, n_down = 1).
 
-    ``charge`` and ``spin`` are integers (``atom("He", charge=0.5)`` raises rather than
-    building neutral helium)."""
+    The default spin (n_up − n_down = 2S) is the ground term's by Hund's first rule: the
+    observed ground terms for neutral atoms (``atom("O")`` is a triplet, n_up = 5, n_down = 3;
+    ``atom("N")`` a quartet; Cr a septet), and for ions the aufbau configuration of their
+    electron count (:func:`hund_spin`; e.g. O⁺ a quartet). Pass ``spin=`` to override (e.g.
+    ``atom("O", spin=0)`` for a singlet). ``charge`` and ``spin`` are integers
+    (``atom("He", charge=0.5)`` raises rather than building neutral helium)."""
+    if spin is None:
+        z = charge_of(symbol) if isinstance(symbol, str) else finite_real("atom symbol or nuclear charge", symbol)
+        charge = integer("charge", charge)
+        n = z - charge
+        if float(z).is_integer() and float(n).is_integer() and 0 < n <= 36:
+            n = int(n)
+            spin = NEUTRAL_GROUND_SPIN[int(z)] if charge == 0 and int(z) < len(NEUTRAL_GROUND_SPIN) else hund_spin(n)
     return molecule([(symbol, (0.0, 0.0, 0.0))], charge=charge, spin=spin)
+
+
+def _units(units) -> str:
+    """``"bohr"`` or ``"angstrom"`` from any capitalisation (``"Angstrom"``, ``"BOHR"``, ``"Å"``)."""
+    if not isinstance(units, str):
+        raise TypeError(f"units must be a string, 'bohr' or 'angstrom', got {units!r}")
+    key = units.strip().lower()
+    key = {"å": "angstrom", "ang": "angstrom", "angstroms": "angstrom", "a.u.": "bohr", "au": "bohr"}.get(key, key)
+    if key not in ("bohr", "angstrom"):
+        raise ValueError(f"units must be 'bohr' or 'angstrom' (any capitalisation), got {units!r}")
+    return key
+
+
+def parse_xyz(text: str) -> list[tuple[str, tuple[float, float, float]]]:
+    """Atoms ``[(symbol, (x, y, z)), ...]`` from XYZ text (positions as written, no unit change).
+
+    Accepts the standard XYZ layout (a count line, a comment line, then one ``symbol x y z`` line
+    per atom) and also bare ``symbol x y z`` lines; blank lines are ignored. Symbols may carry
+    any capitalisation or be nuclear charges (``"8"``). Raises ValueError naming the bad line.
+    """
+    if not isinstance(text, str):
+        raise TypeError(f"XYZ text must be a string, got {type(text).__name__}")
+    lines = [line.strip() for line in text.splitlines()]
+    while lines and not lines[0]:
+        lines.pop(0)
+    body = lines
+    if lines and lines[0].isdigit():
+        count = int(lines[0])
+        body = [line for line in lines[2:] if line]
+        if len(body) != count:
+            raise ValueError(f"XYZ header announces {count} atoms, found {len(body)} atom lines")
+    atoms = []
+    for line in body:
+        if not line:
+            continue
+        parts = line.split()
+        if len(parts) < 4:
+            raise ValueError(f"XYZ line {line!r} needs 'symbol x y z'")
+        try:
+            xyz = (float(parts[1]), float(parts[2]), float(parts[3]))
+        except ValueError:
+            raise ValueError(f"XYZ line {line!r}: coordinates are not numbers") from None
+        if not all(np.isfinite(xyz)):
+            raise ValueError(f"XYZ line {line!r}: coordinates must be finite")
+        symbol = parts[0]
+        if symbol.isdigit():
+            symbol = ELEMENTS[int(symbol)] if 0 < int(symbol) < len(ELEMENTS) else symbol
+        charge_of(symbol)  # names an unknown symbol
+        atoms.append((symbol, xyz))
+    if not atoms:
+        raise ValueError("XYZ input holds no atoms")
+    return atoms
+
+
+def from_xyz(source, units: str = "angstrom", charge: int = 0, spin: int | None = None) -> Molecule:
+    """A :class:`Molecule` from XYZ text or an XYZ file path (XYZ files are in ångström).
+
+    ``source`` is either the text itself (anything containing a newline) or a path (``str`` or
+    ``os.PathLike``). ``units`` says how the coordinates are written (default ``"angstrom"``, the
+    XYZ convention; any capitalisation). A single atom gets the Hund's-rule spin of :func:`atom`
+    unless ``spin`` is given; molecules the lowest spin.
+    """
+    import os
+
+    if hasattr(source, "__fspath__") or (isinstance(source, str) and "\n" not in source and source.strip()
+                                          and os.path.exists(source)):
+        with open(source, encoding="utf-8") as handle:
+            text = handle.read()
+    elif isinstance(source, str):
+        if "\n" not in source and len(source.split()) < 4:
+            raise ValueError(f"{source!r} is neither an existing XYZ file nor XYZ text")
+        text = source
+    else:
+        raise TypeError(f"from_xyz needs XYZ text or a file path, got {type(source).__name__}")
+    atoms = parse_xyz(text)
+    units = _units(units)
+    if len(atoms) == 1 and spin is None:
+        scale = BOHR_PER_ANGSTROM if units == "angstrom" else 1.0
+        base = atom(atoms[0][0], charge=charge)
+        return molecule([(atoms[0][0], tuple(scale * c for c in atoms[0][1]))], charge=charge, spin=base.spin)
+    return molecule(atoms, units=units, charge=charge, spin=spin)
