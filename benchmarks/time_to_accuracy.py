@@ -39,7 +39,7 @@ ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 DEFAULT_YARDSTICK = os.path.join(os.path.dirname(ROOT), "shared", "baselines", "plain_vmc.py")
 TARGET = 2e-4  # relative error of the evaluated energy
 TARGET_RATIO = 0.5
-YARDSTICK_STEPS = {16: 400, 20: 600}  # first guesses; the full mode raises them until TARGET is met
+YARDSTICK_STEPS = {16: 600, 20: 600}  # first guesses; the full mode raises them until TARGET is met
 _REL = re.compile(r"relative error\s+([0-9.]+(?:[eE][-+]?[0-9]+)?)")
 
 
