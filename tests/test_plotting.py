@@ -141,3 +141,16 @@ def test_missing_matplotlib_gives_a_clear_import_error(monkeypatch):
     monkeypatch.setitem(sys.modules, "matplotlib.pyplot", None)  # makes "import matplotlib.pyplot" fail
     with pytest.raises(ImportError, match="pip install matplotlib"):
         plotting.plot_trace(np.zeros(5))
+
+
+def test_learning_curve_draws_the_nll_columns_and_the_infidelity():
+    history = {"step": [1, 2, 3], "train_nll": [3.0, 2.5, 2.4], "validation_nll": [3.1, 2.6, 2.5],
+               "fidelity": [0.9, 0.99, 0.999]}
+    ax = plotting.plot_learning_curve(history)
+    ys = [line.get_ydata() for line in ax.get_lines()]
+    np.testing.assert_allclose(ys[0], history["train_nll"])
+    np.testing.assert_allclose(ys[1], history["validation_nll"])
+    twin = [a for a in ax.figure.axes if a is not ax][0]
+    np.testing.assert_allclose(twin.get_lines()[0].get_ydata(), [0.1, 0.01, 0.001])
+    with pytest.raises(ValueError, match="no finite values"):
+        plotting.plot_learning_curve({"step": [1], "train_nll": [np.nan], "validation_nll": [np.nan]})

@@ -326,3 +326,15 @@ def test_ground_state_search_init_rejects_foreign_parameters():
     with pytest.raises(ValueError) as err:
         run.init(jax.random.PRNGKey(1), params=params)
     assert "8 sites" in str(err.value) and "(6, 6)" in str(err.value)
+
+
+def test_pure_phase_has_unit_modulus_and_the_inner_output_as_its_phase():
+    from psiloom.states import PurePhase
+
+    inner = RBM(alpha=1, init_scale=0.3)
+    model = PurePhase(inner)
+    x = jnp.where(jax.random.bernoulli(jax.random.PRNGKey(1), 0.5, (7, 5)), 1.0, -1.0)
+    variables = model.init(jax.random.PRNGKey(0), x[:1])
+    out = model.apply(variables, x)
+    np.testing.assert_allclose(jnp.real(out), 0.0, atol=0)
+    np.testing.assert_allclose(jnp.imag(out), inner.apply({"params": variables["params"]["inner"]}, x), rtol=1e-14)

@@ -18,6 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import psiloom as pl
+from psiloom.stats import parenthesis_notation
 from psiloom.checkpoint import CheckpointError, CheckpointLock, load_checkpoint, run_meta, save_checkpoint
 from psiloom.history import History
 from psiloom.spaces import SpinSpace
@@ -98,7 +99,9 @@ def test_progress_lines_hooks_and_history_agree(search, start):
     assert [int(line.split()[1].split("/")[0]) for line in lines] == [1, 3, 6, 8]
     for line in lines:
         step = int(line.split()[1].split("/")[0])
-        assert f"E = {history['energy'][step - 1]:+.6f}" in line and history["step"][step - 1] == step
+        # the line's energy is the history row's, in parenthesis notation (stats.parenthesis_notation)
+        energy = parenthesis_notation(history["energy"][step - 1], history["error"][step - 1], sign=True)
+        assert f"E = {energy} " in line and history["step"][step - 1] == step
     # a callback sees every step (visits of one step), with the state after that step
     search.run(3, state=start, progress=False, steps_per_visit=3,
                callback=lambda state, out: calls.append((int(state.step), float(out.energy.mean))))

@@ -12,9 +12,11 @@ stochastic reconfiguration needs for relative accuracies beyond ~1e-5.
 
 from psiloom import batching, compilation, reference, lattices, operators, optimize, parallel, plotting, reduce, sampling, spaces, states, stats, symmetry, train
 from psiloom import checkpoint, history, loop, vmc  # the pieces behind train.GroundStateSearch
+from psiloom import tomography  # learning a state from measurement shots
 from psiloom import electrons  # atoms and molecules (continuous space); imports the modules above
 
+#: The package version (also in ``pyproject.toml``).
 __version__ = "0.1.0"
 
 __all__ = ["batching", "compilation", "reference", "lattices", "operators", "optimize", "parallel", "plotting", "reduce", "sampling", "spaces", "states",
-           "stats", "symmetry", "train", "vmc", "loop", "history", "checkpoint", "electrons", "__version__"]
+           "stats", "symmetry", "train", "vmc", "loop", "history", "checkpoint", "electrons", "tomography", "__version__"]

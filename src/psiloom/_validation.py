@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Any, Iterable
+from typing import Any, Iterable, cast
 
 __all__ = [
     "ArgumentTypeError", "integer", "positive_int", "nonnegative_int", "finite_real",
@@ -93,7 +93,7 @@ def finite_complex(name: str, value: Any) -> complex:
         value = value.item()
     if isinstance(value, bool) or not isinstance(value, numbers.Number):
         raise ArgumentTypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
-    value = complex(value)
+    value = complex(cast(Any, value))  # a numbers.Number; typeshed gives Number no __complex__
     if not (math.isfinite(value.real) and math.isfinite(value.imag)):
         raise ValueError(f"{name} must be finite, got {value!r}")
     return value

@@ -16,6 +16,13 @@ def map_in_chunks(fn: Callable, chunk: int | None, *arrays):
     Bounds peak memory to one chunk (``jax.lax.map`` runs chunks sequentially). Pads the
     batch to a multiple of ``chunk`` with copies of the first row and drops the padding.
     ``chunk=None`` (or a chunk ≥ batch) evaluates everything at once.
+
+    Why not ``jax.lax.map(f, x, batch_size=chunk)``: that maps a function of *one row* (vmapped
+    over each chunk) and evaluates the remainder rows in a second program of another shape.
+    ``fn`` here is a function of a *batch* — a trial state's ``log_amplitude`` or the blocked
+    fast local energy, which size their own inner blocks by the batch — so it must see whole
+    ``(chunk, ...)`` batches, all of one shape (one compilation). A per-row function should use
+    ``jax.lax.map(..., batch_size=)`` directly (as ``SampleGeometry.log_derivatives`` does).
     """
     if chunk is not None:
         chunk = positive_int("chunk", chunk)

@@ -112,6 +112,7 @@ class CheckpointLock:
         self.held = False
 
     def acquire(self) -> "CheckpointLock":
+        """Take the lock (write ``<path>.lock`` with this pid); refuse when a live process holds it."""
         if self.held or not parallel.is_main_process():
             return self
         os.makedirs(os.path.dirname(self.path), exist_ok=True)
@@ -142,6 +143,7 @@ class CheckpointLock:
         raise CheckpointError(f"could not take the lock {self.path!r} (another process keeps recreating it)")
 
     def release(self) -> None:
+        """Remove the lock file if this object holds it (idempotent)."""
         if self.held:
             self.held = False
             try:
@@ -177,7 +179,7 @@ def describe_state(state) -> dict:
 
 def describe_space(space) -> dict:
     """Type, ``n_sites`` and magnetisation sector (``magnetisation``) of a configuration space."""
-    out = {"type": type(space).__name__}
+    out: dict[str, Any] = {"type": type(space).__name__}
     for attr in ("n_sites", "magnetisation", "n_electrons"):
         value = getattr(space, attr, None)
         if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool):
@@ -258,7 +260,7 @@ def compare_meta(found: dict, expected: dict, found_name: str = "the checkpoint"
 
 def run_meta(sampler=None, n_chains: int | None = None) -> dict:
     """The run description stored in a checkpoint header and checked on load."""
-    meta = {"x64": bool(jax.config.jax_enable_x64)}
+    meta: dict[str, Any] = {"x64": bool(jax.config.read("jax_enable_x64"))}
     if sampler is not None:
         meta["n_chains"] = int(sampler.n_chains)
         space = getattr(sampler, "space", None)

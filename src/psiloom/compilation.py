@@ -54,5 +54,5 @@ def enable_compilation_cache(directory: str | None = None, min_compile_seconds: 
         os.environ["NUMBA_CACHE_DIR"] = os.path.join(directory, "numba")
         numba_config = sys.modules.get("numba.core.config")
         if numba_config is not None:  # Numba reads the variable at import: tell it directly
-            numba_config.CACHE_DIR = os.environ["NUMBA_CACHE_DIR"]
+            setattr(numba_config, "CACHE_DIR", os.environ["NUMBA_CACHE_DIR"])
     return directory

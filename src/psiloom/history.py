@@ -70,6 +70,7 @@ class History:
 
     @classmethod
     def from_json(cls, text: str) -> "History":
+        """A history from the JSON text :meth:`to_json` wrote."""
         columns = json.loads(text)
         if not isinstance(columns, dict) or "step" not in columns:
             raise ValueError("a history must be a JSON object of columns with a 'step' column")
@@ -79,11 +80,13 @@ class History:
         return cls({k: [float("nan") if v is None else v for v in column] for k, column in columns.items()})
 
     def save(self, path: str) -> None:
+        """Write the history as JSON to ``path`` (atomically)."""
         from psiloom.checkpoint import atomic_write
 
         atomic_write(path, self.to_json().encode())
 
     @classmethod
     def load(cls, path: str) -> "History":
+        """Read a history that :meth:`save` wrote."""
         with open(path) as f:
             return cls.from_json(f.read())

@@ -44,14 +44,17 @@ class Lattice:
 
     @property
     def n_sites(self) -> int:
+        """Number of sites."""
         return int(self.coords.shape[0])
 
     @property
     def dim(self) -> int:
+        """Spatial dimension."""
         return len(self.shape)
 
     @property
     def is_bipartite(self) -> bool:
+        """True when the lattice has two sublattices (then ``sublattice`` holds 0/1 per site)."""
         return self.sublattice is not None
 
     def site_index(self, *position: int) -> int:

@@ -19,7 +19,7 @@ need):
 
 A plain function ``f(visit)`` passed as a hook is called after every visit.
 
-Provided: :class:`ProgressPrinter`, :class:`Checkpointer`, :class:`Profiler` and
+Provided: :class:`ProgressPrinter`, :class:`ProgressBar` (optional, tqdm), :class:`Checkpointer`, :class:`Profiler` and
 :class:`Callback` (a user function ``f(state, output)``, called after every step: its visits
 are one step long).
 
@@ -77,18 +77,23 @@ class Hook:
     """Base class of loop hooks (all methods optional; see the module docstring)."""
 
     def stops_at(self, step: int, n_steps: int) -> bool:
+        """Whether the loop must return to the host after ``step`` (1-based) of ``n_steps``."""
         return False
 
     def start(self, state, n_steps: int) -> None:
+        """Called once before the first visit with the starting state."""
         pass
 
     def before(self, state) -> dict | None:
+        """Called before each visit; a returned dict is merged into that visit's extra row fields."""
         return None
 
     def after(self, visit: Visit) -> None:
+        """Called after each visit with its rows (not after a visit that raised)."""
         pass
 
     def close(self) -> None:
+        """Called once when the run ends, also after an error."""
         pass
 
 
@@ -102,7 +107,7 @@ def format_progress(step: int, total: int, row: dict) -> str:
 class ProgressPrinter(Hook):
     """Prints a line after step 1, every ``every`` steps and after the last step."""
 
-    def __init__(self, emit: Callable[[str], None] = None, every: int = 10):
+    def __init__(self, emit: Callable[[str], None] | None = None, every: int = 10):
         self.emit = emit or (lambda s: print(s, flush=True))
         self.every = every
 
@@ -113,6 +118,61 @@ class ProgressPrinter(Hook):
         if self.stops_at(visit.step, visit.n_steps):
             row = {k: visit.history.columns[k][-1] for k in visit.history.columns}
             self.emit(format_progress(visit.step, visit.n_steps, row))
+
+
+class ProgressBar(Hook):
+    """A progress bar of the run (tqdm's auto mode: text in a terminal, a widget in Jupyter)
+    showing the latest energy in parenthesis notation and the Metropolis acceptance.
+
+    It is on when ``file`` (default ``sys.stderr``) is a terminal or when running in a notebook
+    kernel with widgets, and off otherwise (``enabled`` is then False and nothing is written), so
+    logs and CI output stay clean. ``enabled=True``/``False`` forces it. It does not cut visits:
+    the bar moves once per host visit. Needs tqdm (``pip install psiloom[progress]``).
+    """
+
+    def __init__(self, file=None, enabled: bool | None = None, description: str = "VMC"):
+        try:
+            from tqdm import auto as tqdm_auto
+            from tqdm.notebook import tqdm_notebook
+        except ImportError as err:  # pragma: no cover - tqdm is an optional dependency
+            raise ImportError("the progress bar needs tqdm: pip install 'psiloom[progress]'") from err
+        import sys
+
+        self.file = sys.stderr if file is None else file
+        self._tqdm = tqdm_auto.tqdm
+        # tqdm's auto mode picks its widget bar only inside a notebook kernel with ipywidgets
+        notebook = issubclass(tqdm_auto.tqdm, tqdm_notebook) and file is None
+        if enabled is None:
+            isatty = getattr(self.file, "isatty", None)
+            enabled = notebook or bool(isatty is not None and isatty())
+        self.enabled = bool(enabled)
+        self.description = description
+        self.bar = None
+
+    def start(self, state, n_steps: int) -> None:
+        """Open the bar at the state's step, with ``n_steps`` as the total."""
+        if self.enabled:
+            self.bar = self._tqdm(total=n_steps, initial=int(state.step), desc=self.description,
+                                  unit="step", file=self.file, dynamic_ncols=True)
+
+    def after(self, visit: Visit) -> None:
+        """Advance to the visit's step and show its last row's energy and acceptance."""
+        if self.bar is None:
+            return
+        self.bar.set_postfix_str(format_bar_postfix({k: visit.history.columns[k][-1] for k in visit.history.columns}),
+                                 refresh=False)
+        self.bar.update(visit.step - self.bar.n)
+
+    def close(self) -> None:
+        """Close the bar (also after an error)."""
+        if self.bar is not None:
+            self.bar.close()
+            self.bar = None
+
+
+def format_bar_postfix(row: dict) -> str:
+    """The text beside the bar: energy in parenthesis notation and acceptance of a history row."""
+    return f"E = {parenthesis_notation(row['energy'], row['error'])}  acc {row['acceptance']:.3f}"
 
 
 class Checkpointer(Hook):
@@ -217,7 +277,7 @@ def run_loop(advance: Callable, state, n_steps: int, history: History | None = N
         last = time.perf_counter()
         first = True
         while step < n_steps:
-            extra = {}
+            extra: dict[str, Any] = {}
             for hook in hooks:
                 extra.update(hook.before(state) or {})
             if extra:

@@ -55,13 +55,14 @@ from __future__ import annotations
 
 import os
 import re
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Mapping, Sequence, cast
 
 import jax
 import jax.numpy  # noqa: F401  (jax.numpy.asarray in _put)
 import numpy as np
 from jax.sharding import AxisType, Mesh, NamedSharding, PartitionSpec
 
+#: Name of the mesh axis along which samples (chains, walkers) are split.
 SAMPLE_AXIS = "samples"
 
 
@@ -95,7 +96,7 @@ def sample_mesh(devices: Sequence | int | None = None, *, processes: int | None 
                              f"({all_devices[0].platform})")
         chosen = all_devices[: int(devices)]
     else:
-        chosen = list(devices)
+        chosen = list(cast(Sequence, devices))  # a sequence of devices
         if not chosen or not all(isinstance(d, jax.Device) for d in chosen):
             raise ValueError(f"devices must be None, a positive integer or a non-empty sequence of jax devices, "
                              f"got {devices!r}")
@@ -317,6 +318,7 @@ def initialize(coordinator_address: str | None = None, num_processes: int | None
         raise ValueError("pass all of coordinator_address, num_processes and process_id, or none of them "
                          f"(inside SLURM); got {coordinator_address!r}, {num_processes!r}, {process_id!r}")
     else:
+        assert num_processes is not None and process_id is not None  # all given (checked above)
         settings = {"coordinator_address": coordinator_address, "num_processes": int(num_processes),
                     "process_id": int(process_id)}
     if not 0 <= settings["process_id"] < settings["num_processes"]:

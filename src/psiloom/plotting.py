@@ -10,6 +10,8 @@
   lattice) an image with sites on the vertical axis and time on the horizontal one; for a
   square lattice a row of Lx × Ly images, one per snapshot.
 * :func:`plot_configuration` — one configuration of a square lattice as an image.
+* :func:`plot_learning_curve` — training and held-out negative log-likelihood per epoch of a
+  state learned from shots (:mod:`psiloom.tomography`), with 1 − fidelity when recorded.
 
 Spin values are drawn as +1 (up, σᶻ = +1) and −1 (down). Every function draws into ``ax``
 (a new figure when omitted) and returns the Axes. matplotlib is imported only when a function
@@ -211,4 +213,46 @@ def plot_snapshots(samples, lattice=None, chain: int = 0, every: int = 1, max_sn
         ax.set_xlabel("sample along the chain")
         ax.set_ylabel("site")
     ax.set_title(f"chain {chain}")
+    return ax
+
+
+def plot_learning_curve(history, ax=None, columns=("train_nll", "validation_nll"), fidelity: bool = True):
+    """Negative log-likelihood per epoch of :func:`psiloom.tomography.learn_from_shots` (and the
+    infidelity 1 − F on a second, logarithmic axis when the history has a finite ``fidelity``).
+
+    Args:
+        history: a :class:`psiloom.history.History` (or mapping of columns) with ``step`` and the
+            named ``columns``; columns that hold only NaN are skipped.
+        fidelity: draw 1 − F when present.
+    Returns:
+        The Axes of the NLL curves.
+    """
+    step = _column(history, "step")
+    ax = _axes(ax)
+    drawn = 0
+    for name in columns:
+        values = _column(history, name)
+        if len(values) != len(step):
+            raise ValueError(f"history columns differ in length: step {len(step)}, {name} {len(values)}")
+        if np.any(np.isfinite(values)):
+            ax.plot(step, values, marker=".", label=name.replace("_", " "))
+            drawn += 1
+    if not drawn:
+        raise ValueError(f"history has no finite values in the columns {list(columns)}")
+    ax.set_xlabel("epoch")
+    ax.set_ylabel("negative log-likelihood per shot")
+    handles, labels = ax.get_legend_handles_labels()
+    if fidelity:
+        try:
+            f = _column(history, "fidelity")
+        except ValueError:
+            f = np.array([])
+        if f.size and np.any(np.isfinite(f)):
+            twin = ax.twinx()
+            line = twin.plot(step, np.clip(1.0 - f, 1e-16, None), color="k", linestyle="--", label="1 − fidelity")
+            twin.set_yscale("log")
+            twin.set_ylabel("infidelity 1 − F")
+            handles += line
+            labels += ["1 − fidelity"]
+    ax.legend(handles, labels)
     return ax

@@ -61,6 +61,7 @@ class SpinSpace:
 
     @property
     def is_sector(self) -> bool:
+        """True when the total magnetisation is fixed."""
         return self.magnetisation is not None
 
     @property

@@ -104,7 +104,7 @@ class SymmetryGroup:
     lattice_shape: tuple[int, ...] = ()
     periodic: bool = True
     name: str = "group"
-    _index: dict = field(default=None, repr=False, compare=False)
+    _index: dict | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self):
         perms = np.asarray(self.perms, dtype=np.int64)
@@ -140,10 +140,12 @@ class SymmetryGroup:
 
     @property
     def n_sites(self) -> int:
+        """Number of sites the permutations act on."""
         return int(self.perms.shape[1])
 
     @property
     def dim(self) -> int:
+        """Spatial dimension of the linear parts (0 when there are none)."""
         return int(self.linear.shape[1]) if self.linear.ndim == 3 else 0
 
     @property
@@ -244,7 +246,8 @@ class SymmetryGroup:
             fl = self.flips[:, None] * self.flips[None, :]
             keys = [(comp[g, h].tobytes(), int(fl[g, h])) for g in range(n) for h in range(n)]
             try:
-                table = np.array([self._index[k] for k in keys], dtype=np.int64).reshape(n, n)
+                index = self._index if self._index is not None else {}
+                table = np.array([index[k] for k in keys], dtype=np.int64).reshape(n, n)
             except KeyError:
                 raise ValueError(f"{self!r} is not closed under composition") from None
         table.setflags(write=False)
@@ -353,6 +356,7 @@ def point_group(lattice: Lattice) -> SymmetryGroup:
     90° and four mirrors). Rectangle ``Lx ≠ Ly``: C2v (order 4).
     """
     lattice = _check_lattice(lattice)
+    mats: tuple
     if lattice.kind == "chain":
         mats, label = _CHAIN_MIRROR, "Cs"
     elif lattice.kind == "square":
@@ -421,7 +425,7 @@ def product(a: SymmetryGroup, b: SymmetryGroup) -> SymmetryGroup:
             return grp.linear[g], grp.shifts[g]
         return np.eye(d, dtype=np.int64), np.zeros(d, np.int64)
 
-    elements = []  # (perm, flip, linear, shift)
+    elements: list[tuple] = []  # (perm, flip, linear, shift)
     seen = {}
 
     def key_of(perm, flip, lin, sh):
@@ -567,10 +571,12 @@ class Sector:
 
     @property
     def is_real(self) -> bool:
+        """True when every character is real."""
         return bool(np.all(np.abs(self.characters.imag) < 1e-12))
 
     @property
     def is_trivial(self) -> bool:
+        """True for the trivial representation (all characters 1)."""
         return bool(np.all(np.abs(self.characters - 1) < 1e-12))
 
     def check_representation(self, atol: float = 1e-9) -> None:

@@ -24,6 +24,8 @@ projection vanishes) only need a negligible image amplitude too.
 
 from __future__ import annotations
 
+from typing import Any, cast
+
 import numpy as np
 
 from psiloom._validation import nonnegative_int, positive_int
@@ -56,7 +58,7 @@ def configurations(n_sites: int, batch: int | tuple[int, int] = 1, n_up: int | N
     n_sites = positive_int("n_sites", n_sites)
     if n_up is not None and not 0 <= n_up <= n_sites:
         raise ValueError(f"n_up={n_up!r} must lie in [0, {n_sites}]")
-    sizes = st.just(int(batch)) if np.isscalar(batch) else st.integers(int(batch[0]), int(batch[1]))
+    sizes = st.just(int(cast(Any, batch))) if np.isscalar(batch) else st.integers(int(cast(Any, batch)[0]), int(cast(Any, batch)[1]))
 
     if n_up is None:
         return sizes.flatmap(lambda b: hnp.arrays(np.float64, (b, n_sites), elements=st.sampled_from([-1.0, 1.0])))
@@ -114,7 +116,7 @@ def assert_covariant(model, variables, group, characters, x, elements=None, atol
         scale: reference ``log|ψ|``; default the largest in the batch. Pass it when a batch may
             consist of zeros of ψ only (e.g. hypothesis drawing only symmetric configurations).
     Raises:
-        AssertionError naming the first violating sample.
+        AssertionError: naming the first violating sample.
     """
     x = np.asarray(x, dtype=np.float64)
     if x.ndim != 2:

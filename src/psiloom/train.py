@@ -27,7 +27,7 @@ import collections
 import os
 import time
 import warnings
-from typing import Callable
+from typing import Any, Callable
 
 import jax
 import jax.numpy as jnp
@@ -36,11 +36,11 @@ import optax
 
 from psiloom import parallel
 from psiloom import stats
-from psiloom._validation import nonnegative_int, positive_int, positive_real
+from psiloom._validation import boolean, nonnegative_int, positive_int, positive_real
 from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
-from psiloom.loop import Callback, Checkpointer, as_hook, NonFiniteError, ProgressPrinter, Profiler, format_progress, run_loop
+from psiloom.loop import Callback, Checkpointer, Hook, as_hook, NonFiniteError, ProgressBar, ProgressPrinter, Profiler, format_progress, run_loop
 from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.states.base import count_real_parameters
 from psiloom.vmc import StepOutput, VMCState, vmc
@@ -160,13 +160,13 @@ class GroundStateSearch:
         self.fast = bool(fast)
         self.vmc = vmc(model, hamiltonian, sampler, optimizer, self.n_samples, chunk=self.chunk,
                        winsorize=winsorize, fast=self.fast)
-        self._phases = None  # separately compiled phases, built by profile_step on first use
+        self._phases: tuple | None = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
-        self._multi = {}  # steps_per_visit -> compiled multi_step (training and frozen evaluation steps)
-        self._visit_length = None  # steps_per_visit of the last run: evaluation passes reuse its program
+        self._multi: dict[int, Any] = {}  # steps_per_visit -> compiled multi_step (training and frozen evaluation)
+        self._visit_length: int | None = None  # steps_per_visit of the last run: evaluation passes reuse its program
         # compiled evaluation passes, one per (kind, n_per_chain, burn-in); the least recently used
         # beyond EVALUATION_PROGRAMS are dropped, so many distinct sample counts cannot pile up memory
-        self._programs = collections.OrderedDict()
+        self._programs: collections.OrderedDict[tuple, Any] = collections.OrderedDict()
         self._template = None
 
     # ---------------------------------------------------------------- state
@@ -194,7 +194,8 @@ class GroundStateSearch:
         chains = parallel.constrain_chains(state.chains, self.mesh, self.sampler.n_chains)
         return (TrainState(step, params, opt_state, chains, key), *outputs)
 
-    EVALUATION_PROGRAMS = 4  # compiled evaluation passes kept (least recently used dropped)
+    #: Compiled evaluation passes kept (the least recently used is dropped).
+    EVALUATION_PROGRAMS = 4
 
     def _program(self, kind: str, n_per_chain: int, burn_in: int):
         """The compiled evaluation pass ``(params, chains, key) -> ...`` of one sample count and
@@ -221,6 +222,7 @@ class GroundStateSearch:
         return est, acc, parallel.constrain_chains(chains, self.mesh, self.sampler.n_chains)
 
     def n_parameters(self, state: TrainState) -> int:
+        """Number of real parameters of ``state`` (a complex one counts twice)."""
         return count_real_parameters(state.params)
 
     def template(self):
@@ -527,7 +529,7 @@ class GroundStateSearch:
             history: History | None = None, checkpoint: str | None = None, checkpoint_every: int = 50,
             progress: bool | Callable[[str], None] = True, print_every: int = 10,
             callback: Callable[[TrainState, StepOutput], None] | None = None, profile_every: int = 0,
-            steps_per_visit: int | None = None, hooks=()):
+            steps_per_visit: int | None = None, hooks=(), progress_bar: bool = False):
         """Run until ``state.step == n_steps`` (so a resumed run continues to the same total).
 
         Args:
@@ -550,6 +552,9 @@ class GroundStateSearch:
                 profiling or a callback need the host. Default ``print_every``.
             hooks: extra :class:`psiloom.loop.Hook` objects or functions ``f(visit)`` called after
                 every host visit (:class:`psiloom.loop.Visit`: state, step, outputs, history).
+            progress_bar: show a :class:`psiloom.loop.ProgressBar` (needs tqdm) instead of the
+                printed lines where the output is a terminal or a notebook; elsewhere (a log
+                file, CI) the bar is off and ``progress`` prints lines as usual.
         Returns:
             ``(state, history)``; history rows are 1-based (``step`` = the state's step after
             the update, as in the progress lines).
@@ -558,6 +563,7 @@ class GroundStateSearch:
         checkpoint_every = positive_int("checkpoint_every", checkpoint_every)
         print_every = positive_int("print_every", print_every)
         profile_every = nonnegative_int("profile_every", profile_every)
+        progress_bar = boolean("progress_bar", progress_bar)
         steps_per_visit = print_every if steps_per_visit is None else positive_int("steps_per_visit", steps_per_visit)
         _check_checkpoint_path(checkpoint)
         if callback is not None and not callable(callback):
@@ -581,11 +587,14 @@ class GroundStateSearch:
             raise
         history = History() if history is None else history
         history.truncate(int(state.step))
-        all_hooks = []
+        all_hooks: list[Hook] = []
         if profile_every:
             all_hooks.append(Profiler(lambda s: {k: v for k, v in self.profile_step(s, repeat=1).items()
                                                  if k in self.PHASES}, profile_every))
-        if progress and parallel.is_main_process():  # one process prints
+        bar = ProgressBar() if progress_bar and parallel.is_main_process() else None
+        if bar is not None and bar.enabled:
+            all_hooks.append(bar)
+        elif progress and parallel.is_main_process():  # one process prints
             all_hooks.append(ProgressPrinter(None if progress is True else progress, print_every))
         if callback is not None:
             all_hooks.append(Callback(callback))

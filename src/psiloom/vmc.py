@@ -60,6 +60,7 @@ class VMCState(NamedTuple):
 
 
 class StepOutput(NamedTuple):
+    """What one VMC step reports: the energy estimate, the acceptance and the SR diagnostics."""
     energy: stats.Estimate
     acceptance: jax.Array
     grad_norm: jax.Array
@@ -88,7 +89,7 @@ class VMC(NamedTuple):
     n_per_chain: int
 
 
-# Bits of the non-finite mask returned by guarded steps, in the order they are reported.
+#: Bits of the non-finite mask returned by guarded steps, in the order they are reported.
 NON_FINITE = {"energy": 1, "gradient": 2, "parameters": 4, "optimiser state": 8}
 
 

@@ -33,6 +33,7 @@ KINDS = ("s", "sc", "s2", "p")
 
 @dataclass(frozen=True)
 class BasisFunction:
+    """One Slater-type basis function: the nucleus it sits on, its kind (1s, 2s, 2p…) and exponent."""
     centre: int  # nucleus index
     kind: str  # one of KINDS
     zeta: float  # exponent, bohr⁻¹

@@ -38,14 +38,12 @@ def signed_log_det(matrices):
 
 
 def signed_log_sum_exp(signs, logs, weights=None, axis: int = -1):
-    """``(sign, log|Σ w s e^l|)`` along ``axis`` (weights broadcast against ``signs``)."""
-    shift = jax.lax.stop_gradient(jnp.max(logs, axis=axis, keepdims=True))
-    shift = jnp.where(jnp.isfinite(shift), shift, 0.0)
-    terms = signs * jnp.exp(logs - shift)
-    if weights is not None:
-        terms = terms * weights
-    total = jnp.sum(terms, axis=axis)
-    return jnp.sign(total), jnp.log(jnp.abs(total)) + jnp.squeeze(shift, axis)
+    """``(sign, log|Σ w s e^l|)`` along ``axis`` (weights broadcast against ``signs``).
+
+    JAX's signed log-sum-exp (shifted by the largest ``l``, which carries no gradient)."""
+    b = signs if weights is None else signs * weights
+    log_abs, sign = jax.nn.logsumexp(logs, axis=axis, b=b, return_sign=True)
+    return sign, log_abs
 
 
 class SlaterJastrow(ElectronState):
@@ -84,7 +82,7 @@ class SlaterJastrow(ElectronState):
 def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True, width: int = 16,
                    layers: int = 2) -> SlaterJastrow:
     """Slater–Jastrow state: analytic Slater-type orbitals, cusp Jastrow (+ neural Jastrow)."""
-    jastrows = [CuspJastrow(system)]
+    jastrows: list[nn.Module] = [CuspJastrow(system)]
     if neural_jastrow:
         jastrows.append(NeuralJastrow(system, width=width, layers=layers))
     return SlaterJastrow(SlaterTypeOrbitals(system, n_det), tuple(jastrows))

@@ -35,10 +35,12 @@ class EnergyParts(NamedTuple):
 
     @property
     def potential(self) -> jax.Array:
+        """Potential energy V = V_en + V_ee + V_nn (hartree)."""
         return self.electron_nuclear + self.electron_electron + self.nuclear
 
     @property
     def total(self) -> jax.Array:
+        """Local energy E_L = T + V (hartree)."""
         return self.kinetic + self.potential
 
 

@@ -9,7 +9,7 @@ implementations sit behind :func:`value_grad_laplacian`'s ``method`` option:
     ``e_k`` and ``∇²f = Σ_k (H e_k)_k`` (D forward-over-reverse passes, vectorised with vmap).
 
 ``"forward"`` — a forward Laplacian written here. The program of ``f`` (its jaxpr) is
-    re-evaluated with every intermediate array ``y`` carried as a triple
+    re-evaluated with every intermediate array ``y`` carried as a triple::
 
         (y, ∇y, ∇²y)      with ∇y of shape (D, *y.shape) and ∇²y of the shape of y,
 

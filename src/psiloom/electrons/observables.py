@@ -13,7 +13,7 @@ theorem for Coulomb systems) and for molecules at equilibrium geometry only appr
 
 from __future__ import annotations
 
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import jax
 
@@ -32,9 +32,10 @@ class EnergyComponents(NamedTuple):
     potential: stats.Estimate
     electron_nuclear: stats.Estimate
     electron_electron: stats.Estimate
-    virial_ratio: float  # −⟨V⟩ / ⟨T⟩
+    virial_ratio: Any  # −⟨V⟩ / ⟨T⟩ (a real number; a 0-d array when computed in JAX)
 
     def format(self) -> str:
+        """One line per component, aligned, in parenthesis notation (hartree)."""
         labels = (("total E", self.total), ("kinetic T", self.kinetic), ("potential V", self.potential),
                   ("electron-nuclear", self.electron_nuclear), ("electron-electron", self.electron_electron))
         width = max(len(label) for label, _ in labels)

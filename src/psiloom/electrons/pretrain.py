@@ -24,7 +24,7 @@ with Adam; every determinant is pulled toward the same HF orbitals.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import NamedTuple, cast
 
 import flax.linen as nn
 import jax
@@ -66,6 +66,7 @@ class GaussianBasis:
 
     @property
     def n_ao(self) -> int:
+        """Number of (spherical) atomic orbitals."""
         return self.cart2sph.shape[1]
 
     def cartesian(self, r):
@@ -87,6 +88,7 @@ class GaussianBasis:
 
     @classmethod
     def from_pyscf(cls, mol) -> "GaussianBasis":
+        """The contracted Gaussian basis of a PySCF ``Mole``, centred on its atoms (bohr)."""
         centres, powers, exps, coeffs = [], [], [], []
         for ib in range(mol.nbas):
             l = int(mol.bas_angular(ib))
@@ -128,11 +130,13 @@ class GaussianOrbitals(nn.Module):
 
 @dataclass(frozen=True, eq=False)
 class Coefficients:
+    """Molecular-orbital coefficients over the atomic orbitals, one matrix per spin."""
     up: np.ndarray  # (n_ao, n_up)
     down: np.ndarray  # (n_ao, n_down)
 
 
 class HartreeFock(NamedTuple):
+    """Result of :func:`hartree_fock`: the SCF energy (hartree) and the occupied orbitals as a layer."""
     energy: float  # SCF total energy (hartree)
     orbitals: GaussianOrbitals  # orbital layer
     state: SlaterJastrow  # the HF determinant as a trial state (no parameters)
@@ -191,7 +195,7 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
     n_steps = positive_int("n_steps", n_steps)
     system = hf.orbitals.system
     sampler = ElectronSampler(system, n_chains=n_walkers, burn_in=0, equilibrate=50)
-    hf_log = lambda x: hf.state.apply({}, x)
+    hf_log = lambda x: cast(jax.Array, hf.state.apply({}, x))
     k_init, k_run = jax.random.split(key)
     walkers = sampler.init(k_init, hf_log)
     opt = optax.adam(learning_rate)

@@ -38,12 +38,14 @@ MOVES = ("all", "one")
 
 
 class WalkerState(NamedTuple):
+    """Walkers of :class:`ElectronSampler`: configurations (bohr), log|ψ| there, per-walker step sizes."""
     x: jax.Array  # (n_chains, N, 3) current configurations (bohr)
     log_amp: jax.Array  # (n_chains,) log|ψ| at x
     step_size: jax.Array  # () Gaussian proposal width σ (bohr)
 
 
 class StepInfo(NamedTuple):
+    """What one all-electron Metropolis step of the walkers did."""
     accepted: jax.Array  # (n_chains,) bool
     log_ratio: jax.Array  # (n_chains,) 2 [log|ψ(x')| − log|ψ(x)|]
 

@@ -25,7 +25,7 @@ import numpy as np
 
 from psiloom._validation import finite_real, integer, nonnegative_int, positive_real
 
-#: bohr per ångström (CODATA 2018: a0 = 0.529177210903 Å; from memory).
+#: Bohr radii per ångström, 1/a0 with a0 = 0.529177210903 Å (CODATA 2018; from memory).
 BOHR_PER_ANGSTROM = 1.0 / 0.529177210903
 
 #: Element symbols by nuclear charge (index = Z).
@@ -110,10 +110,12 @@ class Molecule:
     # ------------------------------------------------------------------ derived quantities
     @property
     def n_nuclei(self) -> int:
+        """Number of nuclei."""
         return int(self.charges.size)
 
     @property
     def n_electrons(self) -> int:
+        """Number of electrons, n_up + n_down."""
         return self.n_up + self.n_down
 
     @property
@@ -239,7 +241,7 @@ def molecule(atoms: Sequence, units: str = "bohr", charge: int = 0, spin: int | 
             ``spin = n_up − n_down``), otherwise ValueError.
 
     Raises:
-        ValueError (TypeError for wrong types): a non-integer ``charge`` (``0.5``, ``'1'``) or
+        ValueError: (a TypeError, which is also a ValueError, for wrong types) a non-integer ``charge`` (``0.5``, ``'1'``) or
             ``spin``, impossible electron counts, or counts that contradict ``charge``/``spin``.
     """
     if units not in ("bohr", "angstrom"):

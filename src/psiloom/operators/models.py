@@ -62,6 +62,7 @@ def _marshall(lattice: Lattice, bonds) -> np.ndarray:
     if not lattice.is_bipartite:
         raise ValueError(f"marshall_basis=True needs a bipartite lattice; {lattice!r} is not bipartite")
     sub = lattice.sublattice
+    assert sub is not None  # bipartite
     return sub[bonds[:, 0]] != sub[bonds[:, 1]] if len(bonds) else np.zeros(0, bool)
 
 
@@ -103,6 +104,7 @@ def staggered_magnetization_z(lattice: Lattice) -> PauliSum:
     if not lattice.is_bipartite:
         raise ValueError(f"staggered magnetisation needs a bipartite lattice; {lattice!r} is not")
     n = lattice.n_sites
+    assert lattice.sublattice is not None  # bipartite
     signs = 1 - 2 * lattice.sublattice
     return total([pauli(n, "Z", i, 0.5 * s) for i, s in enumerate(signs)], n)
 

@@ -31,7 +31,7 @@ correlations of the physical, unrotated state. Diagonal observables are unaffect
 from __future__ import annotations
 
 from math import comb
-from typing import Any, Callable, Mapping, NamedTuple
+from typing import Any, Callable, Mapping, NamedTuple, Sequence
 
 import jax
 import jax.numpy as jnp
@@ -190,7 +190,7 @@ def magnetizations(log_amplitude: LogAmplitudeFn, lattice: Lattice, samples, log
 
 
 # ---------------------------------------------------------------------- correlations
-#: Components of the spin correlation: the full S_i·S_j or one of its diagonal parts S^a_i S^a_j.
+#: Components of the spin correlation — the full S_i·S_j or one of its diagonal parts S^a_i S^a_j.
 COMPONENTS = ("all", "xx", "yy", "zz")
 
 
@@ -224,7 +224,9 @@ def correlation_operators(lattice: Lattice, marshall_basis: bool = False,
     dims = np.asarray(lattice.shape)
     per_component = 0.75 if component == "all" else 0.25
     ops = []
+    sublattice = lattice.sublattice
     for r in coords:
+        starts: Sequence[int]
         if lattice.periodic:
             starts = range(n)
         else:
@@ -236,7 +238,7 @@ def correlation_operators(lattice: Lattice, marshall_basis: bool = False,
             if i == j:
                 terms.append(PauliSum.identity(n, per_component * weight))
                 continue
-            flip = bool(marshall_basis and lattice.sublattice[i] != lattice.sublattice[j])
+            flip = bool(marshall_basis and sublattice is not None and sublattice[i] != sublattice[j])
             terms.append(_pair_operator(n, i, j, 0.25 * weight, flip, component))
         ops.append(total(terms, n))
     return coords.copy(), ops
@@ -337,7 +339,7 @@ def infinite_temperature_energy(operator: PauliSum, space: SpinSpace | None = No
     if space is not None and space.n_sites != n:
         raise ValueError(f"space has {space.n_sites} sites, the operator acts on {n}")
     n_up = None if space is None else space.n_up
-    acc = 0.0
+    acc: complex = 0.0
     for string, coef in operator.terms.items():
         if all(letter == "Z" for _, letter in string):
             acc += coef * _z_string_average(len(string), n, n_up)
@@ -384,8 +386,8 @@ def energy_statistics(log_amplitude: LogAmplitudeFn, hamiltonian, samples, log_a
     n = int(jnp.asarray(samples).shape[-1])
     if e_inf is None:
         e_inf = infinite_temperature_energy(hamiltonian, space)
-    e = float(np.real(energy.mean))
-    var = float(variance.mean)
+    e = float(jnp.real(energy.mean))
+    var = float(jnp.real(variance.mean))
     v = v_score(e, var, n, e_inf)
     rel_var = float(variance.error) / var if var > 0 else 0.0
     rel_gap = 2.0 * float(energy.error) / abs(e - e_inf)

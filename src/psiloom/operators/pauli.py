@@ -95,7 +95,7 @@ class PauliSum:
 
     # ----------------------------------------------------------------- construction
     @classmethod
-    def term(cls, n_sites: int, letters: str, sites: Sequence[int], coefficient: complex = 1.0) -> "PauliSum":
+    def term(cls, n_sites: int, letters: str, sites: Sequence[int] | int, coefficient: complex = 1.0) -> "PauliSum":
         """``coefficient · Π_k σ^{letters[k]}_{sites[k]}`` on distinct sites.
 
         ``sites`` are integers in ``[0, n_sites)``, each named once (a site named twice would
@@ -104,7 +104,7 @@ class PauliSum:
         coefficient is a finite real or complex number.
 
         Raises:
-            TypeError (also a ValueError): letters not a string, a site not an integer (a
+            TypeError: (also a ValueError) letters not a string, a site not an integer (a
                 fractional site is never truncated), a coefficient that is not a number.
             ValueError: unknown letters, sites outside the lattice or repeated, a non-finite
                 coefficient, or as many letters as sites not given.
@@ -135,6 +135,7 @@ class PauliSum:
 
     @classmethod
     def identity(cls, n_sites: int, coefficient: complex = 1.0) -> "PauliSum":
+        """``coefficient`` times the identity on ``n_sites`` sites."""
         return cls(n_sites, {(): coefficient})
 
     # ----------------------------------------------------------------- algebra
@@ -195,6 +196,7 @@ class PauliSum:
         return PauliSum(self.n_sites, {s: np.conj(c) for s, c in self.terms.items()})
 
     def is_hermitian(self, atol: float = 1e-12) -> bool:
+        """True when every coefficient is real to ``atol`` (Pauli strings are Hermitian)."""
         return all(abs(np.imag(c)) <= atol for c in self.terms.values())
 
     def trace_per_dim(self) -> complex:
@@ -343,6 +345,7 @@ class PauliSum:
         return mat.tocsr()
 
     def dense_matrix(self, space: SpinSpace | None = None) -> np.ndarray:
+        """Dense matrix in the σᶻ basis of ``space`` (see :meth:`sparse_matrix`)."""
         return self.sparse_matrix(space).toarray()
 
 

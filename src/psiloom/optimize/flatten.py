@@ -15,6 +15,7 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 from jax.flatten_util import ravel_pytree
+import optax
 
 
 def _split(tree):
@@ -43,5 +44,5 @@ def conj_complex_leaves(tree):
 
 
 def tree_norm(tree):
-    """Euclidean norm of all real components of a pytree."""
-    return jnp.sqrt(sum(jnp.sum(jnp.abs(l) ** 2) for l in jax.tree_util.tree_leaves(tree)))
+    """Euclidean norm of all real components of a pytree, (Σ |leaf entries|²)^{1/2} (Optax's)."""
+    return optax.tree_utils.tree_norm(tree)

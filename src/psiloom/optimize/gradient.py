@@ -31,7 +31,6 @@ from typing import Callable
 import jax
 import jax.numpy as jnp
 
-from psiloom.batching import map_in_chunks
 from psiloom.optimize.flatten import conj_complex_leaves, ravel_real
 from psiloom.reduce import sample_mean, sample_sum
 
@@ -86,7 +85,9 @@ class SampleGeometry:
                 return re + 1j * im
             return jax.grad(lambda v: self._log_psi_of_vector(v, xi[None])[0].real)(vec)
 
-        return map_in_chunks(jax.vmap(one), self.chunk, self.x)
+        if not self._chunked():
+            return jax.vmap(one)(self.x)
+        return jax.lax.map(one, self.x, batch_size=self.chunk)  # chunks of rows, one at a time
 
     def jacobian(self) -> jax.Array:
         """X = [Re ΔO; Im ΔO]/√n, real, shape ``(n, P)`` or ``(2n, P)`` for complex ψ."""

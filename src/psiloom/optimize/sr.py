@@ -59,9 +59,8 @@ Trust radius (``max_metric_norm``, optional): a step whose length in the metric,
 ‖δ‖_S = (δᵀ S δ)^{1/2}, exceeds a bound r is shortened to it, δ ← δ · r/‖δ‖_S (a trust region in
 the Fubini-Study metric; the direction is unchanged). To first order the step moves ψ by
 η‖δ‖_S in state space (η the learning rate), so r bounds that distance whatever one sample
-does. It matters when a chain first reaches a region the state weights enormously: measured on
-a 10×10 Heisenberg run (projected RBM, α = 4), one such chain made local energies of −8·10⁴, the
-step jumped from ~0.013 to 187 per parameter and the next energies were non-finite.
+does. It matters when a chain first reaches a region the state weights enormously and its local
+energies dwarf the others' (a measured case is in the documentation's benchmark notes).
 
 Memory guard (``memory_limit``): ``"dense"`` and ``"sample_space"`` form X (n×P, 2n×P for complex
 ψ; ``chunk`` does not bound it: the chunks are concatenated), next to the per-sample
@@ -97,7 +96,8 @@ SOLVERS = ("dense", "sample_space", "cg", "auto")
 
 
 class SRState(NamedTuple):
-    count: jax.Array  # number of updates made (the schedules' argument)
+    """Optax state of :func:`stochastic_reconfiguration`: the update count and the CG warm start."""
+    count: jax.Array  # type: ignore[assignment]  # number of updates made (Optax's name; shadows tuple.count)
     previous: Any = None  # last δ (real vector) when the CG solver warm-starts, else None
 
 

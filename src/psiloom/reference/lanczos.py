@@ -104,6 +104,7 @@ def lowest_eigenpairs(operator, space: SpinSpace | None = None, k: int = 1, tol:
         if k > dim:
             raise ValueError(f"k={k} must lie in [1, {dim}] for a space of dimension {dim}")
         return _lowest(mat, k, tol)
+    assert space is not None  # set above whenever a sector is given
     basis = sector_basis(space, sector)
     n = basis.shape[1]
     if n == 0:

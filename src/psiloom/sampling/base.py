@@ -42,14 +42,18 @@ class Sampler(Protocol):
     space: Any
     n_chains: int
 
-    def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> Any: ...
+    def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> Any:
+        """Chain state at random starting configurations (with log ψ evaluated)."""
 
-    def refresh(self, state: Any, log_amplitude: LogAmplitudeFn) -> Any: ...
+    def refresh(self, state: Any, log_amplitude: LogAmplitudeFn) -> Any:
+        """Recompute what the state caches (log ψ) for new parameters."""
 
-    def step(self, key: jax.Array, state: Any, log_amplitude: LogAmplitudeFn) -> tuple[Any, Any]: ...
+    def step(self, key: jax.Array, state: Any, log_amplitude: LogAmplitudeFn) -> tuple[Any, Any]:
+        """One sweep of every chain: ``(new_state, info)``."""
 
     def sample(self, key: jax.Array, state: Any, log_amplitude: LogAmplitudeFn,
-               n_per_chain: int) -> tuple[jax.Array, jax.Array, Any, jax.Array]: ...
+               n_per_chain: int) -> tuple[jax.Array, jax.Array, Any, jax.Array]:
+        """``n_per_chain`` samples per chain: ``(xs, log_amps, state, acceptance)``, time-major."""
 
 
 def evaluate_log_amplitudes(log_amplitude: LogAmplitudeFn, x: jax.Array) -> jax.Array:

@@ -66,10 +66,10 @@ def _user_cache_dir() -> str:
 try:  # Numba is a dependency, but the library stays usable (on the JAX path) without it
     import numba
 except ImportError:  # pragma: no cover - exercised only where Numba is missing
-    numba = None
+    numba = None  # type: ignore[assignment]  # the module or None; available() tells callers
 else:
-    if not os.environ.get("NUMBA_CACHE_DIR") and not numba.config.CACHE_DIR:
-        numba.config.CACHE_DIR = _user_cache_dir()  # what NUMBA_CACHE_DIR would set; read when compiling
+    if not os.environ.get("NUMBA_CACHE_DIR") and not getattr(numba.config, "CACHE_DIR", None):
+        setattr(numba.config, "CACHE_DIR", _user_cache_dir())  # what NUMBA_CACHE_DIR would set; read when compiling
 
 FLIP, EXCHANGE = 1, 2  # proposal kinds = number of changed sites K
 _KINDS = {"flip": FLIP, "exchange": EXCHANGE}

@@ -26,6 +26,7 @@ from psiloom.states.bound import BoundState
 
 
 class DrawInfo(NamedTuple):
+    """Info of a direct draw (every draw is accepted)."""
     accepted: jax.Array  # (n_chains,) always True: every draw is a new independent sample
 
 

@@ -56,11 +56,13 @@ from psiloom.states.rbm import RBM
 
 
 class GibbsInfo(NamedTuple):
+    """What one block-Gibbs sweep did, per chain."""
     moved: jax.Array  # (n_chains,) bool: whether the visible configuration changed
     changed_fraction: jax.Array  # (n_chains,) fraction of visible spins that changed
 
 
 class RBMWeights(NamedTuple):
+    """Real RBM arrays for block Gibbs: p(x, h) ∝ exp(a·x + b·h + xᵀW h)."""
     visible_bias: jax.Array  # a, (N,)
     kernel: jax.Array  # W, (N, M)
     hidden_bias: jax.Array  # b, (M,)

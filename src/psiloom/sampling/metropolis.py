@@ -64,12 +64,14 @@ from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
 
 class ChainState(NamedTuple):
+    """State of the Metropolis chains: configurations, log ψ there and the fast-update cache."""
     x: jax.Array  # (n_chains, n_sites) current configurations
     log_amp: jax.Array  # (n_chains,) log ψ at x
     cache: Any = None  # fast-update cache of x (leading axis n_chains), None on the generic path
 
 
 class StepInfo(NamedTuple):
+    """What one Metropolis sweep did, per chain."""
     accepted: jax.Array  # (n_chains,) bool: whether each chain moved
     log_ratio: jax.Array  # (n_chains,) 2 Re[log ψ(x') − log ψ(x)]
 
@@ -243,6 +245,7 @@ class MetropolisChains:
         keys = jnp.concatenate([burn_keys, keep_keys]) if self.burn_in else keep_keys
         n_sweeps, n_chains = self.burn_in + n_per_chain, state.x.shape[0]
         k_moves, log_u = jax.vmap(lambda k: self._sweep_randomness(k, state))(keys)
+        assert self._entry_table is not None  # compiled sweeps run only for table moves
         table, kind = self._entry_table
         if self.ordered is not None:
             positions = (jnp.arange(n_sweeps, dtype=jnp.int32)[:, None] * self.sweep
@@ -274,7 +277,7 @@ class MetropolisChains:
         n_per_chain = positive_int("n_per_chain", n_per_chain)
         fast = fast_updates_of(log_amplitude)  # asked once per call
         state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
-        if self._uses_compiled_sweeps(fast, state):
+        if fast is not None and self._uses_compiled_sweeps(fast, state):
             return self._compiled_sample(key, state, fast, n_per_chain)
 
         def sweep(k, st, i):

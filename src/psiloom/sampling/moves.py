@@ -148,7 +148,7 @@ class BondExchange(Move):
     lattice); conserves the magnetisation. A bond with equal spins gives a null move.
 
     ``bonds``: pairs of distinct, non-negative site indices (any array-like of shape (B, 2));
-    kept as a tuple of pairs. Sites beyond the configuration are refused by :meth:`check`
+    kept as a tuple of pairs. Sites beyond the configuration are refused by :meth:`Move.check`
     (the samplers call it with their space) and when proposing.
     """
 
@@ -160,6 +160,7 @@ class BondExchange(Move):
 
     @property
     def array(self) -> np.ndarray:
+        """The bonds as an ``(n_bonds, 2)`` int64 array."""
         return np.asarray(self.bonds, dtype=np.int64)
 
     def __call__(self, key, x):
@@ -338,10 +339,12 @@ class OrderedMove(Move):
 
     @property
     def array(self) -> np.ndarray:
+        """The table as an int64 array (one row of sites per scan position)."""
         return np.asarray(self.table, dtype=np.int64)
 
     @property
     def n_positions(self) -> int:
+        """Number of positions of the systematic scan (rows of the table)."""
         return len(self.table)
 
     @property
@@ -383,15 +386,18 @@ class OrderedMove(Move):
 
     def proposed_values(self, old: jax.Array) -> jax.Array:
         """New values at the sites of one proposal from the old ones ``(n, K)``: ``−x_s`` for a
-        flip, the two values swapped for an exchange (what :meth:`__call__` writes into ``x``)."""
+        flip, the two values swapped for an exchange (what a call of the move writes into ``x``)."""
         return -old if self.kind == FLIP else old[:, ::-1]
 
     def __repr__(self) -> str:
         return f"OrderedMove({self.kind}, {self.n_positions} positions)"
 
 
+#: The single-spin flip (a ready instance of :class:`SingleFlip`).
 single_flip = SingleFlip()
+#: Swap of a random up spin with a random down spin (a ready :class:`PairExchange`).
 pair_exchange = PairExchange()
+#: Flip of every spin (a ready :class:`GlobalFlip`).
 global_flip = GlobalFlip()
 
 

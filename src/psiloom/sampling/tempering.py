@@ -50,6 +50,7 @@ from psiloom.states.fast import FastUpdates, fast_updates_of
 
 
 class TemperingState(NamedTuple):
+    """Replicas ``(R, C, N)`` of every chain at the inverse temperatures ``betas``."""
     x: jax.Array  # (R, C, N) configurations of every replica of every chain
     log_amp: jax.Array  # (R, C) log ψ at x
     parity: jax.Array  # () int32: which pair set (even r or odd r) the next exchange round tries
@@ -59,6 +60,7 @@ class TemperingState(NamedTuple):
 
 
 class TemperingInfo(NamedTuple):
+    """Acceptance of the Metropolis steps and of the replica exchanges of one step."""
     acceptance: jax.Array  # (R,) mean Metropolis acceptance of each replica in this step
     attempted: jax.Array  # (R−1,) bool: which neighbouring pairs were tried in this step
     swapped: jax.Array  # (R−1, C) bool: which pairs of which chains were exchanged
@@ -92,7 +94,7 @@ def _check_betas(betas) -> np.ndarray:
     return arr
 
 
-def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
+def tempered_metropolis_step(move: Move, betas: Sequence[float] | np.ndarray) -> Callable:
     """Pure kernel for one proposal per replica and chain, accepted with min(1, exp(2 β_r Re Δ log ψ)):
 
         step(key, x (R,C,N), log_amp (R,C), log_amplitude, log_u=None, cache=None, fast=None)
@@ -123,13 +125,13 @@ def tempered_metropolis_step(move: Move, betas: Sequence[float]) -> Callable:
     return step
 
 
-def replica_exchange(betas: Sequence[float]) -> Callable:
+def replica_exchange(betas: Sequence[float] | np.ndarray) -> Callable:
     """Pure kernel ``exchange(key, x, log_amp, parity, cache=None) -> (x, log_amp, cache, attempted (R−1,),
     swapped (R−1,C))``: one round of neighbour exchanges over the pairs (r, r+1) with r ≡ parity (mod 2);
     a fast-update cache (leading axis R·C) travels with its configuration."""
     betas = _check_betas(betas)
     n_rep = len(betas)
-    dbeta = np.asarray(betas[:-1] - betas[1:])  # (R−1,) > 0
+    dbeta = -np.diff(betas)  # (R−1,) β_r − β_{r+1} > 0
 
     def exchange(key, x, log_amp, parity, cache=None):
         if n_rep == 1:

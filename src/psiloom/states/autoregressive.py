@@ -174,6 +174,7 @@ class ChainRuleState(TrialState):
             raise ValueError("ChainRuleState has no parameters yet: initialise it with model.init first") from err
 
     def n_sites(self) -> int:
+        """Number of sites of the bound parameters."""
         return int(self._params()["site_bias"].shape[0])
 
     def logits(self, x):

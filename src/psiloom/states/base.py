@@ -27,6 +27,7 @@ def default_real_dtype():
 
 
 def default_complex_dtype():
+    """complex128 when ``jax_enable_x64`` is on, else complex64."""
     return jnp.complex128 if jax.config.jax_enable_x64 else jnp.complex64
 
 

@@ -45,10 +45,12 @@ class BoundState:
         return self.model.apply(self.variables, *args, method=method, **kwargs)
 
     def tree_flatten(self):
+        """Pytree protocol: the variables are the leaves; model and ``fast`` are static."""
         return (self.variables,), (self.model, self.fast)
 
     @classmethod
     def tree_unflatten(cls, aux, children):
+        """Pytree protocol: rebuild from :meth:`tree_flatten`'s output without checks."""
         obj = object.__new__(cls)
         obj.model, obj.fast = aux
         obj.variables = children[0]

@@ -33,18 +33,16 @@ term is positive: the ratio carries no cancellation at any ``|θ|``. Spins must 
 sites of one change distinct; the tables overflow only for ``|W| > 354`` (float64). The smaller
 member of the pair, ~2e^{−2|θ|}, underflows once ``|θ| > 354`` (float64; ~44 in float32), and a
 later change of sign of θ_j then loses it: the updates are exact while every |θ_j| a chain
-visits stays below that (measured: a 10-site RBM with |W| up to 120 reached |θ| ≈ 500 and both
-fast paths went wrong by 122 in log ψ; ``init`` rebuilds the pair every step).
+visits stays below that (``init`` rebuilds the pair every step; a measured failure beyond it is in
+the documentation's benchmark notes).
 
 Cache precision (``cache_dtype``). The tables and the cache may be held in float32 while the
 parameters, full evaluations and everything downstream stay in float64: the update streams the
 ``(n, M)`` pair and ``K`` table rows through memory once per proposal or connected
 configuration, so halving their width about halves the cost of Metropolis sweeps and local
-energies of large states (measured: the 10×10 ladder rung). Each log-ratio then carries a
-rounding error of order ``√M·ε₃₂`` (at most ``4M·ε₃₂``; ε₃₂ ≈ 1.2e-7) and local energies a
-relative error of ~1e-6: on the 10×10 rung's projected α = 8 state (12800 hidden units per
-configuration) at random parameters, 1.6e-6 at most and a mean offset of 1e-6, far below
-statistical errors of 1e-4 or more. The cache is rebuilt from θ in the parameters' precision
+energies of large states. Each log-ratio then carries a rounding error of order ``√M·ε₃₂`` (at
+most ``4M·ε₃₂``; ε₃₂ ≈ 1.2e-7) and local energies a relative error of ~1e-6 (measurements: the
+documentation's benchmark notes), far below statistical errors of 1e-4 or more. The cache is rebuilt from θ in the parameters' precision
 whenever ``init`` runs (every optimisation step), so the rounding of a chain's successive
 updates accumulates only over one step's sweeps. In float32 the tables overflow for
 ``|W| > 44``. It is an opt-in: the default keeps the parameters' precision.
@@ -222,6 +220,7 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
                 delta = delta + dv[:, k] * visible_bias[idx[..., k]]
         if e_plus is None:  # K = 0: nothing changes
             return delta, cache
+        assert e_minus is not None  # set together with e_plus
         plus, minus = cache.plus * e_plus, cache.minus * e_minus
         ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
         inverse = 1.0 / ratio

@@ -35,7 +35,7 @@ log-sum-exp again.
 
 from __future__ import annotations
 
-from typing import Any, NamedTuple
+from typing import Any, NamedTuple, cast
 
 import jax
 import jax.numpy as jnp
@@ -68,6 +68,9 @@ def log_sum_exp_weighted(log_terms, log_weights=None, axis: int = -1):
     amplitude ~1e-308 (float64) times the largest term. Real terms without weights give a
     real result (their sum is positive); complex terms or weights give a complex one.
     """
+    # Not jax.nn.logsumexp(..., b=, return_sign=True): that takes real logs and signed real
+    # weights, while image terms here are complex logs (phases) with complex characters, and a
+    # sum that cancels to rounding noise must become the exact zero above, not noise.
     terms = log_terms if log_weights is None else log_terms + log_weights
     m = jax.lax.stop_gradient(jnp.max(jnp.real(terms), axis=axis, keepdims=True))
     m = jnp.where(jnp.isfinite(m), m, 0.0)
@@ -155,7 +158,7 @@ class Symmetrized(TrialState):
         perms, flips, chi = self._elements()
         base = self.base.clone(parent=None)
         base_vars = {col: tree["base"] for col, tree in self.variables.items() if "base" in tree}
-        base_fast = base.apply(base_vars, method="fast_updates")
+        base_fast = cast("FastUpdates | None", base.apply(base_vars, method="fast_updates"))
         if base_fast is None:
             return None
         images_tab = jnp.asarray(np.argsort(perms, axis=1))  # e(i): where site i goes
