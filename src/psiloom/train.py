@@ -312,7 +312,8 @@ class GroundStateSearch:
         return out
 
     # ---------------------------------------------------------------- evaluation
-    DEFAULT_MAX_SAMPLES = 1 << 17  # cap of an evaluation pass to a requested error bar
+    #: Default cap on the samples of an evaluation pass to a requested error bar.
+    DEFAULT_MAX_SAMPLES = 1 << 17
 
     def evaluate(self, state: TrainState, n_samples: int | None = None, key: jax.Array | None = None,
                  burn_in_sweeps: int = 0, starts=None, *, target_error: float | None = None,
@@ -365,7 +366,8 @@ class GroundStateSearch:
             est, acc, _ = self._program("evaluate", n_per_chain, burn_in)(state.params, chains, key)
         return est, float(acc)
 
-    FIRST_BATCHES = 4  # steps of the first batch of a pass to a target error
+    #: Steps of the first batch of an evaluation pass to a requested error bar.
+    FIRST_BATCHES = 4
 
     def _evaluate_to_error(self, state, target_error, max_samples, key, burn_in_sweeps, starts):
         """:meth:`evaluate` with ``target_error``: frozen steps of the training program until the
