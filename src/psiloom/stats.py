@@ -521,7 +521,7 @@ def combine_batches(estimates: Estimate) -> Estimate:
     are correlated only across their boundaries, by O(τ / n_time): negligible for batches many
     τ long. ``tau = error² N / variance`` (so ``ess = N / tau``), ``n_time = Σ n_time_k``;
     ``tau_reliable`` holds when every batch is at least 10 τ long and all of them together 50 τ
-    (common practice, see :data:`MIN_CHAIN_OVER_TAU`). ``rhat`` is nan: the batches' own split-R̂
+    (common practice, as ``MIN_CHAIN_OVER_TAU``). ``rhat`` is nan: the batches' own split-R̂
     compare chains over one short batch each and are biased upwards by autocorrelation
     (≈ 1 + τ/n_time; measured 1.02 on mixed chains of 32-sample batches), and the chains' means over
     the whole pass, which R̂ needs, are not in the batch estimates.
