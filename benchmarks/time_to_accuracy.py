@@ -6,7 +6,7 @@ of the Heisenberg-ring energy of at most ``TARGET`` (2e-4)? Each side runs as a 
 
 * the yardstick, a plain JAX RBM + dense SR script with 512 chains and full re-evaluation of
   log ψ per proposal (``../shared/baselines/plain_vmc.py``, not part of psiloom; ``--yardstick``
-  points elsewhere), at the step count that reaches the target: its steps are raised ×1.5 from
+  points elsewhere), at the step count that reaches the target: its steps are raised from
   ``YARDSTICK_STEPS`` ×1.25 at a time until it does (the search is reported, not timed);
 * ``examples/ring_demo.py --sites L``, exactly what the README tells a user to run, twice per
   pair: *cold* (a fresh, empty compilation cache: a first run) and *warm* (a cache filled by an
