@@ -23,6 +23,8 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
+import shlex
 import sys
 import time
 from typing import Any, Iterable, Sequence
@@ -66,7 +68,12 @@ def emit(record: dict) -> dict:
     plain = _plain(record)
     sys.stdout.write(json.dumps(plain) + "\n")
     sys.stdout.flush()
+    _EMITTED.append(plain)
     return plain
+
+
+_EMITTED: list = []  # every line emitted by this script, for --save
+_SAVE: dict = {}  # --save path and the run's context, set by parse_args
 
 
 def progress(msg: str) -> None:
@@ -90,7 +97,24 @@ def summary(records: Iterable[dict], **extra: Any) -> dict:
     flags = [r["passed"] for r in records if "passed" in r]
     if flags:
         out["n_passed"] = int(sum(bool(f) for f in flags))
-    return emit(out)
+    line = emit(out)
+    if _SAVE.get("path"):
+        save_results(_SAVE["path"])
+    return line
+
+
+def save_results(path: str) -> None:
+    """Write every line emitted so far to ``path`` as one JSON object: the command that produced
+    them (from the repository root), the load average before and after, and the lines. The
+    README's speed table is generated from such files (``benchmarks/readme_table.py``)."""
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    record = {"command": _SAVE["command"], "started": _SAVE["started"],
+              "loadavg_start": _SAVE["loadavg"], "loadavg_end": list(os.getloadavg()),
+              "cpu_count": os.cpu_count(), "lines": _EMITTED}
+    with open(path, "w") as f:
+        json.dump(record, f, indent=1)
+        f.write("\n")
 
 
 def lattice_system(
@@ -154,9 +178,15 @@ def parse_args(name: str, description: str, argv: Sequence[str] | None = None,
     """Standard argument parser: ``--quick`` plus whatever ``extra(parser)`` adds."""
     parser = argparse.ArgumentParser(prog=name, description=description)
     parser.add_argument("--quick", action="store_true", help="reduced run of a few minutes on a 2-core CPU (each script states its budget)")
+    parser.add_argument("--save", metavar="PATH", default=None,
+                        help="also write all output lines, the command and the load average to PATH (JSON)")
     if extra is not None:
         extra(parser)
-    return parser.parse_args(argv)
+    args = parser.parse_args(argv)
+    script = os.path.relpath(os.path.abspath(sys.argv[0]), os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    _SAVE.update(path=args.save, command=" ".join(["python", shlex.quote(script), *map(shlex.quote, sys.argv[1:])]),
+                 started=time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), loadavg=list(os.getloadavg()))
+    return args
 
 
 _T0 = time.perf_counter()

@@ -248,6 +248,10 @@ def input_probes(fx):
         ("GroundStateSearch.run", "callback", [5, "f"], lambda v: run_with(callback=v)),
         ("GroundStateSearch.evaluate", "n_samples", "count", lambda v: evaluate_with(n_samples=v)),
         ("GroundStateSearch.evaluate", "burn_in_sweeps", "count0", lambda v: evaluate_with(burn_in_sweeps=v)),
+        ("GroundStateSearch.evaluate", "target_error", "positive",
+         lambda v: evaluate_with(n_samples=None, target_error=v, max_samples=8)),
+        ("GroundStateSearch.evaluate", "max_samples", [NAN, INF, -1, 0, 2.5, True, "4", 1 + 1j, [4]],  # None: default
+         lambda v: evaluate_with(n_samples=None, target_error=1.0, max_samples=v)),
         *([("GroundStateSearch", "mesh", [3, "samples", [1, 2]], lambda v: _search(fx, mesh=v))]
           if "mesh" in inspect.signature(pl.train.GroundStateSearch).parameters else []),
         ("electrons.atom", "symbol", ["Xx", "", 3.5, None, -1], lambda v: el.atom(v)),

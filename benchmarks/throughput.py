@@ -11,7 +11,11 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
    compiled sweeps (:mod:`psiloom.sampling.compiled`), the full path as an XLA loop; each timed
    call of ``sample`` makes ``SWEEPS_PER_CALL`` sweeps (the compiled path's host call costs a
    fixed ~0.2-1 ms per call; ``ratio_one_sweep_per_call`` shows the cost of one sweep per call).
-   Target ≥ 10×, judged on the default (float64) cache. Also reported: the same fast update as a
+   Target ≥ 10×, judged on the default (float64) cache, as the median of 3 runs in one call (the
+   paths timed in turn in each run, each time the best of several calls; ``ratio_min``/``ratio_max``
+   the spread). ``roofline``: bytes and flops per proposal and chain of both paths and the
+   ratio that this machine's measured bandwidth and matmul rate allow (:func:`roofline`).
+   Also reported: the same fast update as a
    JAX loop (``ratio_jax_fast_path``) and the opt-in float32 cache (``ratio_float32_cache``).
 2. Local energies of the same system: fast per-connection updates vs full re-evaluation (and
    with the float32 cache, ``ratio_float32_cache``, with its largest relative deviation).
@@ -24,7 +28,8 @@ ratio above 1 means faster than the baseline), on the CPU this runs on:
 Times are wall-clock, best of several repetitions after compilation (OpenBLAS limited to one
 thread unless OPENBLAS_NUM_THREADS is set: see the note at the import). Prints one JSON line per
 measurement and a summary line last (benchmarks/README.md); progress goes to stderr.
-``--quick`` uses fewer repetitions and smaller SR/batch sizes (< 60 s on two cores);
+``--quick`` uses 16 and 64 chains, fewer repetitions and smaller SR/batch sizes (about a minute
+on two idle cores);
 ``--single-thread`` runs XLA on one thread (steadier numbers on a busy machine).
 """
 
@@ -94,16 +99,81 @@ def _rbm(n_sites: int, key: int = 0, scale: float = 0.1):
     return model, variables, space
 
 
-def metropolis(n_chains: int, repeat: int, order: str) -> dict:
+def machine_rates(repeat: int = 5) -> dict:
+    """This CPU's float64 matmul rate (XLA, flops/s), for the roofline of :func:`roofline`."""
+    x = jnp.ones((512, 512))
+    mm = jax.jit(jnp.matmul)
+    jax.block_until_ready(mm(x, x))
+    t_mm = min(_timed(lambda: jax.block_until_ready(mm(x, x))) for _ in range(repeat))
+    return {"matmul_flops_per_s": 2 * 512 ** 3 / t_mm}
+
+
+def copy_bandwidth(n_bytes: int, repeat: int = 5) -> float:
+    """Bytes/s (read + write) of copying an array of ``n_bytes`` (NumPy, one thread): the rate of
+    the cache level (or memory) that a working set of that size lives in. Small arrays include
+    NumPy's per-call cost (~1 µs), so the rate is a lower estimate there."""
+    a = np.ones(max(1, int(n_bytes) // 8))
+    b = np.empty_like(a)
+    number = max(1, (1 << 26) // a.nbytes)  # ~64 MiB copied per timing
+    best = min(_timed(lambda: [np.copyto(b, a) for _ in range(number)]) for _ in range(repeat))
+    return 2 * a.nbytes * number / best
+
+
+def _timed(fn) -> float:
+    start = time.perf_counter()
+    fn()
+    return time.perf_counter() - start
+
+
+def roofline(n_chains: int, rates: dict, measured: dict | None = None) -> dict:
+    """Bytes and flops per proposal and chain (float64; N sites, M = αN hidden units) and the
+    sweep ratio that they allow here.
+
+    Full re-evaluation: θ = W·x' + b for the proposed x' (2NM flops; W's 8NM bytes are shared by
+    all chains of a batch and stay in cache) and M log 2cosh (counted as 20 flops each).
+    Fast update (compiled sweeps): per hidden unit P = p e^{d}, Q = q e^{−d}, P + Q and the running
+    product (4 flops), reading the chain's cached pair (p, q) (16M bytes) and the proposal's two
+    factor rows (16M bytes, shared by a block of 8 chains: 2M per chain), writing the pair back on
+    acceptance (≤ 16M bytes). The fast path streams its working set — every chain's pair plus the
+    factor rows of all P = N table entries, 16M (n_chains + N) bytes — through the cache level it
+    fits in, the full path is arithmetic. ``ratio_bound`` = t_full / t_fast with
+    t_full = flops_full / (matmul rate) and t_fast = max(bytes_fast / (copy bandwidth at the
+    working set's size), flops_fast / (matmul rate)): the ratio if both ran at this machine's
+    rates. ``measured`` (sweep seconds of the two paths) adds each path's seconds per proposal and
+    chain against its roofline time.
+    """
+    n, m = L, ALPHA * L
+    working_set = 16 * m * (n_chains + n)
+    rate = copy_bandwidth(working_set)
+    full_flops, full_bytes = 2 * n * m + 20 * m, 8 * n * m / n_chains
+    fast_flops, fast_bytes = 4 * m, 16 * m + 2 * m + 16 * m
+    t_full = full_flops / rates["matmul_flops_per_s"]
+    t_fast = max(fast_bytes / rate, fast_flops / rates["matmul_flops_per_s"])
+    out = {"full": {"flops": full_flops, "bytes": full_bytes, "roofline_seconds": t_full},
+           "fast": {"flops": fast_flops, "bytes": fast_bytes, "roofline_seconds": t_fast},
+           "working_set_bytes": working_set, "copy_bandwidth_bytes_per_s": rate,
+           "matmul_flops_per_s": rates["matmul_flops_per_s"], "ratio_bound": t_full / t_fast,
+           "fast_bound_by": "memory" if fast_bytes / rate > fast_flops / rates["matmul_flops_per_s"] else "arithmetic"}
+    if measured is not None:
+        for path in ("full", "fast"):
+            per = measured[path] / (n * n_chains)
+            out[path].update(measured_seconds=per, roofline_fraction=out[path]["roofline_seconds"] / per)
+    return out
+
+
+def metropolis(n_chains: int, repeat: int, order: str, runs: int = 3, rates: dict | None = None) -> dict:
+    """Sweep times of every path, measured ``runs`` times in turn (each the best of ``repeat``);
+    ``ratio`` is the median over the runs of full/fast, with ``ratio_min``/``ratio_max``."""
     with Timer() as timer:
         lattice = pl.lattices.chain(L)
         model, variables, space = _rbm(L)
         model32 = model.clone(cache_dtype=jnp.float32)  # same parameters, float32 cache
-        times = {}
+        samples = {}  # path -> sweep seconds of every run
         # path: (model, fast updates, compiled sweeps, sweeps per sample call)
         paths = {True: (model, True, True, SWEEPS_PER_CALL), False: (model, False, False, SWEEPS_PER_CALL),
                  "jax": (model, True, False, SWEEPS_PER_CALL), "float32": (model32, True, True, SWEEPS_PER_CALL),
                  "one_per_call": (model, True, True, 1)}
+        calls = {}
         for path, (m, fast, compiled, n_sweeps) in paths.items():
             sampler = pl.sampling.MetropolisChains(space, n_chains=n_chains, bonds=lattice.bonds, order=order,
                                                     compiled_sweeps=compiled)
@@ -113,10 +183,20 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
             def sweeps(v, chains, key, m=m, fast=fast, sampler=sampler, n_sweeps=n_sweeps):
                 return sampler.sample(key, chains, BoundState(m, v, fast=fast), n_sweeps)[2]
 
-            times[path] = best_time(jax.jit(sweeps), variables, chains, jax.random.PRNGKey(2), repeat=repeat,
-                                    number=3, label=f"sweep{path}") / n_sweeps
-            CPU_TIMES[f"sweep{path}"] /= n_sweeps  # per sweep, as the wall times
-            progress(f"metropolis n_chains={n_chains} order={order} path={path}: {times[path] * 1e3:.3f} ms/sweep")
+            calls[path] = (jax.jit(sweeps), chains, n_sweeps)
+        cpu = {}
+        for run in range(runs):  # the paths in turn, so a change of load hits all of them
+            for path, (fn, chains, n_sweeps) in calls.items():
+                t = best_time(fn, variables, chains, jax.random.PRNGKey(2), repeat=repeat, number=3,
+                              label=f"sweep{path}") / n_sweeps
+                samples.setdefault(path, []).append(t)
+                cpu.setdefault(path, []).append(CPU_TIMES[f"sweep{path}"] / n_sweeps)
+                progress(f"metropolis n_chains={n_chains} order={order} path={path} run {run + 1}/{runs}: "
+                         f"{t * 1e3:.3f} ms/sweep")
+        times = {path: float(np.median(ts)) for path, ts in samples.items()}
+        for path, ts in cpu.items():
+            CPU_TIMES[f"sweep{path}"] = float(np.median(ts))  # per sweep, as the wall times
+        ratios = [full / fast for full, fast in zip(samples[False], samples[True])]
     return {
         "benchmark": "throughput",
         "system": lattice_system("heisenberg", "chain", [L], True, "spin", J=1.0),
@@ -129,8 +209,13 @@ def metropolis(n_chains: int, repeat: int, order: str) -> dict:
         "value": times[True],
         "unit": "s/sweep",
         "baseline": times[False],
-        "ratio": times[False] / times[True],
+        "ratio": float(np.median(ratios)),
+        "ratio_min": min(ratios),
+        "ratio_max": max(ratios),
+        "ratio_runs": ratios,
+        "runs": runs,
         **_cpu_fields("sweepTrue", "sweepFalse"),
+        "roofline": None if rates is None else roofline(n_chains, rates, {"full": times[False], "fast": times[True]}),
         # cost per hidden unit per proposal and chain: the fast path's update of the cached pair
         # against the full path's N multiply-adds plus one log 2cosh per unit
         "ns_per_unit": {name: times[path] / (L * n_chains * ALPHA * L) * 1e9
@@ -277,18 +362,22 @@ def main() -> None:
     args = parse_args("throughput", "fast updates, SR solvers and amplitude throughput",
                       extra=lambda p: p.add_argument("--single-thread", action="store_true",
                                                      help="run XLA on one thread"))
-    repeat = 3 if args.quick else 7
+    repeat = 2 if args.quick else 5
     records = []
+    rates = machine_rates()
+    progress(f"machine: {rates['matmul_flops_per_s'] / 1e9:.1f} GFLOP/s matmul")
     for order in ("random", "sequential"):
-        for n_chains in ((16, 64) if args.quick else (16, 64, 256)):
-            records.append(emit(metropolis(n_chains, repeat, order)))
+        for n_chains in ((16, 64) if args.quick else (16, 64, 256)):  # medians of 3 runs each
+            records.append(emit(metropolis(n_chains, 1 if args.quick else repeat, order, runs=3, rates=rates)))
     records.append(emit(local_energy(256 if args.quick else 1024, repeat)))
     # P = N + αN + αN² ≥ 8 n
     records.append(emit(sr_solve(32, 256, repeat) if args.quick else sr_solve(64, 1024, repeat)))
     records.append(emit(amplitude_gflops(2048 if args.quick else 4096, repeat)))
     targets = {r["metric"] + (f"[n_chains={r['method']['n_chains']},order={r['method']['order']}]"
                               if "n_chains" in r["method"] else ""):
-               {"ratio": r["ratio"], "cpu_ratio": r["cpu_ratio"], "target": r.get("target_ratio"),
+               {"ratio": r["ratio"], "ratio_min": r.get("ratio_min"), "ratio_max": r.get("ratio_max"),
+                "ratio_bound": (r.get("roofline") or {}).get("ratio_bound"),
+                "cpu_ratio": r["cpu_ratio"], "target": r.get("target_ratio"),
                 "met": None if r.get("target_ratio") is None else bool(r["ratio"] >= r["target_ratio"])}
                for r in records}
     summary(records, benchmark="throughput", quick=bool(args.quick), single_thread=bool(args.single_thread),

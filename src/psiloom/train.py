@@ -35,7 +35,8 @@ import numpy as np
 import optax
 
 from psiloom import parallel
-from psiloom._validation import boolean, nonnegative_int, positive_int
+from psiloom import stats
+from psiloom._validation import boolean, nonnegative_int, positive_int, positive_real
 from psiloom.checkpoint import (CheckpointError, CheckpointLock, compare_descriptions, describe_state,
                                 load_checkpoint as _load_checkpoint, run_meta, save_checkpoint)
 from psiloom.history import History
@@ -161,7 +162,8 @@ class GroundStateSearch:
                        winsorize=winsorize, fast=self.fast)
         self._phases: tuple | None = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
-        self._multi: dict[int, Any] = {}  # steps_per_visit -> compiled multi_step
+        self._multi: dict[int, Any] = {}  # steps_per_visit -> compiled multi_step (training and frozen evaluation)
+        self._visit_length: int | None = None  # steps_per_visit of the last run: evaluation passes reuse its program
         # compiled evaluation passes, one per (kind, n_per_chain, burn-in); the least recently used
         # beyond EVALUATION_PROGRAMS are dropped, so many distinct sample counts cannot pile up memory
         self._programs: collections.OrderedDict[tuple, Any] = collections.OrderedDict()
@@ -242,18 +244,21 @@ class GroundStateSearch:
         with parallel.mesh_context(self.mesh):  # traces see the mesh (per-device host callbacks)
             return self._step(state)
 
-    def _advance(self, steps_per_visit: int):
+    def _advance(self, steps_per_visit: int, learn: bool = True):
+        """``advance(state, n)``: up to ``steps_per_visit`` steps in the one compiled program of
+        that visit length; ``learn=False`` runs the same program's frozen steps (evaluation)."""
         if steps_per_visit not in self._multi:
-            def multi(s, n):
-                state, *rest = self.vmc.multi_step(s, n, steps_per_visit)
+            def multi(s, n, learn):
+                state, *rest = self.vmc.multi_step(s, n, steps_per_visit, learn)
                 return self._constrain(state, *rest)
 
             self._multi[steps_per_visit] = jax.jit(multi)
         multi = self._multi[steps_per_visit]
+        flag = np.bool_(learn)
 
         def advance(state, n):
             with parallel.mesh_context(self.mesh):
-                return multi(state, jnp.int32(n))
+                return multi(state, np.int32(n), flag)
 
         return advance
 
@@ -307,15 +312,33 @@ class GroundStateSearch:
         return out
 
     # ---------------------------------------------------------------- evaluation
-    def evaluate(self, state: TrainState, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 0,
-                 starts=None):
-        """A separate, longer evaluation pass at fixed parameters.
+    #: Default cap on the samples of an evaluation pass to a requested error bar.
+    DEFAULT_MAX_SAMPLES = 1 << 17
+
+    def evaluate(self, state: TrainState, n_samples: int | None = None, key: jax.Array | None = None,
+                 burn_in_sweeps: int = 0, starts=None, *, target_error: float | None = None,
+                 max_samples: int | None = None):
+        """A separate evaluation pass at fixed parameters, of a fixed size or to a requested error bar.
 
         Returns ``(Estimate, acceptance)``: the energy with its autocorrelation-corrected error
-        (τ from the chains, Sokal windowing) and R̂ across chains. ``n_samples`` is rounded up
-        to a multiple of the chain count (with a warning); each distinct ``(n_samples,
-        burn_in_sweeps)`` compiles its own evaluation program once, and the
-        :attr:`EVALUATION_PROGRAMS` most recently used are kept for reuse.
+        (τ from the chains, Sokal windowing) and R̂ across chains.
+
+        Give exactly one of:
+
+        * ``n_samples``: one pass of that many samples, rounded up to a multiple of the chain
+          count (with a warning). Each distinct ``(n_samples, burn_in_sweeps)`` compiles its own
+          evaluation program once; the :attr:`EVALUATION_PROGRAMS` most recently used are kept.
+        * ``target_error``: draw batches of the training step's size (``self.n_samples``) until
+          the error bar of the energy is at most ``target_error`` (absolute, in the energy's
+          units) or ``max_samples`` (default :attr:`DEFAULT_MAX_SAMPLES`) were drawn; a pass
+          stopped by the cap warns with the error reached. The batches are frozen training
+          steps — the same compiled program as :meth:`run`, run with the update switched off —
+          so this costs no compilation after a run; their estimates are pooled with
+          :func:`psiloom.stats.combine_batches` (no R̂: compare chains, e.g. with ``starts``, in a
+          fixed pass, which refuses ``starts`` here). After a first batch
+          of :attr:`FIRST_BATCHES` steps the pass asks for the steps that the error so far
+          predicts (error ∝ 1/√N), so it stops within a batch or two of the target.
+          ``burn_in_sweeps`` is rounded up to whole discarded steps.
 
         ``starts`` (optional, shape ``(k, n_sites)`` with ``1 ≤ k ≤ n_chains``): valid
         configurations that replace the first ``k`` chains before the burn-in, the dispersed
@@ -327,11 +350,75 @@ class GroundStateSearch:
         real, and R̂ rises above 1 (``Estimate.warnings`` then says the chains have not mixed);
         in a healthy state they relax to the same distribution as the others during the burn-in.
         """
+        if target_error is not None:
+            if n_samples is not None:
+                raise ValueError(f"give n_samples or target_error, not both (got n_samples={n_samples!r}, "
+                                 f"target_error={target_error!r})")
+            return self._evaluate_to_error(state, target_error, max_samples, key, burn_in_sweeps, starts)
+        if n_samples is None:
+            raise ValueError("evaluate needs n_samples (a fixed pass) or target_error (a pass to that error bar)")
+        if max_samples is not None:
+            raise ValueError(f"max_samples={max_samples!r} caps a pass to a target_error; a fixed pass of "
+                             f"n_samples={n_samples!r} takes no cap")
         chains, key, n_per_chain, burn_in = self.evaluation_inputs(state, n_samples, key, burn_in_sweeps, starts,
                                                                     fold=7)
         with parallel.mesh_context(self.mesh):
             est, acc, _ = self._program("evaluate", n_per_chain, burn_in)(state.params, chains, key)
         return est, float(acc)
+
+    #: Steps of the first batch of an evaluation pass to a requested error bar.
+    FIRST_BATCHES = 4
+
+    def _evaluate_to_error(self, state, target_error, max_samples, key, burn_in_sweeps, starts):
+        """:meth:`evaluate` with ``target_error``: frozen steps of the training program until the
+        pooled error bar reaches the target or the cap (see there)."""
+        target = positive_real("target_error", target_error)
+        cap = self.DEFAULT_MAX_SAMPLES if max_samples is None else positive_int("max_samples", max_samples)
+        if starts is not None:
+            raise ValueError("starts= needs a fixed pass (n_samples=...): its R̂ across chains is what dispersed "
+                             "starts are for, and a pass to a target_error has no R̂")
+        max_steps = max(1, int(cap) // self.n_samples)  # at least one step, never more than the cap
+        chains, key, _, _ = self.evaluation_inputs(state, self.n_samples, key, burn_in_sweeps, starts, fold=7)
+        k = self._visit_length or 10  # the visit length run compiled last: no new program
+        advance = self._advance(k, learn=False)
+        current = TrainState(state.step, state.params, state.opt_state, chains, key)
+        burn_steps = -(-nonnegative_int("burn_in_sweeps", burn_in_sweeps) // self.n_per_chain)
+
+        def frozen_steps(current, n, what):
+            current, outs, taken, bad, _ = advance(current, n)
+            outs, taken, bad = jax.device_get((outs, taken, bad))
+            if int(bad) or int(np.sum(taken)) != n:
+                raise FloatingPointError(f"non-finite energy in the evaluation pass ({what}): the trial state "
+                                         "is not finite on the configurations it visits")
+            return current, outs
+
+        while burn_steps > 0:  # discarded steps
+            n = min(k, burn_steps)
+            current, _ = frozen_steps(current, n, "burn-in")
+            burn_steps -= n
+        batches, acceptances, done, wanted = [], [], 0, min(self.FIRST_BATCHES, max_steps)
+        while True:
+            while done < wanted:
+                n = min(k, wanted - done)
+                current, outs = frozen_steps(current, n, f"after {done} steps")
+                batches.append(jax.tree_util.tree_map(lambda a, n=n: np.asarray(a)[:n], outs.energy))
+                acceptances.append(np.asarray(outs.acceptance)[:n])
+                done += n
+            pooled = self._pooled(batches)
+            if pooled.error <= target or done >= max_steps:
+                break
+            # the error falls as 1/sqrt(steps): ask for the steps the error so far predicts (+10%)
+            wanted = min(max_steps, max(done + 1, int(np.ceil(1.1 * done * (pooled.error / target) ** 2))))
+        pooled = self._pooled(batches)
+        if pooled.error > target:
+            warnings.warn(f"evaluation stopped at max_samples={cap} ({done * self.n_samples} "
+                          f"samples) with error {pooled.error:.3g} > target_error={target:.3g}", stacklevel=3)
+        return pooled, float(np.mean(np.concatenate(acceptances)))
+
+    @staticmethod
+    def _pooled(batches):
+        stacked = jax.tree_util.tree_map(lambda *a: np.concatenate([np.atleast_1d(x) for x in a]), *batches)
+        return stats.combine_batches(stacked)
 
     def measure(self, state: TrainState, observables, n_samples: int, key: jax.Array | None = None,
                 burn_in_sweeps: int = 0, starts=None, chunk: int | None = None) -> dict:
@@ -516,4 +603,5 @@ class GroundStateSearch:
         all_hooks.extend(user_hooks)
         if writer is not None:
             all_hooks.append(writer)  # last: it saves what the other hooks saw
+        self._visit_length = steps_per_visit
         return run_loop(self._advance(steps_per_visit), state, n_steps, history, all_hooks, steps_per_visit)

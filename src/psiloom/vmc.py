@@ -157,17 +157,38 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         return optax.apply_updates(params, updates), opt_state
 
     # ------------------------------------------------------------------ steps
-    def step(state: VMCState):
+    def step(state: VMCState, learn=True):
+        """One step. ``learn`` (a Python or traced bool): ``False`` skips the gradient and the
+        update at run time (a ``lax.cond``), so the same compiled program also serves evaluation
+        passes: the chains move, the step's energy is estimated, parameters, optimiser state and
+        step count stay (``grad_norm`` is then 0)."""
         key, k_sample = jax.random.split(state.key)
         x, logs, chains, acc = sampling(k_sample, state.params, state.chains, n_per_chain)
         e_loc = local_energy(state.params, x, logs)
-        estimate, grad, e_loc = gradient(state.params, x, e_loc)
-        params, opt_state = solve(state.params, state.opt_state, grad, x, e_loc)
-        new = VMCState(state.step + 1, params, opt_state, chains, key)
-        return new, StepOutput(estimate, acc, tree_norm(grad))
 
-    def guarded_step(state: VMCState):
-        new, out = step(state)
+        def update(_):
+            estimate, grad, e_used = gradient(state.params, x, e_loc)
+            params, opt_state = solve(state.params, state.opt_state, grad, x, e_used)
+            return estimate, params, opt_state, tree_norm(grad), state.step + 1
+
+        if learn is True:  # the plain training step
+            estimate, params, opt_state, grad_norm, count = update(None)
+        else:  # the estimate outside the branches: compiled once (XLA drops the branch's copy)
+            estimate = stats.estimate(e_loc.reshape(-1, sampler.n_chains))
+
+            def learning(_):
+                _, params, opt_state, grad_norm, count = update(None)
+                return params, opt_state, grad_norm.astype(jnp.result_type(float)), count
+
+            def frozen(_):
+                return state.params, state.opt_state, jnp.zeros((), jnp.result_type(float)), state.step
+
+            params, opt_state, grad_norm, count = jax.lax.cond(learn, learning, frozen, None)
+        new = VMCState(count, params, opt_state, chains, key)
+        return new, StepOutput(estimate, acc, grad_norm)
+
+    def guarded_step(state: VMCState, learn=True):
+        new, out = step(state, learn)
         e = out.energy
         bad = (jnp.where(jnp.isfinite(e.mean) & jnp.isfinite(e.error), 0, NON_FINITE["energy"])
                | jnp.where(jnp.isfinite(out.grad_norm), 0, NON_FINITE["gradient"])
@@ -176,18 +197,20 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         kept = jax.tree_util.tree_map(lambda a, b: jnp.where(bad == 0, a, b), new, state)
         return kept, out, bad
 
-    def multi_step(state: VMCState, n_active, k: int):
+    def multi_step(state: VMCState, n_active, k: int, learn=True):
         """Up to ``k`` guarded steps (the first ``n_active``) in one scan. Returns the state,
         the stacked outputs of all ``k`` slots, ``taken`` (bool, the steps that replaced the
         state), the non-finite mask of the first bad step (0 if none) and its step number
-        (1-based, the value ``state.step`` would have had after it; 0 if none)."""
+        (1-based, the value ``state.step`` would have had after it; 0 if none). ``learn``
+        (traced bool) ``False``: steps that only sample and estimate (see ``step``); passing it
+        as an argument lets training and evaluation share one compiled program."""
         out_shape = jax.eval_shape(lambda s: step(s)[1], state)
 
         def skip(st):
             return st, strong(jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), out_shape)), jnp.int32(0)
 
         def take(st):
-            new, out, bad = guarded_step(st)
+            new, out, bad = guarded_step(st, learn)
             return new, strong(out), bad
 
         def body(carry, i):
