@@ -67,8 +67,7 @@ def runs(tmp_path_factory):
     ckpt4 = os.path.join(tmp, "four_devices.pkl")
     with ThreadPoolExecutor(2) as pool:
         four = pool.submit(_worker, "--devices", 4, "--checkpoint", ckpt4)
-        two = pool.submit(_worker, "--devices", 2, "--checks", "train,compiled")
-        results = {4: four.result(), 2: two.result()}
+        results = {4: four.result()}
         # one device, no mesh: the reference; it also resumes the 4-device checkpoint
         one = pool.submit(_worker, "--devices", 1, "--no-mesh", "--resume", ckpt4)
         pair = pool.submit(_two_processes, tmp)
@@ -81,8 +80,8 @@ def _close(a, b):
     return a.shape == b.shape and np.allclose(a, b, rtol=RTOL, atol=RTOL * np.max(np.abs(b)))
 
 
-@pytest.mark.parametrize("check, devices", [("train", 2), ("compiled", 2), ("train", 4), ("cg", 4),
-                                            ("compiled", 4), ("electron", 4)])
+# (a 2-device run was dropped for the suite's time: 4 devices and 2 processes cover the sharding)
+@pytest.mark.parametrize("check, devices", [("train", 4), ("cg", 4), ("compiled", 4), ("electron", 4)])
 def test_same_run_on_any_device_count(runs, check, devices):
     ref, got = runs[1][check], runs[devices][check]
     assert got["placed"], "chains not sharded or parameters not replicated after init/step"
@@ -100,7 +99,7 @@ def test_training_moves_the_parameters(runs):
     assert np.all(np.isfinite(e)) and np.ptp(e) > 1e-6
 
 
-@pytest.mark.parametrize("devices", [2, 4])
+@pytest.mark.parametrize("devices", [4])
 def test_compiled_sweeps_run_per_device(runs, devices):
     # shard_map hands every device's host call only its own chains (GSPMD alone would gather all)
     assert runs[devices]["compiled"]["chains_per_host_call"] == [8 // devices]
@@ -113,14 +112,14 @@ def test_checkpoint_from_four_devices_resumes_on_one(runs):
     assert _close(resumed["params"], ref["params"])
 
 
-def test_two_processes_equal_two_devices(runs):
+def test_two_processes_equal_one_device(runs):
     got = runs["2p"]
     if "skip" in got:
         pytest.skip(got["skip"])
     assert got["processes"] == 2 and got["devices"] == 2
     for check in ("train", "compiled"):
-        assert _close(got[check]["energies"], runs[2][check]["energies"])
-        assert _close(got[check]["params"], runs[2][check]["params"])
+        assert _close(got[check]["energies"], runs[1][check]["energies"])
+        assert _close(got[check]["params"], runs[1][check]["params"])
     assert got["compiled"]["chains_per_host_call"] == [4]
     # process-local chains joined in process order (make_array_from_process_local_data)
     local = np.arange(12.0).reshape(4, 3)

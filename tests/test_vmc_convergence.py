@@ -65,5 +65,7 @@ def test_tfim_ring_16_at_critical_field_reaches_free_fermion_energy():
     space = pl.spaces.SpinSpace(L)
     H = pl.operators.transverse_field_ising(lat, J=1.0, h=1.0)
     exact = pl.reference.tfim_ring_energy(L, 1.0, 1.0)  # Pfeuty 1970
-    energy, error = train_and_evaluate(H, space, None, alpha=2.0, n_steps=150, n_eval=98304)
-    check(energy, error, exact, tolerance=1e-4)
+    # tolerance 3e-4 keeps the evaluation at 16384 samples (its error bar must be ≤ 1/5 of it);
+    # benchmarks/ladder.py checks the TFIM rings to 1e-5
+    energy, error = train_and_evaluate(H, space, None, alpha=2.0, n_steps=150, n_eval=16384)
+    check(energy, error, exact, tolerance=3e-4)
