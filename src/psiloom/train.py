@@ -34,6 +34,7 @@ import jax.numpy as jnp
 import numpy as np
 import optax
 
+from psiloom.sampling.base import place_starts
 from psiloom import parallel
 from psiloom import stats
 from psiloom._validation import boolean, nonnegative_int, positive_int, positive_real
@@ -462,23 +463,9 @@ class GroundStateSearch:
         key = jax.random.fold_in(state.key, fold) if key is None else key
         chains = state.chains
         if starts is not None:
-            chains = chains._replace(x=self._with_starts(chains.x, starts))
+            chains = chains._replace(x=place_starts(self.sampler.space, chains.x, starts))
         return chains, key, n_per_chain, burn_in
 
-    def _with_starts(self, x, starts):
-        """``x`` with its first rows replaced by the validated ``starts`` (see :meth:`evaluate`)."""
-        space = self.sampler.space
-        starts = np.asarray(starts, dtype=np.float64)
-        if starts.ndim == 1:
-            starts = starts[None]
-        if starts.ndim != 2 or starts.shape[1] != x.shape[1] or not 1 <= starts.shape[0] <= x.shape[0]:
-            raise ValueError(f"starts must have shape (k, {x.shape[1]}) with 1 <= k <= n_chains = {x.shape[0]}, "
-                             f"got {starts.shape}")
-        bad = np.flatnonzero(~space.contains(starts))
-        if bad.size:
-            raise ValueError(f"starts row {int(bad[0])} is not a configuration of the space "
-                             f"({space!r}): {starts[bad[0]].tolist()}")
-        return x.at[: starts.shape[0]].set(jnp.asarray(starts, x.dtype))
 
     # ---------------------------------------------------------------- resume
     def compatibility_problems(self, state: TrainState, history: History | None = None) -> list[str]:

@@ -48,6 +48,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom.sampling.base import place_starts
 from psiloom import stats
 from psiloom._validation import boolean, finite_real, nonnegative_int, positive_int, positive_real
 from psiloom.batching import map_in_chunks
@@ -251,24 +252,12 @@ class TimeEvolution:
         else:
             chains = self.sampler.init(k_chain, self.bind(params))
             if starts is not None:
-                chains = self.sampler.refresh(chains._replace(x=self._with_starts(chains.x, starts)),
+                chains = self.sampler.refresh(chains._replace(x=place_starts(self.space, chains.x, starts)),
                                               self.bind(params))
         return strong(EvolutionState(jnp.asarray(time, jnp.result_type(float)),
                                      jnp.zeros((), jnp.int32), jnp.asarray(self.dt, jnp.result_type(float)),
                                      params, chains, k_run))
 
-    def _with_starts(self, x, starts):
-        space = self.space
-        starts = np.asarray(starts, dtype=np.float64)
-        if starts.ndim == 1:
-            starts = starts[None]
-        if starts.ndim != 2 or starts.shape[1] != x.shape[1] or not 1 <= starts.shape[0] <= x.shape[0]:
-            raise ValueError(f"starts must have shape (k, {x.shape[1]}) with 1 <= k <= n_chains = {x.shape[0]}, "
-                             f"got {starts.shape}")
-        bad = np.flatnonzero(~space.contains(starts))
-        if bad.size:
-            raise ValueError(f"starts row {int(bad[0])} is not a configuration of the space: {starts[bad[0]].tolist()}")
-        return x.at[: starts.shape[0]].set(jnp.asarray(starts, x.dtype))
 
     # ------------------------------------------------------------------ right-hand side
     def _samples(self, params, chains, key, n_per_chain):

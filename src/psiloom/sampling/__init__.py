@@ -5,7 +5,7 @@ Layout: ``base`` (the :class:`Sampler` interface, the shared acceptance step and
 collection driver), ``moves`` (typed proposal moves), ``metropolis``, ``tempering``,
 ``gibbs``, ``direct``, and ``compiled`` (Numba sweeps fed a state's plain RBM arrays)."""
 
-from psiloom.sampling.base import Sampler, burn_in_and_collect, metropolis_accept
+from psiloom.sampling.base import Sampler, burn_in_and_collect, metropolis_accept, place_starts
 from psiloom.sampling.direct import ChainRuleSampler, DrawInfo
 from psiloom.sampling.gibbs import BlockGibbsSampler, GibbsInfo, RBMWeights, gibbs_update, rbm_weights
 from psiloom.sampling.metropolis import ChainState, MetropolisChains, StepInfo, metropolis_step
@@ -31,7 +31,7 @@ from psiloom.sampling.tempering import (
 )
 
 __all__ = [
-    "Sampler", "metropolis_accept", "burn_in_and_collect",
+    "Sampler", "metropolis_accept", "burn_in_and_collect", "place_starts",
     "ChainState", "MetropolisChains", "StepInfo", "metropolis_step",
     "Move", "SingleFlip", "BondExchange", "PairExchange", "GlobalFlip", "Mixture", "OrderedMove",
     "single_flip", "pair_exchange", "global_flip",

@@ -26,6 +26,7 @@ from typing import Any, Callable, Protocol, runtime_checkable
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 
@@ -126,3 +127,23 @@ def burn_in_and_collect(key: jax.Array, state, sweep: Callable, n_burn: int, n_k
     if n_burn:
         state, _ = scan_sweeps(burn_sweep or sweep, state, burn_keys)
     return scan_sweeps(sweep, state, keep_keys, first=n_burn, record=record)
+
+
+def place_starts(space, x: jax.Array, starts) -> jax.Array:
+    """``x`` (``(n_chains, n_sites)``) with its first ``k`` rows replaced by ``starts``.
+
+    ``starts`` is one configuration or ``(k, n_sites)`` of them, ``1 ≤ k ≤ n_chains``; each must
+    belong to ``space`` (checked on the host, naming the first bad row). Used to start some chains
+    where training never went (e.g. the two Néel states) so that R̂ can show missed weight.
+    """
+    starts = np.asarray(starts, dtype=np.float64)
+    if starts.ndim == 1:
+        starts = starts[None]
+    if starts.ndim != 2 or starts.shape[1] != x.shape[1] or not 1 <= starts.shape[0] <= x.shape[0]:
+        raise ValueError(f"starts must have shape (k, {x.shape[1]}) with 1 <= k <= n_chains = {x.shape[0]}, "
+                         f"got {starts.shape}")
+    bad = np.flatnonzero(~space.contains(starts))
+    if bad.size:
+        raise ValueError(f"starts row {int(bad[0])} is not a configuration of the space "
+                         f"({space!r}): {starts[bad[0]].tolist()}")
+    return x.at[: starts.shape[0]].set(jnp.asarray(starts, x.dtype))
