@@ -69,7 +69,7 @@ def rows(saved: dict) -> list[str]:
                 f"| Metropolis sweep, RBM α=2, ring L=100, {m['n_chains']} chains, {m['order']} order: fast "
                 f"updates (compiled sweeps) vs full re-evaluation | "
                 f"{_spread(line['ratio'], line['ratio_min'], line['ratio_max'], '×')} faster"
-                + (f" (roofline bound {bound:.0f}×)" if bound else "") + f" | target ≥ 10× | {line['runs']} | "
+                + (f"; {bound:.0f}× if both paths ran at this CPU's roofline" if bound else "") + f" | target ≥ 10× | {line['runs']} | "
                 f"{_context(saved, quick)} |")
     return out
 

@@ -28,4 +28,4 @@ def test_rows_carry_median_spread_and_command():
                        {"summary": True, "quick": False}]}
     (row,) = table.rows(saved)
     assert "12× (11–14)" in row and "64 chains" in row and "`python benchmarks/throughput.py`" in row
-    assert "| 3 |" in row and "load 0.1→0.2" in row and "roofline bound 40×" in row
+    assert "| 3 |" in row and "load 0.1→0.2" in row and "40× if both paths ran at this CPU's roofline" in row
