@@ -5,7 +5,8 @@ training and the evaluation pass all counted), does a user wait for an evaluated
 of the Heisenberg-ring energy of at most ``TARGET`` (2e-4)? Each side runs as a subprocess:
 
 * the yardstick, a plain JAX RBM + dense SR script with 512 chains and full re-evaluation of
-  log ψ per proposal (``../shared/baselines/plain_vmc.py``, not part of psiloom; ``--yardstick``
+  log ψ per proposal (``benchmarks/baselines/plain_vmc.py``, an unchanged copy of the team's
+  yardstick kept here so the benchmark stands alone; not part of the package; ``--yardstick``
   points elsewhere), at the step count that reaches the target: its steps are raised from
   ``YARDSTICK_STEPS`` ×1.25 at a time until it does (the search is reported, not timed);
 * ``examples/ring_demo.py --sites L``, exactly what the README tells a user to run, twice per
@@ -36,7 +37,7 @@ import time
 from _common import emit, lattice_system, parse_args, progress, summary
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-DEFAULT_YARDSTICK = os.path.join(os.path.dirname(ROOT), "shared", "baselines", "plain_vmc.py")
+DEFAULT_YARDSTICK = os.path.join(ROOT, "benchmarks", "baselines", "plain_vmc.py")
 TARGET = 2e-4  # relative error of the evaluated energy
 TARGET_RATIO = 0.5
 # the yardstick's first step counts, below what reaches TARGET (its seed is fixed, so its error is a
