@@ -25,6 +25,7 @@ import scipy.sparse.linalg
 
 from psiloom._validation import boolean
 from psiloom.reference.lanczos import operator_matrix
+from psiloom.reference.vectors import _vector
 from psiloom.spaces import SpinSpace
 
 __all__ = ["evolve_state", "evolve_expectations"]
@@ -50,15 +51,9 @@ def check_time_grid(times, name: str = "times", strict: bool = True) -> np.ndarr
 
 
 def _initial(vector, size: int) -> np.ndarray:
-    v = np.asarray(vector)
-    if v.ndim != 1 or v.size != size:
-        raise ValueError(f"vector must have shape ({size},) for this space, got {v.shape}")
-    if not np.all(np.isfinite(v)):
-        raise ValueError("vector holds nan or inf")
-    norm = np.linalg.norm(v)
-    if norm == 0:
-        raise ValueError("vector is zero")
-    return v.astype(complex) / norm
+    """The validated start vector (see :func:`psiloom.reference.vectors._vector`), normalised, complex."""
+    v = _vector(vector, size)
+    return v.astype(complex) / np.linalg.norm(v)
 
 
 def evolve_state(hamiltonian, vector, times, space: SpinSpace | None = None, imaginary: bool = False) -> np.ndarray:
