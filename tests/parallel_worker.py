@@ -132,20 +132,20 @@ def check_cg():
 
 def check_compiled():
     """Real RBM with the compiled (Numba) sweeps, sample-space SR; records how many chains each
-    host call received."""
+    call of the kernel receives (seen when the call is traced: one trace per device block shape)."""
     calls = []
-    host = rbm_sweep._host_sweeps
+    host = rbm_sweep._foreign_sweeps
 
-    def spy(kind, table, x, *rest):
+    def spy(name, dtype, kind, table, messages, n_sweeps, x, *rest):
         calls.append(int(np.shape(x)[0]))
-        return host(kind, table, x, *rest)
+        return host(name, dtype, kind, table, messages, n_sweeps, x, *rest)
 
-    rbm_sweep._host_sweeps = spy
+    rbm_sweep._foreign_sweeps = spy
     try:
         search = lattice_search(sr("sample_space"), pl.states.RBM(alpha=1.0, init_scale=0.1), compiled=True)
         out = record(search, 2)
     finally:
-        rbm_sweep._host_sweeps = host
+        rbm_sweep._foreign_sweeps = host
     out["chains_per_host_call"] = sorted(set(calls))
     return out
 

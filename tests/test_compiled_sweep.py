@@ -230,3 +230,16 @@ def test_hidden_fields_beyond_the_pair_cache_limit_raise():
     state = sampler.refresh(pl.sampling.ChainState(x0, amp(x0)), amp)
     with pytest.raises(Exception, match="pair cache"):
         sampler.sample(jax.random.PRNGKey(3), state, amp, 2)
+
+
+def test_sampling_program_has_no_python_callback():
+    """The kernel is called as a named XLA foreign function, not through a Python callback: JAX's
+    persistent cache refuses programs with host callbacks ("Not writing persistent cache entry ...
+    because it uses host callbacks"), which made every process compile the training step again."""
+    space, model, variables = _setup(8, False, 0.3, 2)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=4)
+    amp = BoundState(model, variables)
+    state = sampler.init(jax.random.PRNGKey(1), amp)
+    text = jax.jit(lambda k: sampler.sample(k, state, amp, 2)[0]).lower(jax.random.PRNGKey(2)).as_text()
+    assert "psiloom_rbm_sweeps_float64" in text
+    assert "callback" not in text.lower()

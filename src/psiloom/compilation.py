@@ -25,10 +25,14 @@ def default_cache_dir() -> str:
     return os.path.join(base, "psiloom")
 
 
-def enable_compilation_cache(directory: str | None = None, min_compile_seconds: float = 0.5) -> str:
+def enable_compilation_cache(directory: str | None = None, min_compile_seconds: float = 0.0) -> str:
     """Keep XLA executables that took at least ``min_compile_seconds`` to compile in
     ``directory/jax`` (default :func:`default_cache_dir`), and point Numba's kernel cache at
     ``directory/numba`` unless ``NUMBA_CACHE_DIR`` is already set. Returns the directory.
+
+    The default keeps every program: a 16-site ring search compiles ~30 small programs (initial
+    values, random keys, the evaluation pass) of well under 0.5 s each, which together took
+    seconds of a short run when only the slow ones were kept.
 
     Safe to call more than once. Programs are looked up by a hash of the program, the compile
     options, the JAX/XLA versions and the device, so a stale entry is never reused for another

@@ -5,8 +5,9 @@ O(M) per chain (:mod:`psiloom.states.rbm`), and the state hands out its plain ar
 (:class:`~psiloom.states.RBMArrays`: W, a, b and the tables e^{±2W}) for kernels like this one. Expressed in JAX, every proposal is a handful of
 XLA kernels over the ``(n_chains, M)`` cache, and on a CPU their launch overhead, the
 materialised intermediates and the scalar reductions cost more than the arithmetic itself.
-This module runs the whole sweep as one loop nest compiled by Numba and called from JAX
-through :func:`jax.pure_callback`, with the same mathematics as the fast update:
+This module runs the whole sweep as one loop nest compiled by Numba and called from JAX as an
+XLA foreign function (:mod:`psiloom.sampling.xla_handlers`), with the same mathematics as the
+fast update:
 
     P_j = p_j e^{d_j},   Q_j = q_j e^{−d_j},
     Δ log ψ = a·(x' − x) + Σ_j log[(P_j + Q_j) / 2],
@@ -31,10 +32,13 @@ sampler falls back to the JAX path for everything else (complex parameters, move
 pair exchange or mixtures, a non-CPU backend, or Numba absent). Both give the same chain for
 the same random numbers to rounding of the log-ratios (``tests/test_compiled_sweep.py``). The
 random numbers are drawn in JAX and passed in: the kernel itself is deterministic. All sweeps
-of one :meth:`~psiloom.sampling.MetropolisChains.sample` call go to the kernel in one host
-call (:func:`host_call`, the only place that calls back to the host).
+of one :meth:`~psiloom.sampling.MetropolisChains.sample` call go to the kernel in one call
+(:func:`host_call`). A foreign function is looked up by name when the program runs, so unlike a
+:func:`jax.pure_callback` (a Python object of the running process) it leaves the program that
+calls it cacheable: a second process loads the compiled training step from JAX's persistent
+cache instead of compiling it again (seconds on two cores; ``benchmarks/time_to_accuracy.py``).
 
-Guards (raised as exceptions from the host call, never a crash or a silently wrong chain):
+Guards (errors raised by the call, never a crash or a silently wrong chain):
 non-finite parameters, tables, caches, log-amplitudes or uniforms are refused before the
 kernel runs; and where the hidden fields could reach the pair cache's limit (the smaller of
 ``1 ± tanh θ``, ~2e^{−2|θ|}, falls below the smallest normal number: |θ| ≳ 354 in float64, ≳ 44
@@ -236,39 +240,21 @@ def pair_cache_limit(dtype) -> float:
     return 0.5 * math.log(2.0 / float(np.finfo(dtype).tiny))
 
 
-def _refuse_non_finite(**arrays):
-    for name, a in arrays.items():
-        if not np.all(np.isfinite(a)):
-            raise FloatingPointError(f"compiled sweeps: non-finite {name} (NaN or inf); check the trial state's "
-                                     "parameters and the chains")
+# messages of the refusals, in the order of the handler's error codes (NUL-terminated rows)
+_NON_FINITE = ("parameters", "visible_bias_or_bounds", "cache", "cache_pair", "log_amplitudes", "configurations")
+_NAN_UNIFORMS, _LIMIT = len(_NON_FINITE), len(_NON_FINITE) + 1
+_MESSAGE_BYTES = 256
 
 
-def _host_sweeps(kind, table, x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):
-    """The host side of :func:`host_call`: checks, then :func:`_sweep_kernel` on writable copies
-    (the kernel works in place, and its parallel loop takes no read-only input)."""
-    x, plus, minus, log_amp, log_u, tables, bias_and_bounds = (
-        np.array(a) for a in (x, plus, minus, log_amp, log_u, tables, bias_and_bounds))
-    # a NaN or inf weight makes the tables e^{±2W} non-finite; a bad hidden bias the field bound
-    _refuse_non_finite(parameters=tables, visible_bias_or_bounds=bias_and_bounds, cache=plus, cache_pair=minus,
-                       log_amplitudes=log_amp, configurations=x)
-    if np.any(np.isnan(log_u)):  # −inf is a legitimate log u (u = 0)
-        raise FloatingPointError("compiled sweeps: NaN among the acceptance uniforms")
-    limit = pair_cache_limit(plus.dtype)
-    d_max, field_bound = float(bias_and_bounds[-2]), float(bias_and_bounds[-1])
-    guard = field_bound >= limit  # max_j |θ_j| over all x may reach the limit: check every update
-    tiny = float(np.finfo(plus.dtype).tiny)
-    if guard and min(float(plus.min()), float(minus.min())) < tiny:
-        raise FloatingPointError(_limit_message(limit))
-    n_sweeps = positions.shape[0]
-    xs = np.empty((n_sweeps, *x.shape), x.dtype)
-    log_amps = np.empty((n_sweeps, *log_amp.shape), log_amp.dtype)
-    accepted = np.zeros(n_sweeps, np.int64)
-    failed = np.zeros(-(-x.shape[0] // _CHAIN_BLOCK), np.int64)
-    _sweep_kernel(x, plus, minus, log_amp, table, np.array(positions, np.int64), log_u, tables[0], tables[1],
-                  bias_and_bounds[:-2], d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
-    if failed.any():
-        raise FloatingPointError(_limit_message(limit))
-    return xs, log_amps, plus, minus, accepted.astype(np.int32)
+def _messages(dtype) -> np.ndarray:
+    rows = [f"compiled sweeps: non-finite {name} (NaN or inf); check the trial state's parameters and the chains"
+            for name in _NON_FINITE]
+    rows += ["compiled sweeps: NaN among the acceptance uniforms", _limit_message(pair_cache_limit(dtype))]
+    out = np.zeros((len(rows), _MESSAGE_BYTES), np.uint8)
+    for i, row in enumerate(rows):
+        raw = row.encode()[:_MESSAGE_BYTES - 1]
+        out[i, :len(raw)] = np.frombuffer(raw, np.uint8)
+    return out
 
 
 def _limit_message(limit):
@@ -276,35 +262,157 @@ def _limit_message(limit):
             "underflows and fast updates lose log ψ; reduce the weights (or sample with fast=False)")
 
 
-def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, log_u, arrays):
-    """The one host callback: ``(xs, log_amps, plus, minus, accepted)`` of :func:`run_sweeps`.
+if numba is not None:
+    from numba import carray
 
-    With a sample mesh active (:mod:`psiloom.parallel`) every device runs the kernel on its own
-    chains (:func:`psiloom.parallel.per_device`); the accepted counts are summed over devices."""
+    from psiloom.sampling import xla_handlers as xh
+
+    _I64 = np.zeros(1, np.int64)
+    _I32 = np.zeros(1, np.int32)
+    _U8 = np.zeros(1, np.uint8)
+
+    @numba.njit(cache=True, nogil=True)
+    def _all_finite(a) -> bool:
+        for v in a.ravel():
+            if not np.isfinite(v):
+                return False
+        return True
+
+    @numba.njit(cache=True, nogil=True)
+    def _run_frame(frame, like) -> int:
+        """The handler's body for the float type of ``like``: read the call frame (arguments
+        x, plus, minus, log ψ, positions, log u, tables e^{±2W}, bias and bounds, the move table,
+        the sizes, the messages; results xs, log ψs, plus, minus, accepted), check, sweep."""
+        f = carray(frame, (15,))
+        if xh.answer_metadata(f):
+            return 0
+        sizes = carray(xh.pointer(xh.buffer_address(f, 9, False), _I64), (9,))
+        kind, n_chains, n, m, n_sweeps, s, width, n_table, k = (sizes[0], sizes[1], sizes[2], sizes[3], sizes[4],
+                                                                  sizes[5], sizes[6], sizes[7], sizes[8])
+        messages = xh.buffer_address(f, 10, False)
+        x_in = carray(xh.pointer(xh.buffer_address(f, 0, False), like), (n_chains, n))
+        plus_in = carray(xh.pointer(xh.buffer_address(f, 1, False), like), (n_chains, m))
+        minus_in = carray(xh.pointer(xh.buffer_address(f, 2, False), like), (n_chains, m))
+        log_in = carray(xh.pointer(xh.buffer_address(f, 3, False), like), (n_chains,))
+        positions = carray(xh.pointer(xh.buffer_address(f, 4, False), _I64), (n_sweeps, s, width))
+        log_u = carray(xh.pointer(xh.buffer_address(f, 5, False), like), (n_sweeps, s, n_chains))
+        tables = carray(xh.pointer(xh.buffer_address(f, 6, False), like), (2, n, m))
+        bias_and_bounds = carray(xh.pointer(xh.buffer_address(f, 7, False), like), (n + 2,))
+        table = carray(xh.pointer(xh.buffer_address(f, 8, False), _I64), (n_table, k))
+        xs = carray(xh.pointer(xh.buffer_address(f, 0, True), like), (n_sweeps, n_chains, n))
+        log_amps = carray(xh.pointer(xh.buffer_address(f, 1, True), like), (n_sweeps, n_chains))
+        plus = carray(xh.pointer(xh.buffer_address(f, 2, True), like), (n_chains, m))
+        minus = carray(xh.pointer(xh.buffer_address(f, 3, True), like), (n_chains, m))
+        accepted_out = carray(xh.pointer(xh.buffer_address(f, 4, True), _I32), (n_sweeps,))
+        # a NaN or inf weight makes the tables e^{±2W} non-finite; a bad hidden bias the field bound
+        if not _all_finite(tables):
+            return xh.error(frame, messages)
+        if not _all_finite(bias_and_bounds):
+            return xh.error(frame, messages + 256)
+        if not _all_finite(plus_in):
+            return xh.error(frame, messages + 2 * 256)
+        if not _all_finite(minus_in):
+            return xh.error(frame, messages + 3 * 256)
+        if not _all_finite(log_in):
+            return xh.error(frame, messages + 4 * 256)
+        if not _all_finite(x_in):
+            return xh.error(frame, messages + 5 * 256)
+        for v in log_u.ravel():  # −inf is a legitimate log u (u = 0)
+            if np.isnan(v):
+                return xh.error(frame, messages + 6 * 256)
+        tiny = np.finfo(like.dtype).tiny
+        limit = 0.5 * np.log(2.0 / tiny)
+        d_max, field_bound = bias_and_bounds[n], bias_and_bounds[n + 1]
+        guard = field_bound >= limit  # max_j |θ_j| over all x may reach the limit: check every update
+        if guard and min(plus_in.min(), minus_in.min()) < tiny:
+            return xh.error(frame, messages + 7 * 256)
+        x = x_in.copy()  # the kernel works in place
+        log_amp = log_in.copy()
+        plus[:] = plus_in
+        minus[:] = minus_in
+        accepted = np.zeros(n_sweeps, np.int64)
+        failed = np.zeros(-(-n_chains // _CHAIN_BLOCK), np.int64)
+        _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, tables[0], tables[1],
+                      bias_and_bounds[:n], d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
+        if failed.any():
+            return xh.error(frame, messages + 7 * 256)
+        for i in range(n_sweeps):
+            accepted_out[i] = accepted[i]
+        return 0
+
+    _F64 = np.zeros(1, np.float64)
+    _F32 = np.zeros(1, np.float32)
+
+
+@functools.cache
+def _handler(dtype: np.dtype):
+    """(name, Numba ``cfunc``) of the foreign-function handler for caches of ``dtype``, made and
+    registered with XLA on first use. Numba's threading layer (the kernel's parallel loop) is
+    started first: a handler loaded from the on-disk cache does not start it and fails to link
+    ("Symbol not found: allocate_sched")."""
+    from psiloom.sampling import xla_handlers
+    numba.get_num_threads()  # starts the threading layer
+    signature = numba.types.int64(numba.types.CPointer(numba.types.int64))
+    if dtype == np.dtype(np.float64):
+        @numba.cfunc(signature, cache=True, nogil=True)
+        def handler(frame):
+            return _run_frame(frame, _F64)
+    elif dtype == np.dtype(np.float32):
+        @numba.cfunc(signature, cache=True, nogil=True)
+        def handler(frame):
+            return _run_frame(frame, _F32)
+    else:
+        raise ValueError(f"compiled sweeps take float32 or float64 caches, got {dtype}")
+    name = f"psiloom_rbm_sweeps_{dtype.name}"
+    xla_handlers.register(name, handler)
+    return name, handler
+
+
+def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, log_u, arrays):
+    """The one call of the compiled kernel on the host CPU: ``(xs, log_amps, plus, minus, accepted)`` of :func:`run_sweeps`.
+
+    An XLA foreign-function call (:mod:`psiloom.sampling.xla_handlers`), not a Python callback,
+    so a program containing it is kept in the persistent compilation cache. With a sample mesh
+    active (:mod:`psiloom.parallel`) every device runs the kernel on its own chains
+    (:func:`psiloom.parallel.per_device`); the accepted counts are summed over devices."""
     kernel = arrays.kernel
+    dtype = np.dtype(plus.dtype)
+    name, _ = _handler(dtype)
     bias = jnp.zeros(kernel.shape[0], kernel.dtype) if arrays.visible_bias is None else arrays.visible_bias
     d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
     field = jnp.sum(jnp.abs(kernel), axis=0)  # max_j |θ_j| over all x ≤ Σ_i |W_ij| + |b_j|
     if arrays.hidden_bias is not None:
         field = field + jnp.abs(arrays.hidden_bias)
-    bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None]]).astype(kernel.dtype)
-    tables = jnp.stack([arrays.rise, arrays.fall])
+    bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None]]).astype(dtype)
+    tables = jnp.stack([arrays.rise, arrays.fall]).astype(dtype)
     n_sweeps = positions.shape[0]
+    table = np.ascontiguousarray(table, np.int64)
+    messages = _messages(dtype)
 
-    def call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):  # one device's chains
-        shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), x.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), log_amp.dtype),
-                  jax.ShapeDtypeStruct(plus.shape, plus.dtype),
-                  jax.ShapeDtypeStruct(minus.shape, minus.dtype),
-                  jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
-        return jax.pure_callback(
-            lambda *a: _host_sweeps(kind, table, *a), shapes, x, plus, minus, log_amp, positions, log_u,
-            tables, bias_and_bounds, vmap_method="sequential")
+    def call(*args):  # one device's chains
+        return _foreign_sweeps(name, dtype, kind, table, messages, n_sweeps, *args)
 
     per_chain_positions = 2 if positions.shape[2] == x.shape[0] and x.shape[0] > 1 else None
     call = parallel.per_device(call, in_axes=(0, 0, 0, 0, per_chain_positions, 2, None, None),
                                out_axes=(1, 1, 0, 0, "sum"))
-    return call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds)
+    xs, log_amps, plus, minus, accepted = call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds)
+    return xs.astype(x.dtype), log_amps.astype(log_amp.dtype), plus, minus, accepted
+
+
+def _foreign_sweeps(name: str, dtype, kind: int, table: np.ndarray, messages: np.ndarray, n_sweeps: int,
+                    x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):
+    """The foreign-function call of one device's chains (traced once per shape)."""
+    shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), dtype),
+              jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), dtype),
+              jax.ShapeDtypeStruct(plus.shape, dtype),
+              jax.ShapeDtypeStruct(minus.shape, dtype),
+              jax.ShapeDtypeStruct((n_sweeps,), jnp.int32))
+    sizes = np.array([kind, x.shape[0], x.shape[1], plus.shape[1], n_sweeps, positions.shape[1],
+                      positions.shape[2], table.shape[0], table.shape[1]], np.int64)
+    # has_side_effect: the call may refuse its input (an error), so XLA must not drop it
+    return jax.ffi.ffi_call(name, shapes, vmap_method="sequential", has_side_effect=True)(
+        x.astype(dtype), plus.astype(dtype), minus.astype(dtype), log_amp.astype(dtype),
+        positions.astype(jnp.int64), log_u.astype(dtype), tables, bias_and_bounds, table, sizes, messages)
 
 
 def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
@@ -320,7 +428,7 @@ def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
     Returns ``(xs, log_amps, cache, accepted)``: ``xs`` (n_sweeps, n_chains, N) and ``log_amps``
     (n_sweeps, n_chains) the chains after every sweep, ``cache`` that of ``xs[-1]`` (the input
     cache's type), ``accepted`` (n_sweeps,) int32 the accepted proposals (null ones included)
-    per sweep. Usable inside ``jax.jit``: one host call for all sweeps (a host callback costs
+    per sweep. Usable inside ``jax.jit``: one call for all sweeps (a call to the host costs
     ~0.1-0.5 ms here, more than one sweep of a small state). The chains are those that the fast
     update with the Metropolis rule produces from the same numbers.
     """
