@@ -49,6 +49,8 @@ Numba's on-disk cache goes to ``$NUMBA_CACHE_DIR`` when the user set it, else to
 ``$XDG_CACHE_HOME/psiloom/numba`` (``~/.cache/psiloom/numba``), never into the package folder.
 """
 
+# mypy: disable-error-code="call-arg"
+# (the Numba intrinsic xla_handlers.pointer is typed with its typing context as first parameter)
 from __future__ import annotations
 
 import functools

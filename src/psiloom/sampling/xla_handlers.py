@@ -23,10 +23,12 @@ unsupported API version at registration):
   raises in the caller with the message; success returns a null pointer.
 
 The handler itself (a :func:`numba.cfunc` of signature ``int64(int64*)``) is written by the
-caller with :func:`buffer`, :func:`answer_metadata` and :func:`error`; :func:`register` hands it
+caller with :func:`buffer_address`, ``pointer`` (a Numba intrinsic), :func:`answer_metadata` and :func:`error`; :func:`register` hands it
 to XLA under a name, once per process.
 """
 
+# mypy: disable-error-code="call-arg"
+# (Numba intrinsics are typed with their typing context as the first parameter, which callers never pass)
 from __future__ import annotations
 
 import ctypes
@@ -41,7 +43,7 @@ except ImportError:  # pragma: no cover - without Numba nothing here is used (co
     numba = None  # type: ignore[assignment]
 
 METADATA_EXTENSION = 1  #: ``XLA_FFI_Extension_Type`` of the registration-time metadata query
-API_VERSION = (0, 1)  #: FFI API version (major, minor) the handlers answer: the call-frame layout read here
+API_VERSION = (0, 1)  #: the FFI API version (major, minor) the handlers answer, whose call-frame layout is read here
 INVALID_ARGUMENT = 3  #: ``XLA_FFI_Error_Code`` reported for a refused call
 _ARGS_WORD, _RETS_WORD = 5, 10  # first word of the frame's argument / result structs
 _ERROR_CREATE_WORD = 6  # word of XLA_FFI_Error_Create in the API struct
