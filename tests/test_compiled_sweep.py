@@ -241,5 +241,19 @@ def test_sampling_program_has_no_python_callback():
     amp = BoundState(model, variables)
     state = sampler.init(jax.random.PRNGKey(1), amp)
     text = jax.jit(lambda k: sampler.sample(k, state, amp, 2)[0]).lower(jax.random.PRNGKey(2)).as_text()
-    assert "psiloom_rbm_sweeps_float64" in text
+    assert "psiloom_rbm_sweeps_float64_serial" in text  # 4 chains: the serial kernel
     assert "callback" not in text.lower()
+
+
+def test_parallel_kernel_chain_equals_jax_path():
+    """Enough chains × hidden units (≥ compiled.PARALLEL_WORK) select the kernel whose chain blocks
+    run on several threads: its chains equal the JAX fast path's as the serial kernel's do."""
+    space, model, variables = _setup(16, True, 0.3, 7)  # M = 32 hidden units
+    n_chains = -(-compiled.PARALLEL_WORK // 32)
+    a = _run(space, model, variables, "random", True, n_chains=n_chains, n_per_chain=2, seed=8)
+    b = _run(space, model, variables, "random", False, n_chains=n_chains, n_per_chain=2, seed=8)
+    text = jax.jit(lambda: _run(space, model, variables, "random", True, n_chains=n_chains, n_per_chain=2,
+                                seed=8)[0]).lower().as_text()
+    assert "psiloom_rbm_sweeps_float64_parallel" in text
+    np.testing.assert_array_equal(np.asarray(a[0]), np.asarray(b[0]))
+    np.testing.assert_allclose(np.asarray(a[1]), np.asarray(b[1]), rtol=0, atol=1e-10)

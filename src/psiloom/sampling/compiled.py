@@ -113,7 +113,6 @@ def _fill_factors(fwd_p, fwd_q, row, i, j, rise, fall, kind):
             fwd_q[row, u] = rise[i, u] * fall[j, u]
 
 
-@functools.partial(_compiled, parallel=True)
 def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, bias, d_max, kind,
                   guard, tiny, xs, log_amps, accepted, failed):
     """In place: ``n_sweeps = len(positions)`` sweeps of ``S = positions.shape[1]`` proposals in
@@ -236,6 +235,25 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
         accepted[s] = accepted_per_chain[s].sum()
 
 
+def _renamed(fn, name: str):
+    """A copy of the plain function ``fn`` under another name (its own Numba cache entries)."""
+    import types as pytypes
+    copy = pytypes.FunctionType(fn.__code__.replace(co_name=name), fn.__globals__, name, fn.__defaults__)
+    copy.__qualname__, copy.__doc__ = name, fn.__doc__
+    return copy
+
+
+# Two compilations of the kernel: chains in parallel blocks (Numba's parallel loop: ~12 s of
+# compilation on a 2-core CPU the first time on a machine, then cached on disk) and one block
+# after another (~2 s). The parallel one runs only where the work per proposal across chains,
+# n_chains · M, reaches PARALLEL_WORK: below it the threads gain little and a newcomer's first
+# run would pay the long compilation for nothing.
+PARALLEL_WORK = 2048  #: n_chains · M (hidden units) from which the chains of a call are swept by several threads
+_sweep_kernel_serial = (None if numba is None else  # inlined into its handler: its code is compiled once, there
+                        numba.njit(nogil=True, inline="always")(_renamed(_sweep_kernel, "_sweep_kernel_serial")))
+_sweep_kernel = _compiled(_sweep_kernel, parallel=True)
+
+
 def pair_cache_limit(dtype) -> float:
     """|θ| beyond which the smaller member of the pair ``1 ± tanh θ`` (~2e^{−2|θ|}) falls below
     the smallest normal number of ``dtype``: ½ log(2 / tiny) (354.5 in float64, 44.0 in float32)."""
@@ -245,6 +263,7 @@ def pair_cache_limit(dtype) -> float:
 # messages of the refusals, in the order of the handler's error codes (NUL-terminated rows)
 _NON_FINITE = ("parameters", "visible_bias_or_bounds", "cache", "cache_pair", "log_amplitudes", "configurations")
 _NAN_UNIFORMS, _LIMIT = len(_NON_FINITE), len(_NON_FINITE) + 1
+_N_FLAGS = _LIMIT + 2  # a flag per refusal, then the guard (check every accepted update)
 _MESSAGE_BYTES = 256
 
 
@@ -273,25 +292,24 @@ if numba is not None:
     _I32 = np.zeros(1, np.int32)
     _U8 = np.zeros(1, np.uint8)
 
-    @numba.njit(cache=True, nogil=True)
-    def _all_finite(a) -> bool:
-        for v in a.ravel():
-            if not np.isfinite(v):
-                return False
-        return True
-
-    @numba.njit(cache=True, nogil=True)
-    def _run_frame(frame, like) -> int:
+    @numba.njit(nogil=True, inline="always")  # inlined into the handler: compiled once, there
+    def _run_frame(frame, like, kernel) -> int:
         """The handler's body for the float type of ``like``: read the call frame (arguments
         x, plus, minus, log ψ, positions, log u, tables e^{±2W}, bias and bounds, the move table,
-        the sizes, the messages; results xs, log ψs, plus, minus, accepted), check, sweep."""
+        the sizes, the refusal flags (checked in JAX before the call), the messages; results
+        xs, log ψs, plus, minus, accepted), refuse or sweep. Kept small: every line here is
+        compiled on a machine's first run."""
         f = carray(frame, (15,))
         if xh.answer_metadata(f):
             return 0
         sizes = carray(xh.pointer(xh.buffer_address(f, 9, False), _I64), (9,))
         kind, n_chains, n, m, n_sweeps, s, width, n_table, k = (sizes[0], sizes[1], sizes[2], sizes[3], sizes[4],
                                                                   sizes[5], sizes[6], sizes[7], sizes[8])
-        messages = xh.buffer_address(f, 10, False)
+        flags = carray(xh.pointer(xh.buffer_address(f, 10, False), _I64), (_N_FLAGS,))
+        messages = xh.buffer_address(f, 11, False)
+        for code in range(_N_FLAGS - 1):
+            if flags[code] != 0:
+                return xh.error(frame, messages + code * _MESSAGE_BYTES)
         x_in = carray(xh.pointer(xh.buffer_address(f, 0, False), like), (n_chains, n))
         plus_in = carray(xh.pointer(xh.buffer_address(f, 1, False), like), (n_chains, m))
         minus_in = carray(xh.pointer(xh.buffer_address(f, 2, False), like), (n_chains, m))
@@ -299,45 +317,25 @@ if numba is not None:
         positions = carray(xh.pointer(xh.buffer_address(f, 4, False), _I64), (n_sweeps, s, width))
         log_u = carray(xh.pointer(xh.buffer_address(f, 5, False), like), (n_sweeps, s, n_chains))
         tables = carray(xh.pointer(xh.buffer_address(f, 6, False), like), (2, n, m))
-        bias_and_bounds = carray(xh.pointer(xh.buffer_address(f, 7, False), like), (n + 2,))
+        bias_and_bounds = carray(xh.pointer(xh.buffer_address(f, 7, False), like), (n + 3,))
         table = carray(xh.pointer(xh.buffer_address(f, 8, False), _I64), (n_table, k))
         xs = carray(xh.pointer(xh.buffer_address(f, 0, True), like), (n_sweeps, n_chains, n))
         log_amps = carray(xh.pointer(xh.buffer_address(f, 1, True), like), (n_sweeps, n_chains))
         plus = carray(xh.pointer(xh.buffer_address(f, 2, True), like), (n_chains, m))
         minus = carray(xh.pointer(xh.buffer_address(f, 3, True), like), (n_chains, m))
         accepted_out = carray(xh.pointer(xh.buffer_address(f, 4, True), _I32), (n_sweeps,))
-        # a NaN or inf weight makes the tables e^{±2W} non-finite; a bad hidden bias the field bound
-        if not _all_finite(tables):
-            return xh.error(frame, messages)
-        if not _all_finite(bias_and_bounds):
-            return xh.error(frame, messages + 256)
-        if not _all_finite(plus_in):
-            return xh.error(frame, messages + 2 * 256)
-        if not _all_finite(minus_in):
-            return xh.error(frame, messages + 3 * 256)
-        if not _all_finite(log_in):
-            return xh.error(frame, messages + 4 * 256)
-        if not _all_finite(x_in):
-            return xh.error(frame, messages + 5 * 256)
-        for v in log_u.ravel():  # −inf is a legitimate log u (u = 0)
-            if np.isnan(v):
-                return xh.error(frame, messages + 6 * 256)
-        tiny = np.finfo(like.dtype).tiny
-        limit = 0.5 * np.log(2.0 / tiny)
-        d_max, field_bound = bias_and_bounds[n], bias_and_bounds[n + 1]
-        guard = field_bound >= limit  # max_j |θ_j| over all x may reach the limit: check every update
-        if guard and min(plus_in.min(), minus_in.min()) < tiny:
-            return xh.error(frame, messages + 7 * 256)
         x = x_in.copy()  # the kernel works in place
         log_amp = log_in.copy()
         plus[:] = plus_in
         minus[:] = minus_in
         accepted = np.zeros(n_sweeps, np.int64)
         failed = np.zeros(-(-n_chains // _CHAIN_BLOCK), np.int64)
-        _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, tables[0], tables[1],
-                      bias_and_bounds[:n], d_max, kind, guard, tiny, xs, log_amps, accepted, failed)
+        guard = flags[_N_FLAGS - 1] != 0
+        kernel(x, plus, minus, log_amp, table, positions, log_u, tables[0], tables[1],
+               bias_and_bounds[:n], bias_and_bounds[n], kind, guard, bias_and_bounds[n + 2], xs, log_amps,
+               accepted, failed)
         if failed.any():
-            return xh.error(frame, messages + 7 * 256)
+            return xh.error(frame, messages + _LIMIT * _MESSAGE_BYTES)
         for i in range(n_sweeps):
             accepted_out[i] = accepted[i]
         return 0
@@ -347,25 +345,39 @@ if numba is not None:
 
 
 @functools.cache
-def _handler(dtype: np.dtype):
-    """(name, Numba ``cfunc``) of the foreign-function handler for caches of ``dtype``, made and
-    registered with XLA on first use. Numba's threading layer (the kernel's parallel loop) is
-    started first: a handler loaded from the on-disk cache does not start it and fails to link
-    ("Symbol not found: allocate_sched")."""
+def _handler(dtype: np.dtype, parallel: bool):
+    """(name, Numba ``cfunc``) of the foreign-function handler for caches of ``dtype``, with the
+    parallel or the serial kernel, made and registered with XLA on first use. Numba's threading
+    layer is started first: a handler with the parallel kernel loaded from the on-disk cache does
+    not start it and fails to link ("Symbol not found: allocate_sched")."""
     from psiloom.sampling import xla_handlers
-    numba.get_num_threads()  # starts the threading layer
     signature = numba.types.int64(numba.types.CPointer(numba.types.int64))
-    if dtype == np.dtype(np.float64):
-        @numba.cfunc(signature, cache=True, nogil=True)
-        def handler(frame):
-            return _run_frame(frame, _F64)
+    compile_handler = numba.cfunc(signature, cache=True, nogil=True)
+    if parallel:
+        numba.get_num_threads()  # starts the threading layer
+    if dtype == np.dtype(np.float64) and parallel:
+        @compile_handler
+        def handler_float64_parallel(frame):
+            return _run_frame(frame, _F64, _sweep_kernel)
+        handler = handler_float64_parallel
+    elif dtype == np.dtype(np.float64):
+        @compile_handler
+        def handler_float64_serial(frame):
+            return _run_frame(frame, _F64, _sweep_kernel_serial)
+        handler = handler_float64_serial
+    elif dtype == np.dtype(np.float32) and parallel:
+        @compile_handler
+        def handler_float32_parallel(frame):
+            return _run_frame(frame, _F32, _sweep_kernel)
+        handler = handler_float32_parallel
     elif dtype == np.dtype(np.float32):
-        @numba.cfunc(signature, cache=True, nogil=True)
-        def handler(frame):
-            return _run_frame(frame, _F32)
+        @compile_handler
+        def handler_float32_serial(frame):
+            return _run_frame(frame, _F32, _sweep_kernel_serial)
+        handler = handler_float32_serial
     else:
         raise ValueError(f"compiled sweeps take float32 or float64 caches, got {dtype}")
-    name = f"psiloom_rbm_sweeps_{dtype.name}"
+    name = f"psiloom_rbm_sweeps_{dtype.name}_{'parallel' if parallel else 'serial'}"
     xla_handlers.register(name, handler)
     return name, handler
 
@@ -379,14 +391,26 @@ def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, 
     (:func:`psiloom.parallel.per_device`); the accepted counts are summed over devices."""
     kernel = arrays.kernel
     dtype = np.dtype(plus.dtype)
-    name, _ = _handler(dtype)
+    name, _ = _handler(dtype, x.shape[0] * plus.shape[1] >= PARALLEL_WORK)
     bias = jnp.zeros(kernel.shape[0], kernel.dtype) if arrays.visible_bias is None else arrays.visible_bias
     d_max = 4.0 * jnp.max(jnp.abs(kernel))  # |d| ≤ 2|W_i| + 2|W_j|
     field = jnp.sum(jnp.abs(kernel), axis=0)  # max_j |θ_j| over all x ≤ Σ_i |W_ij| + |b_j|
     if arrays.hidden_bias is not None:
         field = field + jnp.abs(arrays.hidden_bias)
-    bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None]]).astype(dtype)
     tables = jnp.stack([arrays.rise, arrays.fall]).astype(dtype)
+    limit, tiny = pair_cache_limit(dtype), float(np.finfo(dtype).tiny)
+    guard = jnp.max(field) >= limit  # max_j |θ_j| over all x may reach the limit: check every update
+
+    def not_finite(a):
+        return jnp.any(~jnp.isfinite(a))
+
+    # the refusals, in the order of _NON_FINITE, then NaN uniforms (−inf is a legitimate log u, u = 0),
+    # then a start beyond the pair cache's limit; a NaN or inf weight makes the tables non-finite
+    flags = jnp.stack([not_finite(tables), not_finite(bias) | ~jnp.isfinite(d_max) | ~jnp.isfinite(jnp.max(field)),
+                       not_finite(plus), not_finite(minus), not_finite(log_amp), not_finite(x),
+                       jnp.any(jnp.isnan(log_u)),
+                       guard & (jnp.minimum(jnp.min(plus), jnp.min(minus)) < tiny), guard]).astype(jnp.int64)
+    bias_and_bounds = jnp.concatenate([bias, d_max[None], jnp.max(field)[None], jnp.full((1,), tiny)]).astype(dtype)
     n_sweeps = positions.shape[0]
     table = np.ascontiguousarray(table, np.int64)
     messages = _messages(dtype)
@@ -395,14 +419,15 @@ def host_call(kind: int, table: np.ndarray, x, plus, minus, log_amp, positions, 
         return _foreign_sweeps(name, dtype, kind, table, messages, n_sweeps, *args)
 
     per_chain_positions = 2 if positions.shape[2] == x.shape[0] and x.shape[0] > 1 else None
-    call = parallel.per_device(call, in_axes=(0, 0, 0, 0, per_chain_positions, 2, None, None),
+    call = parallel.per_device(call, in_axes=(0, 0, 0, 0, per_chain_positions, 2, None, None, None),
                                out_axes=(1, 1, 0, 0, "sum"))
-    xs, log_amps, plus, minus, accepted = call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds)
+    xs, log_amps, plus, minus, accepted = call(x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds,
+                                               flags)
     return xs.astype(x.dtype), log_amps.astype(log_amp.dtype), plus, minus, accepted
 
 
 def _foreign_sweeps(name: str, dtype, kind: int, table: np.ndarray, messages: np.ndarray, n_sweeps: int,
-                    x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds):
+                    x, plus, minus, log_amp, positions, log_u, tables, bias_and_bounds, flags):
     """The foreign-function call of one device's chains (traced once per shape)."""
     shapes = (jax.ShapeDtypeStruct((n_sweeps, *x.shape), dtype),
               jax.ShapeDtypeStruct((n_sweeps, *log_amp.shape), dtype),
@@ -414,7 +439,7 @@ def _foreign_sweeps(name: str, dtype, kind: int, table: np.ndarray, messages: np
     # has_side_effect: the call may refuse its input (an error), so XLA must not drop it
     return jax.ffi.ffi_call(name, shapes, vmap_method="sequential", has_side_effect=True)(
         x.astype(dtype), plus.astype(dtype), minus.astype(dtype), log_amp.astype(dtype),
-        positions.astype(jnp.int64), log_u.astype(dtype), tables, bias_and_bounds, table, sizes, messages)
+        positions.astype(jnp.int64), log_u.astype(dtype), tables, bias_and_bounds, table, sizes, flags, messages)
 
 
 def run_sweeps(arrays, x, cache, log_amp, table, positions, log_u, kind: str):
