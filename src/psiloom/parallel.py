@@ -25,15 +25,15 @@ draw of shape ``(n_chains, ...)`` gives the same numbers whether it is computed 
 shard. With the same seed a run on 1, 2 or 4 devices makes the same chains; only the order of
 floating-point additions inside the all-reduces differs (agreement to ~1e-12 relative).
 
-Host callbacks (:func:`jax.pure_callback`, e.g. the compiled Numba sweeps) are not partitioned
-by GSPMD: under a sharded ``jit`` the partitioner gathers every operand onto one device, runs the
-callback there once for all chains and scatters the results back (it warns "Involuntary full
-rematerialization"). The results are right but one device does all the work. :func:`per_device`
+Calls to the host (:func:`jax.pure_callback`, or foreign functions such as the compiled Numba
+sweeps) are not partitioned by GSPMD: under a sharded ``jit`` the partitioner gathers every
+operand onto one device, runs the call there once for all chains and scatters the results back
+(it warns "Involuntary full rematerialization"). The results are right but one device does all the work. :func:`per_device`
 wraps such a call in :func:`jax.shard_map` over the sample axis, so each device calls the host
 function on its own chains.
 
 Known limit: several *simulated* CPU devices in one process share XLA's CPU thread pool, and
-with host callbacks in the step (the compiled sweeps) its in-process all-reduce was seen to
+with host calls in the step (the compiled sweeps, then a Python callback) its in-process all-reduce was seen to
 deadlock on a 2-core machine (L=16, 32 chains on 2 devices: XLA aborts after 40 s waiting for one
 device at the rendezvous), whether the callback ran per device or gathered on one. Tiny runs
 (8 chains) pass. Use ``compiled_sweeps=False`` with simulated devices, or one process per device

@@ -143,7 +143,7 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
             _fill_factors(fwd_p, fwd_q, k, table[k, 0], table[k, kind - 1], rise, fall, kind)
     n_sweeps, n_steps = positions.shape[:2]
     shared = 1 if positions.shape[2] == 1 else 0  # one position per step for all chains
-    accepted_per_chain = np.zeros((n_sweeps, n_chains), np.int64)
+    accepted_per_chain = np.empty((n_sweeps, n_chains), np.int64)  # every entry written below
     n_blocks = (n_chains + _CHAIN_BLOCK - 1) // _CHAIN_BLOCK
     # chains are independent: blocks of chains run in parallel; within a block all chains make
     # proposal t before any makes t + 1, so a factor row is read once per block, not per chain
@@ -152,10 +152,14 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
         last = min(first + _CHAIN_BLOCK, n_chains)
         ratio = np.empty(m, plus.dtype)
         # per-block accumulators (no cache line shared with another thread's chains)
-        block_log_amp = log_amp[first:last].copy()
-        block_accepted = np.zeros(last - first, np.int64)
+        # (element loops rather than slices, .copy() or .sum(): the same work, seconds less to compile)
+        block_log_amp = np.empty(last - first, log_amp.dtype)
+        for chain in range(first, last):
+            block_log_amp[chain - first] = log_amp[chain]
+        block_accepted = np.empty(last - first, np.int64)
         for s in range(n_sweeps):
-            block_accepted[:] = 0
+            for chain in range(last - first):
+                block_accepted[chain] = 0
             for t in range(n_steps):
                 for chain in range(first, last):
                     k = positions[s, t, (1 - shared) * chain] % n_positions
@@ -227,12 +231,17 @@ def _sweep_kernel(x, plus, minus, log_amp, table, positions, log_u, rise, fall, 
                             xc[i] = xj
                             xc[j] = xi
             for chain in range(first, last):
-                xs[s, chain] = x[chain]
+                for i in range(x.shape[1]):
+                    xs[s, chain, i] = x[chain, i]
                 log_amps[s, chain] = block_log_amp[chain - first]
                 accepted_per_chain[s, chain] = block_accepted[chain - first]
-        log_amp[first:last] = block_log_amp
+        for chain in range(first, last):
+            log_amp[chain] = block_log_amp[chain - first]
     for s in range(n_sweeps):
-        accepted[s] = accepted_per_chain[s].sum()
+        total = 0
+        for chain in range(n_chains):
+            total += accepted_per_chain[s, chain]
+        accepted[s] = total
 
 
 def _renamed(fn, name: str):
@@ -324,18 +333,30 @@ if numba is not None:
         plus = carray(xh.pointer(xh.buffer_address(f, 2, True), like), (n_chains, m))
         minus = carray(xh.pointer(xh.buffer_address(f, 3, True), like), (n_chains, m))
         accepted_out = carray(xh.pointer(xh.buffer_address(f, 4, True), _I32), (n_sweeps,))
-        x = x_in.copy()  # the kernel works in place
-        log_amp = log_in.copy()
-        plus[:] = plus_in
-        minus[:] = minus_in
-        accepted = np.zeros(n_sweeps, np.int64)
-        failed = np.zeros(-(-n_chains // _CHAIN_BLOCK), np.int64)
+        # the kernel works in place: copies of x and log ψ, the caches straight into the results
+        # (plain loops and np.empty: slice assignment, .copy(), np.zeros and .any() took seconds
+        # more of Numba compilation here, paid on every machine's first run)
+        x = np.empty((n_chains, n), like.dtype)
+        log_amp = np.empty(n_chains, like.dtype)
+        for c in range(n_chains):
+            log_amp[c] = log_in[c]
+            for i in range(n):
+                x[c, i] = x_in[c, i]
+            for j in range(m):
+                plus[c, j] = plus_in[c, j]
+                minus[c, j] = minus_in[c, j]
+        accepted = np.empty(n_sweeps, np.int64)
+        n_blocks = (n_chains + _CHAIN_BLOCK - 1) // _CHAIN_BLOCK
+        failed = np.empty(n_blocks, np.int64)
+        for i in range(n_blocks):
+            failed[i] = 0
         guard = flags[_N_FLAGS - 1] != 0
         kernel(x, plus, minus, log_amp, table, positions, log_u, tables[0], tables[1],
                bias_and_bounds[:n], bias_and_bounds[n], kind, guard, bias_and_bounds[n + 2], xs, log_amps,
                accepted, failed)
-        if failed.any():
-            return xh.error(frame, messages + _LIMIT * _MESSAGE_BYTES)
+        for i in range(n_blocks):
+            if failed[i] != 0:
+                return xh.error(frame, messages + _LIMIT * _MESSAGE_BYTES)
         for i in range(n_sweeps):
             accepted_out[i] = accepted[i]
         return 0

@@ -189,7 +189,17 @@ class MetropolisChains:
         self._step = metropolis_step(self.move)
 
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
-        """Random valid starting configurations, their log-amplitudes (and fast-update cache)."""
+        """Random valid starting configurations, their log-amplitudes (and fast-update cache).
+
+        A bound trial state (a pytree) is handled by one compiled program (op by op, the state's
+        evaluation and cache cost ~0.5-2 s of a short run's start); a plain function runs eagerly."""
+        from psiloom.states.bound import BoundState
+
+        if isinstance(log_amplitude, BoundState):
+            return jax.jit(self._init)(key, log_amplitude)
+        return self._init(key, log_amplitude)
+
+    def _init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> ChainState:
         x = self.space.random(key, self.n_chains)
         return ChainState(x, base.evaluate_log_amplitudes(log_amplitude, x),
                           attach_cache(x, None, fast_updates_of(log_amplitude)))
