@@ -249,3 +249,37 @@ def test_real_time_of_a_real_state_is_refused(mean_field):
     evo = TimeEvolution(model, _field_hamiltonian(L), space, dt=0.1)
     with pytest.raises(ValueError, match="complex log"):
         evo.init(params, jax.random.PRNGKey(0))
+
+
+def test_signal_to_noise_filter_acts_per_eigenmode_as_published():
+    # Schmitt & Heyl, PRL 125, 100503 (2020), form from memory: in the eigenbasis S = V diag(σ) V†
+    # the force component ρ_k = mean_s Q_sk has SNR_k = |ρ_k| / (std_s Q_sk / √n), and its
+    # inverse is damped by 1/(1 + (threshold/SNR_k)⁶), times the soft spectral cut
+    # 1/(1 + (rcond σ_max/σ_k)⁶). Built directly in that basis: every mode's factor is known.
+    from psiloom.dynamics import TDVPSystem
+
+    rng = np.random.default_rng(11)
+    n, p, threshold = 256, 4, 4.0
+    v, _ = np.linalg.qr(rng.normal(size=(p, p)) + 1j * rng.normal(size=(p, p)))  # a random unitary basis
+    sigma = np.array([1.0, 0.5, 0.2, 1e-3])
+    s = (v * sigma) @ v.conj().T
+    noise = rng.normal(size=(n, p)) + 1j * rng.normal(size=(n, p))
+    noise -= noise.mean(axis=0)
+    noise /= np.sqrt(np.mean(np.abs(noise) ** 2, axis=0))  # spread exactly 1 in every mode
+    # signal of mode k chosen so that SNR_k = √n |ρ_k| equals these values
+    target = np.array([1e3, threshold, 0.5 * threshold, 1e3])
+    q = noise + target / np.sqrt(n) * np.exp(1j * np.array([0.3, 1.1, -0.7, 2.0]))
+    g = q @ v.T  # per-sample contributions g_s = Σ_k Q_sk V_k, so V_k† g_s = Q_sk
+    system = TDVPSystem(jnp.asarray(s), jnp.asarray(g.mean(axis=0)), jnp.asarray(g), jnp.full((n,), 1.0 / n),
+                        jnp.asarray(float(n)), jnp.asarray(0j), jnp.asarray(1.0))
+    reg = SignalToNoise(threshold=threshold, rcond=1e-2)
+    v_j = jnp.asarray(v)
+    np.testing.assert_allclose(reg.signal_to_noise(system, v_j), target, rtol=1e-10)
+    modes = v.conj().T @ np.asarray(reg.solve(system))
+    factor = modes * sigma / q.mean(axis=0)  # what the filter kept of each plain inverse component
+    spectral = 1.0 / (1.0 + (1e-2 * sigma.max() / sigma) ** 6)
+    snr = 1.0 / (1.0 + (threshold / target) ** 6)
+    np.testing.assert_allclose(factor, spectral * snr, rtol=1e-8)
+    f = factor.real
+    assert f[0] > 0.999 and abs(f[1] - 0.5) < 1e-3 and f[2] < 1 / 64  # kept, halved, cut
+    assert f[3] < 2e-6  # (rcond σ_max/σ)⁶ = 10⁶: below the spectral cut, however strong the signal
