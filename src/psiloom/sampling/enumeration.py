@@ -20,7 +20,7 @@ Local energies come from the sparse matrix of the Hamiltonian in the same basis 
 
 one evaluation of ψ over the space instead of one per connected configuration. Where φ_k = 0
 the local energy is set to 0 (its weight is 0). Cost per step: K evaluations of ψ, one sparse
-product (nnz(H) operations) and the log-derivatives of K configurations; memory K × n_sites plus
+product (K × longest row operations) and the log-derivatives of K configurations; memory K × n_sites plus
 the matrix. Meant for spaces up to ~10⁵ configurations (larger ones raise ``ValueError``).
 """
 
@@ -112,32 +112,38 @@ class ExactEnumeration:
         return born_weights(logs)
 
     def _matrix(self, hamiltonian):
-        """``(values, rows, cols)`` of the non-zero entries of ``hamiltonian``'s matrix in the
-        enumeration order, as NumPy arrays (built once on the host; not JAX arrays, so that a
-        first call inside a trace caches no tracers)."""
+        """``(values (K, G), cols (K, G))``: the non-zero entries of each row of ``hamiltonian``'s
+        matrix in the enumeration order, padded with zeros to the longest row (G entries), as
+        NumPy arrays (built once on the host; NumPy, so that a first call inside a trace caches
+        no tracers). A gather per row, no scatter."""
         key = id(hamiltonian)
         if key not in self._matrices:
             if not callable(getattr(hamiltonian, "sparse_matrix", None)):
                 raise TypeError(f"exact local energies need a Hamiltonian with sparse_matrix(space), got "
                                 f"{type(hamiltonian).__name__}")
-            mat = hamiltonian.sparse_matrix(self.space).tocoo()
+            mat = hamiltonian.sparse_matrix(self.space).tocsr()
             if mat.shape != (self.n_chains, self.n_chains):
                 raise ValueError(f"the Hamiltonian's matrix has shape {mat.shape}, the space has "
                                  f"{self.n_chains} configurations")
-            order = np.argsort(mat.row, kind="stable")
-            self._matrices[key] = (hamiltonian, (mat.data[order], mat.row[order].astype(np.int32),
-                                                 mat.col[order].astype(np.int32)))
+            counts = np.diff(mat.indptr)
+            width = max(1, int(counts.max(initial=0)))
+            values = np.zeros((self.n_chains, width), dtype=mat.dtype)
+            cols = np.zeros((self.n_chains, width), dtype=np.int32)
+            slot = np.arange(mat.nnz) - np.repeat(mat.indptr[:-1], counts)
+            rows = np.repeat(np.arange(self.n_chains), counts)
+            values[rows, slot] = mat.data
+            cols[rows, slot] = mat.indices
+            self._matrices[key] = (hamiltonian, (values, cols))
         return self._matrices[key][1]
 
     def local_energies(self, hamiltonian, logs: jax.Array) -> jax.Array:
         """E_loc of every configuration (rows of ``logs``: ``(K,)`` or ``(n, K)`` repeats) from the
         sparse matrix (module docstring)."""
-        values, rows, cols = self._matrix(hamiltonian)
+        values, cols = self._matrix(hamiltonian)
         flat = logs.reshape(-1, self.n_chains)[0]
         shift = jnp.max(jnp.real(flat))
         phi = jnp.where(jnp.isfinite(jnp.real(flat)), jnp.exp(flat - shift), 0.0)
-        h_phi = jax.ops.segment_sum(jnp.asarray(values) * phi[jnp.asarray(cols)], jnp.asarray(rows),
-                                    num_segments=self.n_chains, indices_are_sorted=True)
+        h_phi = jnp.sum(jnp.asarray(values) * phi[jnp.asarray(cols)], axis=1)
         nonzero = jnp.abs(phi) > 0
         e = jnp.where(nonzero, h_phi / jnp.where(nonzero, phi, 1.0), 0.0)
         return jnp.broadcast_to(e, logs.shape).reshape(-1)
