@@ -118,13 +118,7 @@ def exact_molecule_case(name, atoms, steps, hidden, lr, n_frozen=0, shift=1e-3, 
         key = jax.random.PRNGKey(0)
         params = _perturb_heads(jax.jit(model.init)(key, jax.numpy.asarray(problem.hartree_fock_configuration())[None]))
         state = search.init(key, params)
-        # one compiled step at a time: on the shared 2-core machine, run()'s multi-step program hung
-        # (every thread waiting, no CPU used) on its second call for the 3136-configuration N2 sector
-        for i in range(steps):
-            state, out = search.step(state)
-            if (i + 1) % max(1, steps // 10) == 0 or i == 0:
-                progress(f"step {i + 1}/{steps}  E = {float(np.real(out.energy.mean)):.8f}  "
-                         f"(FCI {reference:.8f})  {timer.elapsed:.0f} s")
+        state, _ = search.run(steps, state=state, progress=progress, print_every=max(1, steps // 10))
         est, _ = search.evaluate(state, sampler.n_chains)
     energy = float(np.real(est.mean))
     return {

@@ -131,10 +131,11 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         """Born weights of an exact sampler's rows, else None (sample means)."""
         return sampler.weights(logs) if exact and logs is not None else None
 
-    def estimate_of(e_loc, logs, n_rows):
+    def estimate_of(e_loc, logs, shape):
+        """Exact weighted average (exact sampler) or the Monte Carlo estimate of ``(n_time, n_chains)``."""
         if exact:
             return stats.weighted_estimate(e_loc, sampler.weights(logs))
-        return stats.estimate(e_loc.reshape(n_rows, -1))
+        return stats.estimate(e_loc.reshape(shape))
 
     def bind(params):
         return BoundState(model, params, fast=fast)
@@ -166,7 +167,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     def gradient(params, x, e_loc, logs=None):
         if exact and logs is None:
             logs = model.apply(params, x)
-        estimate = estimate_of(e_loc, logs, -1)
+        estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
         if winsorize is not None:
             e_loc = winsorize_local_energies(e_loc, winsorize)
         _, grad = energy_gradient(model.apply, params, x, e_loc, weights_of(logs))
@@ -197,7 +198,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         if learn is True:  # the plain training step
             estimate, params, opt_state, grad_norm, count = update(None)
         else:  # the estimate outside the branches: compiled once (XLA drops the branch's copy)
-            estimate = estimate_of(e_loc, logs, -1)
+            estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
 
             def learning(_):
                 _, params, opt_state, grad_norm, count = update(None)
@@ -268,7 +269,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
             e_loc = sampler.local_energies(hamiltonian, logs.reshape(-1))
         else:
             e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=chunk)
-        return estimate_of(e_loc, logs.reshape(-1), n_per_chain), acc, chains
+        return estimate_of(e_loc, logs.reshape(-1), (n_per_chain, -1)), acc, chains
 
     return VMC(init, step, guarded_step, multi_step, evaluate, draw,
                Phases(sampling, local_energy, gradient, solve), bind, n_per_chain)
