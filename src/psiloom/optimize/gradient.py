@@ -49,13 +49,10 @@ def energy_gradient(apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array, 
         e_loc: local energies ``(n,)`` at ``x``.
         weights: optional probabilities ``(n,)`` of the rows (exact sums); ``None``: 1/n each.
     """
-    if weights is None:
-        mean = sample_mean
-    else:
-        w = jax.lax.stop_gradient(weights)
+    w = None if weights is None else jax.lax.stop_gradient(weights)
 
-        def mean(v):
-            return jnp.sum(w * v)
+    def mean(v):
+        return sample_mean(v) if w is None else jnp.sum(w * v)
     energy = mean(e_loc)
     de = jax.lax.stop_gradient(e_loc - energy)
 
