@@ -81,6 +81,7 @@ from psiloom.reduce import sample_mean, sample_variance
 __all__ = [
     "Estimate",
     "estimate",
+    "weighted_estimate",
     "autocorrelation",
     "integrated_autocorrelation_time",
     "split_rhat",
