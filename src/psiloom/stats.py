@@ -81,6 +81,7 @@ from psiloom.reduce import sample_mean, sample_variance
 __all__ = [
     "Estimate",
     "estimate",
+    "weighted_estimate",
     "autocorrelation",
     "integrated_autocorrelation_time",
     "split_rhat",
@@ -508,6 +509,23 @@ def _estimate(values: jax.Array, scale=None) -> Estimate:
         n_time=n_time,
         tau_reliable=reliable,
     )
+
+
+def weighted_estimate(values, weights) -> Estimate:
+    """The exact average Σ_k w_k v_k of values ``v`` with probabilities ``w`` (same shape, summing
+    to 1), e.g. Born weights over an enumerated space (:mod:`psiloom.sampling.enumeration`).
+
+    No sampling noise: ``error = 0``, ``tau = 1``, ``ess = inf``, ``rhat = nan``; ``variance`` is
+    Σ_k w_k |v_k − v̄|². Works inside ``jax.jit``.
+    """
+    v = jnp.asarray(values).reshape(-1)
+    w = jnp.asarray(weights).reshape(-1)
+    mean = jnp.sum(w * v)
+    real_dtype = jnp.real(v).dtype
+    return Estimate(mean=mean, error=jnp.zeros((), real_dtype),
+                    variance=jnp.sum(w * jnp.abs(v - mean) ** 2), tau=jnp.ones((), real_dtype),
+                    ess=jnp.asarray(jnp.inf, real_dtype), rhat=jnp.asarray(jnp.nan, real_dtype),
+                    n_time=v.shape[0], tau_reliable=jnp.asarray(True))
 
 
 def combine_batches(estimates: Estimate) -> Estimate:

@@ -26,6 +26,13 @@ separate pure functions in ``VMC.phases`` so that profiling can compile and time
 by one. Nothing here is compiled; callers ``jax.jit`` what they use
 (:class:`psiloom.train.GroundStateSearch` does).
 
+A sampler with ``exact = True`` (:class:`psiloom.sampling.ExactEnumeration`) returns every
+configuration of a small space: the step then weights each average by the Born weights
+``sampler.weights(log ψ)`` (:func:`psiloom.stats.weighted_estimate`, the ``weights`` of
+:func:`psiloom.optimize.gradient.energy_gradient` and of ``SampleGeometry``) and takes the local
+energies from ``sampler.local_energies(hamiltonian, log ψ)`` (the sparse matrix), so energy,
+gradient and S are exact.
+
 Every leaf of the state returned by ``init`` is strongly typed, like the state a step returns,
 so the compiled step is traced and compiled once per run (a weakly typed leaf in the initial
 state used to cost a second compilation at step 2).
@@ -71,8 +78,8 @@ class Phases(NamedTuple):
 
     sampling: Callable  # (key, params, chains, n_per_chain) -> (x, log ψ(x), chains, acceptance)
     local_energy: Callable  # (params, x, logs) -> E_loc
-    gradient: Callable  # (params, x, e_loc) -> (Estimate, ∇E, e_loc used for the update)
-    solve: Callable  # (params, opt_state, grad, x, e_loc) -> (params, opt_state)
+    gradient: Callable  # (params, x, e_loc, logs=None) -> (Estimate, ∇E, e_loc used for the update)
+    solve: Callable  # (params, opt_state, grad, x, e_loc, logs=None) -> (params, opt_state)
 
 
 class VMC(NamedTuple):
@@ -118,6 +125,17 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     optimizer = optax.with_extra_args_support(optimizer)
     n_per_chain = int(n_samples) // sampler.n_chains
     fast = bool(fast)
+    exact = bool(getattr(sampler, "exact", False))
+
+    def weights_of(logs):
+        """Born weights of an exact sampler's rows, else None (sample means)."""
+        return sampler.weights(logs) if exact and logs is not None else None
+
+    def estimate_of(e_loc, logs, shape):
+        """Exact weighted average (exact sampler) or the Monte Carlo estimate of ``(n_time, n_chains)``."""
+        if exact:
+            return stats.weighted_estimate(e_loc, sampler.weights(logs))
+        return stats.estimate(e_loc.reshape(shape))
 
     def bind(params):
         return BoundState(model, params, fast=fast)
@@ -142,17 +160,23 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         return x, logs.reshape(-1), chains, acc
 
     def local_energy(params, x, logs):
+        if exact:
+            return sampler.local_energies(hamiltonian, logs)
         return hamiltonian.local_energy(bind(params), x, logs, chunk=chunk)
 
-    def gradient(params, x, e_loc):
-        estimate = stats.estimate(e_loc.reshape(-1, sampler.n_chains))
+    def gradient(params, x, e_loc, logs=None):
+        if exact and logs is None:
+            logs = model.apply(params, x)
+        estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
         if winsorize is not None:
             e_loc = winsorize_local_energies(e_loc, winsorize)
-        _, grad = energy_gradient(model.apply, params, x, e_loc)
+        _, grad = energy_gradient(model.apply, params, x, e_loc, weights_of(logs))
         return estimate, grad, e_loc
 
-    def solve(params, opt_state, grad, x, e_loc):
-        geometry = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk)
+    def solve(params, opt_state, grad, x, e_loc, logs=None):
+        if exact and logs is None:
+            logs = model.apply(params, x)
+        geometry = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk, weights=weights_of(logs))
         updates, opt_state = optimizer.update(grad, opt_state, params, geometry=geometry)
         return optax.apply_updates(params, updates), opt_state
 
@@ -167,14 +191,14 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         e_loc = local_energy(state.params, x, logs)
 
         def update(_):
-            estimate, grad, e_used = gradient(state.params, x, e_loc)
-            params, opt_state = solve(state.params, state.opt_state, grad, x, e_used)
+            estimate, grad, e_used = gradient(state.params, x, e_loc, logs)
+            params, opt_state = solve(state.params, state.opt_state, grad, x, e_used, logs)
             return estimate, params, opt_state, tree_norm(grad), state.step + 1
 
         if learn is True:  # the plain training step
             estimate, params, opt_state, grad_norm, count = update(None)
         else:  # the estimate outside the branches: compiled once (XLA drops the branch's copy)
-            estimate = stats.estimate(e_loc.reshape(-1, sampler.n_chains))
+            estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
 
             def learning(_):
                 _, params, opt_state, grad_norm, count = update(None)
@@ -241,8 +265,11 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         """Energy estimate of an evaluation pass: ``(Estimate, acceptance, chains)``."""
         xs, logs, chains, acc, log_amp = draw(params, chains, key, n_per_chain, burn_in)
         x = xs.reshape(-1, *xs.shape[2:])
-        e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=chunk)
-        return stats.estimate(e_loc.reshape(n_per_chain, -1)), acc, chains
+        if exact:
+            e_loc = sampler.local_energies(hamiltonian, logs.reshape(-1))
+        else:
+            e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=chunk)
+        return estimate_of(e_loc, logs.reshape(-1), (n_per_chain, -1)), acc, chains
 
     return VMC(init, step, guarded_step, multi_step, evaluate, draw,
                Phases(sampling, local_energy, gradient, solve), bind, n_per_chain)

@@ -4,7 +4,9 @@ and t-V models, molecules in a Gaussian basis (PySCF integrals), determinant tri
 
 Conventions (signs, ordering, units) are in :mod:`psiloom.fermions.space` and
 :mod:`psiloom.fermions.operators`. The states plug into :class:`psiloom.train.GroundStateSearch` with a
-:class:`psiloom.sampling.MetropolisChains` over a :class:`FermionSpace` (which picks hops).
+:class:`psiloom.sampling.MetropolisChains` over a :class:`FermionSpace` (which picks hops), or, for
+small sectors (molecules in a minimal basis), with exact sums over every configuration
+(:class:`psiloom.sampling.ExactEnumeration`).
 """
 
 from psiloom.fermions.space import FermionSpace, occupation_codes, spinless_space

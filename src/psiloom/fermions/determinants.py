@@ -95,12 +95,50 @@ def occupied_orbitals(x: jax.Array, n_orbitals: int, n_up: int, n_down: int):
     return up, down
 
 
+#: Real matrices up to this size go through :func:`eliminate_slogdet` instead of LAPACK.
+SMALL_DETERMINANT = 12
+
+
+def eliminate_slogdet(a: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """``(sign, log|det|)`` of real ``(..., n, n)`` matrices by Gaussian elimination with partial
+    pivoting in plain ``jnp`` (n static, the loop unrolled): det = Π_k (±) u_kk. Differentiable;
+    a singular matrix gives sign 0 and log|det| = −inf.
+
+    Why not ``jnp.linalg.slogdet``: on the CPU its batched LU (LAPACK getrf through jaxlib's FFI)
+    splits a large batch over XLA's intra-op thread pool and waits for the parts; with two such
+    calls running at once (the up and the down determinant) on a 2-thread pool both threads wait
+    and the program never finishes (observed with jaxlib 0.10.2 for batches of a few thousand
+    matrices: a step of the 3136-configuration N2 sector hung with every thread in a futex wait).
+    For the small matrices of determinant states this elimination is also cheaper.
+    """
+    n = a.shape[-1]
+    rows = jnp.arange(n)
+    sign = jnp.ones(a.shape[:-2], a.dtype)
+    logabs = jnp.zeros(a.shape[:-2], a.dtype)
+    for k in range(n):
+        p = jnp.argmax(jnp.abs(a[..., k:, k]), axis=-1) + k  # pivot row
+        perm = jnp.where(rows == k, p[..., None], jnp.where(rows == p[..., None], k, rows))
+        a = jnp.take_along_axis(a, perm[..., :, None], axis=-2)
+        pivot = a[..., k, k]
+        sign = sign * jnp.where(p == k, 1.0, -1.0) * jnp.sign(pivot)
+        logabs = logabs + jnp.log(jnp.abs(pivot))
+        if k + 1 < n:
+            safe = jnp.where(pivot == 0, 1.0, pivot)
+            factors = a[..., k + 1:, k] / safe[..., None]
+            a = a.at[..., k + 1:, :].add(-factors[..., :, None] * a[..., k, None, :])
+    return sign, logabs
+
+
 def log_det(matrices: jax.Array) -> jax.Array:
     """``log det`` of a batch of square matrices as a complex number (log|det| + iπ if det < 0);
-    0 for 0 × 0 matrices."""
+    0 for 0 × 0 matrices. Real matrices up to :data:`SMALL_DETERMINANT` use
+    :func:`eliminate_slogdet`, others ``jnp.linalg.slogdet``."""
     if matrices.shape[-1] == 0:
         return jnp.zeros(matrices.shape[:-2], dtype=jnp.result_type(matrices.dtype, jnp.complex64))
-    sign, logabs = jnp.linalg.slogdet(matrices)
+    if matrices.shape[-1] <= SMALL_DETERMINANT and not jnp.iscomplexobj(matrices):
+        sign, logabs = eliminate_slogdet(matrices)
+    else:
+        sign, logabs = jnp.linalg.slogdet(matrices)
     if jnp.iscomplexobj(sign):
         return logabs + jnp.log(sign)
     return logabs + jnp.where(sign < 0, 1j * jnp.pi, 0.0)

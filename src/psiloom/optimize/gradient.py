@@ -22,6 +22,11 @@ Matrix-free products with X (for iterative solvers) never form X or S:
     Xᵀu = vjp of the same map with the centred cotangent u − ⟨u⟩ (per block), divided by √n,
 
 so S v = Xᵀ(X v) costs about one forward and one backward pass over the batch.
+
+Exact sums (:mod:`psiloom.sampling.enumeration`): with probabilities w_s of the rows in place
+of 1/n, every mean is Σ_s w_s (·) and X = diag(√w) (O − Σ_s w_s O_s), ε = √w (E_loc − E), so
+S = XᵀX and F = Xᵀε are the exact tensor and force; the transpose of the weighted centring is
+u ↦ √w u − w Σ_s √w_s u_s (for w = 1/n both reduce to the formulas above).
 """
 
 from __future__ import annotations
@@ -35,19 +40,24 @@ from psiloom.optimize.flatten import conj_complex_leaves, ravel_real
 from psiloom.reduce import sample_mean, sample_sum
 
 
-def energy_gradient(apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array):
+def energy_gradient(apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array, weights: jax.Array | None = None):
     """``(E, ∇E)``: mean local energy and its parameter gradient (pytree like ``params``).
 
     Args:
         apply_fn: ``apply_fn(params, x) -> log ψ(x)`` batched over the leading axis.
         x: samples ``(n, n_sites)`` drawn from |ψ|².
         e_loc: local energies ``(n,)`` at ``x``.
+        weights: optional probabilities ``(n,)`` of the rows (exact sums); ``None``: 1/n each.
     """
-    energy = sample_mean(e_loc)
+    w = None if weights is None else jax.lax.stop_gradient(weights)
+
+    def mean(v):
+        return sample_mean(v) if w is None else jnp.sum(w * v)
+    energy = mean(e_loc)
     de = jax.lax.stop_gradient(e_loc - energy)
 
     def surrogate(p):
-        return 2.0 * sample_mean(jnp.real(jnp.conj(apply_fn(p, x)) * de))
+        return 2.0 * mean(jnp.real(jnp.conj(apply_fn(p, x)) * de))
 
     grad = conj_complex_leaves(jax.grad(surrogate)(params))
     return energy, grad
@@ -60,7 +70,9 @@ class SampleGeometry:
     keyword argument ``geometry``.
     """
 
-    def __init__(self, apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array, chunk: int | None = None):
+    def __init__(self, apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array, chunk: int | None = None,
+                 weights: jax.Array | None = None):
+        self.weights = None if weights is None else jax.lax.stop_gradient(weights)
         self.apply_fn = apply_fn
         self.params = params
         self.x = x
@@ -92,7 +104,10 @@ class SampleGeometry:
     def jacobian(self) -> jax.Array:
         """X = [Re ΔO; Im ΔO]/√n, real, shape ``(n, P)`` or ``(2n, P)`` for complex ψ."""
         o = self.log_derivatives()
-        d = (o - sample_mean(o)) / jnp.sqrt(self.n_samples)
+        if self.weights is not None:
+            d = (o - self.weights @ o) * jnp.sqrt(self.weights)[:, None]
+        else:
+            d = (o - sample_mean(o)) / jnp.sqrt(self.n_samples)
         if self.complex_output:
             return jnp.concatenate([jnp.real(d), jnp.imag(d)], axis=0)
         return d
@@ -106,10 +121,23 @@ class SampleGeometry:
         return jnp.real(out)
 
     def _centre(self, u):
-        """Subtract the sample mean in each block (Re / Im) of a row vector and scale by 1/√n."""
+        """Subtract the sample mean in each block (Re / Im) of a row vector and scale by 1/√n
+        (with weights: subtract Σ w u and scale by √w)."""
         blocks = u.reshape(-1, self.n_samples).T  # (n, 1 or 2): sample axis leading
+        if self.weights is not None:
+            w = self.weights[:, None]
+            return ((blocks - jnp.sum(w * blocks, axis=0)) * jnp.sqrt(w)).T.reshape(-1)
         blocks = blocks - sample_mean(blocks)
         return blocks.T.reshape(-1) / jnp.sqrt(self.n_samples)
+
+    def _centre_transposed(self, u):
+        """The transpose of :meth:`_centre` (equal to it without weights): √w u − w Σ √w u."""
+        if self.weights is None:
+            return self._centre(u)
+        blocks = u.reshape(-1, self.n_samples).T
+        w = self.weights[:, None]
+        y = jnp.sqrt(w) * blocks
+        return (y - w * jnp.sum(y, axis=0)).T.reshape(-1)
 
     def _linearized(self):
         """``(f_jvp, f_vjp)`` of θ ↦ real outputs at the current parameters.
@@ -151,7 +179,7 @@ class SampleGeometry:
 
     def vjp(self, u: jax.Array) -> jax.Array:
         """Xᵀ u for a real row vector ``u`` of shape ``(n,)`` (``(2n,)`` for complex ψ); returns ``(P,)``."""
-        u = self._centre(jnp.asarray(u, self.param_vector.dtype))
+        u = self._centre_transposed(jnp.asarray(u, self.param_vector.dtype))
         if not self._chunked():
             return self._linearized()[1](u)
         cot = u.reshape(-1, self.n_samples).T  # (n, blocks)
@@ -182,7 +210,7 @@ class SampleGeometry:
         f_jvp, f_vjp = self._linearized()
         dtype = self.param_vector.dtype
         # X v = C(J v)/√n and Xᵀu = Jᵀ C(u)/√n with C the (idempotent) centring
-        return lambda v: f_vjp(self._centre(self._centre(f_jvp(jnp.asarray(v, dtype)))))
+        return lambda v: f_vjp(self._centre_transposed(self._centre(f_jvp(jnp.asarray(v, dtype)))))
 
     def s_diagonal(self) -> jax.Array:
         """diag S = Σ_rows X², shape ``(P,)`` (forms X)."""
@@ -191,7 +219,10 @@ class SampleGeometry:
 
     def residual(self) -> jax.Array:
         """ε = [Re ΔE; Im ΔE]/√n (real part only for real ψ), so that Xᵀ ε = ½ ∇E."""
-        de = (self.e_loc - sample_mean(self.e_loc)) / jnp.sqrt(self.n_samples)
+        if self.weights is not None:
+            de = (self.e_loc - jnp.sum(self.weights * self.e_loc)) * jnp.sqrt(self.weights)
+        else:
+            de = (self.e_loc - sample_mean(self.e_loc)) / jnp.sqrt(self.n_samples)
         if self.complex_output:
             return jnp.concatenate([jnp.real(de), jnp.imag(de)])
         return jnp.real(de)

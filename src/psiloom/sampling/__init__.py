@@ -3,10 +3,11 @@ RBMs, parallel tempering, and direct sampling of autoregressive trial states.
 
 Layout: ``base`` (the :class:`Sampler` interface, the shared acceptance step and burn-in /
 collection driver), ``moves`` (typed proposal moves), ``metropolis``, ``tempering``,
-``gibbs``, ``direct``, and ``compiled`` (Numba sweeps fed a state's plain RBM arrays)."""
+``gibbs``, ``direct``, ``enumeration`` (exact sums over a small space), and ``compiled`` (Numba sweeps fed a state's plain RBM arrays)."""
 
 from psiloom.sampling.base import Sampler, burn_in_and_collect, metropolis_accept, place_starts
 from psiloom.sampling.direct import ChainRuleSampler, DrawInfo
+from psiloom.sampling.enumeration import EnumerationInfo, ExactEnumeration, born_weights
 from psiloom.sampling.gibbs import BlockGibbsSampler, GibbsInfo, RBMWeights, gibbs_update, rbm_weights
 from psiloom.sampling.metropolis import ChainState, MetropolisChains, StepInfo, metropolis_step
 from psiloom.sampling.moves import (
@@ -38,5 +39,5 @@ __all__ = [
     "BlockGibbsSampler", "GibbsInfo", "RBMWeights", "gibbs_update", "rbm_weights",
     "TemperingSampler", "TemperingState", "TemperingInfo", "geometric_betas", "replica_exchange",
     "tempered_metropolis_step",
-    "ChainRuleSampler", "DrawInfo",
+    "ChainRuleSampler", "DrawInfo", "ExactEnumeration", "EnumerationInfo", "born_weights",
 ]
