@@ -24,6 +24,12 @@ warm, and the dense state warm), and the load average before and after. Summary:
 (cold: a newcomer's first run), ``ratio_wall_warm`` and ``ratio_wall_dense_warm`` per ring,
 target ≤ ``TARGET_RATIO``.
 
+Measured on the idle 2-core machine (2026-12-03, three pairs, medians; results/time_to_accuracy.json):
+L = 16: first run 24 s, later runs 7.5 s, dense demo 13.2 s, against 20.1 s for the yardstick (ratios
+1.19 / 0.37 / 0.66); L = 20: 23.6 s, 8.6 s, 22.9 s against 45.2 s (0.52 / 0.19 / 0.51; the dense demo
+ended at 2.1e-4, just above the target). A first run spends ~8 CPU-s compiling the Numba sweeps
+and ~5 s compiling the step (2.4 s of it the random-number preparation of the compiled sweeps).
+
 Why later runs are faster: the compiled sweeps enter the training step as an XLA foreign
 function, so the whole step is kept in JAX's persistent cache (with a Python callback it never
 was, and every run compiled the step for ~5 s), and the cache keeps every program, also the
