@@ -271,7 +271,7 @@ def pair_cache_limit(dtype) -> float:
 
 # messages of the refusals, in the order of the handler's error codes (NUL-terminated rows)
 _NON_FINITE = ("parameters", "visible_bias_or_bounds", "cache", "cache_pair", "log_amplitudes", "configurations")
-_NAN_UNIFORMS, _LIMIT = len(_NON_FINITE), len(_NON_FINITE) + 1
+_LIMIT = len(_NON_FINITE) + 1  # message rows: the non-finite inputs, NaN uniforms, the pair-cache limit
 _N_FLAGS = _LIMIT + 2  # a flag per refusal, then the guard (check every accepted update)
 _MESSAGE_BYTES = 256
 
@@ -299,7 +299,6 @@ if numba is not None:
 
     _I64 = np.zeros(1, np.int64)
     _I32 = np.zeros(1, np.int32)
-    _U8 = np.zeros(1, np.uint8)
 
     @numba.njit(nogil=True, inline="always")  # inlined into the handler: compiled once, there
     def _run_frame(frame, like, kernel) -> int:
