@@ -40,11 +40,7 @@ mesh = parallel.sample_mesh(processes=jax.process_count())
 n_devices = parallel.n_devices(mesh)
 lattice = pl.lattices.chain(16, periodic=True)
 space = pl.spaces.SpinSpace(16, magnetisation=0)
-# compiled (host) sweeps with several simulated CPU devices in one process can deadlock XLA's CPU
-# collectives (psiloom.parallel, "Known limit"): keep the sweeps in JAX there
-simulated = jax.local_device_count() > 1 and jax.devices()[0].platform == "cpu"
-sampler = pl.sampling.MetropolisChains(space, n_chains=16 * n_devices, bonds=lattice.bonds,
-                                        compiled_sweeps=not simulated)
+sampler = pl.sampling.MetropolisChains(space, n_chains=16 * n_devices, bonds=lattice.bonds)
 optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.05))
 search = pl.train.GroundStateSearch(pl.states.RBM(alpha=2), pl.operators.heisenberg(lattice, marshall_basis=True),
                                     sampler, optimizer, n_samples=64 * sampler.n_chains, mesh=mesh)
