@@ -70,12 +70,19 @@ QUICK = {
     "LiH": dict(state="slater_jastrow", n_det=1, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
     "Be": dict(state="slater_jastrow", n_det=2, steps=150, n_samples=512, lr=0.05, eval_samples=8192),
 }
+# full mode: 1024 walkers, one stored sample each per step (a 5-move sweep apart), the learning
+# rate decaying after the warm-up; the evaluation pass continues the same walkers
 FULL = {
-    "He": dict(state="neural", n_det=1, steps=1000, n_samples=1024, lr=0.05, eval_samples=262144),
-    "H2": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
-    "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, lr=0.05, eval_samples=65536),
-    "LiH": dict(state="neural", n_det=4, steps=3000, n_samples=1024, lr=0.05, eval_samples=65536),
-    "Be": dict(state="neural", n_det=4, steps=3000, n_samples=1024, lr=0.05, eval_samples=65536),
+    "He": dict(state="neural", n_det=1, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=524288),
+    "H2": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=131072),
+    "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=131072),
+    "LiH": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+                eval_samples=131072),
+    "Be": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=131072),
 }
 N_CHAINS = 64
 
@@ -105,14 +112,11 @@ def run_system(name, cfg, laplacian, quick, seed=0):
     with Timer() as timer:
         model = build_state(system, cfg)
         params, pretrained = maybe_pretrain(name, model, system, key, quick)
-        sampler = el.ElectronSampler(system, n_chains=N_CHAINS, sweep=5, burn_in=1, equilibrate=100)
-        lr = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
-        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
-        search = pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
-                                            optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
+        search = _search(system, cfg, laplacian, model=model)
         state = search.init(key, params=params)
         state, history = search.run(cfg["steps"], state=state, progress=progress, print_every=50)
-        parts, acceptance = el.evaluate_components(search, state, cfg["eval_samples"], burn_in_sweeps=10)
+        evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
+    parts, acceptance = evaluation.components, evaluation.acceptance
     estimate = parts.total
     energy, error = float(np.real(estimate.mean)), float(estimate.error)
     step_seconds = np.median(history["seconds"][1:]) if len(history) > 1 else float("nan")
@@ -121,8 +125,8 @@ def run_system(name, cfg, laplacian, quick, seed=0):
     n_params = search.n_parameters(state)
     method = {
         "trial_state": f"{cfg['state']} n_det={cfg['n_det']}",
-        "sampler": f"Metropolis all-electron Gaussian, {N_CHAINS} walkers, sweep 5, adaptive step",
-        "optimizer": f"SR (auto solver, shift 1e-3) + sgd {cfg['lr'] / 5}->{cfg['lr']}, energy clip 5",
+        "sampler": f"Metropolis all-electron Gaussian, {_chains(cfg)} walkers, sweep 5, adaptive step",
+        "optimizer": f"SR (auto solver, shift 1e-3) + sgd {_schedule_text(cfg)}, energy clip 5",
         "laplacian": laplacian, "pretraining": pretrained, "tau": float(estimate.tau),
         "rhat": float(estimate.rhat), "acceptance": acceptance, "variance": float(estimate.variance),
         "kinetic": float(parts.kinetic.mean), "kinetic_error": float(parts.kinetic.error),
@@ -135,7 +139,7 @@ def run_system(name, cfg, laplacian, quick, seed=0):
         "energy": energy, "error_bar": error, "reference": exact, "reference_source": source,
         "rel_error": relative_error(energy, exact), "abs_error_mha": abs(energy - exact) * 1e3,
         "seconds": timer.seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"],
-        "walkers": N_CHAINS, "n_params": n_params,
+        "walkers": _chains(cfg), "n_params": n_params,
     })
     throughput = emit({
         "benchmark": "molecules", "system": system.describe(), "method": {"trial_state": method["trial_state"],
@@ -144,7 +148,9 @@ def run_system(name, cfg, laplacian, quick, seed=0):
         "unit": "walker-steps/s (one optimisation step per walker: 5 Metropolis moves, local energy, gradient, SR)",
         "seconds": float(step_seconds) * len(history), "n_params": n_params,
     })
-    return record, throughput, model, state.params
+    # densities (and the dipole of a molecule) from the same evaluation samples (full mode)
+    properties = [] if quick or name not in ("He", "LiH") else _property_lines(system, np.asarray(evaluation.samples))
+    return record, throughput, model, state.params, properties
 
 
 def laplacian_comparison(name, model, params, n_walkers=256, repeats=5):
@@ -186,10 +192,32 @@ CATIONS = {"Li": -7.279913, "Be": -14.324763}
 LIH_DIPOLE_AU = 2.314
 
 
-def _search(system, cfg, laplacian, params=None, key=None):
-    model = build_state(system, cfg)
-    sampler = el.ElectronSampler(system, n_chains=N_CHAINS, sweep=5, burn_in=1, equilibrate=100)
-    lr = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
+def _chains(cfg):
+    return cfg.get("chains", N_CHAINS)
+
+
+def _learning_rate(cfg):
+    """Linear warm-up over 50 steps from lr/5 to lr; with ``decay`` = t₀ the rate then falls as
+    lr / (1 + t/t₀) (common practice for the last stretch of a noisy natural-gradient descent)."""
+    warm = optax.linear_schedule(cfg["lr"] / 5, cfg["lr"], 50)
+    if not cfg.get("decay"):
+        return warm
+    t0 = float(cfg["decay"])
+    return optax.join_schedules([warm, lambda t: cfg["lr"] / (1.0 + t / t0)], [50])
+
+
+def _schedule_text(cfg):
+    text = f"{cfg['lr'] / 5}->{cfg['lr']}"
+    return text + (f" then lr/(1+t/{cfg['decay']})" if cfg.get("decay") else "")
+
+
+def _search(system, cfg, laplacian, params=None, key=None, model=None):
+    model = build_state(system, cfg) if model is None else model
+    # one stored sample per walker and step when the walkers are many (burn_in 0): consecutive
+    # steps are then one 5-move sweep apart; with few walkers, 1 discarded sweep per step
+    chains = _chains(cfg)
+    sampler = el.ElectronSampler(system, n_chains=chains, sweep=5, burn_in=cfg.get("burn_in", 1), equilibrate=100)
+    lr = _learning_rate(cfg)
     optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
     return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
                                       optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
@@ -205,19 +233,20 @@ def _energy_line(system, cfg, evaluation, reference, source, seconds, extra=None
         "energy": energy, "error_bar": error, "reference": reference, "reference_source": source,
         "rel_error": relative_error(energy, reference),
         "abs_error_mha": None if reference is None else abs(energy - reference) * 1e3,
-        "seconds": seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"], "walkers": N_CHAINS,
+        "seconds": seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"], "walkers": _chains(cfg),
     }
     progress(f"{system.formula}: E = {total.format()} (reference {reference})")
     return emit(record)
 
 
-def case_scan(configs, laplacian, quick, seed=0):
+def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
     base = dict(configs["H2"], n_det=1) if quick else configs["H2"]
     lengths = (1.0, 1.4, 2.0) if quick else tuple(H2_CURVE)
     records = []
     curves = [("H2", [el.molecule([("H", (0, 0, 0)), ("H", (0, 0, r))]) for r in lengths], base,
                [H2_CURVE[r] for r in lengths])]
-    if not quick:
+    curves = [c for c in curves if c[0] in names]
+    if not quick and "LiH" in names:
         curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE], configs["LiH"],
                        [None] * len(LIH_CURVE)))
     for name, geometries, cfg, references in curves:
@@ -260,7 +289,7 @@ def case_ionisation(configs, laplacian, quick, seed=0):
             "reference_source": "difference of exact non-relativistic energies (from memory)",
             "rel_error": relative_error(difference.value, reference),
             "abs_error_mha": abs(difference.value - reference) * 1e3, "seconds": 0.0,
-            "steps": configs[name]["steps"], "samples_per_step": configs[name]["n_samples"], "walkers": N_CHAINS,
+            "steps": configs[name]["steps"], "samples_per_step": configs[name]["n_samples"], "walkers": _chains(configs[name]),
         }))
     return records
 
@@ -275,32 +304,39 @@ def case_properties(configs, laplacian, quick, seed=0):
             state, _ = search.run(cfg["steps"], key=jax.random.PRNGKey(seed), progress=False)
             evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
         records.append(_energy_line(system, cfg, evaluation, exact, source, timer.seconds))
-        samples = np.asarray(evaluation.samples)
-        if system.n_nuclei == 1:
-            profile = el.radial_density(samples, np.linspace(0.0, 4.0, 21))
-            kind = "radial density ρ(r) (electrons/bohr³)"
-        else:
-            length = float(np.linalg.norm(system.positions[1] - system.positions[0]))
-            profile = el.axial_density(samples, system, np.linspace(-3.0, length + 3.0, 25))
-            kind = "axial density λ(s) from Li (s = 0) toward H (electrons/bohr)"
+        records += _property_lines(system, np.asarray(evaluation.samples))
+    return records
+
+
+def _property_lines(system, samples):
+    """Density profile line (radial for an atom, axial for a diatomic) and, for a diatomic, the
+    dipole moment along the bond, from evaluation samples of shape (n_time, n_chains, N, 3)."""
+    records = []
+    if system.n_nuclei == 1:
+        profile = el.radial_density(samples, np.linspace(0.0, 4.0, 21))
+        kind = "radial density ρ(r) (electrons/bohr³)"
+    else:
+        length = float(np.linalg.norm(system.positions[1] - system.positions[0]))
+        profile = el.axial_density(samples, system, np.linspace(-3.0, length + 3.0, 25))
+        kind = "axial density λ(s) from Li (s = 0) toward H (electrons/bohr)"
+    records.append(emit({
+        "benchmark": "molecules", "system": system.describe(), "metric": kind,
+        "value": {"centres_bohr": profile.centres, "density": profile.values, "error": profile.errors},
+        "unit": "electrons/bohr³" if system.n_nuclei == 1 else "electrons/bohr", "seconds": 0.0,
+    }))
+    if system.n_nuclei > 1:
+        mu = el.dipole_moment(samples, system)
+        axis = (system.positions[1] - system.positions[0]) / length
+        along = float(np.dot(np.asarray(mu.mean), axis))
+        error = float(np.sqrt(np.dot(np.asarray(mu.error) ** 2, axis**2)))
+        progress(f"LiH dipole along Li→H: {pl.stats.parenthesis_notation(along, error)} e·bohr "
+                 f"(published |μ| {LIH_DIPOLE_AU})")
         records.append(emit({
-            "benchmark": "molecules", "system": system.describe(), "metric": kind,
-            "value": {"centres_bohr": profile.centres, "density": profile.values, "error": profile.errors},
-            "unit": "electrons/bohr³" if system.n_nuclei == 1 else "electrons/bohr", "seconds": 0.0,
+            "benchmark": "molecules", "system": system.describe(), "metric": "dipole_moment_along_Li_to_H",
+            "value": along, "error_bar": error, "unit": "e·bohr (negative: Li⁺H⁻ polarity)",
+            "reference": -LIH_DIPOLE_AU, "reference_source": "experiment 5.88 D (Wharton, Gold & Klemperer 1962, from memory)",
+            "debye": along * el.DEBYE_PER_AU, "seconds": 0.0,
         }))
-        if system.n_nuclei > 1:
-            mu = el.dipole_moment(samples, system)
-            axis = (system.positions[1] - system.positions[0]) / length
-            along = float(np.dot(np.asarray(mu.mean), axis))
-            error = float(np.sqrt(np.dot(np.asarray(mu.error) ** 2, axis**2)))
-            progress(f"LiH dipole along Li→H: {pl.stats.parenthesis_notation(along, error)} e·bohr "
-                     f"(published |μ| {LIH_DIPOLE_AU})")
-            records.append(emit({
-                "benchmark": "molecules", "system": system.describe(), "metric": "dipole_moment_along_Li_to_H",
-                "value": along, "error_bar": error, "unit": "e·bohr (negative: Li⁺H⁻ polarity)",
-                "reference": -LIH_DIPOLE_AU, "reference_source": "experiment 5.88 D (Wharton, Gold & Klemperer 1962, from memory)",
-                "debye": along * el.DEBYE_PER_AU, "seconds": 0.0,
-            }))
     return records
 
 
@@ -336,7 +372,8 @@ CASES = ("energies", "scan", "ionisation", "properties", "cost")
 
 def main() -> None:
     def extra(parser):
-        parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS))
+        parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS)
+                            + " (--case scan: the curves of H2 and/or LiH)")
         parser.add_argument("--laplacian", default="forward", choices=list(el.laplacian.METHODS))
         parser.add_argument("--scale", type=float, default=1.0,
                             help="multiply optimisation steps and evaluation samples (smoke tests)")
@@ -352,11 +389,12 @@ def main() -> None:
     configs = QUICK if args.quick else FULL
     if args.scale != 1.0:
         configs = {k: dict(v, steps=max(2, int(v["steps"] * args.scale)),
-                           eval_samples=max(N_CHAINS, int(v["eval_samples"] * args.scale))) for k, v in configs.items()}
+                           eval_samples=max(_chains(v), int(v["eval_samples"] * args.scale))) for k, v in configs.items()}
     if args.case != "energies":
         run_case = {"scan": case_scan, "ionisation": case_ionisation, "properties": case_properties,
                     "cost": case_cost}[args.case]
-        records = run_case(configs, args.laplacian, args.quick)
+        kwargs = {"names": names} if args.case == "scan" else {}
+        records = run_case(configs, args.laplacian, args.quick, **kwargs)
         energy_records = [r for r in records if r.get("abs_error_mha") is not None]
         summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,
                 max_abs_error_mha=max((r["abs_error_mha"] for r in energy_records), default=None),
@@ -369,8 +407,8 @@ def main() -> None:
     records, compare_with = [], None
     for name in names:
         progress(f"{name}: {configs[name]}")
-        record, throughput, model, params = run_system(name, configs[name], args.laplacian, args.quick)
-        records += [record, throughput]
+        record, throughput, model, params, properties = run_system(name, configs[name], args.laplacian, args.quick)
+        records += [record, throughput] + properties
         if compare_with is None or name == "LiH":
             compare_with = (name, model, params)
     if compare_with is not None:
