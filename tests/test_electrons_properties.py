@@ -138,3 +138,23 @@ def test_geometry_scan_warm_starts_from_the_previous_geometry():
         # (Bates, Ledsham & Stewart 1953, from memory); the analytic start is bound (below −0.5 Ha)
         assert -0.602634 - 4 * float(e.error) < float(e.mean) < -0.5 + 4 * float(e.error)
         assert p.evaluation.samples.shape == (16, 16, 1, 3) and p.evaluation.local_energies.shape == (16, 16)
+
+
+def test_energy_components_in_chunks_equal_one_batch():
+    # Chunking bounds memory only: the local energies must agree to rounding whether they are
+    # computed 48 configurations at a time (a remainder chunk included) or all at once.
+    import inspect
+
+    system = el.molecule([("H", (0, 0, 0)), ("H", (0, 0, 2.0))], charge=1)
+    model = el.SlaterJastrow(el.SlaterTypeOrbitals(system), ())
+    x = system.random(jax.random.PRNGKey(1), 160)
+    params = model.init(jax.random.PRNGKey(0), x[:1])
+    samples = x.reshape(10, 16, 1, 3)
+    h = el.CoulombHamiltonian(system)
+    log_amp = lambda z: model.apply(params, z)
+    whole = el.observables._components_and_local_energies(h, log_amp, samples, None)[1]
+    chunked = el.observables._components_and_local_energies(h, log_amp, samples, 48)[1]
+    np.testing.assert_allclose(np.asarray(chunked), np.asarray(whole), rtol=1e-12)
+    # evaluation passes chunk by default, so a pass of any length stays in bounded memory
+    default = inspect.signature(el.evaluation_pass).parameters["chunk"].default
+    assert default == el.observables.EVALUATION_CHUNK >= 1024

@@ -70,14 +70,22 @@ def _components_and_local_energies(hamiltonian, log_amp_fn, samples, chunk=None)
     ), shaped(parts.total)
 
 
+#: Configurations per local-energy batch in an evaluation pass. The forward Laplacian holds a
+#: gradient of every intermediate for each configuration (tens of kB for He, more for larger
+#: systems), so a pass of 5·10⁵ He samples at once asked for ~30 GB; batches of this size keep
+#: a pass's memory bounded whatever its length.
+EVALUATION_CHUNK = 4096
+
+
 def evaluate_components(search, state, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 10,
-                        chunk: int | None = None) -> tuple[EnergyComponents, float]:
+                        chunk: int | None = EVALUATION_CHUNK) -> tuple[EnergyComponents, float]:
     """A separate evaluation pass of a :class:`psiloom.train.GroundStateSearch` at fixed parameters.
 
     Continues the search's chains from ``state``, discards ``burn_in_sweeps`` sweeps and stores
     ``n_samples`` (rounded up to a multiple of the number of chains), through the same sampling
     path as ``search.evaluate`` (fast updates included; default key ``fold_in(state.key, 11)``).
-    Returns ``(EnergyComponents, acceptance)``.
+    Local energies are computed ``chunk`` configurations at a time (:data:`EVALUATION_CHUNK`;
+    ``None``: all at once). Returns ``(EnergyComponents, acceptance)``.
     """
     components, _, _, acceptance = evaluation_pass(search, state, n_samples, key, burn_in_sweeps, chunk)
     return components, acceptance
@@ -93,7 +101,7 @@ class EvaluationPass(NamedTuple):
 
 
 def evaluation_pass(search, state, n_samples: int, key: jax.Array | None = None, burn_in_sweeps: int = 10,
-                    chunk: int | None = None) -> EvaluationPass:
+                    chunk: int | None = EVALUATION_CHUNK) -> EvaluationPass:
     """Like :func:`evaluate_components`, also returning the local energies and the samples."""
     chains, key, n_per_chain, burn_in = search.evaluation_inputs(state, n_samples, key, burn_in_sweeps, fold=11)
     hamiltonian = search.hamiltonian
