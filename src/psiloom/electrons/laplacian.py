@@ -199,8 +199,10 @@ def _take_particle(layout: _Layout, g, axis: int):
     """(w, *shape): Σ_e δ(e, i_axis) g[(e, c), ...] — the part of a dense gradient that a block on
     ``axis`` meets in a contraction over D (broadcast sizes of 1 along ``axis`` are allowed)."""
     shape = g.shape[1:]
-    oh = _one_hot(layout, len(shape), axis, g.dtype)[:, None]
-    return jnp.sum(g.reshape(layout.n, layout.w, *shape) * oh, axis=0)
+    full = g.reshape(layout.n, layout.w, *shape)
+    if shape[axis] == 1:  # broadcast along the axis: particle e's rows sit at index 0
+        return jnp.moveaxis(jnp.squeeze(full, 2 + axis), 0, 1 + axis)
+    return jnp.moveaxis(jnp.diagonal(full, axis1=0, axis2=2 + axis), -1, 1 + axis)
 
 
 def _full_gradient(a: _Jet, layout: _Layout):
@@ -241,7 +243,17 @@ def _grad_square(a: _Jet, layout: _Layout):
     return _sum(terms, a.v)
 
 
-def _add_jets(v, l, parts):
+def _make_jet(v, g, l, blocks, layout: _Layout):
+    """A jet in normal form: blocks sorted by axis, and folded into the dense part if there is one
+    (a gradient that depends on all particles gains nothing from keeping blocks beside it)."""
+    blocks = tuple(sorted(blocks, key=lambda t: t[0]))
+    if g is not None and blocks:
+        g = _sum([g, *(_densify_block(layout, axis, b) for axis, b in blocks)], None)
+        blocks = ()
+    return _Jet(v, g, l, blocks)
+
+
+def _add_jets(v, l, parts, layout: _Layout):
     """Jet with value v, Laplacian l and gradient the sum of the parts' gradients."""
     dense = [p.g for p in parts if p.g is not None]
     blocks: dict = {}
@@ -249,7 +261,7 @@ def _add_jets(v, l, parts):
         for axis, b in p.blocks:
             blocks[axis] = b if axis not in blocks else blocks[axis] + b
     g = None if not dense else _sum(dense, None)
-    return _Jet(v, g, l, tuple(sorted(blocks.items(), key=lambda t: t[0])))
+    return _make_jet(v, g, l, blocks.items(), layout)
 
 
 # --------------------------------------------------------------------------- the interpreter
@@ -485,6 +497,9 @@ def _linear(prim, params, ins, slots, layout: _Layout):
             b = jnp.sum(b, axis=tuple(k + 1 for k in others))
             b = jnp.moveaxis(b, 1 + axis - sum(1 for k in others if k < axis), 0)
             extra.append(b.reshape(layout.n * layout.w, *jnp.shape(v)))
+        elif prim.name == "dot_general" and len(members) == 1:  # the particle axis is contracted
+            ((i, b),) = members.items()
+            extra.append(_contracted_block(params, values, i, axis, b, layout))
         else:
             for i, b in members.items():
                 dense = _densify_block(layout, axis, b)
@@ -495,11 +510,32 @@ def _linear(prim, params, ins, slots, layout: _Layout):
         n_out = len(v)
         gs = [None] * n_out if g is None else list(g)
         gs = [_sum([gk, *extra], None) if (gk is not None or extra) else None for gk in gs]
-        return [_Jet(v[k], gs[k], l[k], tuple(sorted(((axis, b[k]) for axis, b in out_blocks), key=lambda t: t[0])))
-                for k in range(n_out)]
+        return [_make_jet(v[k], gs[k], l[k], [(axis, b[k]) for axis, b in out_blocks], layout) for k in range(n_out)]
     if extra:
         g = _sum([g, *extra], None)
-    return _Jet(v, g, l, tuple(sorted(out_blocks, key=lambda t: t[0])))
+    return _make_jet(v, g, l, out_blocks, layout)
+
+
+def _contracted_block(params, values, slot: int, axis: int, b, layout: _Layout):
+    """Dense gradient of dot_general(a, y) (y fixed) where the block of operand ``slot`` sits on a
+    contracted axis: with that contraction turned into a batch dimension the map keeps one term
+    per particle, and particle e's term is the derivative along x_e (no scatter, n times fewer
+    products than densifying first)."""
+    (lc, rc), (lb, rb) = params["dimension_numbers"]
+    mine, other = (lc, rc) if slot == 0 else (rc, lc)
+    k = list(mine).index(axis)
+    partner = other[k]
+    mine_c = tuple(d for d in mine if d != axis)
+    other_c = tuple(d for d in other if d != partner)
+    if slot == 0:
+        dims = ((mine_c, other_c), ((*lb, axis), (*rb, partner)))
+    else:
+        dims = ((other_c, mine_c), ((*lb, partner), (*rb, axis)))
+    fixed = values[1 - slot]
+    op = lambda t: lax.dot_general_p.bind(*((t, fixed) if slot == 0 else (fixed, t)), **{**params, "dimension_numbers": dims})
+    out = jax.vmap(op)(b)  # (w, *batch, n, *free)
+    out = jnp.moveaxis(out, 1 + len(lb), 0)  # (n, w, *out_shape)
+    return out.reshape(layout.n * layout.w, *out.shape[2:])
 
 
 def _dot_over_leading(params, x, y):
@@ -510,10 +546,25 @@ def _dot_over_leading(params, x, y):
     return lax.dot_general_p.bind(x, y, **{**params, "dimension_numbers": dims})
 
 
+def _partner(params, slot: int, axis: int):
+    """The other operand's axis paired with ``axis`` of operand ``slot`` by a dot_general
+    contraction or batch dimension, or None for a free axis."""
+    (lc, rc), (lb, rb) = params["dimension_numbers"]
+    mine, other = ((lc, lb), (rc, rb)) if slot == 0 else ((rc, rb), (lc, lb))
+    for dims, partner in zip(mine, other):
+        if axis in dims:
+            return partner[list(dims).index(axis)]
+    return None
+
+
 def _cross(prim, params, a: _Jet, b: _Jet, layout: _Layout, out_ndim: int):
-    """∇a·∇b pushed through the bilinear map (Σ over the D coordinates of op(∂a, ∂b))."""
-    is_mul = prim.name == "mul"
-    if is_mul:
+    """Terms of ∇a·∇b pushed through the bilinear map: Σ over the D coordinates of op(∂a, ∂b).
+
+    For blocks on particle axes p (of a) and q (of b) the sum over particles e of
+    δ(e, i_p) δ(e, i_q) leaves δ(i_p, i_q): a mask on two axes of one operand (when q is paired
+    with an axis of a by the contraction, or p with one of b) or of the output (both free), then
+    one bilinear map with the w block components contracted."""
+    if prim.name == "mul":
         over_leading = lambda x, y: jnp.sum(x * y, axis=0)
     else:
         over_leading = lambda x, y: _dot_over_leading(params, x, y)
@@ -521,32 +572,33 @@ def _cross(prim, params, a: _Jet, b: _Jet, layout: _Layout, out_ndim: int):
     terms = []
     if a.g is not None and b.g is not None:
         terms.append(over_leading(a.g, b.g))
-    if is_mul:  # dense × block: pick the dense rows of the block's particle
-        if a.g is not None:
-            terms += [over_leading(_take_particle(layout, a.g, q), bq) for q, bq in b.blocks]
-        if b.g is not None:
-            terms += [over_leading(ap, _take_particle(layout, b.g, p)) for p, ap in a.blocks]
-    else:
-        if a.g is not None and b.blocks:
-            terms.append(over_leading(a.g, _sum([_densify_block(layout, q, bq) for q, bq in b.blocks], None)))
-        if b.g is not None and a.blocks:
-            terms.append(over_leading(_sum([_densify_block(layout, p, ap) for p, ap in a.blocks], None), b.g))
+    for dense, blocks, slot in ((a.g, b.blocks, 1), (b.g, a.blocks, 0)):
+        if dense is None:
+            continue
+        for q, bq in blocks:  # dense part of one operand meets a block of the other
+            partner = q if prim.name == "mul" else _partner(params, slot, q)
+            if partner is not None:
+                taken = _take_particle(layout, dense, partner)
+                terms.append(over_leading(taken, bq) if slot == 1 else over_leading(bq, taken))
+            else:
+                full = _densify_block(layout, q, bq)
+                terms.append(over_leading(dense, full) if slot == 1 else over_leading(full, dense))
     for p, ap in a.blocks:
         for q, bq in b.blocks:
-            if is_mul:
+            if prim.name == "mul":
                 term = over_leading(ap, bq)
                 terms.append(term if p == q else term * _axis_array(layout.n, out_ndim, (p, q), term.dtype))
                 continue
-            (lc, rc), (lb, rb) = params["dimension_numbers"]
-            paired = ((p in lc and q in rc and list(lc).index(p) == list(rc).index(q))
-                      or (p in lb and q in rb and list(lb).index(p) == list(rb).index(q)))
-            op_, oq = _axis_map("dot_general", params, shapes, 0, p), _axis_map("dot_general", params, shapes, 1, q)
-            if paired:
-                terms.append(over_leading(ap, bq))
-            elif op_ is not None and oq is not None and op_ != oq:
-                terms.append(over_leading(ap, bq) * _axis_array(layout.n, out_ndim, (op_, oq), ap.dtype))
+            q_in_a, p_in_b = _partner(params, 1, q), _partner(params, 0, p)
+            if q_in_a is not None:
+                x = ap if q_in_a == p else ap * _axis_array(layout.n, ap.ndim - 1, (p, q_in_a), ap.dtype)[None]
+                terms.append(over_leading(x, bq))
+            elif p_in_b is not None:
+                terms.append(over_leading(ap, bq * _axis_array(layout.n, bq.ndim - 1, (p_in_b, q), bq.dtype)[None]))
             else:
-                terms.append(over_leading(_densify_block(layout, p, ap), _densify_block(layout, q, bq)))
+                out_p = _axis_map("dot_general", params, shapes, 0, p)
+                out_q = _axis_map("dot_general", params, shapes, 1, q)
+                terms.append(over_leading(ap, bq) * _axis_array(layout.n, out_ndim, (out_p, out_q), ap.dtype))
     return terms
 
 
@@ -557,7 +609,7 @@ def _bilinear(prim, params, a: _Jet, b: _Jet, layout: _Layout):
     v = first.v
     cross = _cross(prim, params, a, b, layout, v.ndim)
     l = first.l + second.l + 2.0 * _sum(cross, v)
-    return _add_jets(v, l, [first, second])
+    return _add_jets(v, l, [first, second], layout)
 
 
 def _unary(fn, a, layout: _Layout):
