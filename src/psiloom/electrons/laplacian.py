@@ -19,11 +19,44 @@ implementations sit behind :func:`value_grad_laplacian`'s ``method`` option:
         elementwise φ(y):    (φ(y), φ'(y)∇y,        φ'(y)∇²y + φ''(y)|∇y|²)
         product a·b:         (ab,   a∇b + b∇a,      a∇²b + b∇²a + 2∇a·∇b)
 
-    (dot products and matrix products follow the product rule). A listed set of further
-    primitives (``GENERIC_RULE``: LU and other factorisations, maxima, control flow) uses
-    the exact generic rule ``∇²(g∘y) = J_g ∇²y + Σ_k (∂_k y)ᵀ H_g (∂_k y)`` evaluated with
-    nested forward-mode derivatives of that primitive alone. Custom-derivative functions are
-    entered through their primal program.
+    (dot products and matrix products follow the product rule).
+
+    Per-particle blocks. When x has shape (n, w) (n particles, w = 3 coordinates each) most
+    early intermediates depend on few particles along one axis: a one-electron feature y[.., i, ..]
+    depends on r_i only, a pair quantity y[.., i, .., j, ..] on r_i and r_j. Such a gradient is
+    stored as *blocks*, one per particle axis a, each of shape (w, *y.shape):
+
+        ∂y[.., i_a, ..] / ∂x_{e,c} = δ(e, i_a) b_a[c, .., i_a, ..]     (summed over the blocks),
+
+    beside (or instead of) the dense part (D, *y.shape); x itself is one block on axis 0 with
+    b[c, i, k] = δ_ck. A pair quantity then costs 2w instead of D = n·w numbers per entry, a
+    one-particle quantity w instead of D. The rules keep blocks where the math allows:
+
+        linear map L:        each block goes through L and keeps its particle axis, moved to
+                             where L puts it (broadcasts, transposes, reshapes; sums, slices,
+                             gathers, concatenations, dot_general along other axes); where L
+                             contracts the particle axis (sum or dot_general over particles), the
+                             result depends on every particle: that block turns dense, the
+                             contracted axis taken as a batch axis (particle e's term is the
+                             derivative along x_e), a sum over it as a mere axis move;
+        elementwise φ(y):    φ'(y) times each block, and |∇y|² = Σ_a |b_a|² + 2 Σ_{a<a'}
+                             δ(i_a, i_a') b_a·b_a' (+ dense terms);
+        products:            block by block; the cross term ∇a·∇b pairs a block on axis p with
+                             one on axis q through δ(i_p, i_q): no mask for the same (or a
+                             contracted or batched pair of) axes, else a mask on two axes of one
+                             operand or of the result; against a dense part the block's own
+                             particle rows are taken (a diagonal), not the block scattered.
+
+    A jet with a dense part absorbs its blocks into it (once every particle matters nothing is
+    left to save), and anything without a block rule (a slice along the particle axis, dynamic
+    slices, scatters, the generic rule below) scatters blocks into the dense form first: b_a
+    placed at rows e = i_a, exactly. The form changes the cost, never the numbers
+    (``sparse=False`` keeps everything dense).
+
+    A listed set of further primitives (``GENERIC_RULE``: LU and other factorisations, maxima,
+    control flow) uses the exact generic rule ``∇²(g∘y) = J_g ∇²y + Σ_k (∂_k y)ᵀ H_g (∂_k y)``
+    evaluated with nested forward-mode derivatives of that primitive alone. Custom-derivative
+    functions are entered through their primal program.
 
     No silent slow path: a primitive in none of these lists (a JAX version that renamed or
     added one) still gets the exact generic rule, but first an :class:`UnknownPrimitiveWarning`
