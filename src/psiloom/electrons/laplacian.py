@@ -98,8 +98,9 @@ def value_grad_laplacian(f: Callable, x: jax.Array, method: str = "forward"):
     Args:
         f: scalar function of one array (for batches, ``jax.vmap`` this function).
         x: the point; any shape, floating dtype.
-        method: ``"forward"`` (own forward Laplacian), ``"hessian"`` (jvp of the gradient) or
-            ``"folx"`` (optional package).
+        method: ``"forward"`` (own forward Laplacian; per-particle blocks when ``x`` has shape
+            ``(n_particles, 3)``), ``"hessian"`` (jvp of the gradient) or ``"folx"`` (optional
+            package).
     """
     if method == "forward":
         return forward_laplacian(f, x)
