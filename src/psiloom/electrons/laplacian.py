@@ -335,7 +335,7 @@ _LINEAR_ALL = {
     "mesh_cast", "reshard",
 }
 # Primitives linear in some operands, the others being fixed parameters (indices, predicates).
-_LINEAR_IN = {
+_LINEAR_IN: dict[str, tuple[int, ...] | None] = {
     "gather": (0,),
     "dynamic_slice": (0,),
     "dynamic_update_slice": (0, 1),
