@@ -155,34 +155,7 @@ def test_wrong_trial_exponent_is_not_an_eigenstate():
 
 
 # ----------------------------------------------------------------------------- Laplacians
-def _finite_difference(f, x, h=1e-3):
-    """Central differences: gradient and Laplacian, errors O(h²)."""
-    flat = x.reshape(-1)
-    grad, lap = np.zeros_like(flat), 0.0
-    f0 = f(flat)
-    for k in range(flat.size):
-        e = np.zeros_like(flat)
-        e[k] = h
-        fp, fm = f(flat + e), f(flat - e)
-        grad[k] = (fp - fm) / (2 * h)
-        lap += (fp - 2 * f0 + fm) / h**2
-    return grad.reshape(x.shape), lap
-
-
-def test_laplacian_methods_agree_with_each_other_and_finite_differences(neural_li):
-    # Own forward Laplacian vs jvp-of-gradient vs central finite differences on a neural state.
-    model, params = neural_li
-    x = jnp.asarray(_config(LI, 11))
-    f = lambda r: model.apply(params, r.reshape(1, 3, 3))[0]
-    both = jax.jit(lambda y: [el.value_grad_laplacian(f, y, m) for m in ("forward", "hessian")])
-    (v1, g1, l1), (v0, g0, l0) = both(x)
-    assert float(v1) == pytest.approx(float(v0), abs=1e-12)
-    np.testing.assert_allclose(np.asarray(g1), np.asarray(g0), atol=1e-10)
-    assert float(l1) == pytest.approx(float(l0), rel=1e-10, abs=1e-10)
-    f_np = jax.jit(f)
-    g_fd, l_fd = _finite_difference(lambda r: float(f_np(jnp.asarray(r))), np.asarray(x))
-    np.testing.assert_allclose(np.asarray(g0), g_fd, atol=1e-5)
-    assert float(l0) == pytest.approx(l_fd, abs=1e-3)  # second differences: O(h²) truncation + rounding/h²
+# Forward Laplacian vs Hessian trace vs finite differences on a neural state: test_laplacian_blocks.py
 
 
 @pytest.mark.skipif(importlib.util.find_spec("folx") is None, reason="optional package folx not installed")
