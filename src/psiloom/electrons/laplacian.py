@@ -24,13 +24,13 @@ implementations sit behind :func:`value_grad_laplacian`'s ``method`` option:
     Per-particle blocks. When x has shape (n, w) (n particles, w = 3 coordinates each) most
     early intermediates depend on few particles along one axis: a one-electron feature y[.., i, ..]
     depends on r_i only, a pair quantity y[.., i, .., j, ..] on r_i and r_j. Such a gradient is
-    stored as *blocks*, one per particle axis a, each of shape (w, *y.shape):
+    stored as *blocks*, one per particle axis a, each of shape ``(w, *y.shape)``::
 
         ∂y[.., i_a, ..] / ∂x_{e,c} = δ(e, i_a) b_a[c, .., i_a, ..]     (summed over the blocks),
 
-    beside (or instead of) the dense part (D, *y.shape); x itself is one block on axis 0 with
+    beside (or instead of) the dense part ``(D, *y.shape)``; x itself is one block on axis 0 with
     b[c, i, k] = δ_ck. A pair quantity then costs 2w instead of D = n·w numbers per entry, a
-    one-particle quantity w instead of D. The rules keep blocks where the math allows:
+    one-particle quantity w instead of D. The rules keep blocks where the math allows::
 
         linear map L:        each block goes through L and keeps its particle axis, moved to
                              where L puts it (broadcasts, transposes, reshapes; sums, slices,
