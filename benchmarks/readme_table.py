@@ -76,6 +76,16 @@ def rows(saved: dict) -> list[str]:
                 f"{_spread(line['ratio'], line['ratio_min'], line['ratio_max'], '×')} faster"
                 + (f"; {bound:.0f}× if both paths ran at this CPU's roofline" if bound else "") + f" | target ≥ 10× | {line['runs']} | "
                 f"{_context(saved, quick)} |")
+        elif (line.get("metric") == "local_energy_throughput" and line["method"]["laplacian"] == "forward"
+              and line.get("ratio_to_folx") is not None):
+            folx = next(l for l in lines if l.get("metric") == "local_energy_throughput"
+                        and l["method"]["laplacian"] == "folx" and l["system"] == line["system"])
+            out.append(
+                f"| Local energy of {line['system']['name']} ({line['method']['trial_state']}, "
+                f"{line.get('walkers', 256)} configurations per call): own forward Laplacian vs the optional folx | "
+                f"best of {line.get('repeats', 7)} interleaved rounds: {line['value']:.0f} vs {folx['value']:.0f} "
+                f"configurations/s | {line['ratio_to_folx']:.2f}× folx's rate (target ≥ 1) | {line.get('repeats', 7)} | "
+                f"{_context(saved, quick)} |")
     return out
 
 

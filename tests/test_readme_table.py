@@ -29,3 +29,16 @@ def test_rows_carry_median_spread_and_command():
     (row,) = table.rows(saved)
     assert "12× (11–14)" in row and "64 chains" in row and "`python benchmarks/throughput.py`" in row
     assert "| 3 |" in row and "load 0.1→0.2" in row and "40× if both paths ran at this CPU's roofline" in row
+
+
+def test_laplacian_rows_compare_with_folx_on_the_same_system():
+    table = _module()
+    system = {"name": "Be"}
+    line = lambda m, v, **kw: {"metric": "local_energy_throughput", "system": system, "value": v,
+                               "method": {"laplacian": m, "trial_state": "neural n_det=4"}, **kw}
+    saved = {"command": "python benchmarks/molecules.py --case laplacian", "started": "2026-01-01T00:00:00Z",
+             "loadavg_start": [0.5, 0, 0], "loadavg_end": [1.5, 0, 0], "cpu_count": 2,
+             "lines": [line("hessian", 100.0, ratio_to_folx=0.5), line("forward", 300.0, ratio_to_folx=1.5, repeats=7),
+                       line("folx", 200.0, ratio_to_folx=1.0), {"summary": True, "quick": False}]}
+    (row,) = table.rows(saved)  # one row: the forward line, with folx's rate beside it
+    assert "300 vs 200 configurations/s" in row and "1.50× folx's rate" in row and "Be" in row
