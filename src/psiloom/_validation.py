@@ -109,13 +109,15 @@ def probability(name: str, value: Any, closed: bool = False) -> float:
     return value
 
 
-def boolean(name: str, value: Any) -> bool:
-    """``value`` as a ``bool``: only ``True``/``False`` (Python or NumPy), never 0/1, strings or NaN."""
+def boolean(name: str, value: Any, also: str | None = None) -> bool:
+    """``value`` as a ``bool``: only ``True``/``False`` (Python or NumPy), never 0/1, strings or NaN.
+    ``also`` names a further value the caller accepts itself (for the message, e.g. ``"'auto'"``)."""
     if hasattr(value, "ndim") and getattr(value, "ndim") == 0 and hasattr(value, "item") \
             and getattr(getattr(value, "dtype", None), "kind", None) == "b":
         value = value.item()
     if not isinstance(value, bool):
-        raise ArgumentTypeError(f"{name} must be True or False, got {value!r} ({type(value).__name__})")
+        allowed = "True or False" if also is None else f"True, False or {also}"
+        raise ArgumentTypeError(f"{name} must be {allowed}, got {value!r} ({type(value).__name__})")
     return value
 
 

@@ -79,9 +79,12 @@ class SpinSpace:
         n = nonnegative_int("n (number of configurations)", n)
         if self.n_up is None:
             return jnp.where(jax.random.bernoulli(key, 0.5, (n, self.n_sites)), 1.0, -1.0)
-        base = jnp.where(jnp.arange(self.n_sites) < self.n_up, 1.0, -1.0)
-        keys = jax.random.split(key, n)
-        return jax.vmap(lambda k: jax.random.permutation(k, base))(keys)
+        # the n_up sites with the smallest of n_sites i.i.d. uniforms are up: their ranks are a
+        # uniformly random permutation, so every configuration of the sector is equally likely
+        # (one flat draw and two sorts compile in a fraction of the time of a shuffle per row)
+        u = jax.random.uniform(key, (n * self.n_sites,)).reshape(n, self.n_sites)
+        ranks = jnp.argsort(jnp.argsort(u, axis=1), axis=1)
+        return jnp.where(ranks < self.n_up, 1.0, -1.0)
 
     def configurations(self) -> np.ndarray:
         """All basis states as a NumPy array ``(size, n_sites)`` of ±1, in increasing order of

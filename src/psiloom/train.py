@@ -245,16 +245,20 @@ class GroundStateSearch:
         with parallel.mesh_context(self.mesh):  # traces see the mesh (per-device host callbacks)
             return self._step(state)
 
-    def _advance(self, steps_per_visit: int, learn: bool = True):
-        """``advance(state, n)``: up to ``steps_per_visit`` steps in the one compiled program of
-        that visit length; ``learn=False`` runs the same program's frozen steps (evaluation)."""
+    def _multi_program(self, steps_per_visit: int):
+        """The jitted visit program ``multi(state, n, learn)`` of one visit length."""
         if steps_per_visit not in self._multi:
             def multi(s, n, learn):
                 state, *rest = self.vmc.multi_step(s, n, steps_per_visit, learn)
                 return self._constrain(state, *rest)
 
             self._multi[steps_per_visit] = jax.jit(multi)
-        multi = self._multi[steps_per_visit]
+        return self._multi[steps_per_visit]
+
+    def _advance(self, steps_per_visit: int, learn: bool = True):
+        """``advance(state, n)``: up to ``steps_per_visit`` steps in the one compiled program of
+        that visit length; ``learn=False`` runs the same program's frozen steps (evaluation)."""
+        multi = self._multi_program(steps_per_visit)
         flag = np.bool_(learn)
 
         def advance(state, n):

@@ -43,6 +43,7 @@ from __future__ import annotations
 from typing import Any, Callable, NamedTuple
 
 import jax
+import jax.extend
 import jax.numpy as jnp
 import optax
 
@@ -140,6 +141,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     def bind(params):
         return BoundState(model, params, fast=fast)
 
+    @jax.jit  # one program: op by op, its many small operations compile one by one (~1 s more on a cold cache)
     def init(key, params=None) -> VMCState:
         k_param, k_chain, k_run = jax.random.split(key, 3)
         space = sampler.space
@@ -228,19 +230,26 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         (1-based, the value ``state.step`` would have had after it; 0 if none). ``learn``
         (traced bool) ``False``: steps that only sample and estimate (see ``step``); passing it
         as an argument lets training and evaluation share one compiled program."""
-        out_shape = jax.eval_shape(lambda s: step(s)[1], state)
-
-        def skip(st):
-            return st, strong(jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), out_shape)), jnp.int32(0)
-
         def take(st):
             new, out, bad = guarded_step(st, learn)
             return new, strong(out), bad
 
+        # the step traced once: its jaxpr gives the output shapes of the skip branch and is
+        # replayed as the taken branch (tracing the step a second time took half the trace time)
+        traced, (_, out_shape, _) = jax.make_jaxpr(take, return_shape=True)(state)
+        replay = jax.extend.core.jaxpr_as_fun(traced)
+        out_tree = jax.tree_util.tree_structure((state, out_shape, jnp.int32(0)))
+
+        def replayed(st):
+            return jax.tree_util.tree_unflatten(out_tree, replay(*jax.tree_util.tree_leaves(st)))
+
+        def skip(st):
+            return st, strong(jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), out_shape)), jnp.int32(0)
+
         def body(carry, i):
             st, bad, bad_step = carry
             active = (i < n_active) & (bad == 0)
-            new, out, b = jax.lax.cond(active, take, skip, st)
+            new, out, b = jax.lax.cond(active, replayed, skip, st)
             taken = active & (b == 0)
             bad_step = jnp.where(active & (b != 0), st.step + 1, bad_step)
             return (new, jnp.where(active, b, bad), bad_step), (out, taken)

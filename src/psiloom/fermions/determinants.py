@@ -37,7 +37,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from psiloom.fermions.space import FermionSpace
-from psiloom.states.base import TrialState, default_real_dtype
+from psiloom.states.base import TrialState, normal_init, default_real_dtype
 from psiloom.states.fast import FastUpdates
 
 
@@ -172,7 +172,7 @@ class DeterminantState(TrialState):
             def init_dn(key, shape, dtype=dtype):
                 return jnp.asarray(dn0, dtype)
         else:
-            init_up = init_dn = nn.initializers.normal(1.0)
+            init_up = init_dn = normal_init(1.0)
         up = self.param("orbitals_up", init_up, (s.n_orbitals, s.n_up), dtype)
         down = self.param("orbitals_down", init_dn, (s.n_orbitals, s.n_down), dtype)
         return up, down

@@ -30,7 +30,6 @@ import functools
 import math
 
 import numpy as np
-from scipy import optimize
 
 from psiloom._validation import finite_real, integer
 
@@ -98,6 +97,8 @@ def _ground_state_rapidities(n: int) -> np.ndarray:
             break
 
     # Newton polishing of the full set of equations.
+    from scipy import optimize  # imported on use: ~0.3 s of every import of psiloom otherwise
+
     sol = optimize.root(
         _residual,
         lam,

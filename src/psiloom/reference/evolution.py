@@ -21,7 +21,6 @@ from __future__ import annotations
 from typing import Mapping
 
 import numpy as np
-import scipy.sparse.linalg
 
 from psiloom._validation import boolean
 from psiloom.reference.lanczos import operator_matrix
@@ -29,6 +28,13 @@ from psiloom.reference.vectors import _vector
 from psiloom.spaces import SpinSpace
 
 __all__ = ["evolve_state", "evolve_expectations"]
+
+
+def _expm_multiply(generator, v):
+    """``expm(generator) @ v`` by ``scipy.sparse.linalg.expm_multiply`` (imported on use)."""
+    import scipy.sparse.linalg
+
+    return scipy.sparse.linalg.expm_multiply(generator, v)
 
 
 def check_time_grid(times, name: str = "times", strict: bool = True) -> np.ndarray:
@@ -79,7 +85,7 @@ def evolve_state(hamiltonian, vector, times, space: SpinSpace | None = None, ima
     for i in range(1, t.size):
         dt = t[i] - t[i - 1]
         if dt > 0:
-            v = scipy.sparse.linalg.expm_multiply(gen * dt, v)
+            v = _expm_multiply(gen * dt, v)
             v = v / np.linalg.norm(v)
         out[i] = v
     return out
@@ -106,7 +112,7 @@ def evolve_expectations(hamiltonian, vector, times, observables: Mapping[str, ob
     values = {name: np.empty(t.size, complex) for name in mats}
     for i in range(t.size):
         if i and t[i] > t[i - 1]:
-            v = scipy.sparse.linalg.expm_multiply(gen * (t[i] - t[i - 1]), v)
+            v = _expm_multiply(gen * (t[i] - t[i - 1]), v)
             v = v / np.linalg.norm(v)
         for name, m in mats.items():
             values[name][i] = np.vdot(v, m @ v)

@@ -12,14 +12,15 @@ E/L → −(4t²/U) ln 2 for U ≫ t (the Heisenberg chain with J = 4t²/U; Hult
 from __future__ import annotations
 
 import numpy as np
-import scipy.integrate
-import scipy.special
 
 from psiloom._validation import finite_real, positive_real
 
 
 def hubbard_chain_energy_per_site(U: float, t: float = 1.0) -> float:
     """The Lieb-Wu half-filled ground-state energy per site (module docstring), U ≥ 0, t > 0."""
+    import scipy.integrate  # imported on use
+    import scipy.special
+
     U = finite_real("U", U, minimum=0.0)
     t = positive_real("t", t)
     u = U / t

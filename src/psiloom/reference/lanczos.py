@@ -15,9 +15,7 @@ in the basis order of ``space.configurations()``. The operator must commute with
 from __future__ import annotations
 
 import numpy as np
-import scipy.linalg
 import scipy.sparse as sp
-import scipy.sparse.linalg
 
 from psiloom._validation import positive_int
 from psiloom.spaces import SpinSpace
@@ -64,12 +62,16 @@ def _lowest(mat: sp.csr_matrix, k: int, tol: float):
     """The dense-or-Lanczos switch (module docstring)."""
     dim = mat.shape[0]
     if dim <= DENSE_LIMIT or k >= dim - 1:
+        import scipy.linalg  # imported on use (the linear-algebra modules cost ~0.3 s to import)
+
         vals, vecs = scipy.linalg.eigh(mat.toarray())
         return np.real(vals[:k]), vecs[:, :k]
     rng = np.random.default_rng(0)
     v0 = rng.standard_normal(dim)
     if np.iscomplexobj(mat.data):
         v0 = v0 + 0j
+    import scipy.sparse.linalg
+
     vals, vecs = scipy.sparse.linalg.eigsh(mat, k=k, which="SA", tol=tol, v0=v0)
     order = np.argsort(vals)
     return np.real(vals[order]), vecs[:, order]

@@ -29,7 +29,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import integrate
 
 from psiloom._validation import finite_real, integer
 
@@ -91,5 +90,7 @@ def tfim_ring_energy_per_site_infinite(J: float = 1.0, h: float = 1.0) -> float:
 
     # At h = ±J the integrand has a kink (|sin(k/2)|-like zero) at an end point; quad copes,
     # but tighten tolerances so the result is good to ~1e-13 relative.
+    from scipy import integrate  # imported on use
+
     value, _ = integrate.quad(integrand, 0.0, math.pi, epsabs=1e-14, epsrel=1e-13, limit=200)
     return -value / math.pi

@@ -14,7 +14,7 @@ tempered replicas (:mod:`~psiloom.sampling.tempering`) and electron moves
 (:mod:`psiloom.electrons.sampler`) all go through it; only the compiled CPU sweeps
 (:mod:`~psiloom.sampling.compiled`) repeat the same comparison inside their Numba loop.
 
-:func:`burn_in_and_collect` is the one burn-in / collection driver (two ``lax.scan`` loops)
+:func:`burn_in_and_collect` is the one burn-in / collection driver (``lax.scan`` loops)
 used by those samplers: ``n_burn`` discarded sweeps, then ``n_keep`` sweeps whose results are
 recorded; :func:`sweep_keys` gives the per-sweep keys, so a path outside the driver (the
 compiled sweeps) can use exactly the same random numbers.
@@ -101,16 +101,17 @@ def sweep_keys(key: jax.Array, n_burn: int, n_keep: int) -> tuple[jax.Array, jax
     return jax.random.split(k_burn, n_burn), jax.random.split(k_run, n_keep)
 
 
-def scan_sweeps(sweep: Callable, state, keys: jax.Array, first: int = 0, record: Callable | None = None):
+def scan_sweeps(sweep: Callable, state, keys, first: int = 0, record: Callable | None = None):
     """``len(keys)`` sweeps in a ``lax.scan``: ``sweep(key, state, index) -> (state, stats)``
     with ``index = first, first + 1, …``; returns the final state and the stacked
-    ``record(state, stats)`` (``None`` without ``record``)."""
+    ``record(state, stats)`` (``None`` without ``record``). ``keys`` may be any pytree of
+    per-sweep inputs with a leading sweep axis (e.g. random numbers drawn beforehand)."""
     def body(st, draw):
         k, i = draw
         st, stats = sweep(k, st, i)
         return st, (None if record is None else record(st, stats))
 
-    indices = first + jnp.arange(keys.shape[0], dtype=jnp.int32)
+    indices = first + jnp.arange(jax.tree_util.tree_leaves(keys)[0].shape[0], dtype=jnp.int32)
     return jax.lax.scan(body, state, (keys, indices))
 
 
@@ -124,8 +125,13 @@ def burn_in_and_collect(key: jax.Array, state, sweep: Callable, n_burn: int, n_k
     stacked along a leading axis of length ``n_keep``.
     """
     burn_keys, keep_keys = sweep_keys(key, n_burn, n_keep)
+    if n_burn and burn_sweep is None:
+        # one scan over all sweeps, the burn-in records dropped after it: the sweep is compiled
+        # once, not once per loop (a sizeable part of a small program's compile time)
+        state, records = scan_sweeps(sweep, state, jnp.concatenate([burn_keys, keep_keys]), record=record)
+        return state, jax.tree_util.tree_map(lambda r: r[n_burn:], records)
     if n_burn:
-        state, _ = scan_sweeps(burn_sweep or sweep, state, burn_keys)
+        state, _ = scan_sweeps(burn_sweep, state, burn_keys)
     return scan_sweeps(sweep, state, keep_keys, first=n_burn, record=record)
 
 

@@ -56,9 +56,9 @@ import jax
 import jax.numpy as jnp
 
 from psiloom._validation import boolean, nonnegative_int, one_of, positive_int
-from psiloom.sampling import base, compiled
-from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect, sweep_keys
-from psiloom.sampling.moves import Move, OrderedMove, choose_move, draw_entries
+from psiloom.sampling import base
+from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect
+from psiloom.sampling.moves import Move, OrderedMove, apply_entries, choose_move
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -167,20 +167,35 @@ class MetropolisChains:
         order: ``"random"`` (independent proposals per chain) or ``"sequential"`` (a systematic
             scan over the sites or bonds, the same in every chain; needs single flips or a bond
             exchange, or an :class:`~psiloom.sampling.OrderedMove`). See the module docstring.
-        compiled_sweeps: run the sweeps of :meth:`sample` through the compiled kernel of
-            :mod:`psiloom.sampling.compiled` where the state hands out its RBM arrays (the RBM
-            with real parameters, on the CPU) and the move is single flips or a bond exchange (in
-            either order); ``False`` keeps every proposal in JAX. Both give the same chains.
+        compiled_sweeps: ``True``: run the sweeps of :meth:`sample` through the compiled
+            kernel of :mod:`psiloom.sampling.compiled` where the state hands out its RBM arrays
+            (the RBM with real parameters, on the CPU) and the move is single flips or a bond
+            exchange (in either order); ``False`` keeps every proposal in JAX; ``"auto"``
+            (default): the kernel where a sweep's work ``n_chains · sweep · M`` (M hidden units)
+            is at least :attr:`COMPILED_SWEEP_WORK`, the JAX loop below. Both give the same
+            chains. The kernel is compiled by Numba once per machine (~10 s on two cores, then
+            loaded from the on-disk cache); below the threshold a JAX step is at most ~2× slower
+            (L = 16-40 rings, 32-64 chains), so a short run on a small system is done before the
+            kernel would have paid for its compilation. ``True`` uses it regardless.
     """
 
+    #: ``compiled_sweeps="auto"`` runs the compiled kernel from this many hidden-unit updates per
+    #: sweep (``n_chains · sweep · M``): e.g. 16 chains on a 100-site ring with α = 2 (320 000),
+    #: not 64 chains on a 20-site ring (51 200).
+    COMPILED_SWEEP_WORK = 1 << 17
+
     def __init__(self, space: SpinSpace, n_chains: int = 16, move: Move | None = None, bonds=None,
-                 sweep: int | None = None, burn_in: int = 0, order: str = "random", compiled_sweeps: bool = True):
+                 sweep: int | None = None, burn_in: int = 0, order: str = "random",
+                 compiled_sweeps: bool | str = "auto"):
         self.space = space
         self.n_chains = positive_int("n_chains", n_chains)
         self.sweep = space.n_sites if sweep is None else positive_int("sweep", sweep)
         self.burn_in = nonnegative_int("burn_in", burn_in)
         self.order = one_of("order", order, ("random", "sequential"))
-        self.compiled_sweeps = boolean("compiled_sweeps", compiled_sweeps)
+        if isinstance(compiled_sweeps, str) and compiled_sweeps == "auto":
+            self.compiled_sweeps: bool | str = "auto"
+        else:
+            self.compiled_sweeps = boolean("compiled_sweeps", compiled_sweeps, also="'auto'")
         move = choose_move(space, move, bonds)
         self.ordered = move.ordered(space.n_sites) if order == "sequential" else None
         self.move = move.randomised() if isinstance(move, OrderedMove) else move
@@ -215,54 +230,110 @@ class MetropolisChains:
         state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
         return self._step(key, state, log_amplitude, fast)
 
-    def _sweep(self, key, state, log_amplitude, fast=None, start=0):
-        """``self.sweep`` proposals per chain: ``(state, number of accepted proposals)``. The move
-        keys and acceptance uniforms of the whole sweep are drawn before the loop (two
-        random-number calls instead of two per proposal, which matters on CPU once proposals are
-        cheap). A sequential sweep makes proposals ``start, start + 1, …`` of the ordered move."""
-        k_moves, log_u = self._sweep_randomness(key, state)
-        if self.ordered is not None:
-            move = self.ordered
-            draws = jnp.asarray(start, jnp.int32) + jnp.arange(self.sweep, dtype=jnp.int32)
-        else:
-            move = self.move
-            draws = jax.random.split(k_moves, self.sweep)
+    def _sweep(self, key, state, log_amplitude, fast=None):
+        """``self.sweep`` proposals per chain of a move without an entry table (random order):
+        ``(state, number of accepted proposals)``. The move keys and acceptance uniforms of the
+        whole sweep are drawn before the loop (two random-number calls instead of two per
+        proposal, which matters on CPU once proposals are cheap)."""
+        k_moves, k_acc = jax.random.split(key)
+        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
 
         def body(carry, draw):
             st, acc = carry
             k, lu = draw
-            x_new, sites = move(k, st.x)
+            x_new, sites = self.move(k, st.x)
             st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
             return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
 
-        if self.ordered is not None and fast is not None and state.cache is not None:
-            body, draws = _ordered_fast_body(self.ordered, fast), self.ordered.sites_at(draws)
-        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.int32)), (draws, log_u))
+        draws = (jax.random.split(k_moves, self.sweep), log_u)
+        (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.int32)), draws)
         return state, acc
 
-    def _sweep_randomness(self, key, state: ChainState):
-        """The random numbers of one sweep from its key: the key of the move draws and
-        ``log u`` (sweep, n_chains) of the acceptance uniforms (both paths use this)."""
-        k_moves, k_acc = jax.random.split(key)
-        log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
-        return k_moves, log_u
+    def _table_draws(self, key, n_sweeps: int, n_chains: int, dtype):
+        """The random numbers of ``n_sweeps`` sweeps of a table move (single flips or a bond
+        exchange), drawn in one call: ``entries`` int32 ``(n_sweeps, sweep, n_chains)``, the
+        table row each chain proposes (``None`` in sequential order, whose positions are fixed),
+        and ``log u`` of the same shape. Both paths (JAX and compiled) use them, so both give
+        the same chains.
 
-    def _compiled_sample(self, key, state: ChainState, fast: FastUpdates, n_per_chain: int):
-        """:meth:`sample` through the compiled sweeps (one call for all sweeps), with the random
-        numbers of the JAX path: the same keys per sweep (:func:`~psiloom.sampling.base.sweep_keys`),
-        the same proposals and uniforms (see :meth:`_sweep`)."""
-        burn_keys, keep_keys = sweep_keys(key, self.burn_in, n_per_chain)
-        keys = jnp.concatenate([burn_keys, keep_keys]) if self.burn_in else keep_keys
+        The entry is ``⌊u′ P⌋`` of a second uniform ``u′`` (P table rows): uniform to the
+        resolution of ``u′``, and whatever small unevenness rounding leaves, the proposal stays
+        symmetric (row ``e`` is an involution, ``x → x' → x``, chosen with the same probability
+        both ways), so detailed balance is exact. One flat draw costs a fraction of the
+        compile time of several shaped ones (threefry over an n-d shape compiles to far more
+        code), and the compile time of a short run is most of its wall time."""
+        shape = (n_sweeps, self.sweep, n_chains)
+        size = n_sweeps * self.sweep * n_chains
+        if self.ordered is not None:
+            return None, jnp.log(jax.random.uniform(key, (size,), dtype=dtype)).reshape(shape)
+        assert self._entry_table is not None
+        n_entries = len(self._entry_table[0])
+        u = jax.random.uniform(key, (2 * size,), dtype=dtype)
+        entries = jnp.minimum(jnp.floor(u[size:] * n_entries).astype(jnp.int32), n_entries - 1)
+        return entries.reshape(shape), jnp.log(u[:size]).reshape(shape)
+
+    def _table_sample(self, key, state: ChainState, log_amplitude, fast, n_per_chain: int):
+        """:meth:`sample` of a table move: all random numbers drawn first
+        (:meth:`_table_draws`), then the sweeps in JAX or in the compiled kernel."""
         n_sweeps, n_chains = self.burn_in + n_per_chain, state.x.shape[0]
-        k_moves, log_u = jax.vmap(lambda k: self._sweep_randomness(k, state))(keys)
+        entries, log_u = self._table_draws(key, n_sweeps, n_chains, _uniform_dtype(state))
+        if fast is not None and self._uses_compiled_sweeps(fast, state):
+            return self._compiled_sample(state, fast, entries, log_u)
+        assert self._entry_table is not None
+        table, kind = self._entry_table
+        steps = jnp.arange(self.sweep, dtype=jnp.int32)
+        if self.ordered is None:
+            def body(carry, draw):
+                st, acc = carry
+                e, lu = draw
+                x_new, sites = apply_entries(table, kind, e, st.x)
+                st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
+                return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
+
+            def sweep(draw, st, i):
+                (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), draw)
+                return st, acc
+
+            draws = (entries, log_u)
+        else:
+            move = self.ordered
+            ordered_fast = fast is not None and state.cache is not None
+
+            def ordered_body(carry, draw):
+                st, acc = carry
+                position, lu = draw
+                x_new, sites = move(position, st.x)
+                st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
+                return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
+
+            def sweep(lu, st, i):  # a sequential sweep continues the cycle: proposals i·S, i·S + 1, …
+                positions = i * self.sweep + steps
+                if ordered_fast:
+                    body, draw = _ordered_fast_body(move, fast), (move.sites_at(positions), lu)
+                else:
+                    body, draw = ordered_body, (positions, lu)
+                (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), draw)
+                return st, acc
+
+            draws = log_u
+        state, (xs, logs, acc) = base.scan_sweeps(sweep, state, draws,
+                                                  record=lambda st, acc: (st.x, st.log_amp, acc))
+        b = self.burn_in
+        return xs[b:], logs[b:], state, self._acceptance(acc[b:], n_chains)
+
+    def _compiled_sample(self, state: ChainState, fast: FastUpdates, entries, log_u):
+        """:meth:`_table_sample` through the compiled sweeps (one call for all sweeps), fed the
+        same random numbers as the JAX path."""
         assert self._entry_table is not None  # compiled sweeps run only for table moves
         table, kind = self._entry_table
+        n_sweeps, n_chains = log_u.shape[0], state.x.shape[0]
         if self.ordered is not None:
             positions = (jnp.arange(n_sweeps, dtype=jnp.int32)[:, None] * self.sweep
                          + jnp.arange(self.sweep, dtype=jnp.int32))[:, :, None]
         else:
-            draw = jax.vmap(lambda k: draw_entries(k, n_chains, len(table)))
-            positions = jax.vmap(lambda k: draw(jax.random.split(k, self.sweep)))(k_moves)
+            positions = entries
+        from psiloom.sampling import compiled
+
         xs, logs, cache, counts = compiled.run_sweeps(fast.dense_rbm, state.x, state.cache, state.log_amp, table,
                                                       positions, log_u, kind)
         state = ChainState(xs[-1], logs[-1], cache)
@@ -273,8 +344,16 @@ class MetropolisChains:
         return jnp.sum(counts).astype(jnp.float32) / jnp.float32(counts.shape[0] * self.sweep * n_chains)
 
     def _uses_compiled_sweeps(self, fast: FastUpdates | None, state: ChainState) -> bool:
-        return (self.compiled_sweeps and self._entry_table is not None and fast is not None
-                and fast.dense_rbm is not None and state.cache is not None and compiled.available())
+        if not (self.compiled_sweeps and self._entry_table is not None and fast is not None
+                and fast.dense_rbm is not None and state.cache is not None):
+            return False
+        if self.compiled_sweeps == "auto":
+            work = state.x.shape[0] * self.sweep * fast.dense_rbm.kernel.shape[-1]
+            if work < self.COMPILED_SWEEP_WORK:
+                return False
+        from psiloom.sampling import compiled  # Numba is imported where the kernel may run (~0.5 s)
+
+        return compiled.available()
 
     def sample(self, key: jax.Array, state: ChainState, log_amplitude: LogAmplitudeFn, n_per_chain: int):
         """Burn in, then store ``n_per_chain`` samples per chain, one sweep apart.
@@ -287,11 +366,11 @@ class MetropolisChains:
         n_per_chain = positive_int("n_per_chain", n_per_chain)
         fast = fast_updates_of(log_amplitude)  # asked once per call
         state = state._replace(cache=attach_cache(state.x, state.cache, fast, recompute=False))
-        if fast is not None and self._uses_compiled_sweeps(fast, state):
-            return self._compiled_sample(key, state, fast, n_per_chain)
+        if self._entry_table is not None:
+            return self._table_sample(key, state, log_amplitude, fast, n_per_chain)
 
         def sweep(k, st, i):
-            return self._sweep(k, st, log_amplitude, fast, i * self.sweep)
+            return self._sweep(k, st, log_amplitude, fast)
 
         state, (xs, logs, acc) = burn_in_and_collect(key, state, sweep, self.burn_in, n_per_chain,
                                                      lambda st, acc: (st.x, st.log_amp, acc))

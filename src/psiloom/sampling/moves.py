@@ -46,6 +46,16 @@ def draw_entries(key: jax.Array, n_chains: int, n_entries: int) -> jax.Array:
     return jax.random.randint(key, (n_chains,), 0, n_entries)
 
 
+def apply_entries(table, kind: str, entries: jax.Array, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+    """Proposals of a table move with the entries given: chain ``c`` flips the site of row
+    ``entries[c]`` of ``table`` (``kind="flip"``) or swaps the two spins of that row's bond
+    (``"exchange"``). Returns ``(x', sites)`` with ``sites`` int32 ``(n_chains, K)``."""
+    sites = jnp.asarray(np.asarray(table), jnp.int32)[entries]
+    if kind == FLIP:
+        return x.at[jnp.arange(x.shape[0]), sites[:, 0]].multiply(-1), sites
+    return _swap(x, sites[:, 0], sites[:, 1]), sites
+
+
 def _swap(x, i, j):
     rows = jnp.arange(x.shape[0])
     xi, xj = x[rows, i], x[rows, j]
@@ -127,9 +137,7 @@ class SingleFlip(Move):
     """Flip one uniformly chosen spin per chain (changes the magnetisation by ±1)."""
 
     def __call__(self, key, x):
-        c, n = x.shape
-        site = draw_entries(key, c, n)
-        return x.at[jnp.arange(c), site].multiply(-1), site[:, None].astype(jnp.int32)
+        return apply_entries(np.arange(x.shape[1])[:, None], FLIP, draw_entries(key, *x.shape), x)
 
     def width(self, n_sites):
         return 1
@@ -165,10 +173,7 @@ class BondExchange(Move):
 
     def __call__(self, key, x):
         self.check(x.shape[1])
-        table = jnp.asarray(self.array, jnp.int32)
-        k = draw_entries(key, x.shape[0], len(self.bonds))
-        i, j = table[k, 0], table[k, 1]
-        return _swap(x, i, j), jnp.stack([i, j], axis=1)
+        return apply_entries(self.array, EXCHANGE, draw_entries(key, x.shape[0], len(self.bonds)), x)
 
     def width(self, n_sites):
         return 2

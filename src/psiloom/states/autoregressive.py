@@ -37,7 +37,7 @@ import jax
 import jax.numpy as jnp
 
 from psiloom._validation import finite_real, nonnegative_int, positive_int
-from psiloom.states.base import TrialState, default_real_dtype
+from psiloom.states.base import TrialState, normal_init, default_real_dtype
 
 
 def _causal_mask(n: int, dtype) -> jax.Array:
@@ -146,7 +146,7 @@ class ChainRuleState(TrialState):
         n = x.shape[-1]
         n_up = _check_n_up(n, self.magnetisation)
         dtype = self.param_dtype or default_real_dtype()
-        init = nn.initializers.normal(self.init_scale)
+        init = normal_init(self.init_scale)
         d = int(self.features)
         params = {
             "site_bias": self.param("site_bias", init, (n,), dtype),

@@ -14,7 +14,7 @@ import jax.numpy as jnp
 import flax.linen as nn
 
 from psiloom._validation import finite_real
-from psiloom.states.base import TrialState, check_width, default_complex_dtype, default_real_dtype
+from psiloom.states.base import TrialState, normal_init, check_width, default_complex_dtype, default_real_dtype
 
 
 class TwoBodyJastrow(TrialState):
@@ -28,7 +28,7 @@ class TwoBodyJastrow(TrialState):
     @nn.compact
     def log_amplitude(self, x):
         n = check_width(x)
-        init = nn.initializers.normal(finite_real("init_scale", self.init_scale, minimum=0.0))
+        init = normal_init(finite_real("init_scale", self.init_scale, minimum=0.0))
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
         w = self.param("pair", init, (n, n), dtype)
         w = jnp.triu(w, k=1)

@@ -62,7 +62,7 @@ import jax.numpy as jnp
 import flax.linen as nn
 
 from psiloom._validation import finite_real, positive_real
-from psiloom.states.base import TrialState, check_width, default_complex_dtype, default_real_dtype
+from psiloom.states.base import TrialState, normal_init, check_width, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates, RBMArrays, log_product
 
 
@@ -135,7 +135,7 @@ class RBM(TrialState):
         m = max(1, int(round(alpha * n)))
         dtype = self._dtype()
         resolve_cache_dtype(self.cache_dtype, dtype)  # a bad option fails here, not at the first sweep
-        init = nn.initializers.normal(init_scale)
+        init = normal_init(init_scale)
         kernel = self.param("kernel", init, (n, m), dtype)
         theta = x.astype(dtype) @ kernel
         if self.hidden_bias:
@@ -148,7 +148,7 @@ class RBM(TrialState):
         out = sum_log_two_cosh(theta, axis=-1)
         if self.visible_bias:
             scale = finite_real("init_scale", self.init_scale, minimum=0.0)
-            a = self.param("visible_bias", nn.initializers.normal(scale), (x.shape[-1],), self._dtype())
+            a = self.param("visible_bias", normal_init(scale), (x.shape[-1],), self._dtype())
             out = out + x.astype(a.dtype) @ a
         return out
 

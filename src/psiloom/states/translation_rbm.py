@@ -29,7 +29,7 @@ import flax.linen as nn
 
 from psiloom.lattices import Lattice
 from psiloom._validation import finite_real, positive_int
-from psiloom.states.base import TrialState, default_complex_dtype, default_real_dtype
+from psiloom.states.base import TrialState, normal_init, default_complex_dtype, default_real_dtype
 from psiloom.states.fast import FastUpdates
 from psiloom.states.rbm import rbm_fast_updates, resolve_cache_dtype, sum_log_two_cosh
 from psiloom.symmetry import SymmetryGroup, translations
@@ -83,7 +83,7 @@ class TranslationInvariantRBM(TrialState):
             raise ValueError(f"configurations have {n} sites, the group acts on {group.n_sites}")
         dtype = self.param_dtype or (default_complex_dtype() if self.complex_params else default_real_dtype())
         resolve_cache_dtype(self.cache_dtype, dtype)  # a bad option fails here, not at the first sweep
-        init = nn.initializers.normal(self.init_scale / np.sqrt(len(group)))
+        init = normal_init(self.init_scale / np.sqrt(len(group)))
         filters = self.param("filters", init, (n, int(self.alpha)), dtype)
         tied = self._tied_kernel(filters, group)  # (N, G, α)
         theta = jnp.einsum("bj,jgf->bgf", x.astype(dtype), tied)  # (B, G, α)
