@@ -145,7 +145,7 @@ def ring(n_sites: int, pairs: int, path: str, search: bool, scratch: str, quick:
         "benchmark": "time_to_accuracy",
         "system": lattice_system("heisenberg", "chain", [n_sites], True, "spin", J=1.0),
         "method": {"psiloom": "examples/ring_demo.py (README demo settings: translation-invariant RBM alpha=2, "
-                              "100 steps), whole process",
+                              "75 steps), whole process",
                    "psiloom_dense": "examples/ring_demo.py --state dense (RBM alpha=2 as the yardstick, 200 steps), "
                                     "whole process, cache filled",
                    "yardstick": f"plain_vmc.py (RBM alpha=2, dense SR, 512 chains, full re-evaluation), "
