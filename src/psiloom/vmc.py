@@ -40,6 +40,7 @@ state used to cost a second compilation at step 2).
 
 from __future__ import annotations
 
+import functools
 from typing import Any, Callable, NamedTuple
 
 import jax
@@ -98,6 +99,10 @@ class VMC(NamedTuple):
 
 
 #: Bits of the non-finite mask returned by guarded steps, in the order they are reported.
+#: XLA options of programs that run once per search (the fresh state): the lowest backend
+#: optimisation level compiles them in about half the time, and they run only once
+RUN_ONCE = {"xla_backend_optimization_level": 0}
+
 NON_FINITE = {"energy": 1, "gradient": 2, "parameters": 4, "optimiser state": 8}
 
 
@@ -141,7 +146,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     def bind(params):
         return BoundState(model, params, fast=fast)
 
-    @jax.jit  # one program: op by op, its many small operations compile one by one (~1 s more on a cold cache)
+    @functools.partial(jax.jit, compiler_options=RUN_ONCE)  # one program (op by op, its many small operations compile one by one)
     def init(key, params=None) -> VMCState:
         k_param, k_chain, k_run = jax.random.split(key, 3)
         space = sampler.space

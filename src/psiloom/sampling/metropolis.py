@@ -54,11 +54,12 @@ from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from psiloom._validation import boolean, nonnegative_int, one_of, positive_int
 from psiloom.sampling import base
 from psiloom.sampling.base import LogAmplitudeFn, burn_in_and_collect
-from psiloom.sampling.moves import Move, OrderedMove, apply_entries, choose_move
+from psiloom.sampling.moves import FLIP, Move, OrderedMove, apply_entries, choose_move
 from psiloom.spaces import SpinSpace
 from psiloom.states.fast import FastUpdates, fast_updates_of, values_at
 
@@ -123,6 +124,31 @@ def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
         (values, log_amp, cache), accepted = base.metropolis_accept(
             lu, 2.0 * jnp.real(delta), (new, st.log_amp + delta, cache_new), (old, st.log_amp, st.cache))
         st = ChainState(st.x.at[:, sites].set(values), log_amp, cache)
+        return (st, acc + jnp.sum(accepted, dtype=jnp.int32)), None
+
+    return body
+
+
+def _table_fast_body(table, kind: str, fast: FastUpdates):
+    """Scan body of random-order table moves on the fast path, fed each chain's entry and log u.
+
+    The same transition as :func:`_transition` with :func:`~psiloom.sampling.moves.apply_entries`,
+    without building ``x'``: only the old and new values ``(n, K)`` at each chain's K sites are
+    read, and the accepted values are written back there (fewer operations to run and to compile).
+    """
+    sites_of = jnp.asarray(np.asarray(table), jnp.int32)
+
+    def body(carry, draw):
+        st, acc = carry
+        entries, lu = draw
+        sites = sites_of[entries]  # (n, K)
+        rows = jnp.arange(sites.shape[0])[:, None]
+        old = st.x[rows, sites]
+        new = -old if kind == FLIP else old[:, ::-1]
+        delta, cache_new = fast.update(old, st.cache, sites, new)
+        (values, log_amp, cache), accepted = base.metropolis_accept(
+            lu, 2.0 * jnp.real(delta), (new, st.log_amp + delta, cache_new), (old, st.log_amp, st.cache))
+        st = ChainState(st.x.at[rows, sites].set(values), log_amp, cache)
         return (st, acc + jnp.sum(accepted, dtype=jnp.int32)), None
 
     return body
@@ -289,6 +315,9 @@ class MetropolisChains:
                 x_new, sites = apply_entries(table, kind, e, st.x)
                 st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
                 return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
+
+            if fast is not None and state.cache is not None:
+                body = _table_fast_body(table, kind, fast)
 
             def sweep(draw, st, i):
                 (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), draw)
