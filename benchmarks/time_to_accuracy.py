@@ -25,15 +25,17 @@ warm, and the dense state warm), and the load average before and after. Summary:
 target ≤ ``TARGET_RATIO``.
 
 Measured on the idle 2-core machine (2026-12-03, three pairs, medians; results/time_to_accuracy.json):
-L = 16: first run 24 s, later runs 7.5 s, dense demo 13.2 s, against 20.1 s for the yardstick (ratios
-1.19 / 0.37 / 0.66); L = 20: 23.6 s, 8.6 s, 22.9 s against 45.2 s (0.52 / 0.19 / 0.51; the dense demo
-ended at 2.1e-4, just above the target). A first run spends ~8 CPU-s compiling the Numba sweeps
-and ~5 s compiling the step (2.4 s of it the random-number preparation of the compiled sweeps).
+L = 16: first run 11.3 s, later runs 5.8 s, dense demo 12.7 s, against 19.2 s for the yardstick
+(ratios 0.59 / 0.30 / 0.66); L = 20: 13.4 s, 7.0 s, 21.9 s against 50.4 s (0.27 / 0.14 / 0.43).
+A session earlier the first runs took 24 s and 23.6 s (1.19 / 0.52): they compiled the Numba
+sweeps (~11 s) and a step with several shaped threefry draws; the sampler now keeps the JAX loop
+at this size (``compiled_sweeps="auto"``) and draws its random numbers flat (see CHANGELOG).
+A first run's ~11 s at L = 16: ~2 s importing JAX and 0.7 s psiloom, ~1.3 s the fresh state,
+~5 s tracing and compiling the step, ~1.5 s the 75 steps and the evaluation, ~0.6 s the exit.
 
-Why later runs are faster: the compiled sweeps enter the training step as an XLA foreign
-function, so the whole step is kept in JAX's persistent cache (with a Python callback it never
-was, and every run compiled the step for ~5 s), and the cache keeps every program, also the
-small ones (``psiloom.compilation``).
+Why later runs are faster: every program of the run is kept in JAX's persistent cache
+(``psiloom.compilation``), also the small ones, and the training step also when it calls the
+compiled sweeps (an XLA foreign function; as a Python callback it was never cached).
 
 ``--quick``: the L = 16 ring only, one pair, the yardstick at its stored step count without the
 search (< 3 min on an idle 2-core CPU). Full: L = 16 and 20, three pairs, the yardstick at the
