@@ -25,12 +25,12 @@ warm, and the dense state warm), and the load average before and after. Summary:
 target ≤ ``TARGET_RATIO``.
 
 Measured on the idle 2-core machine (2026-12-03, three pairs, medians; results/time_to_accuracy.json):
-L = 16: first run 11.3 s, later runs 5.8 s, dense demo 12.7 s, against 19.2 s for the yardstick
-(ratios 0.59 / 0.30 / 0.66); L = 20: 13.4 s, 7.0 s, 21.9 s against 50.4 s (0.27 / 0.14 / 0.43).
+L = 16: first run 10.2 s, later runs 5.9 s, dense demo 12.3 s, against 18.5 s for the yardstick
+(ratios 0.55 / 0.32 / 0.66); L = 20: 10.9 s, 6.2 s, 19.2 s against 48.1 s (0.23 / 0.13 / 0.40).
 A session earlier the first runs took 24 s and 23.6 s (1.19 / 0.52): they compiled the Numba
 sweeps (~11 s) and a step with several shaped threefry draws; the sampler now keeps the JAX loop
 at this size (``compiled_sweeps="auto"``) and draws its random numbers flat (see CHANGELOG).
-A first run's ~11 s at L = 16: ~2 s importing JAX and 0.7 s psiloom, ~1.3 s the fresh state,
+A first run's ~10 s at L = 16: ~2 s importing JAX and 0.7 s psiloom, ~1 s the fresh state,
 ~5 s tracing and compiling the step, ~1.5 s the 75 steps and the evaluation, ~0.6 s the exit.
 
 Why later runs are faster: every program of the run is kept in JAX's persistent cache
