@@ -98,11 +98,11 @@ class VMC(NamedTuple):
     n_per_chain: int
 
 
-#: Bits of the non-finite mask returned by guarded steps, in the order they are reported.
-#: XLA options of programs that run once per search (the fresh state): the lowest backend
-#: optimisation level compiles them in about half the time, and they run only once
+#: XLA options of the programs that run once per search, such as the fresh state. The lowest
+#: backend optimisation level compiles them in about half the time.
 RUN_ONCE = {"xla_backend_optimization_level": 0}
 
+#: Bits of the non-finite mask returned by guarded steps, in the order they are reported.
 NON_FINITE = {"energy": 1, "gradient": 2, "parameters": 4, "optimiser state": 8}
 
 

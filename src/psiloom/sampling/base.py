@@ -131,7 +131,7 @@ def burn_in_and_collect(key: jax.Array, state, sweep: Callable, n_burn: int, n_k
         state, records = scan_sweeps(sweep, state, jnp.concatenate([burn_keys, keep_keys]), record=record)
         return state, jax.tree_util.tree_map(lambda r: r[n_burn:], records)
     if n_burn:
-        state, _ = scan_sweeps(burn_sweep, state, burn_keys)
+        state, _ = scan_sweeps(burn_sweep or sweep, state, burn_keys)
     return scan_sweeps(sweep, state, keep_keys, first=n_burn, record=record)
 
 
