@@ -107,43 +107,36 @@ def _transition(state: ChainState, x_new, sites, log_u, log_amplitude, fast):
     return new, StepInfo(accepted, log_ratio)
 
 
-def _ordered_fast_body(move: OrderedMove, fast: FastUpdates):
-    """Scan body of a systematic scan on the fast path, fed the sites of each proposal.
-
-    The same transition as :func:`_transition`, without building ``x'``: the proposal touches
-    the K sites shared by all chains, so only their old and new values ``(n, K)`` are read,
-    and the accepted values are written back into ``x`` at those sites.
-    """
+def _proposal_body(propose: Callable, log_amplitude, fast):
+    """Scan body ``(carry, (draw, log u)) -> carry`` of one proposal per chain on any path:
+    ``propose(draw, x) -> (x', sites)`` builds the proposal, :func:`_transition` decides it;
+    the carry is ``(state, accepted count)``."""
 
     def body(carry, draw):
         st, acc = carry
-        sites, lu = draw
-        old = st.x[:, sites]  # (n, K)
-        new = move.proposed_values(old)
-        delta, cache_new = fast.update(old, st.cache, sites, new)
-        (values, log_amp, cache), accepted = base.metropolis_accept(
-            lu, 2.0 * jnp.real(delta), (new, st.log_amp + delta, cache_new), (old, st.log_amp, st.cache))
-        st = ChainState(st.x.at[:, sites].set(values), log_amp, cache)
-        return (st, acc + jnp.sum(accepted, dtype=jnp.int32)), None
+        d, lu = draw
+        x_new, sites = propose(d, st.x)
+        st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
+        return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
 
     return body
 
 
-def _table_fast_body(table, kind: str, fast: FastUpdates):
-    """Scan body of random-order table moves on the fast path, fed each chain's entry and log u.
+def _fast_table_body(kind: str, fast: FastUpdates, sites_of: Callable):
+    """Scan body of a table move (flip or exchange) on the fast path, fed ``(draw, log u)``.
 
-    The same transition as :func:`_transition` with :func:`~psiloom.sampling.moves.apply_entries`,
-    without building ``x'``: only the old and new values ``(n, K)`` at each chain's K sites are
-    read, and the accepted values are written back there (fewer operations to run and to compile).
+    The same transition as :func:`_proposal_body`, without building ``x'``: ``sites_of(draw)``
+    gives the K changed sites, shared by all chains ``(K,)`` (a systematic scan: the state's
+    tables need no per-chain gather) or per chain ``(n, K)``; only the old and new values
+    ``(n, K)`` at those sites are read, and the accepted values are written back there.
     """
-    sites_of = jnp.asarray(np.asarray(table), jnp.int32)
 
     def body(carry, draw):
         st, acc = carry
-        entries, lu = draw
-        sites = sites_of[entries]  # (n, K)
-        rows = jnp.arange(sites.shape[0])[:, None]
-        old = st.x[rows, sites]
+        d, lu = draw
+        sites = sites_of(d)
+        rows = jnp.arange(st.x.shape[0])[:, None]
+        old = st.x[rows, sites]  # (n, K)
         new = -old if kind == FLIP else old[:, ::-1]
         delta, cache_new = fast.update(old, st.cache, sites, new)
         (values, log_amp, cache), accepted = base.metropolis_accept(
@@ -264,13 +257,7 @@ class MetropolisChains:
         k_moves, k_acc = jax.random.split(key)
         log_u = jnp.log(jax.random.uniform(k_acc, (self.sweep, *state.log_amp.shape), dtype=_uniform_dtype(state)))
 
-        def body(carry, draw):
-            st, acc = carry
-            k, lu = draw
-            x_new, sites = self.move(k, st.x)
-            st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
-            return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
-
+        body = _proposal_body(self.move, log_amplitude, fast)
         draws = (jax.random.split(k_moves, self.sweep), log_u)
         (state, acc), _ = jax.lax.scan(body, (state, jnp.zeros((), jnp.int32)), draws)
         return state, acc
@@ -307,17 +294,13 @@ class MetropolisChains:
             return self._compiled_sample(state, fast, entries, log_u)
         assert self._entry_table is not None
         table, kind = self._entry_table
-        steps = jnp.arange(self.sweep, dtype=jnp.int32)
+        fast_path = fast is not None and state.cache is not None
         if self.ordered is None:
-            def body(carry, draw):
-                st, acc = carry
-                e, lu = draw
-                x_new, sites = apply_entries(table, kind, e, st.x)
-                st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
-                return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
-
-            if fast is not None and state.cache is not None:
-                body = _table_fast_body(table, kind, fast)
+            sites_of = jnp.asarray(np.asarray(table), jnp.int32)
+            if fast_path:
+                body = _fast_table_body(kind, fast, lambda e: sites_of[e])
+            else:
+                body = _proposal_body(lambda e, x: apply_entries(table, kind, e, x), log_amplitude, fast)
 
             def sweep(draw, st, i):
                 (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), draw)
@@ -326,22 +309,12 @@ class MetropolisChains:
             draws = (entries, log_u)
         else:
             move = self.ordered
-            ordered_fast = fast is not None and state.cache is not None
-
-            def ordered_body(carry, draw):
-                st, acc = carry
-                position, lu = draw
-                x_new, sites = move(position, st.x)
-                st, info = _transition(st, x_new, sites, lu, log_amplitude, fast)
-                return (st, acc + jnp.sum(info.accepted, dtype=jnp.int32)), None
+            steps = jnp.arange(self.sweep, dtype=jnp.int32)
+            body = (_fast_table_body(move.kind, fast, move.sites_at) if fast_path
+                    else _proposal_body(move, log_amplitude, fast))
 
             def sweep(lu, st, i):  # a sequential sweep continues the cycle: proposals i·S, i·S + 1, …
-                positions = i * self.sweep + steps
-                if ordered_fast:
-                    body, draw = _ordered_fast_body(move, fast), (move.sites_at(positions), lu)
-                else:
-                    body, draw = ordered_body, (positions, lu)
-                (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), draw)
+                (st, acc), _ = jax.lax.scan(body, (st, jnp.zeros((), jnp.int32)), (i * self.sweep + steps, lu))
                 return st, acc
 
             draws = log_u
