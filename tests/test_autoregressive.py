@@ -185,7 +185,8 @@ def test_stochastic_reconfiguration_with_direct_sampling_lowers_tfim_energy():
     exact = pl.reference.tfim_ring_energy(n, 1.0, h)
     model = ChainRuleState(features=4, init_scale=0.05)
     opt = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2), optax.sgd(0.1))
-    search = pl.train.GroundStateSearch(model, hamiltonian, ChainRuleSampler(space, 16), opt, n_samples=512)
+    search = pl.train.GroundStateSearch(model, hamiltonian, ChainRuleSampler(space, 16), opt, n_samples=512,
+                                       step_rhat=True)
     state, history = search.run(25, key=jax.random.PRNGKey(0), progress=False)
     energy, error = history["energy"], history["error"]
     assert energy[0] > -4.6

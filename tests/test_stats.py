@@ -369,6 +369,16 @@ def test_estimate_short_chains():
     assert float(result.error) == pytest.approx(math.sqrt(np.var(values) / values.size))
 
 
+def test_estimate_without_rhat_keeps_every_other_field():
+    values = np.random.default_rng(17).standard_normal((25, 4))
+    full, skipped = estimate(values), estimate(values, rhat=False)
+    assert math.isfinite(float(full.rhat)) and math.isnan(float(skipped.rhat))
+    for field in ("mean", "error", "variance", "tau", "ess", "n_time", "tau_reliable"):
+        assert np.array_equal(np.asarray(getattr(full, field)), np.asarray(getattr(skipped, field))), field
+    with pytest.raises(ValueError, match="rhat"):
+        estimate(values, rhat="no")
+
+
 @given(
     case=st.sampled_from([((3, 5), False), ((25, 4), True)]),
     seed=st.integers(0, 2**31 - 1),

@@ -5,7 +5,8 @@ step counter *after* that update — the number the progress line of that step p
 resumed from a state at step s continues with row s + 1.
 
 Columns: ``energy`` (real part of the mean local energy), ``error`` (its autocorrelation-
-corrected standard error), ``variance``, ``tau``, ``rhat``, ``acceptance``, ``grad_norm`` and
+corrected standard error), ``variance``, ``tau``, ``rhat`` (NaN unless the search was built with
+``step_rhat=True``), ``acceptance``, ``grad_norm`` and
 ``seconds`` (wall time of the step; steps run together on the device share their visit's
 time equally), plus optional extra columns (e.g. ``t_sampling`` from profiling) that hold NaN
 in rows without them. ``save`` writes strict JSON: NaN and ±inf become ``null`` and load back

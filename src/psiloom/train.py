@@ -127,6 +127,13 @@ class GroundStateSearch:
             is sharded along its leading axis, parameters, optimiser state and key replicated, and
             the same seed gives the same run on any number of devices. Progress is printed and
             checkpoints are written by process 0 only.
+        step_rhat: also compute split-R̂ of every training step's energy (the history's ``rhat``
+            column; nan otherwise). Off by default: over one step's short chains it is biased
+            upwards by ≈ τ/n_time (see :func:`psiloom.stats.combine_batches`), and its rank
+            normalizations make the step's first compilation ~1.5 s longer on a 2-core CPU
+            (trace and compile; a first run of the 16-site ring demo is ~10 s in all). For a
+            trustworthy R̂ run a fixed evaluation pass, ``evaluate(state, n_samples=...)``,
+            with dispersed ``starts``.
 
     The pure functions behind it are in ``self.vmc`` (:func:`psiloom.vmc.vmc`).
     """
@@ -135,8 +142,9 @@ class GroundStateSearch:
 
     def __init__(self, model, hamiltonian, sampler, optimizer: optax.GradientTransformation,
                  n_samples: int = 1024, chunk: int | None = None, winsorize: float | None = None,
-                 fast: bool = True, mesh=None):
+                 fast: bool = True, mesh=None, step_rhat: bool = False):
         positive_int("n_samples", n_samples)
+        step_rhat = boolean("step_rhat", step_rhat)
         if n_samples % sampler.n_chains:
             raise ValueError(f"n_samples={n_samples} is not a multiple of the sampler's n_chains={sampler.n_chains}")
         if chunk is not None:
@@ -160,7 +168,8 @@ class GroundStateSearch:
         self.winsorize = winsorize
         self.fast = bool(fast)
         self.vmc = vmc(model, hamiltonian, sampler, optimizer, self.n_samples, chunk=self.chunk,
-                       winsorize=winsorize, fast=self.fast)
+                       winsorize=winsorize, fast=self.fast, step_rhat=step_rhat)
+        self.step_rhat = step_rhat
         self._phases: tuple | None = None  # separately compiled phases, built by profile_step on first use
         self._step = jax.jit(lambda s: self._constrain(*self.vmc.step(s)))
         self._multi: dict[int, Any] = {}  # steps_per_visit -> compiled multi_step (training and frozen evaluation)

@@ -124,9 +124,11 @@ def strong(tree):
 
 
 def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_samples: int,
-        chunk: int | None = None, winsorize: float | None = None, fast: bool = True) -> VMC:
+        chunk: int | None = None, winsorize: float | None = None, fast: bool = True,
+        step_rhat: bool = False) -> VMC:
     """The pure functions of a VMC search (arguments as for :class:`psiloom.train.GroundStateSearch`,
-    which validates them). ``optimizer`` receives the keyword ``geometry`` (the sample geometry,
+    which validates them). ``step_rhat``: each step's energy estimate also carries split-R̂ of its
+    chains (otherwise nan; evaluation passes of fixed size always do). ``optimizer`` receives the keyword ``geometry`` (the sample geometry,
     for stochastic reconfiguration) through :func:`optax.with_extra_args_support`."""
     optimizer = optax.with_extra_args_support(optimizer)
     n_per_chain = int(n_samples) // sampler.n_chains
@@ -137,11 +139,11 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         """Born weights of an exact sampler's rows, else None (sample means)."""
         return sampler.weights(logs) if exact and logs is not None else None
 
-    def estimate_of(e_loc, logs, shape):
+    def estimate_of(e_loc, logs, shape, rhat=True):
         """Exact weighted average (exact sampler) or the Monte Carlo estimate of ``(n_time, n_chains)``."""
         if exact:
             return stats.weighted_estimate(e_loc, sampler.weights(logs))
-        return stats.estimate(e_loc.reshape(shape))
+        return stats.estimate(e_loc.reshape(shape), rhat=rhat)
 
     def bind(params):
         return BoundState(model, params, fast=fast)
@@ -174,7 +176,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     def gradient(params, x, e_loc, logs=None):
         if exact and logs is None:
             logs = model.apply(params, x)
-        estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
+        estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains), step_rhat)
         if winsorize is not None:
             e_loc = winsorize_local_energies(e_loc, winsorize)
         _, grad = energy_gradient(model.apply, params, x, e_loc, weights_of(logs))
@@ -205,7 +207,7 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         if learn is True:  # the plain training step
             estimate, params, opt_state, grad_norm, count = update(None)
         else:  # the estimate outside the branches: compiled once (XLA drops the branch's copy)
-            estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains))
+            estimate = estimate_of(e_loc, logs, (-1, sampler.n_chains), step_rhat)
 
             def learning(_):
                 _, params, opt_state, grad_norm, count = update(None)
