@@ -25,13 +25,17 @@ warm, and the dense state warm), and the load average before and after. Summary:
 target ≤ ``TARGET_RATIO``.
 
 Measured on the idle 2-core machine (2026-12-03, three pairs, medians; results/time_to_accuracy.json):
-L = 16: first run 10.2 s, later runs 5.9 s, dense demo 12.3 s, against 18.5 s for the yardstick
-(ratios 0.55 / 0.32 / 0.66); L = 20: 10.9 s, 6.2 s, 19.2 s against 48.1 s (0.23 / 0.13 / 0.40).
-A session earlier the first runs took 24 s and 23.6 s (1.19 / 0.52): they compiled the Numba
-sweeps (~11 s) and a step with several shaped threefry draws; the sampler now keeps the JAX loop
-at this size (``compiled_sweeps="auto"``) and draws its random numbers flat (see CHANGELOG).
-A first run's ~10 s at L = 16: ~2 s importing JAX and 0.7 s psiloom, ~1 s the fresh state,
-~5 s tracing and compiling the step, ~1.5 s the 75 steps and the evaluation, ~0.6 s the exit.
+L = 16: first run 8.4 s, later runs 4.7 s, dense demo 10.2 s, against 19.6 s for the yardstick
+(ratios 0.43 / 0.24 / 0.52). L = 20 (results/time_to_accuracy_l20.json, an earlier run, before
+training steps stopped computing R̂): 10.9 s, 6.2 s, 19.2 s against 48.1 s (0.23 / 0.13 / 0.40).
+A rerun of L = 20 after that change was stopped: a physics job beside it made the yardstick take
+148 s instead of 46 s, which says nothing about either side.
+History of the first run at L = 16: 24 s (compiled Numba sweeps, ~11 s, and several shaped
+threefry draws), then 10.2 s (``compiled_sweeps="auto"`` keeps the JAX loop at this size, random
+numbers drawn flat; CHANGELOG), then 8.4 s (no R̂ in training steps: its two rank
+normalizations were ~1.5 s of the step's trace and compile). A first run's ~8.5 s at L = 16:
+~2 s importing JAX and 0.7 s psiloom, ~1 s the fresh state, ~3-3.5 s tracing and compiling the
+step, ~1.3 s the 75 steps, the evaluation and the Bethe reference, ~0.6 s the exit.
 
 Why later runs are faster: every program of the run is kept in JAX's persistent cache
 (``psiloom.compilation``), also the small ones, and the training step also when it calls the
@@ -177,12 +181,14 @@ def main() -> None:
                                           "JAX yardstick", extra=lambda p: (
         p.add_argument("--yardstick", default=DEFAULT_YARDSTICK, help="path of the plain JAX script"),
         p.add_argument("--pairs", type=int, default=None, help="pairs of runs per ring (default 3; --quick 1)"),
+        p.add_argument("--sizes", type=int, nargs="+", default=None, choices=(16, 20),
+                       help="ring sizes to run (default 16 and 20; --quick 16)"),
         p.add_argument("--search", action="store_true",
                        help="search the yardstick's step count again (default: the stored SEARCHED_STEPS)")))
     if not os.path.isfile(args.yardstick):
         raise SystemExit(f"yardstick script not found: {args.yardstick!r} (pass --yardstick PATH)")
     pairs = args.pairs or (1 if args.quick else 3)
-    sizes = (16,) if args.quick else (16, 20)
+    sizes = tuple(args.sizes) if args.sizes else (16,) if args.quick else (16, 20)
     records = []
     with tempfile.TemporaryDirectory(prefix="psiloom-tta-") as scratch:
         for n_sites in sizes:
