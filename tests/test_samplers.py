@@ -302,13 +302,14 @@ def test_rhat_flags_frozen_chains():
 
 def test_training_with_tempering_keeps_chains_and_records_tau_and_rhat():
     # TFIM ring of 6 spins (Pauli); exact energy from free fermions (Pfeuty 1970). The tempering
-    # chains (all replicas) persist between steps; the history records τ and R̂ of every step.
+    # chains (all replicas) persist between steps; the history records τ and (asked for) R̂ of every step.
     lat = pl.lattices.chain(6)
     space = pl.spaces.SpinSpace(6)
     hamiltonian = pl.operators.transverse_field_ising(lat, 1.0, 1.0)
     exact = pl.reference.tfim_ring_energy(6, 1.0, 1.0)
     sampler = TemperingSampler(space, 16, betas=(1.0, 0.5))
-    search = pl.train.GroundStateSearch(RBM(alpha=1.0), hamiltonian, sampler, optax.sgd(0.02), n_samples=256)
+    search = pl.train.GroundStateSearch(RBM(alpha=1.0), hamiltonian, sampler, optax.sgd(0.02), n_samples=256,
+                                        step_rhat=True)
     state = search.init(jax.random.PRNGKey(2))
     first = state.chains
     state, history = search.run(4, state=state, progress=False)
