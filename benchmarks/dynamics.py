@@ -83,9 +83,10 @@ translations × flip α = 8              —              5.2e-3     5.1e-3   6.
 (*) without the spin flip the SR search ends in a symmetry-broken state whose own exact curve
 lies 8e-2 from the free-fermion one at L = 10 (the finite ring's ground state is the even
 combination): the flip must be in the group. α = 8 with shift 1e-4: Heun dt 0.005 gave 3.7e-3,
-RK4 dt 0.01 7.0e-3; shift 1e-5 (Heun 0.01) 4.2e-3 with residual r² ≤ 1e-3. In every α = 8 run
-the deviation stays ≤ 2.5e-3 up to t ≈ 1.7 and then jumps by several 1e-3 within 0.1 (e.g.
-+2.5e-3 → −4.8e-3 between t = 1.7 and 1.8 with RK4), at a residual that stays small; its cause
+RK4 dt 0.01 7.0e-3; shift 1e-5 (Heun 0.01) 4.2e-3 with residual r² ≤ 1e-3. With RK4 and with
+the shift 1e-5 the deviation stays ≤ 2.5e-3 up to t = 1.7 and then jumps by several 1e-3 within
+0.1 (+2.5e-3 → −4.8e-3 with RK4, −0.6e-3 → +3.2e-3 with the shift 1e-5), at a residual that
+stays small; Heun dt 0.005 instead grows smoothly to 3.7e-3 at t = 1.7. The cause of the jumps
 (a near-zero of the amplitude Π cosh θ of some configuration is a candidate) was not identified.
 So neither α, the regularisation nor the integrator brought the noise-free floor at L = 10
 clearly below ~4e-3; α = 8 with shift 1e-4 and Heun dt 0.01 was kept for cost.
