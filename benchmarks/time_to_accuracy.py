@@ -24,12 +24,12 @@ warm, and the dense state warm), and the load average before and after. Summary:
 (cold: a newcomer's first run), ``ratio_wall_warm`` and ``ratio_wall_dense_warm`` per ring,
 target ≤ ``TARGET_RATIO``.
 
-Measured on the idle 2-core machine (2026-12-03, three pairs, medians; results/time_to_accuracy.json):
-L = 16: first run 8.4 s, later runs 4.7 s, dense demo 10.2 s, against 19.6 s for the yardstick
-(ratios 0.43 / 0.24 / 0.52). L = 20 (results/time_to_accuracy_l20.json, an earlier run, before
-training steps stopped computing R̂): 10.9 s, 6.2 s, 19.2 s against 48.1 s (0.23 / 0.13 / 0.40).
-A rerun of L = 20 after that change was stopped: a physics job beside it made the yardstick take
-148 s instead of 46 s, which says nothing about either side.
+Measured on the 2-core machine (2026-12-03, 22:26 UTC, three pairs, medians, load 0.4→2.6;
+results/time_to_accuracy.json): L = 16: first run 8.7 s (7.2-9.3), later runs 4.8 s, dense demo
+10.1 s, against 17.8 s (16.5-19.5) for the yardstick (ratios 0.49 / 0.27 / 0.57); L = 20: 9.2 s,
+5.5 s, 18.2 s against 39.4 s (0.23 / 0.14 / 0.46). An L = 16 run an hour earlier on the idle
+machine gave 8.4 s against 19.6 s (0.43): at L = 16 the first run meets the target with little
+room, as one run varies by ±1 s.
 History of the first run at L = 16: 24 s (compiled Numba sweeps, ~11 s, and several shaped
 threefry draws), then 10.2 s (``compiled_sweeps="auto"`` keeps the JAX loop at this size, random
 numbers drawn flat; CHANGELOG), then 8.4 s (no R̂ in training steps: its two rank
