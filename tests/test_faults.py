@@ -26,7 +26,7 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 import psiloom as pl
-from psiloom.testing import fail_at_step, sgd_failing_at
+from psiloom.testing import fail_at_step, sgd_failing_at, trees_equal
 from psiloom.train import GroundStateSearch, NonFiniteError
 
 SRC = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "src")
@@ -295,10 +295,6 @@ def test_other_options_refuse_values_that_only_look_valid(arg, value):
 
 # --------------------------------------------------------------------------- NaN at step k
 
-def leaves_equal(a, b) -> bool:
-    la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
-    return len(la) == len(lb) and all(np.array_equal(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
-
 
 def test_nan_update_at_step_k_leaves_the_checkpoint_of_step_k_minus_1(tmp_path):
     run = search(optimizer=sgd_failing_at())
@@ -314,7 +310,7 @@ def test_nan_update_at_step_k_leaves_the_checkpoint_of_step_k_minus_1(tmp_path):
             continue
         good, _ = run.run(k - 1, state=start, progress=False, steps_per_visit=1)
         saved, history = run.resume(path)
-        assert int(saved.step) == k - 1 and leaves_equal(saved, good)
+        assert int(saved.step) == k - 1 and trees_equal(saved, good)
         assert list(history["step"]) == list(range(1, k))
 
 

@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 import psiloom as pl
 from psiloom.spaces import SpinSpace
 from psiloom.states import RBM, TrialState
+from psiloom.testing import trees_equal
 from psiloom.train import GroundStateSearch, History, NonFiniteError, load_checkpoint, save_checkpoint
 
 L = 6
@@ -29,15 +30,12 @@ def make_search(model=None, optimizer=None, n_samples=64, n_chains=8):
     return GroundStateSearch(model, pl.operators.heisenberg(lat), sampler, optimizer, n_samples=n_samples)
 
 
-def leaves_equal(a, b) -> bool:
-    la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
-    return len(la) == len(lb) and all(_same(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
-
-
-def _same(x, y) -> bool:
-    """Equal arrays, nan equal to nan (a column or field that was not computed)."""
-    inexact = np.issubdtype(x.dtype, np.inexact) and np.issubdtype(y.dtype, np.inexact)
-    return bool(np.array_equal(x, y, equal_nan=inexact))
+def test_trees_equal_is_bit_exact_and_counts_nan_as_equal():
+    a = {"w": np.array([1.0, np.nan]), "n": np.array([3], np.int32)}
+    assert trees_equal(a, {"w": np.array([1.0, np.nan]), "n": np.array([3], np.int32)})
+    assert not trees_equal(a, {"w": np.array([np.nextafter(1.0, 2.0), np.nan]), "n": np.array([3], np.int32)})
+    assert not trees_equal(a, {"w": np.array([1.0, np.nan])})  # a leaf fewer
+    assert not trees_equal(a, {"w": np.array([1.0, 0.0]), "n": np.array([3], np.int32)})
 
 
 @pytest.fixture(scope="module")
@@ -58,18 +56,18 @@ def test_resume_from_checkpoint_is_bit_identical(search, start, tmp_path):
     half, _ = search.run(3, state=start, progress=False, checkpoint=path, checkpoint_every=3)
     loaded, hist_loaded = search.resume(path)
     assert int(loaded.step) == 3 and len(hist_loaded) == 3
-    assert leaves_equal(loaded, half)
+    assert trees_equal(loaded, half)
     resumed, hist_resumed = search.run(6, state=loaded, history=hist_loaded, progress=False)
 
     assert int(resumed.step) == int(straight.step) == 6
-    assert leaves_equal(resumed.params, straight.params)
-    assert leaves_equal(resumed.opt_state, straight.opt_state)
-    assert leaves_equal(resumed.chains, straight.chains)
-    assert leaves_equal(resumed.key, straight.key)
+    assert trees_equal(resumed.params, straight.params)
+    assert trees_equal(resumed.opt_state, straight.opt_state)
+    assert trees_equal(resumed.chains, straight.chains)
+    assert trees_equal(resumed.key, straight.key)
     for column in ("step", "energy", "error", "variance", "acceptance", "grad_norm"):
         np.testing.assert_array_equal(hist_resumed[column], hist_straight[column])
     # the run actually moved: an unchanged state would make the comparison vacuous
-    assert not leaves_equal(straight.params, start.params)
+    assert not trees_equal(straight.params, start.params)
 
 
 def test_history_save_and_load_round_trip(search, start, tmp_path):
@@ -163,7 +161,7 @@ def test_nan_stops_run_and_keeps_last_good_checkpoint(tmp_path):
     assert "step 5" in str(err.value)
     saved, hist = run.resume(path)
     assert int(saved.step) == 4 and len(hist) == 4
-    assert leaves_equal(saved.params, good.params)
+    assert trees_equal(saved.params, good.params)
     assert float(saved.params["params"]["counter"]) == 4.0
     # resuming from the bad point fails again and leaves the file byte-for-byte untouched
     before = open(path, "rb").read()

@@ -22,6 +22,7 @@ from psiloom.stats import parenthesis_notation
 from psiloom.checkpoint import CheckpointError, CheckpointLock, load_checkpoint, run_meta, save_checkpoint
 from psiloom.history import History
 from psiloom.spaces import SpinSpace
+from psiloom.testing import trees_equal
 from psiloom.states import RBM
 from psiloom.train import GroundStateSearch, NonFiniteError
 from psiloom.vmc import vmc
@@ -41,17 +42,6 @@ def parts(n_chains=4, magnetisation=0, n_sites=L, alpha=1.0, complex_params=Fals
 
 def make(n_samples=32, **kw):
     return GroundStateSearch(*parts(**kw), n_samples=n_samples)
-
-
-def leaves_equal(a, b) -> bool:
-    la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
-    return len(la) == len(lb) and all(_same(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
-
-
-def _same(x, y) -> bool:
-    """Equal arrays, nan equal to nan (a column or field that was not computed)."""
-    inexact = np.issubdtype(x.dtype, np.inexact) and np.issubdtype(y.dtype, np.inexact)
-    return bool(np.array_equal(x, y, equal_nan=inexact))
 
 
 @pytest.fixture(scope="module")
@@ -79,7 +69,7 @@ def saved(search, start, tmp_path_factory):
 
 def test_pure_steps_equal_the_facade_step_and_k_step_visits(search, start):
     pure = vmc(*parts(), n_samples=32)  # built separately from the same ingredients
-    assert leaves_equal(pure.init(jax.random.PRNGKey(11)), start)
+    assert trees_equal(pure.init(jax.random.PRNGKey(11)), start)
     pure_step = jax.jit(pure.step)
     state, energies = start, []
     for _ in range(7):
@@ -87,8 +77,8 @@ def test_pure_steps_equal_the_facade_step_and_k_step_visits(search, start):
         energies.append(float(out.energy.mean))
         if len(energies) == 1:
             first, first_out = search.step(start)
-            assert leaves_equal(first, state) and leaves_equal(first_out, out)
-    assert int(state.step) == 7 and not leaves_equal(state.params, start.params)
+            assert trees_equal(first, state) and trees_equal(first_out, out)
+    assert int(state.step) == 7 and not trees_equal(state.params, start.params)
     # visits of 1 (first), 3, 3 steps: one scan program with traced active counts
     scanned, history = search.run(7, state=start, progress=False, steps_per_visit=3)
     np.testing.assert_allclose(history["energy"], energies, rtol=1e-12, atol=1e-12)
@@ -160,7 +150,7 @@ def test_non_finite_inside_a_visit_stops_at_the_right_step(tmp_path, where, what
         run.run(10, state=start, progress=False, checkpoint=path, checkpoint_every=4, steps_per_visit=3)
     assert err.value.step == 6 and err.value.what == what and f"non-finite {what} at step 6" in str(err.value)
     # the state did not advance past the last good step, and step 7 was not taken either
-    assert int(err.value.state.step) == 5 and leaves_equal(err.value.state, good)
+    assert int(err.value.state.step) == 5 and trees_equal(err.value.state, good)
     assert list(err.value.history["step"]) == [1, 2, 3, 4, 5]
     saved, hist = run.resume(path)
     assert int(saved.step) == 4 and len(hist) == 4
@@ -197,7 +187,7 @@ def test_shift_zero_sr_on_a_degenerate_metric_never_reaches_the_checkpoint(tmp_p
     assert err.value.step == 3 and err.value.what == "parameters"
     assert open(path, "rb").read() == before
     saved, _ = degenerate.resume(path)
-    assert leaves_equal(saved, good)
+    assert trees_equal(saved, good)
 
 
 # --------------------------------------------------------------------------- checkpoint files
@@ -212,7 +202,7 @@ def test_checkpoint_header_is_json_and_describes_the_run(saved, search):
     assert header["psiloom_version"] == pl.__version__
     assert [leaf[1] for leaf in header["state"]["params"]["leaves"]] == [[L], [L, L], [L]]
     back, hist = search.resume(path)
-    assert leaves_equal(back, state) and leaves_equal(hist.columns, history.columns)
+    assert trees_equal(back, state) and trees_equal(hist.columns, history.columns)
 
 
 @settings(max_examples=40, suppress_health_check=[HealthCheck.function_scoped_fixture])
@@ -242,7 +232,7 @@ def test_flipped_bit_is_refused_or_harmless(saved, search, tmp_path, position, b
     except CheckpointError as err:
         assert "flip.ckpt" in str(err)
     else:  # never altered numbers
-        assert leaves_equal(back, state) and leaves_equal(hist.columns, history.columns)
+        assert trees_equal(back, state) and trees_equal(hist.columns, history.columns)
 
 
 class Exploit:

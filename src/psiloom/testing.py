@@ -11,6 +11,11 @@ Assertions (plain NumPy, usable with or without hypothesis):
 * :func:`assert_invariant` — ``ψ(g·x) = ψ(x)``;
 * :func:`assert_covariant` — ``ψ(g·x) = χ(g)* ψ(x)`` (psiloom's sector convention).
 
+Comparison:
+
+* :func:`trees_equal` — two pytrees with the same leaves bit for bit (NaN equal to NaN), e.g. a
+  resumed run against an uninterrupted one.
+
 Fault injection:
 
 * :func:`sgd_failing_at` — plain SGD whose update turns NaN at a chosen step, to test that a
@@ -31,7 +36,7 @@ import numpy as np
 from psiloom._validation import nonnegative_int, positive_int
 
 __all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes",
-           "sgd_failing_at", "fail_at_step"]
+           "trees_equal", "sgd_failing_at", "fail_at_step"]
 
 
 def _hypothesis():
@@ -141,6 +146,21 @@ def assert_invariant(model, variables, group, x, elements=None, atol: float = 1e
                      scale: float | None = None) -> None:
     """Assert ``ψ(g·x) = ψ(x)`` (see :func:`assert_covariant` for the arguments)."""
     assert_covariant(model, variables, group, np.ones(len(group)), x, elements, atol, floor, scale)
+
+
+def trees_equal(a, b) -> bool:
+    """Whether pytrees ``a`` and ``b`` have the same number of leaves and equal leaves, bit for
+    bit; NaN equals NaN in floating leaves (a value that was not computed, such as the history's
+    ``rhat`` column without ``step_rhat``)."""
+    import jax
+
+    la, lb = jax.tree_util.tree_leaves(a), jax.tree_util.tree_leaves(b)
+    return len(la) == len(lb) and all(_leaf_equal(np.asarray(x), np.asarray(y)) for x, y in zip(la, lb))
+
+
+def _leaf_equal(x: np.ndarray, y: np.ndarray) -> bool:
+    inexact = np.issubdtype(x.dtype, np.inexact) and np.issubdtype(y.dtype, np.inexact)
+    return bool(np.array_equal(x, y, equal_nan=inexact))
 
 
 def sgd_failing_at(learning_rate: float = 0.05):

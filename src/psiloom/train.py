@@ -131,7 +131,7 @@ class GroundStateSearch:
             column; nan otherwise). Off by default: over one step's short chains it is biased
             upwards by ≈ τ/n_time (see :func:`psiloom.stats.combine_batches`), and its rank
             normalizations make the step's first compilation ~1.5 s longer on a 2-core CPU
-            (trace and compile; a first run of the 16-site ring demo is ~10 s in all). For a
+            (trace and compile; a first run of the 16-site ring demo takes ~8.5 s in all). For a
             trustworthy R̂ run a fixed evaluation pass, ``evaluate(state, n_samples=...)``,
             with dispersed ``starts``.
 

@@ -128,8 +128,9 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         step_rhat: bool = False) -> VMC:
     """The pure functions of a VMC search (arguments as for :class:`psiloom.train.GroundStateSearch`,
     which validates them). ``step_rhat``: each step's energy estimate also carries split-R̂ of its
-    chains (otherwise nan; evaluation passes of fixed size always do). ``optimizer`` receives the keyword ``geometry`` (the sample geometry,
-    for stochastic reconfiguration) through :func:`optax.with_extra_args_support`."""
+    chains (otherwise nan; evaluation passes of fixed size always do). ``optimizer`` receives
+    the keyword ``geometry`` (the sample geometry, for stochastic reconfiguration) through
+    :func:`optax.with_extra_args_support`."""
     optimizer = optax.with_extra_args_support(optimizer)
     n_per_chain = int(n_samples) // sampler.n_chains
     fast = bool(fast)
