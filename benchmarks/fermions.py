@@ -73,15 +73,17 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
         if reference is None:
             progress(f"ED of {space!r} ({space.size} states)")
             reference, _ = pl.reference.ground_state(H, space, tol=1e-10)
-        guess = fm.lowest_orbitals(space, fm.one_body_matrix(H) + 1e-3 * np.diag(np.arange(n) / n))
-        model = fm.BackflowDeterminant(space, guess, hidden=hidden, jastrow=True)
+        # unrestricted Hartree-Fock (Néel start): the U = 0 shell of these rings and of 4×4 is open
+        mean_field = fm.hubbard_mean_field(space, fm.one_body_matrix(H), 4.0, pattern=2 * lattice.sublattice - 1)
+        model = fm.BackflowDeterminant(space, mean_field.guess, hidden=hidden, jastrow=True)
         search, state, est, acc = _train(model, H, space, fm.Hop.along(lattice.bonds, space), steps, samples, chains,
                                          eval_samples, lr)
     record = {
         "benchmark": "fermions",
         "system": {"model": "hubbard", "lattice": lattice.kind, "extent": list(extent), "pbc": True, "t": 1.0,
                    "U": 4.0, "n_up": space.n_up, "n_down": space.n_down},
-        "method": {"trial_state": f"backflow determinant (hidden={hidden}) x density Jastrow, U=0 orbitals",
+        "method": {"trial_state": f"backflow determinant (hidden={hidden}) x density Jastrow, UHF orbitals",
+                   "mean_field_energy": mean_field.energy,
                    "sampler": f"Metropolis hops along bonds, {chains} chains", "optimizer": f"SR + sgd {lr}",
                    "tau": float(est.tau), "rhat": float(est.rhat), "acceptance": acc},
         "energy": float(np.real(est.mean)), "error_bar": float(est.error), "reference": float(reference),

@@ -209,6 +209,56 @@ def test_vmc_backflow_on_small_hubbard_chain():
 
 
 
+@pytest.mark.parametrize("U", [0.5, 1.5, 3.0, 8.0])
+def test_two_site_unrestricted_mean_field_textbook(U):
+    # minimal-basis two-site model (textbook, from memory): restricted E = −2t + U/2 up to the
+    # instability at U = 2t, then the broken-symmetry solution E = −2t²/U (t = 1)
+    space = fm.FermionSpace(2, 1, 1)
+    H = fm.hubbard(n_sites=2, bonds=[(0, 1)], U=U)
+    result = fm.hubbard_mean_field(space, fm.one_body_matrix(H), U)
+    assert result.converged
+    expected = -2.0 / U if U > 2.0 else -2.0 + U / 2.0
+    assert result.energy == pytest.approx(expected, abs=1e-8)
+    moment = np.abs(result.n_up - result.n_down)
+    assert (moment > 1e-3).all() == (U > 2.0)
+
+
+def test_mean_field_energy_is_the_determinants_expectation_and_variational():
+    # E_UHF = ⟨Φ|H|Φ⟩ of the determinant built from its orbitals (exact sum over the sector, scipy
+    # sparse matrix), E_ED ≤ E_UHF ≤ E of the U = 0 determinant; Néel order on the half-filled ring
+    lattice = pl.lattices.chain(6)
+    space = fm.FermionSpace(6, 3, 3)
+    H = fm.hubbard(lattice, U=4.0)
+    result = fm.hubbard_mean_field(space, fm.one_body_matrix(H), 4.0, pattern=2 * lattice.sublattice - 1)
+    model = fm.SlaterDeterminant(space, result.guess)
+    x = jnp.asarray(space.configurations())
+    params = model.init(jax.random.PRNGKey(0), x[:1])
+    psi = np.exp(np.asarray(jax.jit(model.apply)(params, x))).real
+    matrix = pl.reference.operator_matrix(H, space)
+    assert result.energy == pytest.approx(psi @ (matrix @ psi) / (psi @ psi), abs=1e-9)
+    restricted = fm.SlaterDeterminant(space, fm.lowest_orbitals(space, fm.one_body_matrix(H)))
+    phi = np.exp(np.asarray(jax.jit(restricted.apply)(restricted.init(jax.random.PRNGKey(0), x[:1]), x))).real
+    e0, _ = ground_state(H, space)
+    assert e0 < result.energy < phi @ (matrix @ phi) / (phi @ phi) - 1e-3
+    staggered = (result.n_up - result.n_down) * (2 * lattice.sublattice - 1)
+    assert np.all(staggered > 0.3) or np.all(staggered < -0.3)
+
+
+def test_mean_field_bad_input():
+    space = fm.FermionSpace(2, 1, 1)
+    h = np.array([[0.0, -1.0], [-1.0, 0.0]])
+    with pytest.raises(TypeError, match="spinful"):
+        fm.hubbard_mean_field(fm.spinless_space(2, 1), h, 1.0)
+    with pytest.raises(ValueError, match="symmetric"):
+        fm.hubbard_mean_field(space, np.array([[0.0, -1.0], [0.0, 0.0]]), 1.0)
+    with pytest.raises(ValueError, match="mixing"):
+        fm.hubbard_mean_field(space, h, 1.0, mixing=0.0)
+    with pytest.raises(ValueError, match="pattern"):
+        fm.hubbard_mean_field(space, h, 1.0, pattern=[1.0, -1.0, 1.0])
+    with pytest.raises(ValueError, match="U"):
+        fm.hubbard_mean_field(space, h, float("nan"))
+
+
 def test_bad_input():
     with pytest.raises(ValueError, match="n_up=5"):
         fm.FermionSpace(4, 5, 1)

@@ -17,6 +17,7 @@ from psiloom.fermions.determinants import (
     DeterminantState, OrbitalGuess, SlaterDeterminant, SlaterDensityJastrow, determinant_fast_updates, lowest_orbitals,
 )
 from psiloom.fermions.backflow import BackflowDeterminant
+from psiloom.fermions.mean_field import MeanFieldResult, hubbard_mean_field
 from psiloom.fermions.moves import AnyHop, FermionMove, Hop, SpinExchange, any_hop
 from psiloom.fermions.molecules import MolecularProblem, integrals_operator, molecular_hamiltonian
 
@@ -24,6 +25,7 @@ __all__ = [
     "FermionSpace", "occupation_codes", "spinless_space", "FermionOperator", "annihilation", "creation", "fermion",
     "number", "jordan_wigner", "hubbard", "one_body_matrix", "spinless_tv", "DeterminantState", "OrbitalGuess",
     "SlaterDeterminant", "SlaterDensityJastrow", "determinant_fast_updates", "lowest_orbitals", "BackflowDeterminant",
+    "MeanFieldResult", "hubbard_mean_field",
     "AnyHop", "FermionMove", "Hop", "SpinExchange", "any_hop", "MolecularProblem", "integrals_operator",
     "molecular_hamiltonian",
 ]
