@@ -229,11 +229,11 @@ def main() -> None:
         return
     cases = args.case or CASES
     if "hubbard8" in cases:
-        keep(hubbard_case([8], 1500, 2048, 32, 32768, 32, 0.05))
+        keep(hubbard_case([8], 1500, 1024, 64, 32768, 32, 0.05))
     if "hubbard12" in cases:
-        keep(hubbard_case([12], 2000, 2048, 32, 32768, 48, 0.05))
+        keep(hubbard_case([12], 2000, 1024, 64, 32768, 32, 0.05))
     if "square4x4" in cases:
-        keep(hubbard_case([4, 4], 2000, 2048, 32, 32768, 64, 0.03, reference=16 * SQUARE_4x4_U4_PER_SITE,
+        keep(hubbard_case([4, 4], 1500, 1024, 64, 32768, 24, 0.03, reference=16 * SQUARE_4x4_U4_PER_SITE,
                           source="ED 4x4 (from memory)"))
     if "h2o" in cases:
         keep(exact_molecule_case("H2O", H2O, 150, 16, 0.05))

@@ -450,3 +450,33 @@ def test_auto_solver_falls_back_by_memory(rows, n_params, fits):
 def test_bad_memory_limit_rejected(bad):
     with pytest.raises(ValueError, match="memory_limit"):
         stochastic_reconfiguration(1e-3, "dense", memory_limit=bad)
+
+
+@pytest.mark.parametrize("solver", ["dense", "sample_space", "cg"])
+def test_sign_only_phase_drops_zero_rows_and_keeps_the_step(solver):
+    # a determinant of real orbitals: log ψ = log|ψ| + iπ[ψ < 0], so Im ΔO ≡ 0 and the flagged
+    # geometry (n rows) must give the same SR step as the full complex one (2n rows, half zero)
+    from psiloom import fermions as fm
+
+    space = fm.FermionSpace(4, 2, 2)
+    model = fm.BackflowDeterminant(space, hidden=6)
+    assert model.sign_only_phase
+    x = space.random(jax.random.PRNGKey(0), 24)
+    params = model.init(jax.random.PRNGKey(1), x[:1])
+    logs = model.apply(params, x)
+    assert np.any(np.abs(np.imag(np.asarray(logs))) > 1.0)  # some amplitudes are negative
+    e_loc = jax.random.normal(jax.random.PRNGKey(2), (24,)) - 2.0
+
+    def run(flag):
+        _, grad = energy_gradient(model.apply, params, x, e_loc)
+        geom = SampleGeometry(model.apply, params, x, e_loc, sign_only_phase=flag)
+        tx = stochastic_reconfiguration(1e-3, solver, tol=1e-13)
+        return geom.jacobian().shape[0], ravel_real(tx.update(grad, tx.init(params), params, geometry=geom)[0])[0]
+
+    rows_flagged, step_flagged = run(True)
+    rows_full, step_full = run(False)
+    assert (rows_flagged, rows_full) == (24, 48)
+    np.testing.assert_allclose(step_flagged, step_full, rtol=1e-8, atol=1e-10)
+    # complex parameters ignore the flag (their phase can vary)
+    complex_params = jax.tree_util.tree_map(lambda p: p.astype(jnp.complex128), params)
+    assert SampleGeometry(model.apply, complex_params, x, e_loc, sign_only_phase=True).complex_output

@@ -186,7 +186,8 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
     def solve(params, opt_state, grad, x, e_loc, logs=None):
         if exact and logs is None:
             logs = model.apply(params, x)
-        geometry = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk, weights=weights_of(logs))
+        geometry = SampleGeometry(model.apply, params, x, e_loc, chunk=chunk, weights=weights_of(logs),
+                                  sign_only_phase=bool(getattr(model, "sign_only_phase", False)))
         updates, opt_state = optimizer.update(grad, opt_state, params, geometry=geometry)
         return optax.apply_updates(params, updates), opt_state
 

@@ -31,6 +31,7 @@ ratio is det(A')/det(A) = (Φ_{j,:} A⁻¹)_k · (−1)^{#occupied orbitals stri
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import ClassVar
 import flax.linen as nn
 import jax
 import jax.numpy as jnp
@@ -151,6 +152,9 @@ class DeterminantState(TrialState):
 
     space: FermionSpace
     guess: OrbitalGuess | None = None
+    #: log ψ = log|ψ| + iπ·[ψ < 0] with real parameters (TrialState.sign_only_phase); a subclass
+    #: with a parameter-dependent complex phase must set this back to False
+    sign_only_phase: ClassVar[bool] = True
 
     def check_attributes(self):
         """Raise TypeError for a ``space`` that is not a FermionSpace or a bad ``guess``."""

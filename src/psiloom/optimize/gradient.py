@@ -68,10 +68,16 @@ class SampleGeometry:
 
     Only lives inside a traced step: it is passed to optax transformations as the extra
     keyword argument ``geometry``.
+
+    ``sign_only_phase=True`` (from the trial state's :attr:`~psiloom.states.TrialState.sign_only_phase`)
+    declares that Im log ψ only carries a sign (0 or π, as for determinants of real orbitals).
+    With real parameters its derivative is then zero wherever ψ ≠ 0, and X = Re ΔO/√n,
+    ε = Re ΔE/√n exactly: half the rows and one gradient per sample instead of two. Complex
+    parameters ignore the flag.
     """
 
     def __init__(self, apply_fn: Callable, params, x: jax.Array, e_loc: jax.Array, chunk: int | None = None,
-                 weights: jax.Array | None = None):
+                 weights: jax.Array | None = None, sign_only_phase: bool = False):
         self.weights = None if weights is None else jax.lax.stop_gradient(weights)
         self.apply_fn = apply_fn
         self.params = params
@@ -81,7 +87,11 @@ class SampleGeometry:
         self.n_samples = x.shape[0]
         self.param_vector, self.unravel = ravel_real(params)
         out = jax.eval_shape(apply_fn, params, x[:1])
-        self.complex_output = jnp.issubdtype(out.dtype, jnp.complexfloating)
+        # a complex log ψ whose imaginary part is only a sign (0 or π) has ∂ Im log ψ/∂θ = 0 for
+        # real θ: the Im rows of X are zero, so they are neither computed nor stored
+        real_parameters = not any(jnp.iscomplexobj(leaf) for leaf in jax.tree_util.tree_leaves(params))
+        self.complex_output = (jnp.issubdtype(out.dtype, jnp.complexfloating)
+                               and not (sign_only_phase and real_parameters))
 
     def _log_psi_of_vector(self, vec, xs):
         return self.apply_fn(self.unravel(vec), xs)

@@ -14,6 +14,7 @@ flattening for stochastic reconfiguration and checkpointing all work on them dir
 from __future__ import annotations
 
 import re
+from typing import ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -78,7 +79,16 @@ def _built_for(message: str, n: int) -> str:
 
 
 class TrialState(nn.Module):
-    """Base class: ``__call__(x) = log ψ(x)`` for ``x`` of shape ``(..., n_sites)``."""
+    """Base class: ``__call__(x) = log ψ(x)`` for ``x`` of shape ``(..., n_sites)``.
+
+    ``sign_only_phase`` (class attribute, default False): a subclass sets it True when its
+    log ψ is complex only to carry a sign, Im log ψ ∈ {0, π} (real amplitudes of either sign,
+    e.g. determinants of real orbitals). With real parameters the optimizers then skip the
+    identically zero derivatives of Im log ψ (:class:`~psiloom.optimize.SampleGeometry`). Setting
+    it on a state whose phase varies with the parameters gives wrong SR steps.
+    """
+
+    sign_only_phase: ClassVar[bool] = False
 
     def __call__(self, x):
         x = jnp.asarray(x)
