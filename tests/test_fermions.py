@@ -165,17 +165,21 @@ def test_state_sign_convention_matches_operator():
     np.testing.assert_allclose(psi.real, amplitudes[codes], atol=1e-12)
 
 
-def test_metropolis_hops_sample_the_determinant():
+@pytest.mark.parametrize("with_flip", [False, True])
+def test_metropolis_hops_sample_the_determinant(with_flip):
     # histogram of the chains against |ψ|² over the 9 states of 3 orbitals, 1 up + 1 down
-    # (chi-square at a fixed seed; 4-sigma bound on chi2 with 8 degrees of freedom, common practice)
+    # (chi-square at a fixed seed; 4-sigma bound on chi2 with 8 degrees of freedom, common practice);
+    # with the global spin flip mixed in (generic path: the flip is not a fast-update move)
     space = fm.FermionSpace(3, 1, 1)
     model = fm.SlaterDeterminant(space)
     x_all = jnp.asarray(space.configurations())
     params = model.init(jax.random.PRNGKey(7), x_all[:1])
     bonds = [(0, 1), (1, 2)]
-    move = pl.sampling.Mixture((fm.any_hop(), fm.Hop.along(bonds, space), fm.SpinExchange(bonds, 3)), (0.4, 0.3, 0.3))
-    sampler = pl.sampling.MetropolisChains(space, n_chains=32, move=move)
-    bound = BoundState(model, params)
+    moves, weights = (fm.any_hop(), fm.Hop.along(bonds, space), fm.SpinExchange(bonds, 3)), (0.4, 0.3, 0.3)
+    if with_flip:
+        moves, weights = moves + (fm.SpinFlip(3),), (0.3, 0.3, 0.2, 0.2)
+    sampler = pl.sampling.MetropolisChains(space, n_chains=32, move=pl.sampling.Mixture(moves, weights))
+    bound = BoundState(model, params, fast=not with_flip)
 
     @jax.jit
     def run(key):
@@ -279,5 +283,10 @@ def test_bad_input():
     op = fm.hubbard(pl.lattices.chain(3), U=1.0)
     with pytest.raises(ValueError, match="occupations"):
         op.local_energy(lambda x: jnp.zeros(x.shape[0]), jnp.full((2, 6), 0.5))
+    with pytest.raises(ValueError, match="n_up = n_down"):
+        pl.sampling.MetropolisChains(fm.FermionSpace(3, 2, 1), move=fm.SpinFlip(3))
+    flipped, sites = fm.SpinFlip(2)(jax.random.PRNGKey(0), jnp.array([[1.0, 0.0, 0.0, 1.0]]))
+    np.testing.assert_array_equal(flipped, [[0.0, 1.0, 1.0, 0.0]])
+    assert sites.shape == (1, 4)
     with pytest.raises(ValueError, match="changes n_up"):
         fm.creation(3, 0).in_sector(fm.FermionSpace(3, 1, 1))

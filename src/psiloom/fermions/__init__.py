@@ -18,7 +18,7 @@ from psiloom.fermions.determinants import (
 )
 from psiloom.fermions.backflow import BackflowDeterminant
 from psiloom.fermions.mean_field import MeanFieldResult, hubbard_mean_field
-from psiloom.fermions.moves import AnyHop, FermionMove, Hop, SpinExchange, any_hop
+from psiloom.fermions.moves import AnyHop, FermionMove, Hop, SpinExchange, SpinFlip, any_hop
 from psiloom.fermions.molecules import MolecularProblem, integrals_operator, molecular_hamiltonian
 
 __all__ = [
@@ -26,6 +26,6 @@ __all__ = [
     "number", "jordan_wigner", "hubbard", "one_body_matrix", "spinless_tv", "DeterminantState", "OrbitalGuess",
     "SlaterDeterminant", "SlaterDensityJastrow", "determinant_fast_updates", "lowest_orbitals", "BackflowDeterminant",
     "MeanFieldResult", "hubbard_mean_field",
-    "AnyHop", "FermionMove", "Hop", "SpinExchange", "any_hop", "MolecularProblem", "integrals_operator",
+    "AnyHop", "FermionMove", "Hop", "SpinExchange", "SpinFlip", "any_hop", "MolecularProblem", "integrals_operator",
     "molecular_hamiltonian",
 ]

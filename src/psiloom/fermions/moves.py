@@ -15,6 +15,8 @@ with :class:`psiloom.sampling.Mixture`.
   that spin: T = p_σ / (N_σ (M − N_σ)) both ways, hence symmetric. For molecules.
 * :class:`SpinExchange` — the contents of the two sites of a bond are swapped (both spins): an
   up and a down electron trade places (a spin exchange), or a doublon moves.
+* :class:`SpinFlip` — every up and down occupation are exchanged (N↑ = N↓): a global move
+  between the two halves of an antiferromagnet.
 """
 
 from __future__ import annotations
@@ -205,6 +207,40 @@ class SpinExchange(FermionMove):
 
     def __repr__(self):
         return f"SpinExchange({len(self.bonds)} bonds)"
+
+
+@jax.tree_util.register_static
+@dataclasses.dataclass(frozen=True)
+class SpinFlip(FermionMove):
+    """Exchange the whole up and down occupations, n'_{i↑} = n_{i↓} and n'_{i↓} = n_{i↑}, for
+    N↑ = N↓ (a global move: every spin-orbital may change). It is its own inverse, hence
+    symmetric. Mixed in with a small weight (``Mixture((Hop.along(...), SpinFlip(m)), (0.9, 0.1))``)
+    it lets chains jump between the two Néel-like halves of an antiferromagnetic state, which local
+    hops connect only through rare high-energy paths. ``n_orbitals``: orbitals per spin.
+    Sherman-Morrison updates handle one hop per spin only and refuse this move (Δ = −inf): bind
+    a Slater determinant with ``fast=False`` when mixing it in."""
+
+    n_orbitals: int
+
+    def __call__(self, key, x):
+        m = self.n_orbitals
+        flipped = jnp.concatenate([x[:, m:2 * m], x[:, :m]], axis=1)
+        sites = jnp.broadcast_to(jnp.arange(2 * m, dtype=jnp.int32), (x.shape[0], 2 * m))
+        return flipped, sites
+
+    def width(self, n_sites):
+        return n_sites
+
+    def check_space(self, space):
+        if space.spinless or space.n_orbitals != self.n_orbitals or space.n_up != space.n_down:
+            raise ValueError(f"a spin flip on {self.n_orbitals} orbitals per spin needs a spinful space with "
+                             f"n_up = n_down on as many orbitals, got {space!r}")
+
+    def moved_sites(self, n_sites):
+        return np.arange(2 * self.n_orbitals)
+
+    def __repr__(self):
+        return f"SpinFlip({self.n_orbitals} orbitals)"
 
 
 def any_hop(spinless: bool = False) -> AnyHop:
