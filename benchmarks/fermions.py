@@ -21,6 +21,14 @@ Cases (one JSON line each, benchmarks/README.md; ``--case NAME`` runs some of th
 
 Targets (the issue's): ≤ 1e-3 relative on the rings, ≤ 1e-2 on 4×4, ≤ 1 mHa on molecules.
 
+Hubbard cases: the determinant starts at the unrestricted Hartree-Fock solution
+(:func:`psiloom.fermions.hubbard_mean_field`, Néel start): the U = 0 shell of these lattices is open.
+SR with a fixed shift 1e-3 and no trust radius, sgd 0.15, 64 chains × 1024 samples per step.
+Measured 2026-12-04 (load 2-4): ring L=8 7.0e-4 ± 1.9e-4 relative (800 steps, 8 min; met);
+ring L=12 1.56e-2 (1200 steps, 20 min; not met, flat from step ~400); 4×4 2.2e-2 (1000 steps,
+27 min; not met, flat from step ~100). With a trust radius of 1 (lr 0.05) the 8-site ring stalled
+near 3e-2.
+
 Measured (2-core machine shared with other benchmarks, load 6–10), exact sums, N2 with frozen core:
 H2O 0.004 mHa (150 steps, 242 s); N2 at 1.0977 Å 0.41 mHa (150 steps, 828 s); N2 curve after
 100 steps: 0.9 Å 0.49, 1.3 Å 1.15, 1.7 Å 12.8, 2.2 Å 56.5 mHa (the stretched bonds need more
