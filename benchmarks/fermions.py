@@ -51,6 +51,7 @@ import psiloom as pl  # noqa: E402
 from psiloom import fermions as fm  # noqa: E402
 from _common import Timer, emit, parse_args, progress, relative_error, save_results, summary  # noqa: E402
 
+HUBBARD_U = 4.0  # every Hubbard case: U = 4t, half filling
 SQUARE_4x4_U4_PER_SITE = -0.8514  # ED of the periodic 4×4 Hubbard cluster at U = 4t, half filling (from memory)
 
 
@@ -79,12 +80,12 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
         lattice = pl.lattices.chain(extent[0]) if len(extent) == 1 else pl.lattices.square(*extent)
         n = lattice.n_sites
         space = fm.FermionSpace(n, n // 2, n // 2)
-        H = fm.hubbard(lattice, t=1.0, U=4.0)
+        H = fm.hubbard(lattice, t=1.0, U=HUBBARD_U)
         if reference is None:
             progress(f"ED of {space!r} ({space.size} states)")
             reference, _ = pl.reference.ground_state(H, space, tol=1e-10)
         # unrestricted Hartree-Fock (Néel start): the U = 0 shell of these rings and of 4×4 is open
-        mean_field = fm.hubbard_mean_field(space, fm.one_body_matrix(H), 4.0, pattern=2 * lattice.sublattice - 1)
+        mean_field = fm.hubbard_mean_field(space, fm.one_body_matrix(H), HUBBARD_U, pattern=2 * lattice.sublattice - 1)
         model = fm.BackflowDeterminant(space, mean_field.guess, hidden=hidden, jastrow=True)
         # constant shift 1e-3, no trust radius: on the 8-site ring this went on down to 2e-3 in 300
         # steps at lr 0.15, while a trust radius of 1 (or the decaying shift) stalled near 3e-2
@@ -94,7 +95,7 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
     record = {
         "benchmark": "fermions",
         "system": {"model": "hubbard", "lattice": lattice.kind, "extent": list(extent), "pbc": True, "t": 1.0,
-                   "U": 4.0, "n_up": space.n_up, "n_down": space.n_down},
+                   "U": HUBBARD_U, "n_up": space.n_up, "n_down": space.n_down},
         "method": {"trial_state": f"backflow determinant (hidden={hidden}) x density Jastrow, UHF orbitals",
                    "mean_field_energy": mean_field.energy,
                    "sampler": f"Metropolis hops along bonds, {chains} chains", "optimizer": f"SR shift 1e-3 + sgd {lr}",
