@@ -235,7 +235,7 @@ def main() -> None:
         return record
 
     if args.quick:
-        keep(hubbard_case([6], 100, 256, 16, 4096, 24, 0.05))
+        keep(hubbard_case([6], 150, 256, 16, 4096, 24, 0.15))
         keep(exact_molecule_case("LiH", LIH, 60, 16, 0.05))
         keep(molecule_case("LiH", LIH, 60, 256, 16, 2048, 16, 0.05))
         keep(throughput_case((4, 4), 16, 4))
