@@ -25,16 +25,17 @@ Cases (the initial state, the evolution, the observable and its exact curve):
   ⟨Sᶻ_stag⟩/N stayed at 0.5).
 
 Holomorphic TDVP with complex parameters, Heun steps of fixed length, a diagonal shift of S
-(1e-4 TFIM, 1e-5 Heisenberg), 16 × n_samples fresh samples at every grid time for the
+(1e-4 TFIM h1 = 1.0, 1e-3 TFIM h1 = 2.0, 1e-5 Heisenberg), 16 × n_samples fresh samples at every grid time for the
 observable (4 × in quick mode). Each line reports the time grid, the observable with its error
 bars, the exact curve, the largest absolute deviation over the window, the first time the
 deviation exceeds 1e-2 (null if never), the wall time, and the cost split of one step
 (sampling, S and F, solve, in milliseconds, measured after compilation).
 
 ``--quick``: L = 10 rings (1024 samples per stage, 150 SR steps), t ≤ 1; Heisenberg L = 8
-(512 samples), t ≤ 0.5; dt = 0.02 and 0.01. Measured: 56 s wall on the shared 2-core
-machine (load average 0.7-1.4, compilation cache warm); largest deviations 0.016 and 0.061 (TFIM
-h1 = 1.0 and 2.0, from a rough 150-step preparation: ⟨σˣ⟩(0) is off by 0.016) and 0.006
+(512 samples), t ≤ 0.5; dt = 0.02 and 0.01. Measured on 2026-12-04: 101 s wall on the shared
+2-core machine (a full-mode run beside it; 56 s at load 0.7-1.4 before), compilation cache warm;
+largest deviations 0.016 and 0.034 (TFIM h1 = 1.0 and 2.0, from a rough 150-step preparation:
+⟨σˣ⟩(0) is off by 0.016; 0.061 for h1 = 2.0 with the shift 1e-4 it had before) and 0.006
 (Heisenberg), a smoke test, not an accuracy check.
 Full: L = 20 rings, α = 8 (336 real parameters), 4096 samples per stage, 400 SR steps,
 dt = 0.01, t ∈ [0, 2]; Heisenberg L = 12, α = 4 (104), 4096 samples, dt = 0.005, t ∈ [0, 1.5].
@@ -51,12 +52,16 @@ and the command, run with ``--save`` to a scratch path and copied):
   relative 4e-6; ⟨σˣ⟩(0) = 0.2565(13) against 0.2587); TDVP residual r² ≤ 0.10. The dense
   complex RBM α = 2 (1720 real parameters, shift 1e-3, 4 × 4096 measurement samples) had given
   0.025 (first above 1e-2 at t = 1.0) in 17 min.
-* TFIM h1 = 2.0 (report only): the TDVP turned non-finite in the step from t = 0.45 (the
-  line keeps the five grid times before it, ``stopped_non_finite_at``); deviations −2.2e-3,
-  +0.7e-3, **+1.05e-2** (t = 0.2, the first above 1e-2), +4.5e-3, +0.9e-3 at t = 0 … 0.4. With the
-  dense α = 2 RBM and the shift 1e-3 the whole window ran (largest deviation 0.045, first above
-  1e-2 at t = 0.7). The shift 1e-4 chosen for h1 = 1.0 is too small for this stronger quench
-  (a larger shift for it was not tried). 6 min to the failure.
+* TFIM h1 = 2.0 (report only; ``benchmarks/results/dynamics_tfim_strong.json``, 2026-12-04,
+  ``--cases tfim2``, shift 1e-3): deviations −2.1e-3, +1.0e-3, +5.7e-3, +2.8e-3, **+1.2e-2** at
+  t = 0 … 0.4 (first above 1e-2 at t = 0.4), then the TDVP turned non-finite in the step from
+  t = 0.48 (the line keeps the grid times before it, ``stopped_non_finite_at``). 11 min (load
+  average 3-4). With the shift 1e-4 (the 2026-12-03 line in ``dynamics_tfim.json``) it had
+  stopped at t = 0.45 after +1.05e-2 at t = 0.2. The cause is the family, not the samples: the
+  exact TDVP at L = 16 (below; pseudo-inverse 1e-8, no samples) leaves the curve by +1.9e-2 at
+  t = 0.2 and +5.7e-2 at t = 0.3, with a residual r² of 0.38, where σˣ overshoots towards the
+  strong field's polarisation. With the dense α = 2 RBM and the shift 1e-3 the whole window ran
+  (largest deviation 0.045, first above 1e-2 at t = 0.7).
 * Heisenberg: largest deviation **2.4e-3** (t = 0.6; error bars 0.6-1.2e-3 per point, the
   deviations scatter within about two of them with no drift): **target 1e-2 met**. 5 min (load
   average 3.4-4.2), TDVP residual r² ≤ 0.04. The dense complex RBM α = 2 (648 real parameters,
@@ -103,7 +108,35 @@ machine: TFIM h1 = 1.0 sampling 378, S and F 840, solve 1; h1 = 2.0 sampling 382
 (load average 0.4-2.3); Heisenberg sampling 249, S and F 455, solve 0.3 (load 3.4-4.2). With
 4096 samples and 168 or 52 complex parameters S is small and the solve negligible; sampling and
 the per-sample log-derivatives dominate.
-``--cases tfim`` or ``--cases heisenberg`` runs a subset.
+Where the TFIM floor comes from: exact TDVP at L = 16 in the symmetric sector (2026-12-04).
+The state and H are invariant under translations × spin flip, so S, F and ⟨σˣ⟩ are sums over the
+2068 orbit representatives of L = 16 weighted by orbit size × |ψ|² (no samples; measured with a
+scratch subclass of TimeEvolution that :class:`psiloom.symmetry.OrbitEnumeration` now provides:
+pass it as the sampler). The free-fermion curves of L = 16 and L = 20
+differ by at most 5e-4 for t ≤ 2, so L = 16 stands in for L = 20. Ground state prepared by exact
+imaginary time (RK4, dt 0.05, τ = 5), then pseudo-inverse rcond 1e-8:
+
+=================  ==========================================================  ===========
+family             deviation from free fermions at t = 0.5, 1.0, 1.5, 2.0      largest
+=================  ==========================================================  ===========
+α = 8, Heun 0.01   −6.6e-4, +1.3e-4, −5.2e-3, −6.3e-3                          6.3e-3
+α = 8, RK4 0.01    −1.1e-4, −8.1e-4 (t = 1.0), −5.3e-3 (t = 1.5; stopped)       ≥ 5.3e-3
+α = 16, Heun 0.01  −2.3e-5, +6.8e-4, −2.8e-3, −3.3e-3 (prep off by 4e-4 early)   3.3e-3
+=================  ==========================================================  ===========
+
+So the late drift (t ≥ 1.2) is the family's, not the integrator's (RK4 follows Heun), and halves
+from α = 8 to α = 16 without noise. The sampled L = 20 run with α = 8 (1.56e-2) drifts 2.5 times
+further than its noise-free L = 16 counterpart, so sampling noise adds as much again; α = 16
+sampled at L = 20 (about 45 min) would still need its noise below ~2e-3 to meet 5e-3, and was
+not run. At L = 10, α = 8 from an exact imaginary-time preparation with the pseudo-inverse and
+RK4 dt 0.01 stays within 4e-4 up to t = 1.9 (−1.8e-3 at t = 2), far better than the 5.2e-3 of
+the sampled SR preparation above: the L = 10 ring's revivals keep its state simple, which is
+why L = 10 underestimated the difficulty. A quartic activation in place of log cosh (entire,
+no zeros of ψ) was worse at L = 10 (5.2e-2), and a translation-invariant complex Jastrow factor
+beside α = 4 jumped at t = 1.2 (residual 0.35, 9.9e-3).
+
+``--cases tfim`` runs both TFIM quenches, ``tfim1`` / ``tfim2`` one of them, ``heisenberg`` the
+chain.
 """
 
 from __future__ import annotations
@@ -121,6 +154,11 @@ import optax  # noqa: E402
 import psiloom as pl  # noqa: E402
 from _common import Timer, emit, lattice_system, parse_args, progress, summary  # noqa: E402
 from psiloom.dynamics import DiagonalShift, NonFiniteEvolution, TimeEvolution  # noqa: E402
+
+
+#: configurations per evaluation: a measurement of 16 × 4096 samples evaluates 21 connected
+#: configurations each at once otherwise (13 GB for α = 8 at L = 20; α = 16 ran out of 24 GB)
+CHUNK = 8192
 
 
 def as_complex(params):
@@ -202,7 +240,10 @@ def tfim_ground_state(n, h0, alpha, n_samples, sr_steps, key, **_):
     return as_complex(state.params), e_gs, timer.seconds
 
 
-def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, prepared, shift, measure_factor):
+def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, prepared, shift, measure_factor,
+              shift_strong=None):
+    if h1 > 1.0 and shift_strong is not None:  # the stronger quench needs the larger shift (docstring)
+        shift = shift_strong
     params, e_gs, prep_seconds = prepared
     with Timer() as timer:
         lattice = pl.lattices.chain(n)
@@ -212,7 +253,7 @@ def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, pre
         sampler_c = pl.sampling.MetropolisChains(space, n_chains=16)
         evo = TimeEvolution(model, h_quench, sampler_c, n_samples=n_samples, integrator="heun", dt=dt,
                             holomorphic=True, regularisation=DiagonalShift(shift),
-                            measure_samples=measure_factor * n_samples)
+                            measure_samples=measure_factor * n_samples, chunk=CHUNK)
         sx = pl.operators.total([pl.operators.pauli(n, "X", i) for i in range(n)], n) / n
         grid = np.linspace(0.0, t_end, n_grid)
         progress(f"TFIM L={n}: evolving h1={h1} to t={t_end}")
@@ -281,7 +322,7 @@ def heisenberg_case(n, t_end, n_grid, alpha, n_samples, dt, key, measure_factor,
         v0 = pl.reference.state_vector(lambda x: model.apply(params, x), space)
         evo = TimeEvolution(model, h, sampler, n_samples=n_samples, integrator="heun", dt=dt, holomorphic=True,
                             regularisation=DiagonalShift(shift),
-                            measure_samples=measure_factor * n_samples)
+                            measure_samples=measure_factor * n_samples, chunk=CHUNK)
         ms = pl.operators.staggered_magnetization_z(lattice) / n
         grid = np.linspace(0.0, t_end, n_grid)
         progress(f"Heisenberg L={n}: evolving the Néel state to t={t_end}")
@@ -311,21 +352,26 @@ def heisenberg_case(n, t_end, n_grid, alpha, n_samples, dt, key, measure_factor,
 def main():
     args = parse_args("dynamics", "quench dynamics by the TDVP against exact curves",
                       extra=lambda p: p.add_argument("--cases", default="tfim,heisenberg",
-                                                     help="comma-separated subset of: tfim, heisenberg"))
+                                                     help="comma-separated subset of: tfim (both quenches), tfim1 (h1 = 1.0), "
+                                                          "tfim2 (h1 = 2.0), heisenberg"))
     cases = set(args.cases.split(","))
     key = jax.random.PRNGKey(0)
     if args.quick:
         tfim = dict(n=10, t_end=1.0, n_grid=6, alpha=2, n_samples=1024, dt=0.02, sr_steps=150, shift=1e-4,
-                    measure_factor=4)
+                    shift_strong=1e-3, measure_factor=4)
         heis = dict(n=8, t_end=0.5, n_grid=6, alpha=2, n_samples=512, dt=0.01, measure_factor=4, shift=1e-5)
     else:
         tfim = dict(n=20, t_end=2.0, n_grid=21, alpha=8, n_samples=4096, dt=0.01, sr_steps=400, shift=1e-4,
-                    measure_factor=16)
+                    shift_strong=1e-3, measure_factor=16)
         heis = dict(n=12, t_end=1.5, n_grid=16, alpha=4, n_samples=4096, dt=0.005, measure_factor=16, shift=1e-5)
     records = []
-    if "tfim" in cases:
+    quenches = [h1 for h1, name in ((1.0, "tfim1"), (2.0, "tfim2")) if "tfim" in cases or name in cases]
+    unknown = cases - {"tfim", "tfim1", "tfim2", "heisenberg"}
+    if unknown:
+        raise SystemExit(f"unknown --cases {sorted(unknown)}; choose from tfim, tfim1, tfim2, heisenberg")
+    if quenches:
         prepared = tfim_ground_state(tfim["n"], 0.5, tfim["alpha"], tfim["n_samples"], tfim["sr_steps"], key)
-        for h1 in (1.0, 2.0):  # both quenches start from the same prepared state (its time counted in each)
+        for h1 in quenches:  # the quenches start from the same prepared state (its time counted in each)
             records.append(emit(tfim_case(h0=0.5, h1=h1, key=key, prepared=prepared, **tfim)))
     if "heisenberg" in cases:
         records.append(emit(heisenberg_case(key=key, **heis)))

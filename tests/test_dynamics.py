@@ -283,3 +283,64 @@ def test_signal_to_noise_filter_acts_per_eigenmode_as_published():
     f = factor.real
     assert f[0] > 0.999 and abs(f[1] - 0.5) < 1e-3 and f[2] < 1 / 64  # kept, halved, cut
     assert f[3] < 2e-6  # (rcond σ_max/σ)⁶ = 10⁶: below the spectral cut, however strong the signal
+
+
+# ---------------------------------------------------------------------- sums over orbits
+def _ring_group(n):
+    lattice = pl.lattices.chain(n)
+    return lattice, pl.symmetry.product(pl.symmetry.translations(lattice), pl.symmetry.spin_flip(lattice))
+
+
+@pytest.mark.parametrize("n, expected", [(6, 8), (8, 20), (10, 56)])
+def test_orbit_count_of_the_ring_under_rotation_and_complement(n, expected):
+    # binary necklaces of length n counted up to rotation and complement: OEIS A000013
+    # (1, 1, 2, 2, 4, 4, 8, 10, 20, 30, 56 for n = 0..10; from memory)
+    _, group = _ring_group(n)
+    orbits = pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(n), group)
+    assert orbits.size == expected
+    assert orbits.multiplicities().sum() == 2 ** n
+    assert np.all(len(group) % orbits.multiplicities() == 0)
+
+
+def test_tdvp_over_orbits_equals_tdvp_over_all_configurations():
+    # the orbit sums are a rewriting of the full sums for an invariant state and Hamiltonian:
+    # the trajectory, its parameters and the history's energy agree to rounding
+    n = 8
+    lattice, group = _ring_group(n)
+    space = pl.spaces.SpinSpace(n)
+    model = pl.states.TranslationInvariantRBM(group, alpha=2, complex_params=True)
+    params = model.init(jax.random.PRNGKey(3), jnp.ones((1, n)))
+    h = pl.operators.transverse_field_ising(lattice, 1.0, 1.0)
+    sx = pl.operators.total([pl.operators.pauli(n, "X", i) for i in range(n)], n) / n
+    grid = np.linspace(0.0, 0.3, 4)
+    runs = []
+    for sampler in (space, pl.symmetry.OrbitEnumeration(space, group)):
+        evo = TimeEvolution(model, h, sampler, integrator="rk4", dt=0.05, holomorphic=True)
+        runs.append(evo.run(evo.init(params, jax.random.PRNGKey(0)), grid, {"sx": sx}))
+    full, orbit = runs
+    np.testing.assert_allclose(orbit.values["sx"], full.values["sx"], atol=1e-10)
+    np.testing.assert_allclose(orbit.history["energy"], full.history["energy"], atol=1e-9)
+    for a, b in zip(jax.tree_util.tree_leaves(orbit.state.params), jax.tree_util.tree_leaves(full.state.params)):
+        np.testing.assert_allclose(a, b, atol=1e-8)
+    assert np.ptp(np.real(full.values["sx"])) > 1e-2  # the state moved: the comparison is not trivial
+
+
+def test_orbit_enumeration_refuses_a_state_that_is_not_invariant():
+    n = 6
+    lattice, group = _ring_group(n)
+    model = pl.states.RBM(alpha=1, complex_params=True)  # a dense RBM breaks translations
+    params = model.init(jax.random.PRNGKey(1), jnp.ones((1, n)))
+    evo = TimeEvolution(model, pl.operators.transverse_field_ising(lattice, 1.0, 1.0),
+                        pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(n), group), holomorphic=True)
+    with pytest.raises(ValueError, match="not invariant under the group"):
+        evo.init(params, jax.random.PRNGKey(0))
+
+
+def test_orbit_enumeration_bad_input():
+    _, group = _ring_group(6)
+    with pytest.raises(ValueError, match="space has 8 sites, the group acts on 6"):
+        pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(8), group)
+    with pytest.raises(ValueError, match="magnetisation=1"):
+        pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(6, magnetisation=1), group)
+    with pytest.raises(TypeError, match="SymmetryGroup"):
+        pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(6), "T x Z2")

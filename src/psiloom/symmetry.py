@@ -65,7 +65,7 @@ from psiloom._validation import positive_int
 
 __all__ = [
     "SymmetryGroup", "Sector", "translations", "point_group", "space_group", "spin_flip", "product",
-    "momenta", "characters", "sector", "sector_basis", "POINT_IRREPS",
+    "momenta", "characters", "sector", "sector_basis", "OrbitEnumeration", "POINT_IRREPS",
 ]
 
 #: Names of the one-dimensional point-group irreducible representations understood here.
@@ -602,15 +602,8 @@ def sector(group: SymmetryGroup, momentum=None, point_irrep: str = "A1", spin_pa
 
 
 # ---------------------------------------------------------------------- sector bases
-def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_matrix:
-    """Orthonormal basis of the sector inside ``space``: a sparse ``(space.size, n_sector)`` matrix.
-
-    Column ``r`` is ``Σ_g χ(g)* |g·x_r⟩`` normalised, for each orbit representative ``x_r``
-    (the orbit member with the smallest index in ``space.configurations()``); orbits on which this
-    vanishes carry no state of the sector and are dropped. ``B B†`` is the orthogonal projector
-    ``(1/|G|) Σ_g χ(g)* U_g`` onto the sector.
-    """
-    group = sec.group
+def _orbit_positions(space: SpinSpace, group: SymmetryGroup) -> np.ndarray:
+    """``pos[g, i]``: the index in ``space.configurations()`` of ``g·x_i`` (shape ``(|G|, size)``)."""
     if space.n_sites != group.n_sites:
         raise ValueError(f"space has {space.n_sites} sites, the group acts on {group.n_sites}")
     if space.is_sector and np.any(group.flips < 0) and space.magnetisation != 0:
@@ -640,6 +633,20 @@ def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_m
         if np.any(bad):
             raise ValueError(f"group element {g} maps states out of the space")
         pos[g] = p
+    return pos
+
+
+def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_matrix:
+    """Orthonormal basis of the sector inside ``space``: a sparse ``(space.size, n_sector)`` matrix.
+
+    Column ``r`` is ``Σ_g χ(g)* |g·x_r⟩`` normalised, for each orbit representative ``x_r``
+    (the orbit member with the smallest index in ``space.configurations()``); orbits on which this
+    vanishes carry no state of the sector and are dropped. ``B B†`` is the orthogonal projector
+    ``(1/|G|) Σ_g χ(g)* U_g`` onto the sector.
+    """
+    group = sec.group
+    pos = _orbit_positions(space, group)
+    dim = pos.shape[1]
     rep = pos.min(axis=0)
     reps = np.unique(rep)
     rows = pos[:, reps].reshape(-1)
@@ -651,3 +658,65 @@ def sector_basis(space: SpinSpace, sec: Sector, atol: float = 1e-10) -> sp.csr_m
     keep = np.flatnonzero(norms > atol * math.sqrt(len(group)))
     mat = mat[:, keep] @ sp.diags(1.0 / norms[keep])
     return mat.tocsr()
+
+
+# ---------------------------------------------------------------------- sums over orbits
+@dataclass(frozen=True, eq=False)
+class OrbitEnumeration:
+    """Exact expectation values over ``space`` with one term per orbit of ``group``.
+
+    If |ψ(g·x)| = |ψ(x)| for every element g (a trial state invariant under the group, or one of
+    any of its sectors, ψ(g·x) = χ(g)* ψ(x)) and f(g·x) = f(x) (the local energy of a Hamiltonian
+    that commutes with every g, the log-derivatives O_k = ∂ log ψ/∂θ_k of such a state, the local
+    estimator of an invariant observable), then
+
+        Σ_x |ψ(x)|² f(x) = Σ_r m_r |ψ(x_r)|² f(x_r),
+
+    where x_r runs over one representative of each orbit {g·x_r} (the member with the smallest
+    index in ``space.configurations()``) and m_r is the orbit's size. Exact sums then cost
+    ``space.size / |G|`` configurations instead of ``space.size``: about 26 000 instead of 10⁶ for
+    the L = 20 ring under translations × spin flip. Pass it where a :class:`SpinSpace` is accepted
+    for exact enumeration (:class:`psiloom.dynamics.TimeEvolution`); the evolution checks the
+    state's invariance at ``init``; the invariance of the Hamiltonian and of the observables is
+    the caller's to ensure (a non-invariant one gives wrong sums, not an error).
+
+    Attributes:
+        space: the configuration space (at most ``MAX_ENUMERATION`` states).
+        group: a :class:`SymmetryGroup` acting on it (spin flips need an unconstrained space or
+            magnetisation 0).
+    """
+
+    space: SpinSpace
+    group: SymmetryGroup
+    _table: tuple = field(default=(), repr=False, compare=False)
+
+    def __post_init__(self):
+        if not isinstance(self.space, SpinSpace):
+            raise TypeError(f"space must be a SpinSpace, got {type(self.space).__name__}")
+        if not isinstance(self.group, SymmetryGroup):
+            raise TypeError(f"group must be a SymmetryGroup, got {type(self.group).__name__}")
+        pos = _orbit_positions(self.space, self.group)
+        rep = pos.min(axis=0)
+        reps, counts = np.unique(rep, return_counts=True)
+        configs = self.space.configurations()[reps]
+        configs.setflags(write=False)
+        counts.setflags(write=False)
+        object.__setattr__(self, "_table", (configs, counts))
+
+    @property
+    def n_sites(self) -> int:
+        """Number of sites of the space."""
+        return self.space.n_sites
+
+    @property
+    def size(self) -> int:
+        """Number of orbits (terms of the sums)."""
+        return int(self._table[1].shape[0])
+
+    def configurations(self) -> np.ndarray:
+        """The orbit representatives, ``(size, n_sites)`` of ±1, in increasing order of their index."""
+        return self._table[0]
+
+    def multiplicities(self) -> np.ndarray:
+        """The orbit sizes m_r (integers dividing ``len(group)``; they sum to ``space.size``)."""
+        return self._table[1]

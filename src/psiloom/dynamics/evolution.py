@@ -9,7 +9,10 @@ with ``local_energy``), an estimator of the TDVP system and an integrator:
 * **Estimator.** ``sampler`` is a Markov-chain sampler (Monte Carlo: ``n_samples`` per stage,
   after ``burn_in_sweeps`` sweeps from the chains of the previous stage) or a
   :class:`~psiloom.spaces.SpinSpace`, whose configurations are then all enumerated and weighted
-  by |ψ|² (exact S, G and observables: a reference for small systems, no sampling noise).
+  by |ψ|² (exact S, G and observables: a reference for small systems, no sampling noise), or a
+  :class:`~psiloom.symmetry.OrbitEnumeration`: the same exact sums with one term per orbit of a
+  symmetry group, weighted by the orbit's size (for a state invariant under the group, a
+  Hamiltonian and observables that commute with it; the L = 16-20 rings become exact).
 * **Formulation** (:mod:`psiloom.dynamics.equation`): ``holomorphic=True`` for complex
   parameters of a holomorphic log ψ (complex RBM, complex Jastrow); otherwise real parameters
   (a complex leaf is two real ones), correct for any state.
@@ -62,6 +65,7 @@ from psiloom.operators.observables import _Stacked, _estimates, operator_scale
 from psiloom.reference.evolution import check_time_grid
 from psiloom.spaces import SpinSpace
 from psiloom.states.bound import BoundState
+from psiloom.symmetry import OrbitEnumeration
 from psiloom.vmc import strong
 
 __all__ = ["EvolutionState", "Trajectory", "TimeEvolution", "NonFiniteEvolution", "StageInfo"]
@@ -148,7 +152,8 @@ class TimeEvolution:
         model: a trial state (Flax module, ``model.apply(params, x) -> log ψ``).
         hamiltonian: the generator of the evolution (a PauliSum or anything with
             ``local_energy`` and ``n_sites``).
-        sampler: a Markov-chain sampler, or a ``SpinSpace`` for exact enumeration.
+        sampler: a Markov-chain sampler, or a ``SpinSpace`` (or an ``OrbitEnumeration``) for
+            exact enumeration.
         n_samples: samples per stage and per measurement (Monte Carlo only; a multiple of the
             chain count is used, ``n_samples // n_chains`` per chain).
         integrator: ``"euler"``, ``"heun"``, ``"rk4"``, ``"rk23"`` or ``"rk45"``.
@@ -176,7 +181,8 @@ class TimeEvolution:
         self.hamiltonian = hamiltonian
         if not hasattr(hamiltonian, "local_energy"):
             raise TypeError(f"hamiltonian must have local_energy (e.g. a PauliSum), got {type(hamiltonian).__name__}")
-        self.exact = isinstance(sampler, SpinSpace)
+        self.exact = isinstance(sampler, (SpinSpace, OrbitEnumeration))
+        self.orbits = sampler if isinstance(sampler, OrbitEnumeration) else None
         self.sampler = sampler
         self.space = sampler if self.exact else getattr(sampler, "space", None)
         if self.space is None:
@@ -211,6 +217,8 @@ class TimeEvolution:
         if self.exact:
             self.n_per_chain = 0
             self._configs = jnp.asarray(self.space.configurations())
+            self._log_mult = (None if self.orbits is None
+                              else jnp.asarray(np.log(self.orbits.multiplicities().astype(np.float64))))
         else:
             n_samples = positive_int("n_samples", n_samples)
             if n_samples < sampler.n_chains:
@@ -248,6 +256,8 @@ class TimeEvolution:
         if self.exact:
             if starts is not None:
                 raise ValueError("starts= applies to Markov chains, not to exact enumeration")
+            if self.orbits is not None:
+                self._check_invariance(params, k_chain)
             chains = jnp.zeros((), jnp.int32)
         else:
             chains = self.sampler.init(k_chain, self.bind(params))
@@ -271,10 +281,33 @@ class TimeEvolution:
         return xs, logs, chains, acc
 
     def _exact_weights(self, params):
+        """``(log ψ, w)`` over the enumerated configurations, w ∝ m |ψ|² (orbit sizes m, or 1)."""
         logs = self.model.apply(params, self._configs)
-        re = jnp.real(logs)
-        w = jnp.exp(2.0 * (re - jnp.max(re)))
+        log_w = 2.0 * jnp.real(logs)
+        if self._log_mult is not None:
+            log_w = log_w + self._log_mult
+        w = jnp.exp(log_w - jnp.max(log_w))
         return logs, w / jnp.sum(w)
+
+    def _check_invariance(self, params, key, rtol: float = 1e-8):
+        """Raise unless |ψ(g·x_r)| = |ψ(x_r)| on every orbit representative (one random g each)."""
+        assert self.orbits is not None
+        group = self.orbits.group
+        g = jax.random.randint(key, (self._configs.shape[0],), 0, len(group))
+        images = group.act(self._configs, g)
+        a = jnp.real(self.model.apply(params, self._configs))
+        b = jnp.real(self.model.apply(params, images))
+        finite = jnp.isfinite(a) & jnp.isfinite(b)
+        gap = np.asarray(jnp.where(finite, jnp.abs(a - b), 0.0))
+        tol = rtol * (1.0 + np.abs(np.asarray(jnp.where(finite, a, 0.0))))
+        bad = np.flatnonzero((gap > tol) | (np.asarray(jnp.isfinite(a)) != np.asarray(jnp.isfinite(b))))
+        if bad.size:
+            i = int(bad[0])
+            raise ValueError(
+                f"the trial state is not invariant under the group {group.name!r} of the OrbitEnumeration: "
+                f"log|ψ| differs by {float(gap[i]):.3g} between the configuration "
+                f"{np.asarray(self._configs[i]).astype(int).tolist()} and its image under element {int(g[i])}; "
+                "use a symmetric state (e.g. TranslationInvariantRBM over this group) or a SpinSpace")
 
     def system(self, params, chains, key):
         """``(TDVPSystem, chains, acceptance, energy error)`` at ``params`` (sampled or exact)."""
