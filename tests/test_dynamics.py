@@ -332,8 +332,23 @@ def test_orbit_enumeration_refuses_a_state_that_is_not_invariant():
     params = model.init(jax.random.PRNGKey(1), jnp.ones((1, n)))
     evo = TimeEvolution(model, pl.operators.transverse_field_ising(lattice, 1.0, 1.0),
                         pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(n), group), holomorphic=True)
-    with pytest.raises(ValueError, match="not invariant under the group"):
+    with pytest.raises(ValueError, match=r"log\|ψ\| is not invariant under the group"):
         evo.init(params, jax.random.PRNGKey(0))
+
+
+def test_orbit_enumeration_refuses_a_hamiltonian_that_breaks_the_symmetry():
+    n = 6
+    lattice, group = _ring_group(n)
+    model = pl.states.TranslationInvariantRBM(group, alpha=1, complex_params=True)
+    params = model.init(jax.random.PRNGKey(1), jnp.ones((1, n)))
+    # a field on one site breaks translations (the state itself is invariant)
+    h = pl.operators.transverse_field_ising(lattice, 1.0, 1.0) + pl.operators.pauli(n, "X", 0, 0.5)
+    orbits = pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(n), group)
+    with pytest.raises(ValueError, match="the local energy is not invariant"):
+        TimeEvolution(model, h, orbits, holomorphic=True).init(params, jax.random.PRNGKey(0))
+    # the invariant Hamiltonian passes the same check
+    TimeEvolution(model, pl.operators.transverse_field_ising(lattice, 1.0, 1.0), orbits,
+                  holomorphic=True).init(params, jax.random.PRNGKey(0))
 
 
 def test_orbit_enumeration_bad_input():

@@ -676,9 +676,10 @@ class OrbitEnumeration:
     index in ``space.configurations()``) and m_r is the orbit's size. Exact sums then cost
     ``space.size / |G|`` configurations instead of ``space.size``: about 26 000 instead of 10⁶ for
     the L = 20 ring under translations × spin flip. Pass it where a :class:`SpinSpace` is accepted
-    for exact enumeration (:class:`psiloom.dynamics.TimeEvolution`); the evolution checks the
-    state's invariance at ``init``; the invariance of the Hamiltonian and of the observables is
-    the caller's to ensure (a non-invariant one gives wrong sums, not an error).
+    for exact enumeration (:class:`psiloom.dynamics.TimeEvolution`). The evolution checks at
+    ``init`` that |ψ| and the local energy take the same value on each representative and on a
+    random image of it (a non-invariant state or Hamiltonian is refused); the invariance of the
+    observables measured along the way is the caller's to ensure.
 
     Attributes:
         space: the configuration space (at most ``MAX_ENUMERATION`` states).

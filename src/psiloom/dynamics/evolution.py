@@ -290,24 +290,32 @@ class TimeEvolution:
         return logs, w / jnp.sum(w)
 
     def _check_invariance(self, params, key, rtol: float = 1e-8):
-        """Raise unless |ψ(g·x_r)| = |ψ(x_r)| on every orbit representative (one random g each)."""
+        """Raise unless |ψ| and the local energy agree on every orbit representative x_r and its
+        image g·x_r (one random element g each): sums over orbits are exact only then."""
         assert self.orbits is not None
         group = self.orbits.group
         g = jax.random.randint(key, (self._configs.shape[0],), 0, len(group))
         images = group.act(self._configs, g)
-        a = jnp.real(self.model.apply(params, self._configs))
-        b = jnp.real(self.model.apply(params, images))
-        finite = jnp.isfinite(a) & jnp.isfinite(b)
-        gap = np.asarray(jnp.where(finite, jnp.abs(a - b), 0.0))
-        tol = rtol * (1.0 + np.abs(np.asarray(jnp.where(finite, a, 0.0))))
-        bad = np.flatnonzero((gap > tol) | (np.asarray(jnp.isfinite(a)) != np.asarray(jnp.isfinite(b))))
-        if bad.size:
-            i = int(bad[0])
-            raise ValueError(
-                f"the trial state is not invariant under the group {group.name!r} of the OrbitEnumeration: "
-                f"log|ψ| differs by {float(gap[i]):.3g} between the configuration "
-                f"{np.asarray(self._configs[i]).astype(int).tolist()} and its image under element {int(g[i])}; "
-                "use a symmetric state (e.g. TranslationInvariantRBM over this group) or a SpinSpace")
+        log_amp = self.bind(params)
+        logs_x, logs_g = self.model.apply(params, self._configs), self.model.apply(params, images)
+        e_x = self.hamiltonian.local_energy(log_amp, self._configs, logs_x, chunk=self.chunk)
+        e_g = self.hamiltonian.local_energy(log_amp, images, logs_g, chunk=self.chunk)
+        checks = (("log|ψ|", jnp.real(logs_x), jnp.real(logs_g),
+                   "use a symmetric state (e.g. TranslationInvariantRBM over this group) or a SpinSpace"),
+                  ("the local energy", e_x, e_g,
+                   "the Hamiltonian must commute with every element of the group; use a SpinSpace otherwise"))
+        for what, a, b, advice in checks:
+            a, b = np.asarray(a), np.asarray(b)
+            finite = np.isfinite(a) & np.isfinite(b)
+            gap = np.where(finite, np.abs(a - b), 0.0)
+            bad = np.flatnonzero((gap > rtol * (1.0 + np.abs(np.where(finite, a, 0.0))))
+                                 | (np.isfinite(a) != np.isfinite(b)))
+            if bad.size:
+                i = int(bad[0])
+                raise ValueError(
+                    f"{what} is not invariant under the group {group.name!r} of the OrbitEnumeration: it differs "
+                    f"by {float(gap[i]):.3g} between the configuration {np.asarray(self._configs[i]).astype(int).tolist()} "
+                    f"and its image under element {int(g[i])}; {advice}")
 
     def system(self, params, chains, key):
         """``(TDVPSystem, chains, acceptance, energy error)`` at ``params`` (sampled or exact)."""
