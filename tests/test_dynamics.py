@@ -346,9 +346,14 @@ def test_orbit_enumeration_refuses_a_hamiltonian_that_breaks_the_symmetry():
     orbits = pl.symmetry.OrbitEnumeration(pl.spaces.SpinSpace(n), group)
     with pytest.raises(ValueError, match="the local energy is not invariant"):
         TimeEvolution(model, h, orbits, holomorphic=True).init(params, jax.random.PRNGKey(0))
-    # the invariant Hamiltonian passes the same check
-    TimeEvolution(model, pl.operators.transverse_field_ising(lattice, 1.0, 1.0), orbits,
-                  holomorphic=True).init(params, jax.random.PRNGKey(0))
+    # the invariant Hamiltonian passes the same check; an observable on one site does not
+    evo = TimeEvolution(model, pl.operators.transverse_field_ising(lattice, 1.0, 1.0), orbits, holomorphic=True)
+    state = evo.init(params, jax.random.PRNGKey(0))
+    with pytest.raises(ValueError, match="observable 'x0' is not invariant"):
+        evo.measure(state, {"x0": pl.operators.pauli(n, "X", 0)})
+    sx = pl.operators.total([pl.operators.pauli(n, "X", i) for i in range(n)], n) / n
+    values, _, _ = evo.measure(state, {"sx": sx})
+    assert np.isfinite(values["sx"])
 
 
 def test_orbit_enumeration_bad_input():

@@ -678,8 +678,8 @@ class OrbitEnumeration:
     the L = 20 ring under translations × spin flip. Pass it where a :class:`SpinSpace` is accepted
     for exact enumeration (:class:`psiloom.dynamics.TimeEvolution`). The evolution checks at
     ``init`` that |ψ| and the local energy take the same value on each representative and on a
-    random image of it (a non-invariant state or Hamiltonian is refused); the invariance of the
-    observables measured along the way is the caller's to ensure.
+    random image of it (a non-invariant state or Hamiltonian is refused), and the same for the
+    local estimator of each observable at its first measurement.
 
     Attributes:
         space: the configuration space (at most ``MAX_ENUMERATION`` states).

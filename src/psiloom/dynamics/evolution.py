@@ -219,6 +219,7 @@ class TimeEvolution:
             self._configs = jnp.asarray(self.space.configurations())
             self._log_mult = (None if self.orbits is None
                               else jnp.asarray(np.log(self.orbits.multiplicities().astype(np.float64))))
+            self._orbit_checked: set = set()
         else:
             n_samples = positive_int("n_samples", n_samples)
             if n_samples < sampler.n_chains:
@@ -289,21 +290,31 @@ class TimeEvolution:
         w = jnp.exp(log_w - jnp.max(log_w))
         return logs, w / jnp.sum(w)
 
-    def _check_invariance(self, params, key, rtol: float = 1e-8):
-        """Raise unless |ψ| and the local energy agree on every orbit representative x_r and its
-        image g·x_r (one random element g each): sums over orbits are exact only then."""
+    def _check_invariance(self, params, key, observables: Mapping[str, Any] | None = None, rtol: float = 1e-8):
+        """Raise unless |ψ| and the local energy (or, given ``observables``, their local
+        estimators) agree on every orbit representative x_r and its image g·x_r (one random
+        element g each): sums over orbits are exact only then."""
         assert self.orbits is not None
         group = self.orbits.group
         g = jax.random.randint(key, (self._configs.shape[0],), 0, len(group))
         images = group.act(self._configs, g)
         log_amp = self.bind(params)
         logs_x, logs_g = self.model.apply(params, self._configs), self.model.apply(params, images)
-        e_x = self.hamiltonian.local_energy(log_amp, self._configs, logs_x, chunk=self.chunk)
-        e_g = self.hamiltonian.local_energy(log_amp, images, logs_g, chunk=self.chunk)
-        checks = (("log|ψ|", jnp.real(logs_x), jnp.real(logs_g),
-                   "use a symmetric state (e.g. TranslationInvariantRBM over this group) or a SpinSpace"),
-                  ("the local energy", e_x, e_g,
-                   "the Hamiltonian must commute with every element of the group; use a SpinSpace otherwise"))
+        if observables is None:
+            checks = [("log|ψ|", jnp.real(logs_x), jnp.real(logs_g),
+                       "use a symmetric state (e.g. TranslationInvariantRBM over this group) or a SpinSpace"),
+                      ("the local energy", self.hamiltonian.local_energy(log_amp, self._configs, logs_x, chunk=self.chunk),
+                       self.hamiltonian.local_energy(log_amp, images, logs_g, chunk=self.chunk),
+                       "the Hamiltonian must commute with every element of the group; use a SpinSpace otherwise")]
+        else:
+            checks = []
+            for name, op in observables.items():
+                stacked = _Stacked([op], self.n_sites)
+                block = lambda xs, ls: stacked.local_block(log_amp, xs, ls)  # noqa: E731
+                checks.append((f"the local estimator of observable {name!r}",
+                               map_in_chunks(block, self.chunk, self._configs, logs_x)[:, 0],
+                               map_in_chunks(block, self.chunk, images, logs_g)[:, 0],
+                               "measure observables that commute with the group, or use a SpinSpace"))
         for what, a, b, advice in checks:
             a, b = np.asarray(a), np.asarray(b)
             finite = np.isfinite(a) & np.isfinite(b)
@@ -400,6 +411,11 @@ class TimeEvolution:
         if not obs:
             return {}, {}, state
         names = tuple(obs)
+        if self.orbits is not None:  # each observable's invariance, once (no key of the run is used)
+            unchecked = {name: op for name, op in obs.items() if name not in self._orbit_checked}
+            if unchecked:
+                self._check_invariance(state.params, jax.random.PRNGKey(len(self._orbit_checked)), unchecked)
+                self._orbit_checked.update(unchecked)
         key, k = jax.random.split(state.key)
         mean, err, chains = self._measure_program(names, tuple(obs.values()))(state.params, state.chains, k)
         mean, err = np.asarray(mean), np.asarray(err)
