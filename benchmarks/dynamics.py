@@ -126,9 +126,11 @@ family             deviation from free fermions at t = 0.5, 1.0, 1.5, 2.0      l
 
 So the late drift (t ≥ 1.2) is the family's, not the integrator's (RK4 follows Heun), and halves
 from α = 8 to α = 16 without noise. The sampled L = 20 run with α = 8 (1.56e-2) drifts 2.5 times
-further than its noise-free L = 16 counterpart, so sampling noise adds as much again; α = 16
-sampled at L = 20 (about 45 min) would still need its noise below ~2e-3 to meet 5e-3, and was
-not run. At L = 10, α = 8 from an exact imaginary-time preparation with the pseudo-inverse and
+further than its noise-free L = 16 counterpart, so sampling noise adds as much again. The sampled
+L = 20 run with α = 16 (672 real parameters; a copy of this script with ``alpha=16``, 2026-12-04,
+stopped at t = 1.3 for time, about 3 min per 0.1 beside the test suite): deviations within 3.4e-3
+up to t = 1.2 (−2.6e-3 at t = 0, the preparation), then −6.6e-3 at t = 1.3, error bars 1.0-1.1e-3:
+the target is missed with α = 16 as well. At L = 10, α = 8 from an exact imaginary-time preparation with the pseudo-inverse and
 RK4 dt 0.01 stays within 4e-4 up to t = 1.9 (−1.8e-3 at t = 2), far better than the 5.2e-3 of
 the sampled SR preparation above: the L = 10 ring's revivals keep its state simple, which is
 why L = 10 underestimated the difficulty. A quartic activation in place of log cosh (entire,
