@@ -142,6 +142,20 @@ why L = 10 underestimated the difficulty. A quartic activation in place of log c
 no zeros of ψ) was worse at L = 10 (5.2e-2), and a translation-invariant complex Jastrow factor
 beside α = 4 jumped at t = 1.2 (residual 0.35, 9.9e-3).
 
+The table's numbers depend on the parametrisation, not only on the state. A second preparation
+(2026-12-04: the same imaginary-time route from another random start, energy within 1e-5 relative
+of the first, ⟨σˣ⟩(0) within 2e-5 of exact) gave, noise-free with the pseudo-inverse 1e-8 and Heun
+0.01: α = 8 **1.1e-2** (−1.1e-3 at t = 0.3, then −6.1e-3 at 1.5, −1.1e-2 at 2.0; residual r² ≤ 0.07)
+and α = 16 **6.4e-3** (within 7.8e-4 up to t = 1.0, −3.6e-3 at 1.5, −6.4e-3 at 1.9): about twice
+the first preparation's, so α = 16 does not hold 5e-3 reliably even without noise. The same
+parameters evolved with samples at L = 16 (4096 per stage, shift 1e-4; ⟨σˣ⟩ summed exactly over
+the orbits, so without measurement noise): α = 8 1.3e-2 (the noise adds little to the family's
+1.1e-2), α = 16 **2.1e-2** (within 1.5e-3 up to t = 1.0, then −2.1e-2 at t = 1.2 and excursions
+of ±1e-2 after: 272 complex parameters estimated from 4096 samples make S's noise dominate). The
+pseudo-inverse rcond 1e-12 instead of 1e-8 turned non-finite at t = 0.09 (α = 8). So the target
+needs a family whose noise-free error is well below 5e-3 from any preparation, at a parameter
+count that 4096 samples resolve; neither α = 8 nor α = 16 of this RBM is one.
+
 ``--cases tfim`` runs both TFIM quenches, ``tfim1`` / ``tfim2`` one of them, ``heisenberg`` the
 chain.
 """
