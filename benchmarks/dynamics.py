@@ -152,7 +152,8 @@ parameters evolved with samples at L = 16 (4096 per stage, shift 1e-4; ⟨σˣ�
 the orbits, so without measurement noise): α = 8 1.3e-2 (the noise adds little to the family's
 1.1e-2), α = 16 **2.1e-2** (within 1.5e-3 up to t = 1.0, then −2.1e-2 at t = 1.2 and excursions
 of ±1e-2 after: 272 complex parameters estimated from 4096 samples make S's noise dominate). The
-pseudo-inverse rcond 1e-12 instead of 1e-8 turned non-finite at t = 0.09 (α = 8). So the target
+pseudo-inverse rcond 1e-12 instead of 1e-8 turned non-finite at t = 0.09 (α = 8). α = 32
+(noise-free, stopped at t = 1.1) was worse early than α = 16: +4.5e-3 at t = 0.5. So the target
 needs a family whose noise-free error is well below 5e-3 from any preparation, at a parameter
 count that 4096 samples resolve; neither α = 8 nor α = 16 of this RBM is one.
 
