@@ -270,14 +270,28 @@ def tfim_symmetry(lattice):
     return pl.symmetry.product(pl.symmetry.translations(lattice), pl.symmetry.spin_flip(lattice))
 
 
-def tfim_ground_state(n, h0, alpha, n_samples, sr_steps, key, **_):
+def tfim_model(lattice, family, alpha, complex_params=False):
+    """The TFIM trial state: ``"rbm"``, the RBM whose weights are shared over translations × spin
+    flip (product over the group's images, :class:`psiloom.states.TranslationInvariantRBM`), or
+    ``"gcn"``, one equivariant layer of α channels with log cosh pooled by a sum over the group,
+    ψ = (1/|G|) Σ_g exp(Σ_f log cosh θ_{g,f}) (:class:`psiloom.states.GroupConvNet` with
+    ``features=(α,)``; the same parameter count)."""
+    group = tfim_symmetry(lattice)
+    if family == "rbm":
+        return pl.states.TranslationInvariantRBM(group, alpha=alpha, complex_params=complex_params)
+    if family == "gcn":
+        return pl.states.GroupConvNet(group, features=(alpha,), complex_params=complex_params)
+    raise SystemExit(f"unknown --tfim-family {family!r}; choose rbm or gcn")
+
+
+def tfim_ground_state(n, h0, alpha, n_samples, sr_steps, key, family="rbm", **_):
     """Ground state at h0 by SR (real symmetric RBM), as complex parameters, with its energy and the seconds."""
     with Timer() as timer:
         lattice = pl.lattices.chain(n)
         h_init = pl.operators.transverse_field_ising(lattice, 1.0, h0)
         sampler = pl.sampling.MetropolisChains(pl.spaces.SpinSpace(n), n_chains=16)
         optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(0.05))
-        model = pl.states.TranslationInvariantRBM(tfim_symmetry(lattice), alpha=alpha)
+        model = tfim_model(lattice, family, alpha)
         search = pl.train.GroundStateSearch(model, h_init, sampler, optimizer, n_samples=n_samples)
         progress(f"TFIM L={n}: ground state at h0={h0} by SR ({sr_steps} steps)")
         state, _ = search.run(sr_steps, key=key, progress=False)
@@ -286,7 +300,7 @@ def tfim_ground_state(n, h0, alpha, n_samples, sr_steps, key, **_):
 
 
 def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, prepared, shift, measure_factor,
-              shift_strong=None):
+              shift_strong=None, family="rbm"):
     if h1 > 1.0 and shift_strong is not None:  # the stronger quench needs the larger shift (docstring)
         shift = shift_strong
     params, e_gs, prep_seconds = prepared
@@ -294,7 +308,7 @@ def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, pre
         lattice = pl.lattices.chain(n)
         space = pl.spaces.SpinSpace(n)
         h_quench = pl.operators.transverse_field_ising(lattice, 1.0, h1)
-        model = pl.states.TranslationInvariantRBM(tfim_symmetry(lattice), alpha=alpha, complex_params=True)
+        model = tfim_model(lattice, family, alpha, complex_params=True)
         sampler_c = pl.sampling.MetropolisChains(space, n_chains=16)
         evo = TimeEvolution(model, h_quench, sampler_c, n_samples=n_samples, integrator="heun", dt=dt,
                             holomorphic=True, regularisation=DiagonalShift(shift),
@@ -316,8 +330,11 @@ def tfim_case(n, h0, h1, t_end, n_grid, alpha, n_samples, dt, sr_steps, key, pre
     return {"benchmark": "dynamics",
             "system": {**lattice_system("tfim", "chain", [n], True, "pauli", J=1.0, h=h1), "model": "tfim_quench",
                        "h0": h0, "h1": h1},
-            "method": {"trial_state": f"complex RBM alpha={alpha} with weights shared over translations x spin flip "
-                                      "(from the SR ground state of the same real RBM)",
+            "method": {"trial_state": (f"complex RBM alpha={alpha} with weights shared over translations x spin flip "
+                                       "(from the SR ground state of the same real RBM)" if family == "rbm" else
+                                       f"complex equivariant layer of {alpha} channels pooled by a sum over "
+                                       "translations x spin flip (from the SR ground state of the same real net)"),
+                       "family": family,
                        "tdvp": "holomorphic, Monte Carlo", "integrator": "heun", "dt": dt,
                        "regularisation": f"diagonal shift {shift:g}", "measure_samples": measure_factor * n_samples,
                        "preparation_seconds": prep_seconds,
@@ -402,9 +419,13 @@ def heisenberg_case(n, t_end, n_grid, alpha, n_samples, dt, key, measure_factor,
 
 def main():
     args = parse_args("dynamics", "quench dynamics by the TDVP against exact curves",
-                      extra=lambda p: p.add_argument("--cases", default="tfim,heisenberg",
-                                                     help="comma-separated subset of: tfim (both quenches), tfim1 (h1 = 1.0), "
-                                                          "tfim2 (h1 = 2.0), heisenberg"))
+                      extra=lambda p: (p.add_argument("--cases", default="tfim,heisenberg",
+                                                      help="comma-separated subset of: tfim (both quenches), tfim1 (h1 = 1.0), "
+                                                           "tfim2 (h1 = 2.0), heisenberg"),
+                                       p.add_argument("--tfim-family", default="rbm", choices=("rbm", "gcn"),
+                                                      help="TFIM trial state: rbm (weights shared over the group, "
+                                                           "product over images) or gcn (one equivariant layer "
+                                                           "pooled by a sum over the group)")))
     cases = set(args.cases.split(","))
     key = jax.random.PRNGKey(0)
     if args.quick:
@@ -421,9 +442,10 @@ def main():
     if unknown:
         raise SystemExit(f"unknown --cases {sorted(unknown)}; choose from tfim, tfim1, tfim2, heisenberg")
     if quenches:
-        prepared = tfim_ground_state(tfim["n"], 0.5, tfim["alpha"], tfim["n_samples"], tfim["sr_steps"], key)
+        prepared = tfim_ground_state(tfim["n"], 0.5, tfim["alpha"], tfim["n_samples"], tfim["sr_steps"], key,
+                                     family=args.tfim_family)
         for h1 in quenches:  # the quenches start from the same prepared state (its time counted in each)
-            records.append(emit(tfim_case(h0=0.5, h1=h1, key=key, prepared=prepared, **tfim)))
+            records.append(emit(tfim_case(h0=0.5, h1=h1, key=key, prepared=prepared, family=args.tfim_family, **tfim)))
     if "heisenberg" in cases:
         records.append(emit(heisenberg_case(key=key, **heis)))
     summary(records, benchmark="dynamics", quick=bool(args.quick),
