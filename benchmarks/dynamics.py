@@ -157,6 +157,24 @@ pseudo-inverse rcond 1e-12 instead of 1e-8 turned non-finite at t = 0.09 (α = 8
 needs a family whose noise-free error is well below 5e-3 from any preparation, at a parameter
 count that 4096 samples resolve; neither α = 8 nor α = 16 of this RBM is one.
 
+A different family follows the quench noise-free (``--tfim-family gcn``, 2026-12-04): one
+equivariant layer of α = 8 channels with log cosh, pooled by a *sum* over the group,
+ψ = (1/|G|) Σ_g exp(Σ_f log cosh θ_{g,f}) (:class:`psiloom.states.GroupConvNet` with
+``features=(8,)``, 136 complex parameters at L = 16 like the RBM α = 8, whose images enter as a
+product). Exact sums at L = 16, imaginary-time preparation, pseudo-inverse 1e-8, Heun 0.01: largest
+deviation **2.4e-3** (−2.4e-3 at t = 2, within 1.1e-3 before) and, from a second random start,
+**1.5e-3**: the drift of the RBMs is gone. The regularisation matters as much as the family for
+the RBM: α = 8 with a diagonal shift 1e-7 instead of the pseudo-inverse stayed within 1.8e-3 after
+t = 0.9 but jumped by +5.7e-3 in the first 0.1 (largest 5.9e-3); the soft pseudo-inverse 1e-8 gave
+7.9e-3, the hard one 1e-10 3.7e-2. So the α-independent late drift of the pseudo-inverse runs
+(α = 8, 16, 32 all end near −6e-3 … −1.1e-2 with residual r² ≈ 0.07) comes from the cut
+directions more than from the width. Sampled at L = 16 (4096 samples per stage, shift 1e-4,
+⟨σˣ⟩ summed exactly): largest deviation **3.4e-3** (within 1.6e-3 up to t = 1.4, +3.4e-3
+at 1.7, −1.9e-3 at 2.0), where the RBMs gave 1.3e-2 (α = 8) and 2.1e-2 (α = 16) the same way.
+About 90 s per 0.1 of time on one core at L = 16 (no fast updates: every flip re-evaluates the
+net); the L = 20 full run with ``--tfim-family gcn`` took about 4 min per 0.1 on one core beside
+other jobs (too slow for the 60 min budget there; not finished).
+
 ``--cases tfim`` runs both TFIM quenches, ``tfim1`` / ``tfim2`` one of them, ``heisenberg`` the
 chain.
 """
