@@ -435,15 +435,19 @@ def heisenberg_case(n, t_end, n_grid, alpha, n_samples, dt, key, measure_factor,
             "cost_split": split, "seconds": timer.seconds}
 
 
+def add_options(parser):
+    """The script's own options: which cases, and the TFIM trial state."""
+    parser.add_argument("--cases", default="tfim,heisenberg",
+                        help="comma-separated subset of: tfim (both quenches), tfim1 (h1 = 1.0), tfim2 (h1 = 2.0), "
+                             "heisenberg")
+    parser.add_argument("--tfim-family", default="rbm", choices=("rbm", "gcn"),
+                        help="TFIM trial state: rbm (weights shared over the group, product over images) or gcn "
+                             "(one equivariant layer pooled by a sum over the group)")
+
+
 def main():
     args = parse_args("dynamics", "quench dynamics by the TDVP against exact curves",
-                      extra=lambda p: (p.add_argument("--cases", default="tfim,heisenberg",
-                                                      help="comma-separated subset of: tfim (both quenches), tfim1 (h1 = 1.0), "
-                                                           "tfim2 (h1 = 2.0), heisenberg"),
-                                       p.add_argument("--tfim-family", default="rbm", choices=("rbm", "gcn"),
-                                                      help="TFIM trial state: rbm (weights shared over the group, "
-                                                           "product over images) or gcn (one equivariant layer "
-                                                           "pooled by a sum over the group)")))
+                      extra=add_options)
     cases = set(args.cases.split(","))
     key = jax.random.PRNGKey(0)
     if args.quick:
