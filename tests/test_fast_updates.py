@@ -456,6 +456,32 @@ def test_translation_invariant_rbm_fast_path_equals_generic(with_flips, complex_
     _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(10, magnetisation=0), ("sequential",), 6, 6, 1e-11)
 
 
+@pytest.mark.parametrize("sector_kind, complex_params, activation",
+                         [("invariant", True, "log_cosh"), ("momentum", False, "log_cosh"), ("invariant", True, "tanh")])
+def test_one_layer_group_conv_net_fast_path_equals_generic(sector_kind, complex_params, activation):
+    """The one-layer equivariant net moves its lift's pre-activations by the changed sites' rows:
+    local energies and whole Metropolis chains agree with full re-evaluation, for an invariant
+    state with complex kernels, for a momentum sector (complex characters, real kernels), and
+    with another activation than log cosh (the path that re-applies it)."""
+    lat = pl.lattices.chain(10)
+    group = pl.symmetry.product(pl.symmetry.translations(lat), pl.symmetry.spin_flip(lat))
+    symmetry = group if sector_kind == "invariant" else pl.symmetry.sector(pl.symmetry.translations(lat),
+                                                                           (2 * np.pi / 5,))
+    act = pl.states.equivariant.log_cosh if activation == "log_cosh" else jnp.tanh
+    model = pl.states.GroupConvNet(symmetry, features=(3,), complex_params=complex_params, init_scale=1.0,
+                                   activation=act)
+    _assert_fast_equals_generic(model, lat, pl.spaces.SpinSpace(10, magnetisation=0), ("random", "sequential"), 6,
+                                6, 1e-11)
+
+
+def test_deeper_group_conv_net_takes_generic_path():
+    """After a group convolution every feature depends on every site: no fast updates."""
+    lat = pl.lattices.chain(6)
+    model = pl.states.GroupConvNet(pl.symmetry.translations(lat), features=(2, 2))
+    variables = model.init(jax.random.PRNGKey(0), jnp.ones((1, 6)))
+    assert fast_updates_of(BoundState(model, variables)) is None
+
+
 # ----------------------------------------------------------------------------- projected states
 @pytest.mark.parametrize(
     "base_kind, sector_kind, parity",

@@ -181,6 +181,41 @@ def resolve_cache_dtype(cache_dtype, param_dtype):
     return real
 
 
+def changed_sites(old_values, sites, new_values):
+    """``(idx, δ)`` of a fast update's change: the sites with −1 padding replaced by 0, and
+    ``δ = x' − x`` at them, zero at padding (shapes of ``sites``: (K,) shared or (n, K))."""
+    sites = jnp.asarray(sites)
+    valid = sites >= 0
+    idx = jnp.where(valid, sites, 0)
+    return idx, jnp.where(valid, new_values - old_values, 0).astype(old_values.dtype)
+
+
+def cosh_ratios(cache: RBMCache, dv, up_rows, down_rows):
+    """Per-unit ratios ``r = cosh(θ + d) / cosh θ`` and the cache of ``θ + d`` (module docstring).
+
+    ``cache``: the pair (1 ± tanh θ), (n, M); ``dv``: (n, K) spin changes δ_k ∈ {0, ±2};
+    ``up_rows`` / ``down_rows``: the rows of ``e^{2W}`` / ``e^{−2W}`` at the changed sites,
+    (K, M) shared or (n, K, M). Only multiplications and one reciprocal per unit.
+    """
+    e_plus = e_minus = None
+    for k in range(dv.shape[1]):
+        up = (dv[:, k] > 0)[:, None]
+        down = (dv[:, k] < 0)[:, None]
+        f_plus = jnp.where(up, up_rows[..., k, :], jnp.where(down, down_rows[..., k, :], 1.0))
+        f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
+        e_plus = f_plus if e_plus is None else e_plus * f_plus
+        e_minus = f_minus if e_minus is None else e_minus * f_minus
+    plus, minus = cache.plus * e_plus, cache.minus * e_minus
+    ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
+    inverse = 1.0 / ratio
+    return ratio, RBMCache(plus * inverse, minus * inverse)
+
+
+def tanh_pair_cache(theta, cache_dtype) -> RBMCache:
+    """The cache pair ``(1 + tanh θ, 1 − tanh θ)`` of pre-activations θ, in ``cache_dtype``."""
+    return RBMCache(*(half.astype(cache_dtype) for half in _one_plus_minus_tanh(theta)))
+
+
 def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=None) -> FastUpdates:
     """Fast updates of ``log ψ(x) = a·x + Σ_j log 2cosh θ_j``, ``θ = xW + b`` (module docstring).
 
@@ -199,33 +234,17 @@ def rbm_fast_updates(kernel, hidden_bias=None, visible_bias=None, cache_dtype=No
         theta = x.astype(kernel.dtype) @ kernel
         if hidden_bias is not None:
             theta = theta + hidden_bias
-        return RBMCache(*(half.astype(ctype) for half in _one_plus_minus_tanh(theta)))
+        return tanh_pair_cache(theta, ctype)
 
     def update(old_values, cache: RBMCache, sites, new_values):
-        sites = jnp.asarray(sites)
-        valid = sites >= 0
-        idx = jnp.where(valid, sites, 0)
-        dv = jnp.where(valid, new_values - old_values, 0).astype(old_values.dtype)  # (n, K)
-        up_rows, down_rows = rise[idx], fall[idx]  # (K, M) shared sites, or (n, K, M)
-        e_plus = e_minus = None
+        idx, dv = changed_sites(old_values, sites, new_values)
         delta = jnp.zeros(dv.shape[:1], kernel.dtype)
-        for k in range(dv.shape[1]):
-            up = (dv[:, k] > 0)[:, None]
-            down = (dv[:, k] < 0)[:, None]
-            f_plus = jnp.where(up, up_rows[..., k, :], jnp.where(down, down_rows[..., k, :], 1.0))
-            f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
-            e_plus = f_plus if e_plus is None else e_plus * f_plus
-            e_minus = f_minus if e_minus is None else e_minus * f_minus
-            if visible_bias is not None:
-                delta = delta + dv[:, k] * visible_bias[idx[..., k]]
-        if e_plus is None:  # K = 0: nothing changes
+        if visible_bias is not None:
+            delta = delta + jnp.sum(dv * visible_bias[idx], axis=1)
+        if dv.shape[1] == 0:  # K = 0: nothing changes
             return delta, cache
-        assert e_minus is not None  # set together with e_plus
-        plus, minus = cache.plus * e_plus, cache.minus * e_minus
-        ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
-        inverse = 1.0 / ratio
-        log_ratio = log_product(ratio, block=log_block).astype(kernel.dtype)
-        return delta + log_ratio, RBMCache(plus * inverse, minus * inverse)
+        ratio, new_cache = cosh_ratios(cache, dv, rise[idx], fall[idx])
+        return delta + log_product(ratio, block=log_block).astype(kernel.dtype), new_cache
 
     dense = None if jnp.iscomplexobj(kernel) else RBMArrays(kernel, hidden_bias, visible_bias, rise, fall)
     return FastUpdates(init, update, dense)
