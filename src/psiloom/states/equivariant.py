@@ -23,7 +23,11 @@ of a sector:
 
 so that ``ψ(h·x) = χ(h)* ψ(x)`` (psiloom's sector convention; for the trivial sector the state
 is invariant). The pooling is a phase-aware log-sum-exp. Cost per configuration:
-``O(|G|² C D)`` per convolution, ``O(|G| N D)`` for the lift.
+``O(|G|² C D)`` per convolution, ``O(|G| N D)`` for the lift. A one-layer net
+(``features=(D,)``) has fast updates (:meth:`GroupConvNet.fast_updates`): a change of K sites
+costs ``O(K |G| D)`` and, with log cosh, no transcendental function per unit (measured at
+L = 20, |G| = 40, D = 8, 4096 samples: Metropolis sampling 1.7 s → 0.43 s and TFIM local
+energies 1.7 s → 0.41 s per batch, two cores).
 """
 
 from __future__ import annotations
