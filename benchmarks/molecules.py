@@ -289,9 +289,11 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
     return records
 
 
-def case_ionisation(configs, laplacian, quick, seed=0):
+def case_ionisation(configs, laplacian, quick, seed=0, names=tuple(CATIONS)):
     records = []
     for name, cation_ref in CATIONS.items():
+        if name not in names:
+            continue
         neutral, neutral_ref, _ = SYSTEMS[name]
         cation = el.atom(name, charge=1)
         runs = {}
@@ -407,7 +409,7 @@ CASES = ("energies", "scan", "ionisation", "properties", "cost", "laplacian")
 def main() -> None:
     def extra(parser):
         parser.add_argument("--systems", default=",".join(SYSTEMS), help="comma-separated subset of " + ",".join(SYSTEMS)
-                            + " (--case scan: the curves of H2 and/or LiH)")
+                            + " (--case scan: the curves of H2 and/or LiH; --case ionisation: Li and/or Be)")
         parser.add_argument("--laplacian", default="forward", choices=list(el.laplacian.METHODS))
         parser.add_argument("--scale", type=float, default=1.0,
                             help="multiply optimisation steps and evaluation samples (smoke tests)")
@@ -428,7 +430,9 @@ def main() -> None:
     if args.case != "energies":
         run_case = {"scan": case_scan, "ionisation": case_ionisation, "properties": case_properties,
                     "cost": case_cost, "laplacian": case_laplacian}[args.case]
-        kwargs = {"names": names} if args.case in ("scan", "laplacian") else {}
+        if args.case == "ionisation" and not set(names) & set(CATIONS):
+            raise SystemExit(f"--case ionisation runs {', '.join(CATIONS)}; --systems names none of them")
+        kwargs = {"names": names} if args.case in ("scan", "laplacian", "ionisation") else {}
         records = run_case(configs, args.laplacian, args.quick, **kwargs)
         energy_records = [r for r in records if r.get("abs_error_mha") is not None]
         summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,

@@ -205,6 +205,8 @@ def cosh_ratios(cache: RBMCache, dv, up_rows, down_rows):
         f_minus = jnp.where(up, down_rows[..., k, :], jnp.where(down, up_rows[..., k, :], 1.0))
         e_plus = f_plus if e_plus is None else e_plus * f_plus
         e_minus = f_minus if e_minus is None else e_minus * f_minus
+    if e_plus is None or e_minus is None:
+        raise ValueError("cosh_ratios needs at least one changed site (K ≥ 1)")
     plus, minus = cache.plus * e_plus, cache.minus * e_minus
     ratio = 0.5 * (plus + minus)  # cosh(θ + d) / cosh θ per unit
     inverse = 1.0 / ratio
