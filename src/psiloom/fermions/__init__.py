@@ -19,6 +19,7 @@ from psiloom.fermions.determinants import (
 from psiloom.fermions.backflow import BackflowDeterminant
 from psiloom.fermions.mean_field import MeanFieldResult, hubbard_mean_field
 from psiloom.fermions.moves import AnyHop, FermionMove, Hop, SpinExchange, SpinFlip, any_hop
+from psiloom.fermions.symmetric import FermionSymmetrized, fermion_images
 from psiloom.fermions.molecules import MolecularProblem, integrals_operator, molecular_hamiltonian
 
 __all__ = [
@@ -27,5 +28,5 @@ __all__ = [
     "SlaterDeterminant", "SlaterDensityJastrow", "determinant_fast_updates", "lowest_orbitals", "BackflowDeterminant",
     "MeanFieldResult", "hubbard_mean_field",
     "AnyHop", "FermionMove", "Hop", "SpinExchange", "SpinFlip", "any_hop", "MolecularProblem", "integrals_operator",
-    "molecular_hamiltonian",
+    "molecular_hamiltonian", "FermionSymmetrized", "fermion_images",
 ]

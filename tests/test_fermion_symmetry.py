@@ -1,0 +1,111 @@
+"""Fermionic symmetry projection: signs of moved creation operators, sectors, projected states."""
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from hypothesis import given, settings, strategies as st
+
+import psiloom as pl
+from psiloom import fermions as fm
+from psiloom.fermions.symmetric import fermion_images
+from psiloom.reference import ground_state, operator_matrix
+
+
+def _representation(space, group):
+    """Sparse matrices U_g (|g·n⟩ s_g(n) in column n) on the enumerated sector, g in the group."""
+    confs = space.configurations()
+    codes = fm.occupation_codes(confs)
+    images, signs = fermion_images(space, group.perms, group.flips, jnp.asarray(confs))
+    images, signs = np.asarray(images), np.asarray(signs)
+    cols = np.arange(len(confs))
+    out = []
+    for g in range(len(group)):
+        rows = np.searchsorted(codes, fm.occupation_codes(images[:, g]))
+        assert np.all(codes[rows] == fm.occupation_codes(images[:, g]))  # images stay in the sector
+        out.append(sp.csr_matrix((signs[:, g], (rows, cols)), shape=(len(confs), len(confs))))
+    return out
+
+
+def _ring_group(n):
+    lattice = pl.lattices.chain(n)
+    return lattice, pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
+
+
+@pytest.mark.parametrize("model", ["hubbard", "tv"])
+def test_moved_operators_commute_with_the_hamiltonian_and_compose(model):
+    # U_g H U_g† = H for every translation, mirror and spin exchange of a periodic ring (the bond set
+    # maps onto itself: a property of the model, independent of the code's sign rule), and
+    # U_g U_h = U_{gh} (a representation). A wrong fermionic sign breaks both.
+    lattice, group = _ring_group(6)
+    if model == "hubbard":
+        space = fm.FermionSpace(6, 3, 3)
+        H = fm.hubbard(lattice, t=1.0, U=3.0, t_next=0.3, next_bonds=lattice.next_bonds)
+    else:
+        space = fm.spinless_space(6, 3)
+        H = fm.spinless_tv(lattice, t=1.0, V=2.0)
+        group = pl.symmetry.space_group(lattice)
+    mat = operator_matrix(H, space)
+    us = _representation(space, group)
+    for u in us:
+        assert abs(u @ mat - mat @ u).max() < 1e-12
+    table = group.multiplication_table()
+    rng = np.random.default_rng(0)
+    for g, h in rng.integers(0, len(group), size=(12, 2)):
+        assert abs(us[g] @ us[h] - us[table[g, h]]).max() < 1e-12
+
+
+def test_the_eight_site_ring_ground_state_has_the_expected_quantum_numbers():
+    # Half-filled periodic Hubbard ring with L = 4n, N↑ = N↓ even: the boundary hop carries the sign
+    # (−1)^(N↑−1) = −1, so the U = 0 sea is open-shell and the ground state sits at momentum π,
+    # odd under the site mirror and even under the spin exchange (a singlet). Checked here by
+    # ED (scipy Lanczos): s_g(n) ψ0(g·n) = χ(g) ψ0(n) with the characters of that sector.
+    lattice, group = _ring_group(8)
+    space = fm.FermionSpace(8, 4, 4)
+    _, v = ground_state(fm.hubbard(lattice, U=4.0), space)
+    v = np.asarray(v).ravel()
+    chi = pl.symmetry.characters(group, momentum=np.pi, point_irrep="odd", spin_parity=1).real
+    for g, u in enumerate(_representation(space, group)):
+        np.testing.assert_allclose(u.T @ v, chi[g] * v, atol=1e-8)  # (U_g† v)(n) = s_g(n) v(g·n)
+
+
+@settings(max_examples=10, deadline=None)
+@given(st.integers(0, 2**31 - 1), st.sampled_from([1, -1]), st.sampled_from(["even", "odd"]))
+def test_projected_backflow_lies_in_its_sector(seed, parity, irrep):
+    lattice = pl.lattices.chain(6)
+    space = fm.FermionSpace(6, 3, 3)
+    group = pl.symmetry.space_group(lattice)
+    sector = pl.symmetry.sector(group, momentum=np.pi, point_irrep=irrep)
+    model = fm.FermionSymmetrized(fm.BackflowDeterminant(space, hidden=6, jastrow=True), space, sector,
+                                  spin_parity=parity)
+    x = jnp.asarray(space.configurations())
+    params = model.init(jax.random.PRNGKey(seed), x[:2])
+    params = jax.tree_util.tree_map(lambda p: p + 0.3 * jax.random.normal(jax.random.PRNGKey(seed + 1), p.shape), params)
+    log_psi = np.asarray(jax.jit(model.apply)(params, x))
+    psi = np.exp(log_psi.real) * np.cos(log_psi.imag)
+    assert np.all(np.abs(np.exp(log_psi.real) * np.sin(log_psi.imag)) <= 1e-9 * np.abs(psi).max())  # real up to sign
+    full = pl.symmetry.product(group, pl.symmetry.spin_flip(lattice))
+    chi = pl.symmetry.characters(full, momentum=np.pi, point_irrep=irrep, spin_parity=parity).real
+    for g, u in enumerate(_representation(space, full)):
+        np.testing.assert_allclose(u.T @ psi, chi[g] * psi, atol=1e-9 * np.abs(psi).max())
+
+
+def test_projection_bad_input():
+    lattice = pl.lattices.chain(4)
+    group = pl.symmetry.translations(lattice)
+    space = fm.FermionSpace(4, 2, 2)
+    x = jnp.asarray(space.configurations()[:2])
+    base = fm.SlaterDeterminant(space)
+    with pytest.raises(ValueError, match="real characters"):
+        fm.FermionSymmetrized(base, space, pl.symmetry.sector(group, momentum=np.pi / 2)).init(jax.random.PRNGKey(0), x)
+    odd = fm.FermionSpace(4, 2, 1)
+    with pytest.raises(ValueError, match="N↑ = N↓"):
+        fm.FermionSymmetrized(fm.SlaterDeterminant(odd), odd, group, spin_parity=1).init(
+            jax.random.PRNGKey(0), jnp.asarray(odd.configurations()[:2]))
+    with pytest.raises(ValueError, match="acts on 6 sites"):
+        fm.FermionSymmetrized(base, space, pl.symmetry.translations(pl.lattices.chain(6))).init(jax.random.PRNGKey(0), x)
+    with pytest.raises(ValueError, match="spin_parity"):
+        fm.FermionSymmetrized(base, space, group, spin_parity=2).init(jax.random.PRNGKey(0), x)
+    with pytest.raises(TypeError, match="FermionSpace"):
+        fm.FermionSymmetrized(base, "space", group).init(jax.random.PRNGKey(0), x)
