@@ -109,3 +109,19 @@ def test_projection_bad_input():
         fm.FermionSymmetrized(base, space, group, spin_parity=2).init(jax.random.PRNGKey(0), x)
     with pytest.raises(TypeError, match="FermionSpace"):
         fm.FermionSymmetrized(base, "space", group).init(jax.random.PRNGKey(0), x)
+
+
+def test_subsector_restricts_and_checks_closure():
+    # translations by multiples of L/2, the mirror and the spin flip of a 12-site ring: a subgroup
+    # of 8 elements whose restricted characters are still a representation (χ(g)χ(h) = χ(gh))
+    lattice, group = _ring_group(12)
+    full = pl.symmetry.sector(group, momentum=np.pi, point_irrep="odd", spin_parity=1)
+    sub = pl.symmetry.subsector(full, group.shifts[:, 0] % 6 == 0)
+    assert len(sub.group) == 8
+    sub.check_representation()
+    with pytest.raises(ValueError, match="not a subgroup"):
+        pl.symmetry.subsector(full, group.shifts[:, 0] % 5 == 0)
+    with pytest.raises(ValueError, match="identity"):
+        pl.symmetry.subsector(full, group.shifts[:, 0] == 3)
+    with pytest.raises(ValueError, match="booleans"):
+        pl.symmetry.subsector(full, np.ones(3, bool))
