@@ -11,6 +11,7 @@ import psiloom as pl
 from psiloom import fermions as fm
 from psiloom.fermions.symmetric import fermion_images
 from psiloom.reference import ground_state, operator_matrix
+from psiloom.states import BoundState
 
 
 def _representation(space, group):
@@ -33,17 +34,19 @@ def _ring_group(n):
     return lattice, pl.symmetry.product(pl.symmetry.space_group(lattice), pl.symmetry.spin_flip(lattice))
 
 
-@pytest.mark.parametrize("model", ["hubbard", "tv"])
-def test_moved_operators_commute_with_the_hamiltonian_and_compose(model):
+@pytest.mark.parametrize("model, n_particles", [("hubbard", 3), ("hubbard", 2), ("tv", 3), ("tv", 2)])
+def test_moved_operators_commute_with_the_hamiltonian_and_compose(model, n_particles):
     # U_g H U_g† = H for every translation, mirror and spin exchange of a periodic ring (the bond set
     # maps onto itself: a property of the model, independent of the code's sign rule), and
-    # U_g U_h = U_{gh} (a representation). A wrong fermionic sign breaks both.
+    # U_g U_h = U_{gh} (a representation). With an even number of particles per spin a hop across
+    # the boundary carries a sign in the occupation basis, which a plain permutation of
+    # occupations (no fermionic sign) fails to reproduce.
     lattice, group = _ring_group(6)
     if model == "hubbard":
-        space = fm.FermionSpace(6, 3, 3)
+        space = fm.FermionSpace(6, n_particles, n_particles)
         H = fm.hubbard(lattice, t=1.0, U=3.0, t_next=0.3, next_bonds=lattice.next_bonds)
     else:
-        space = fm.spinless_space(6, 3)
+        space = fm.spinless_space(6, n_particles)
         H = fm.spinless_tv(lattice, t=1.0, V=2.0)
         group = pl.symmetry.space_group(lattice)
     mat = operator_matrix(H, space)
@@ -56,18 +59,42 @@ def test_moved_operators_commute_with_the_hamiltonian_and_compose(model):
         assert abs(us[g] @ us[h] - us[table[g, h]]).max() < 1e-12
 
 
-def test_the_eight_site_ring_ground_state_has_the_expected_quantum_numbers():
-    # Half-filled periodic Hubbard ring with L = 4n, N↑ = N↓ even: the boundary hop carries the sign
-    # (−1)^(N↑−1) = −1, so the U = 0 sea is open-shell and the ground state sits at momentum π,
-    # odd under the site mirror and even under the spin exchange (a singlet). Checked here by
-    # ED (scipy Lanczos): s_g(n) ψ0(g·n) = χ(g) ψ0(n) with the characters of that sector.
-    lattice, group = _ring_group(8)
-    space = fm.FermionSpace(8, 4, 4)
+@pytest.mark.parametrize("n, momentum, irrep, parity", [(6, 0.0, "even", -1), (8, np.pi, "odd", 1)])
+def test_ring_ground_states_have_the_expected_quantum_numbers(n, momentum, irrep, parity):
+    # Half-filled periodic Hubbard rings, checked by ED (scipy Lanczos): s_g(n) ψ0(g·n) = χ(g) ψ0(n)
+    # with the characters of the stated sector. L = 4n (N↑ = N↓ even): the boundary hop carries
+    # (−1)^(N↑−1) = −1, the U = 0 sea is open-shell and the ground state sits at momentum π, odd
+    # under the site mirror. The spin-exchange parity of a singlet of N electrons is (−1)^(N/2)
+    # (each singlet pair changes sign; reordering whole pairs is even): −1 for 6 electrons, +1 for 8.
+    lattice, group = _ring_group(n)
+    space = fm.FermionSpace(n, n // 2, n // 2)
     _, v = ground_state(fm.hubbard(lattice, U=4.0), space)
     v = np.asarray(v).ravel()
-    chi = pl.symmetry.characters(group, momentum=np.pi, point_irrep="odd", spin_parity=1).real
+    chi = pl.symmetry.characters(group, momentum=momentum, point_irrep=irrep, spin_parity=parity).real
     for g, u in enumerate(_representation(space, group)):
         np.testing.assert_allclose(u.T @ v, chi[g] * v, atol=1e-8)  # (U_g† v)(n) = s_g(n) v(g·n)
+
+
+def test_projected_state_local_energies_average_to_its_exact_expectation():
+    # Σ_n |ψ(n)|² E_loc(n) / Σ_n |ψ(n)|² over the whole sector (the estimator's connected
+    # configurations, each one a projected evaluation) equals ψᵀHψ/ψᵀψ from the sparse matrix
+    lattice, group = _ring_group(6)
+    space = fm.FermionSpace(6, 3, 3)
+    H = fm.hubbard(lattice, U=4.0)
+    uhf = fm.hubbard_mean_field(space, fm.one_body_matrix(H), 4.0, pattern=2 * lattice.sublattice - 1)
+    sector = pl.symmetry.sector(group, momentum=0.0, point_irrep="even", spin_parity=-1)
+    model = fm.FermionSymmetrized(fm.BackflowDeterminant(space, uhf.guess, hidden=6, jastrow=True), space, sector)
+    x = jnp.asarray(space.configurations())
+    params = model.init(jax.random.PRNGKey(3), x[:1])
+    params = jax.tree_util.tree_map(lambda p: p + 0.05 * jax.random.normal(jax.random.PRNGKey(4), p.shape), params)
+    log_psi = np.asarray(jax.jit(model.apply)(params, x))
+    psi = np.exp(log_psi.real) * np.cos(log_psi.imag)
+    e_loc = np.asarray(jax.jit(lambda p, x: H.local_energy(BoundState(model, p), x))(params, x))
+    w = psi ** 2
+    mat = operator_matrix(H, space)
+    assert np.sum(w * e_loc.real) / np.sum(w) == pytest.approx(psi @ (mat @ psi) / (psi @ psi), abs=1e-10)
+    e0, _ = ground_state(H, space)
+    assert psi @ (mat @ psi) / (psi @ psi) >= e0 - 1e-10
 
 
 @settings(max_examples=10, deadline=None)
