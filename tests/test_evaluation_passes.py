@@ -114,3 +114,33 @@ def test_combined_batches_agree_with_one_estimate_of_independent_draws():
     assert np.isnan(pooled.rhat)
     with pytest.raises(ValueError, match="leading axis"):
         combine_batches(Estimate(*(np.float64(1.0) for _ in range(6))))
+
+
+class _ChunkRecorder:
+    """A Hamiltonian that records the ``chunk`` each local-energy call receives (at trace time)."""
+
+    def __init__(self, hamiltonian):
+        self.hamiltonian, self.chunks = hamiltonian, []
+
+    def __getattr__(self, name):
+        return getattr(self.hamiltonian, name)
+
+    def local_energy(self, log_amplitude, x, log_amp_x=None, chunk=None):
+        self.chunks.append((x.shape[0], chunk))
+        return self.hamiltonian.local_energy(log_amplitude, x, log_amp_x, chunk=chunk)
+
+
+def test_a_large_evaluation_pass_works_in_chunks_of_a_training_step():
+    # memory: a fixed pass of 8× the step's samples must not build all local-energy work at once
+    # (an unchunked pass of 131072 samples of a projected fermion state asked XLA for 48 GB)
+    search, hamiltonian, _ = make(n_samples=64)
+    recorder = _ChunkRecorder(hamiltonian)
+    search = pl.train.GroundStateSearch(search.model, recorder, search.sampler, search.optimizer, n_samples=64)
+    state = search.init(jax.random.PRNGKey(0))
+    est, _ = search.evaluate(state, 512)
+    assert (512, 64) in recorder.chunks
+    assert np.isfinite(est.mean)
+    chunked = pl.train.GroundStateSearch(search.model, recorder, search.sampler, search.optimizer, n_samples=64,
+                                         chunk=16)
+    chunked.evaluate(chunked.init(jax.random.PRNGKey(0)), 512)
+    assert (512, 16) in recorder.chunks  # an explicit chunk is kept

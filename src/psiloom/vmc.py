@@ -280,13 +280,16 @@ def vmc(model, hamiltonian, sampler, optimizer: optax.GradientTransformation, n_
         return xs, logs, chains, acc, log_amp
 
     def evaluate(params, chains, key, n_per_chain, burn_in=0):
-        """Energy estimate of an evaluation pass: ``(Estimate, acceptance, chains)``."""
+        """Energy estimate of an evaluation pass: ``(Estimate, acceptance, chains)``. Without a
+        ``chunk``, local energies are computed a training step's ``n_samples`` at a time: a pass is
+        usually many times larger than a step, and a step's size is known to fit in memory."""
         xs, logs, chains, acc, log_amp = draw(params, chains, key, n_per_chain, burn_in)
         x = xs.reshape(-1, *xs.shape[2:])
         if exact:
             e_loc = sampler.local_energies(hamiltonian, logs.reshape(-1))
         else:
-            e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1), chunk=chunk)
+            e_loc = hamiltonian.local_energy(log_amp, x, logs.reshape(-1),
+                                             chunk=int(n_samples) if chunk is None else chunk)
         return estimate_of(e_loc, logs.reshape(-1), (n_per_chain, -1)), acc, chains
 
     return VMC(init, step, guarded_step, multi_step, evaluate, draw,
