@@ -23,7 +23,7 @@ projection of a base state ψ is
 
 the fermionic form of :class:`psiloom.states.Symmetrized` (same sector convention: the result
 obeys ``U_h|ψ_χ⟩ = χ(h)|ψ_χ⟩``). The sum runs in log space through
-:func:`psiloom.states.log_sum_exp_weighted`, the sign entering as a phase ``iπ``. The Hubbard and
+:func:`psiloom.states.symmetric.log_sum_exp_weighted`, the sign entering as a phase ``iπ``. The Hubbard and
 t-V models of :mod:`psiloom.fermions.models` commute with every lattice symmetry that maps the
 bond set onto itself (translations of a periodic lattice, its point group) and, with
 ``N↑ = N↓``, with the spin exchange; their ground state lies in one such sector, so the
