@@ -25,9 +25,11 @@ Hubbard cases: the determinant starts at the unrestricted Hartree-Fock solution
 (:func:`psiloom.fermions.hubbard_mean_field`, Néel start): the U = 0 shell of these lattices is open.
 SR with a fixed shift 1e-3 and no trust radius, sgd 0.15, 64 chains × 1024 samples per step.
 Measured 2026-12-04 (load 2-4): ring L=8 7.0e-4 ± 1.9e-4 relative (800 steps, 8 min; met);
-ring L=12 1.56e-2 (1200 steps, 20 min; not met, flat from step ~400); 4×4 2.2e-2 (1000 steps,
-27 min; not met, flat from step ~100). With a trust radius of 1 (lr 0.05) the 8-site ring stalled
-near 3e-2.
+4×4 2.2e-2 (1000 steps, 27 min; not met, flat from step ~100). With a trust radius of 1 (lr 0.05)
+the 8-site ring stalled near 3e-2. Ring L=12: without projection 1.56e-2 (1200 steps, 20 min,
+flat from step ~400); projected on its ground state's sector (:func:`ring_projection`, 4
+evaluations per configuration) and with the rate dropped to 0.03 from step 700, 7.3e-4 ± 0.9e-4
+(1000 steps, 131072 evaluation samples, 11 min; met; 2026-12-04, a CI run beside it).
 
 Measured (2-core machine shared with other benchmarks, load 6–10), exact sums, N2 with frozen core:
 H2O 0.004 mHa (150 steps, 242 s); N2 at 1.0977 Å 0.41 mHa (150 steps, 828 s); N2 curve after
@@ -116,8 +118,7 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
         "system": {"model": "hubbard", "lattice": lattice.kind, "extent": list(extent), "pbc": True, "t": 1.0,
                    "U": HUBBARD_U, "n_up": space.n_up, "n_down": space.n_down},
         "method": {"trial_state": f"backflow determinant (hidden={hidden}) x density Jastrow, UHF orbitals"
-                   + ("" if projection is None else f", projected on {projection.label} ({len(projection.group)} "
-                                                    "elements)"),
+                   + ("" if projection is None else f", projected on {projection.label}"),
                    "mean_field_energy": mean_field.energy,
                    "sampler": f"Metropolis hops along bonds, {chains} chains", "optimizer": f"SR shift 1e-3 + sgd {lr}"
                    + ("" if lower_lr_at is None else f", {lr / 5:g} from step {lower_lr_at}"),
