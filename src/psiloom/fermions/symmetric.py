@@ -45,10 +45,9 @@ import flax.linen as nn
 import jax.numpy as jnp
 import numpy as np
 
-from psiloom._validation import one_of
 from psiloom.fermions.space import FermionSpace
 from psiloom.states.base import TrialState
-from psiloom.states.symmetric import log_sum_exp_weighted
+from psiloom.states.symmetric import log_sum_exp_weighted, projection_elements
 from psiloom.symmetry import Sector, SymmetryGroup
 
 __all__ = ["FermionSymmetrized", "fermion_images"]
@@ -116,24 +115,13 @@ class FermionSymmetrized(TrialState):
         s = self.space
         if not isinstance(s, FermionSpace):
             raise TypeError(f"FermionSymmetrized.space must be a FermionSpace, got {s!r}")
-        if isinstance(self.sector, SymmetryGroup):
-            group, chi = self.sector, np.ones(len(self.sector))
-        elif isinstance(self.sector, Sector):
-            group, chi = self.sector.group, np.asarray(self.sector.characters)
-        else:
-            raise ValueError(f"sector must be a Sector or a SymmetryGroup, got {self.sector!r}")
+        perms, flips, chi = projection_elements(self.sector, self.spin_parity)
         if np.max(np.abs(np.imag(chi))) > 1e-12:
             raise ValueError("FermionSymmetrized needs real characters (momenta 0 or π, real point irreps); "
                              f"got complex characters {np.round(chi, 6).tolist()}")
         chi = np.real(chi).astype(np.float64)
-        one_of("spin_parity", self.spin_parity, (None, 1, -1))
-        if group.n_sites != s.n_orbitals:
-            raise ValueError(f"the group acts on {group.n_sites} sites, the space has {s.n_orbitals} orbitals")
-        perms, flips = np.asarray(group.perms), np.asarray(group.flips)
-        if self.spin_parity is not None:
-            perms = np.concatenate([perms, perms])
-            flips = np.concatenate([flips, -flips])
-            chi = np.concatenate([chi, chi * self.spin_parity])
+        if perms.shape[1] != s.n_orbitals:
+            raise ValueError(f"the group acts on {perms.shape[1]} sites, the space has {s.n_orbitals} orbitals")
         if np.any(flips < 0) and (s.spinless or s.n_up != s.n_down):
             raise ValueError(f"a spin exchange needs a spinful space with N↑ = N↓, got {s!r}")
         return perms, flips, chi

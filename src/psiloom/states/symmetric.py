@@ -47,7 +47,7 @@ from psiloom.states.base import TrialState
 from psiloom.states.fast import FastUpdates, supports_fast_updates
 from psiloom.symmetry import Sector, SymmetryGroup
 
-__all__ = ["Symmetrized", "SymmetrizedCache", "log_sum_exp_weighted"]
+__all__ = ["Symmetrized", "SymmetrizedCache", "log_sum_exp_weighted", "projection_elements"]
 
 
 class SymmetrizedCache(NamedTuple):
@@ -85,6 +85,25 @@ def log_sum_exp_weighted(log_terms, log_weights=None, axis: int = -1):
     return jnp.squeeze(m, axis) + jnp.log(safe)
 
 
+def projection_elements(sector: Sector | SymmetryGroup, spin_parity: int | None = None):
+    """``(perms (E, N) in gather form, flips (E,), characters (E,))`` of a projection's elements,
+    ``(e·x)_j = flips[e] x[perms[e, j]]``: the group's, followed by their spin-flipped copies
+    when ``spin_parity`` is ±1 (their characters times the parity). A bare
+    :class:`~psiloom.symmetry.SymmetryGroup` means the invariant sector (all characters 1)."""
+    if isinstance(sector, SymmetryGroup):
+        sector = Sector(sector, np.ones(len(sector)), "invariant")
+    if not isinstance(sector, Sector):
+        raise ValueError(f"sector must be a Sector or a SymmetryGroup, got {sector!r}")
+    one_of("spin_parity", spin_parity, (None, 1, -1))
+    group = sector.group
+    perms, flips, chi = group.perms, np.asarray(group.flips), np.asarray(sector.characters)
+    if spin_parity is not None:
+        perms = np.concatenate([perms, perms])
+        flips = np.concatenate([flips, -flips])
+        chi = np.concatenate([chi, chi * spin_parity])
+    return perms, flips, chi
+
+
 class Symmetrized(TrialState):
     """Projection of a trial state ``base`` onto a symmetry ``sector``.
 
@@ -102,26 +121,9 @@ class Symmetrized(TrialState):
     sector: Sector | SymmetryGroup
     spin_parity: int | None = None
 
-    def _sector(self) -> Sector:
-        if isinstance(self.sector, Sector):
-            return self.sector
-        if isinstance(self.sector, SymmetryGroup):
-            return Sector(self.sector, np.ones(len(self.sector)), "invariant")
-        raise ValueError(f"sector must be a Sector or a SymmetryGroup, got {self.sector!r}")
-
     def _elements(self):
-        """``(perms (E, N) in gather form, flips (E,), characters (E,))`` of the projected
-        elements, ``(e·x)_j = flips[e] x[perms[e, j]]``: the group's, followed by their
-        spin-flipped copies with ``spin_parity``."""
-        sec = self._sector()
-        one_of("spin_parity", self.spin_parity, (None, 1, -1))
-        group = sec.group
-        perms, flips, chi = group.perms, np.asarray(group.flips), np.asarray(sec.characters)
-        if self.spin_parity is not None:
-            perms = np.concatenate([perms, perms])
-            flips = np.concatenate([flips, -flips])
-            chi = np.concatenate([chi, chi * self.spin_parity])
-        return perms, flips, chi
+        """:func:`projection_elements` of this state's sector and parity."""
+        return projection_elements(self.sector, self.spin_parity)
 
     @staticmethod
     def _log_weights(chi):
