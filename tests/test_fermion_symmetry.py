@@ -65,7 +65,8 @@ def test_ring_ground_states_have_the_expected_quantum_numbers(n, momentum, irrep
     # with the characters of the stated sector. L = 4n (N↑ = N↓ even): the boundary hop carries
     # (−1)^(N↑−1) = −1, the U = 0 sea is open-shell and the ground state sits at momentum π, odd
     # under the site mirror. The spin-exchange parity of a singlet of N electrons is (−1)^(N/2)
-    # (each singlet pair changes sign; reordering whole pairs is even): −1 for 6 electrons, +1 for 8.
+    # (each singlet pair changes sign; reordering whole pairs is even; from memory): −1 for 6
+    # electrons, +1 for 8. Reference: the scipy Lanczos ground vector, not the code under test.
     lattice, group = _ring_group(n)
     space = fm.FermionSpace(n, n // 2, n // 2)
     _, v = ground_state(fm.hubbard(lattice, U=4.0), space)
@@ -77,7 +78,9 @@ def test_ring_ground_states_have_the_expected_quantum_numbers(n, momentum, irrep
 
 def test_projected_state_local_energies_average_to_its_exact_expectation():
     # Σ_n |ψ(n)|² E_loc(n) / Σ_n |ψ(n)|² over the whole sector (the estimator's connected
-    # configurations, each one a projected evaluation) equals ψᵀHψ/ψᵀψ from the sparse matrix
+    # configurations, each one a projected evaluation) equals ψᵀHψ/ψᵀψ from the sparse matrix (an
+    # exact identity; scipy.sparse as the outside reference), and lies above the ED energy
+    # (variational principle)
     lattice, group = _ring_group(6)
     space = fm.FermionSpace(6, 3, 3)
     H = fm.hubbard(lattice, U=4.0)
