@@ -24,12 +24,16 @@ Targets (the issue's): ≤ 1e-3 relative on the rings, ≤ 1e-2 on 4×4, ≤ 1 m
 Hubbard cases: the determinant starts at the unrestricted Hartree-Fock solution
 (:func:`psiloom.fermions.hubbard_mean_field`, Néel start): the U = 0 shell of these lattices is open.
 SR with a fixed shift 1e-3 and no trust radius, sgd 0.15, 64 chains × 1024 samples per step.
-Measured 2026-12-04 (load 2-4): ring L=8 7.0e-4 ± 1.9e-4 relative (800 steps, 8 min; met);
-4×4 2.2e-2 (1000 steps, 27 min; not met, flat from step ~100). With a trust radius of 1 (lr 0.05)
-the 8-site ring stalled near 3e-2. Ring L=12: without projection 1.56e-2 (1200 steps, 20 min,
-flat from step ~400); projected on its ground state's sector (:func:`ring_projection`, 4
-evaluations per configuration) and with the rate dropped to 0.03 from step 700, 7.3e-4 ± 0.9e-4
-(1000 steps, 131072 evaluation samples, 11 min; met; 2026-12-04, a CI run beside it).
+Measured 2026-12-04 (load 2-4): ring L=8 7.0e-4 ± 1.9e-4 relative (800 steps, 8 min; met).
+4×4: the backflow alone stalls at 1.8-2.2e-2 (1000 steps of hidden 16; hidden 32, an RBM
+correlator multiplied in, a U = 2 mean-field start, a lower rate: none below 1.6e-2); 250 steps of
+it and then 400 of its projection on the ground state's sector (:func:`square_projection`, 16
+evaluations per configuration, 5.5 s per step) gave 6.5e-3 ± 0.3e-3 (45 min, load ≈ 2, 10 GB
+resident; met). With a trust radius of 1 (lr 0.05) the 8-site ring stalled near 3e-2. Ring L=12:
+without projection 1.56e-2 (1200 steps, 20 min, flat from step ~400); projected on its ground
+state's sector (:func:`ring_projection`, 4 evaluations per configuration) and with the rate dropped
+to 0.03 from step 700, 7.3e-4 ± 0.9e-4 (1000 steps, 131072 evaluation samples, 11 min; met;
+2026-12-04, a CI run beside it).
 
 Measured (2-core machine shared with other benchmarks, load 6–10), exact sums, N2 with frozen core:
 H2O 0.004 mHa (150 steps, 242 s); N2 at 1.0977 Å 0.41 mHa (150 steps, 828 s); N2 curve after
