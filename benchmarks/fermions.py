@@ -104,10 +104,10 @@ def square_projection(lattice):
     backflow (Néel start, 250 steps) has weight 0.498(4) in (k = 0, A1, p = +1) and 0.499(5) in
     (k = (π, π), A1, p = −1) and < 3e-4 in every other real sector of the space group × spin
     exchange (measured as E_|ψ|²[ψ_χ/ψ] on 4096 samples): the Néel state's two halves. The
-    ground state of a half-filled bipartite Hubbard model is a singlet (Lieb, PRL 62, 1201 (1989), from memory),
-    whose spin-exchange parity is (−1)^{N/2} = +1 for N = 16 (as for the rings, checked by ED in
-    tests/test_fermion_symmetry.py), so the ground state is in the first; the second holds the
-    triplet. On 16 translations (k = 0) the same warm start gained as much (1.54e-2 against
+    ground state of a half-filled bipartite Hubbard model is a singlet (Lieb, PRL 62, 1201
+    (1989), from memory), whose spin-exchange parity is (−1)^{N/2} = +1 for N = 16 (as for the
+    rings, checked by ED in tests/test_fermion_symmetry.py), so the ground state is in the first;
+    the second holds the triplet. On 16 translations (k = 0) the same warm start gained as much (1.54e-2 against
     1.45e-2 after 50 steps) at the same cost."""
     group = pl.symmetry.product(pl.symmetry.point_group(lattice), pl.symmetry.spin_flip(lattice))
     return pl.symmetry.sector(group, point_irrep="A1", spin_parity=1)
