@@ -138,8 +138,10 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
         # steps at lr 0.15, while a trust radius of 1 (or the decaying shift) stalled near 3e-2
         # lower_lr_at: the rate drops to lr/5 there; its noise floor set the 4×4 plateau (2.3e-2 at
         # lr 0.15, 1.9e-2 within 50 steps of the drop)
-        rate = lr if lower_lr_at is None else optax.piecewise_constant_schedule(lr, {lower_lr_at: 0.2})
-        optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(rate))
+        def descent(rate):
+            return optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(rate))
+
+        optimizer = descent(lr if lower_lr_at is None else optax.piecewise_constant_schedule(lr, {lower_lr_at: 0.2}))
         params = start = None
         if warm_steps:  # the unprojected backflow first; its parameters become the projected base's
             if projection is None:
@@ -147,7 +149,7 @@ def hubbard_case(extent, steps, samples, chains, eval_samples, hidden, lr, refer
             progress(f"warm start: {warm_steps} unprojected steps")
             _, warm, _, _ = _train(model, H, space, move, warm_steps, samples, chains, 0, lr, optimizer=optimizer)
             params, start = {"params": {"base": warm.params["params"]}}, warm.chains.x
-            optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3), optax.sgd(lr / 5))
+            optimizer = descent(lr / 5)
         if projection is not None:  # lattice -> Sector of lattice symmetries (fermionic signs)
             projection = projection(lattice)
             model = fm.FermionSymmetrized(model, space, projection)

@@ -25,9 +25,9 @@ training (default: forward); ``--scale`` to shorten runs for a smoke test.
 
 * ``scan`` — H₂ bond curve, geometries run in order with warm starts (parameters and walkers
   from the previous geometry, :func:`psiloom.electrons.geometry_scan`), one energy line per
-  geometry against Kołos & Wolniewicz (from memory; points without a trusted value carry
-  ``reference: null``). Full mode also scans LiH at 5 bond lengths (no references: the
-  curve's shape and the warm-start cost are what it reports).
+  geometry against Kołos & Wolniewicz (from memory) or, at R = 0.8 and 5.0 bohr, PySCF full CI at
+  the basis-set limit (``baselines/h2_basis_limit.py``). Full mode also scans LiH at 5 bond
+  lengths (no references: the curve's shape and the warm-start cost are what it reports).
 * ``ionisation`` — first ionisation energies of Li and Be as differences of total energies
   (neutral and cation run independently, so errors add in quadrature), one line per species
   and one per ionisation energy (``abs_error_mha`` of the difference).
@@ -87,17 +87,28 @@ FULL = {
                eval_samples=131072),
     "LiH": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
                 eval_samples=131072),
-    "Be": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
-               eval_samples=131072),
+    "Be": dict(state="neural", n_det=4, steps=3000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=1048576, width=32, channels=16, jastrow_width=32),
 }
 N_CHAINS = 64
 PROPERTY_SAMPLES = 2 ** 19  # evaluation samples the density profiles and the dipole use, at most
 
 
+# optional sizes of the neural state in a config (defaults: those of el.neural_slater_jastrow)
+SIZE_KEYS = ("width", "channels", "jastrow_width")
+
+
 def build_state(system, cfg):
     if cfg["state"] == "neural":
-        return el.neural_slater_jastrow(system, n_det=cfg["n_det"])
+        sizes = {k: cfg[k] for k in SIZE_KEYS if k in cfg}
+        return el.neural_slater_jastrow(system, n_det=cfg["n_det"], **sizes)
     return el.slater_jastrow(system, n_det=cfg["n_det"], neural_jastrow=True)
+
+
+def state_text(cfg):
+    """The trial state as written in the JSON lines, e.g. ``neural n_det=4 width=32``."""
+    sizes = "".join(f" {k}={cfg[k]}" for k in SIZE_KEYS if k in cfg)
+    return f"{cfg['state']} n_det={cfg['n_det']}{sizes}"
 
 
 def maybe_pretrain(name, model, system, key, quick):
@@ -131,7 +142,7 @@ def run_system(name, cfg, laplacian, quick, seed=0):
              f"in {timer.seconds:.0f} s")
     n_params = search.n_parameters(state)
     method = {
-        "trial_state": f"{cfg['state']} n_det={cfg['n_det']}",
+        "trial_state": state_text(cfg),
         "sampler": f"Metropolis all-electron Gaussian, {_chains(cfg)} walkers, sweep 5, adaptive step",
         "optimizer": f"SR (auto solver, shift 1e-3) + sgd {_schedule_text(cfg)}, energy clip 5",
         "laplacian": laplacian, "pretraining": pretrained, "tau": float(estimate.tau),
@@ -206,14 +217,19 @@ def case_laplacian(configs, laplacian, quick, seed=0, names=("LiH", "Be")):
         model = build_state(system, configs[name])
         key = jax.random.PRNGKey(seed)
         params = jax.jit(model.init)(key, system.random(key, 1))
-        records += laplacian_comparison(name, model, params, label=f"{configs[name]['state']} n_det="
-                                        f"{configs[name]['n_det']}, initial parameters")
+        records += laplacian_comparison(name, model, params, label=f"{state_text(configs[name])}, initial parameters")
     return records
 
 
-# H₂ Born-Oppenheimer energies (Kołos & Wolniewicz 1965/1968, from memory); None: no value
-# trusted to 0.01 mHa from memory — the coordinator fills it from the paper before quoting errors.
-H2_CURVE = {0.8: None, 1.0: -1.1245385, 1.4: -1.1744757, 2.0: -1.1381329, 3.0: -1.0573262, 5.0: None}
+# H₂ Born-Oppenheimer energies (hartree) and their sources. Kołos & Wolniewicz 1965/1968 (from
+# memory) where a value is known to 0.01 mHa; at R = 0.8 and 5.0 bohr, PySCF full CI extrapolated
+# to the basis-set limit from aug-cc-pVQZ/5Z (baselines/h2_basis_limit.py,
+# results/h2_basis_limit.json). That extrapolation lies 0.013-0.054 mHa below Kołos & Wolniewicz
+# at R = 1.0-3.0 (most at short R), which bounds its uncertainty.
+KW = "Kolos & Wolniewicz (from memory)"
+BASIS_LIMIT = "PySCF FCI aug-cc-pVQZ/5Z, X^-3 limit (about 0.05 mHa low at R <= 1.4)"
+H2_CURVE = {0.8: (-1.0201267, BASIS_LIMIT), 1.0: (-1.1245385, KW), 1.4: (-1.1744757, KW), 2.0: (-1.1381329, KW),
+            3.0: (-1.0573262, KW), 5.0: (-1.0037873, BASIS_LIMIT)}
 LIH_CURVE = (2.6, 2.8, 3.015, 3.4, 4.0)
 # non-relativistic exact total energies (from memory): neutral atoms as in SYSTEMS, cations
 # Li⁺ −7.279913 Ha and Be⁺ −14.324763 Ha (Pekeris-type Hylleraas values).
@@ -258,7 +274,7 @@ def _energy_line(system, cfg, evaluation, reference, source, seconds, extra=None
     energy, error = float(np.real(total.mean)), float(total.error)
     record = {
         "benchmark": "molecules", "system": system.describe(),
-        "method": {"trial_state": f"{cfg['state']} n_det={cfg['n_det']}", "tau": float(total.tau),
+        "method": {"trial_state": state_text(cfg), "tau": float(total.tau),
                    "acceptance": evaluation.acceptance, "charge": system.charge, **(extra or {})},
         "energy": energy, "error_bar": error, "reference": reference, "reference_source": source,
         "rel_error": relative_error(energy, reference),
@@ -278,17 +294,16 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
     curves = [c for c in curves if c[0] in names]
     if not quick and "LiH" in names:
         curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE], configs["LiH"],
-                       [None] * len(LIH_CURVE)))
+                       [(None, "none")] * len(LIH_CURVE)))
     for name, geometries, cfg, references in curves:
         warm_steps = max(2, cfg["steps"] // 3)
         points = el.geometry_scan(geometries, lambda system: _search(system, cfg, laplacian), steps=warm_steps,
                                   first_steps=cfg["steps"], key=jax.random.PRNGKey(seed),
                                   eval_samples=cfg["eval_samples"])
-        for point, reference in zip(points, references):
+        for point, (reference, source) in zip(points, references):
             r = float(np.linalg.norm(point.system.positions[1] - point.system.positions[0]))
             line_cfg = dict(cfg, steps=cfg["steps"] if point.geometry == 0 else warm_steps)
-            records.append(_energy_line(point.system, line_cfg, point.evaluation, reference,
-                                        "Kolos & Wolniewicz (from memory)" if reference is not None else "pending",
+            records.append(_energy_line(point.system, line_cfg, point.evaluation, reference, source,
                                         point.seconds, {"bond_length_bohr": r, "warm_start": point.warm_start}))
     return records
 
@@ -378,7 +393,7 @@ def case_cost(configs, laplacian, quick, seed=0):
     """Seconds per optimisation step against the number of electrons (He … N); fitted exponent."""
     names = ("He", "Li", "Be", "B", "C", "N")
     steps = 6 if quick else 30
-    cfg = dict(configs["Be"], steps=steps, n_det=1)
+    cfg = dict({k: v for k, v in configs["Be"].items() if k not in SIZE_KEYS}, steps=steps, n_det=1)
     sizes, seconds, records = [], [], []
     for name in names:
         system = el.atom(name)
@@ -390,7 +405,7 @@ def case_cost(configs, laplacian, quick, seed=0):
         progress(f"{name}: {per_step:.3f} s per step ({system.n_electrons} electrons)")
         records.append(emit({
             "benchmark": "molecules", "system": system.describe(),
-            "method": {"trial_state": f"{cfg['state']} n_det=1", "laplacian": laplacian},
+            "method": {"trial_state": state_text(cfg), "laplacian": laplacian},
             "metric": "seconds_per_optimisation_step", "value": per_step, "unit": "s",
             "samples_per_step": cfg["n_samples"], "seconds": float(np.sum(history["seconds"])),
         }))
