@@ -72,7 +72,7 @@ def test_pretrained_backflow_determinant_starts_at_hartree_fock_energy():
                              (el.CuspJastrow(h2, electronic=False),))
     params = jax.jit(model.init)(jax.random.PRNGKey(0), h2.random(jax.random.PRNGKey(0), 1))
     params, losses = pretrain.pretrain_orbitals(model, params, hf, jax.random.PRNGKey(1), n_steps=100,
-                                                n_walkers=64, learning_rate=3e-2)
+                                                n_walkers=64, learning_rate=3e-2, fit_walkers=256)
     assert losses[-5:].mean() < 0.01 * losses[0]
     sampler = el.ElectronSampler(h2, n_chains=64, sweep=5, burn_in=1, equilibrate=50)
     search = pl.train.GroundStateSearch(model, el.CoulombHamiltonian(h2), sampler, optax.sgd(0.0), n_samples=64)
@@ -81,3 +81,54 @@ def test_pretrained_backflow_determinant_starts_at_hartree_fock_energy():
     assert error < 0.006
     assert abs(mean - hf.energy) < 0.004 + 3 * error, (mean, error, hf.energy)
     assert mean > -1.13363 - 3 * error  # variational bound for one determinant
+
+
+def test_least_squares_refit_minimises_the_loss_over_the_coefficients(lih_hf):
+    # The orbital loss is quadratic in the linear coefficients: after the exact solve its gradient
+    # with respect to them vanishes on the walkers used (first-order optimality; the normal
+    # equations), and the loss is no higher than before (it is the minimum over them).
+    model = el.slater_jastrow(LIH, n_det=1, neural_jastrow=False)
+    params = jax.jit(model.init)(jax.random.PRNGKey(2), LIH.random(jax.random.PRNGKey(1), 1))
+    x = LIH.random(jax.random.PRNGKey(4), 256, width=1.0)
+    loss = lambda p: pretrain.orbital_loss(model, p, lih_hf.orbitals, x)
+    fitted = pretrain.fit_orbital_coefficients(model, params, lih_hf.orbitals, x)
+    before, after = float(loss(params)), float(loss(fitted))
+    assert after < before
+    grads = jax.grad(loss)(fitted)["params"]["orbitals"]
+    scale = jax.grad(loss)(params)["params"]["orbitals"]
+    for name in ("coeff_up", "coeff_down"):
+        assert np.max(np.abs(grads[name])) < 1e-8 * max(1.0, float(np.max(np.abs(scale[name]))))
+    # the exponents are not the solve's business
+    np.testing.assert_array_equal(fitted["params"]["orbitals"]["exponents"], params["params"]["orbitals"]["exponents"])
+
+
+def test_least_squares_refit_keeps_the_differences_between_determinants(lih_hf):
+    model = el.slater_jastrow(LIH, n_det=3, neural_jastrow=False)
+    params = jax.jit(model.init)(jax.random.PRNGKey(2), LIH.random(jax.random.PRNGKey(1), 1))
+    x = LIH.random(jax.random.PRNGKey(4), 128, width=1.0)
+    fitted = pretrain.fit_orbital_coefficients(model, params, lih_hf.orbitals, x)
+    for name in ("coeff_up", "coeff_down"):
+        old, new = params["params"]["orbitals"][name], fitted["params"]["orbitals"][name]
+        np.testing.assert_allclose(new - new[:1], old - old[:1], atol=1e-12)
+        assert np.max(np.abs(new[0] - old[0])) > 1e-3  # the first determinant did move
+
+
+def test_pretraining_holds_the_backflow_and_rejects_bad_options(lih_hf):
+    model = el.SlaterJastrow(el.BackflowOrbitals(LIH, width=4, channels=2, layers=1), (el.CuspJastrow(LIH),))
+    params = jax.jit(model.init)(jax.random.PRNGKey(0), LIH.random(jax.random.PRNGKey(0), 1))
+    trained, _ = pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(1), n_steps=5, n_walkers=32,
+                                            learning_rate=1e-2, refits=1, fit_walkers=64)
+    held = params["params"]["orbitals"]["backflow"]
+    jax.tree_util.tree_map(np.testing.assert_array_equal, trained["params"]["orbitals"]["backflow"], held)
+    moved = jax.tree_util.tree_map(lambda a, b: float(np.max(np.abs(a - b))), trained["params"]["orbitals"]["analytic"],
+                                   params["params"]["orbitals"]["analytic"])
+    assert min(jax.tree_util.tree_leaves(moved)) > 0.0
+    freed, _ = pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(1), n_steps=5, n_walkers=32,
+                                          learning_rate=1e-2, hold=(), refits=0)
+    changed = jax.tree_util.tree_map(lambda a, b: float(np.max(np.abs(a - b))), freed["params"]["orbitals"]["backflow"],
+                                     held)
+    assert max(jax.tree_util.tree_leaves(changed)) > 0.0
+    with pytest.raises(ValueError, match="nonexistent"):
+        pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(1), n_steps=1, hold=("nonexistent",))
+    with pytest.raises(ValueError, match="refits"):
+        pretrain.pretrain_orbitals(model, params, lih_hf, jax.random.PRNGKey(1), n_steps=1, refits=-1)

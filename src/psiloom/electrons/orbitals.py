@@ -89,6 +89,14 @@ class SlaterTypeOrbitals(nn.Module):
         return list(self.basis) if self.basis is not None else default_basis(self.system, self.cusp_free)
 
     @nn.compact
+    def basis_values(self, x):
+        """``(B, N, K)``: the K basis functions χ_k(r_i) at every electron, with the learned
+        exponents. Every orbital is linear in them, φ_{d,a}(r_i) = Σ_k C_{d,a,k} χ_k(r_i)."""
+        basis = self._basis()
+        zetas = nn.softplus(self.param("exponents", lambda k: jnp.asarray(_inverse_softplus([f.zeta for f in basis]), x.dtype)))
+        return evaluate_basis(x, self.system, basis, zetas)
+
+    @nn.compact
     def __call__(self, x):
         dtype = x.dtype
         sys_ = self.system
@@ -97,8 +105,7 @@ class SlaterTypeOrbitals(nn.Module):
         positive_int("n_det", self.n_det)
         basis = self._basis()
         c_up, c_dn = self.coefficients if self.coefficients is not None else aufbau_guess(sys_, basis)
-        zetas = nn.softplus(self.param("exponents", lambda k: jnp.asarray(_inverse_softplus([f.zeta for f in basis]), dtype)))
-        chi = evaluate_basis(x, sys_, basis, zetas)  # (B, N, K)
+        chi = self.basis_values(x)  # (B, N, K)
         nu = sys_.n_up
 
         def coeff_init(start):
@@ -137,6 +144,13 @@ class BackflowOrbitals(nn.Module):
     softening: float = 1.0
     cusp_free: bool = True
     envelope_term: bool = False
+
+    @nn.compact
+    def basis_values(self, x):
+        """``(B, N, K)``: the analytic basis functions at the quasi-particle positions, χ_k(q_i).
+        Without the envelope term every orbital is linear in them (``SlaterTypeOrbitals.basis_values``)."""
+        backflow = BackflowShift(self.system, self.width, self.channels, self.layers, self.softening, name="backflow")
+        return SlaterTypeOrbitals(self.system, self.n_det, self.cusp_free, name="analytic").basis_values(x + backflow(x))
 
     @nn.compact
     def __call__(self, x):
