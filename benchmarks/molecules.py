@@ -22,7 +22,9 @@ gradient, and the optional ``folx`` package) on one system; a summary line last.
 progress on stderr (benchmarks/README.md).
 
 Options: ``--systems He,Li`` to run a subset; ``--laplacian`` to choose the Laplacian used in
-training (default: forward); ``--scale`` to shorten runs for a smoke test.
+training (default: forward); ``--scale`` to shorten runs for a smoke test; ``--checkpoints DIR``
+to keep each trained state (``DIR/<system>.ckpt``, read back with ``search.resume``) for later
+diagnosis.
 
 ``--case`` chooses the question (default ``energies``, the above):
 
@@ -48,6 +50,7 @@ Every case's summary line carries ``max_abs_error_mha`` and ``errors_mha``.
 from __future__ import annotations
 
 import importlib.util
+import os
 import time
 
 import jax
@@ -97,8 +100,8 @@ N_CHAINS = 64
 PROPERTY_SAMPLES = 2 ** 19  # evaluation samples the density profiles and the dipole use, at most
 
 
-# optional sizes of the neural state in a config (defaults: those of el.neural_slater_jastrow)
-SIZE_KEYS = ("width", "channels", "jastrow_width")
+# optional sizes and options of the neural state in a config (defaults: those of el.neural_slater_jastrow)
+SIZE_KEYS = ("width", "channels", "jastrow_width", "envelope_term")
 
 
 def build_state(system, cfg):
@@ -124,10 +127,11 @@ def maybe_pretrain(name, model, system, key, quick):
     params = jax.jit(model.init)(key, system.random(key, 1))
     params, losses = pretrain.pretrain_orbitals(model, params, hf, key, n_steps=500, n_walkers=512, learning_rate=1e-2)
     progress(f"{name}: HF (cc-pVDZ) {hf.energy:.6f}; pretraining loss {losses[0]:.3g} -> {losses[-1]:.3g}")
-    return params, f"PySCF UHF/RHF cc-pVDZ, 500 Adam steps (E_HF = {hf.energy:.6f})"
+    return params, (f"PySCF UHF/RHF cc-pVDZ, 500 Adam steps (backflow held) and 3 least-squares refits "
+                    f"(E_HF = {hf.energy:.6f})")
 
 
-def run_system(name, cfg, laplacian, quick, seed=0):
+def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
     system, exact, source = SYSTEMS[name]
     key = jax.random.PRNGKey(seed)
     with Timer() as timer:
@@ -136,6 +140,9 @@ def run_system(name, cfg, laplacian, quick, seed=0):
         search = _search(system, cfg, laplacian, model=model)
         state = search.init(key, params=params)
         state, history = search.run(cfg["steps"], state=state, progress=progress, print_every=50)
+        if checkpoints:
+            os.makedirs(checkpoints, exist_ok=True)
+            search.save(os.path.join(checkpoints, f"{name}.ckpt"), state, history)
         evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
     parts, acceptance = evaluation.components, evaluation.acceptance
     estimate = parts.total
@@ -171,6 +178,8 @@ def run_system(name, cfg, laplacian, quick, seed=0):
     })
     # densities (and the dipole of a molecule) from the same evaluation samples (full mode)
     properties = [] if quick or name not in ("He", "LiH") else _property_lines(system, np.asarray(evaluation.samples))
+    if not quick and system.n_electrons > 1:
+        properties += _spread_lines(system, np.asarray(evaluation.samples), np.asarray(evaluation.local_energies))
     return record, throughput, model, state.params, properties
 
 
@@ -392,6 +401,32 @@ def _property_lines(system, samples):
     return records
 
 
+SPREAD_EDGES = (0.0, 0.05, 0.1, 0.2, 0.4, 0.8, 1.5, 3.0, 1e3)  # bohr
+
+
+def _spread_lines(system, samples, local_energies):
+    """Where the local-energy variance comes from: its shares binned by the closest
+    electron–nucleus and electron–electron distances (``el.local_energy_spread``), from at most
+    the last 2¹⁹ evaluation samples."""
+    keep = max(1, PROPERTY_SAMPLES // samples.shape[1])
+    samples, local_energies = samples[-keep:], local_energies[-keep:]
+    records = []
+    for by in ("nucleus", "pair"):
+        spread = el.local_energy_spread(samples, local_energies, system, SPREAD_EDGES, by=by)
+        worst = int(np.argmax(spread.share / np.maximum(spread.fraction, 1e-12)))
+        progress(f"{system.formula}: E_L spread by closest {by} distance: bins {list(SPREAD_EDGES)} bohr, "
+                 f"samples {np.round(spread.fraction, 4).tolist()}, variance shares {np.round(spread.share, 3).tolist()}")
+        records.append(emit({
+            "benchmark": "molecules", "system": system.describe(),
+            "metric": f"local_energy_spread_by_closest_{'electron_nucleus' if by == 'nucleus' else 'electron_pair'}",
+            "value": {"edges_bohr": list(SPREAD_EDGES), "sample_fraction": spread.fraction,
+                      "mean_local_energy": spread.mean, "variance_share": spread.share},
+            "variance": spread.variance, "worst_bin_per_sample": worst,
+            "unit": "shares of Σ(E_L − Ē)² (hartree²) and of the samples", "seconds": 0.0,
+        }))
+    return records
+
+
 def case_cost(configs, laplacian, quick, seed=0):
     """Seconds per optimisation step against the number of electrons (He … N); fitted exponent."""
     names = ("He", "Li", "Be", "B", "C", "N")
@@ -441,6 +476,9 @@ def main() -> None:
                             help="energies (default), scan (H2/LiH bond curves), ionisation (Li, Be), properties, "
                                  "cost (seconds per step against electron count), laplacian (local-energy "
                                  "throughput of the Laplacian implementations)")
+        parser.add_argument("--checkpoints", metavar="DIR", default=None,
+                            help="energies case: write each trained state to DIR/<system>.ckpt (psiloom.checkpoint) "
+                                 "before its evaluation pass")
 
     args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
     names = [n.strip() for n in args.systems.split(",") if n.strip()]
@@ -471,7 +509,8 @@ def main() -> None:
     records, compare_with = [], None
     for name in names:
         progress(f"{name}: {configs[name]}")
-        record, throughput, model, params, properties = run_system(name, configs[name], args.laplacian, args.quick)
+        record, throughput, model, params, properties = run_system(name, configs[name], args.laplacian, args.quick,
+                                                                    checkpoints=args.checkpoints)
         records += [record, throughput] + properties
         if compare_with is None or name == "LiH":
             compare_with = (name, model, params)

@@ -74,6 +74,43 @@ def test_correlated_difference_counts_the_covariance():
         el.energy_difference(a, b[:10])
 
 
+def test_local_energy_spread_matches_scipy_binned_statistics():
+    # Counts, bin means and the binned sum of squared deviations, checked against
+    # scipy.stats.binned_statistic on the closest electron–nucleus and electron–electron
+    # distances computed here independently (one loop per sample).
+    from scipy.stats import binned_statistic
+
+    system = el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, 3.0))])
+    rng = np.random.default_rng(5)
+    samples = rng.normal(scale=1.5, size=(50, 4, system.n_electrons, 3))
+    energies = rng.normal(size=(50, 4)) - 8.0
+    edges = np.array([0.0, 0.3, 0.8, 1.5, 2.5])
+    flat_x, flat_e = samples.reshape(-1, system.n_electrons, 3), energies.ravel()
+    dev2 = (flat_e - flat_e.mean()) ** 2
+    for by in ("nucleus", "pair"):
+        if by == "nucleus":
+            d = np.array([min(np.linalg.norm(r - nuc) for r in x for nuc in system.positions) for x in flat_x])
+        else:
+            d = np.array([min(np.linalg.norm(x[i] - x[j]) for i in range(len(x)) for j in range(i)) for x in flat_x])
+        spread = el.local_energy_spread(samples, energies, system, edges, by=by)
+        counts = binned_statistic(d, flat_e, "count", bins=edges).statistic
+        means = binned_statistic(d, flat_e, "mean", bins=edges).statistic
+        sums = binned_statistic(d, dev2, "sum", bins=edges).statistic
+        np.testing.assert_allclose(spread.fraction, counts / d.size)
+        np.testing.assert_allclose(spread.mean, means, equal_nan=True)
+        np.testing.assert_allclose(spread.share, sums / dev2.sum(), atol=1e-12)
+        assert spread.outside == pytest.approx(1.0 - spread.share.sum(), abs=1e-12)
+        assert spread.variance == pytest.approx(np.var(flat_e))
+    with pytest.raises(ValueError, match="by must be"):
+        el.local_energy_spread(samples, energies, system, edges, by="both")
+    with pytest.raises(ValueError, match="local_energies must have shape"):
+        el.local_energy_spread(samples, energies[:3], system, edges)
+    with pytest.raises(ValueError, match="finite"):
+        el.local_energy_spread(samples, np.full_like(energies, np.nan), system, edges)
+    with pytest.raises(ValueError, match="two electrons"):
+        el.local_energy_spread(samples[:, :, :1], energies, el.atom("H"), edges, by="pair")
+
+
 @pytest.mark.parametrize("edges, match", [
     ([], "at least two"), ([1.0], "at least two"), ([0.0, np.nan, 1.0], "finite"), ([0.0, np.inf], "finite"),
     ([0.0, 2.0, 1.0], "increase"), ([[0.0, 1.0]], "1-d"), (["a", "b"], "numbers"),

@@ -34,9 +34,11 @@ from psiloom.electrons.properties import (
     DEBYE_PER_AU,
     Difference,
     Profile,
+    Spread,
     axial_density,
     dipole_moment,
     energy_difference,
+    local_energy_spread,
     radial_density,
 )
 from psiloom.electrons.scan import ScanPoint, check_scan, follow_nuclei, geometry_scan
@@ -51,7 +53,7 @@ __all__ = [
     "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
     "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components",
     "EvaluationPass", "evaluation_pass", "DEBYE_PER_AU", "Difference", "Profile", "axial_density", "dipole_moment",
-    "energy_difference", "radial_density", "ScanPoint", "check_scan", "follow_nuclei", "geometry_scan", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "BackflowOrbitals", "BackflowShift",
+    "energy_difference", "local_energy_spread", "Spread", "radial_density", "ScanPoint", "check_scan", "follow_nuclei", "geometry_scan", "forward_laplacian", "hessian_laplacian", "value_grad_laplacian", "BackflowOrbitals", "BackflowShift",
     "SlaterTypeOrbitals", "ElectronSampler", "WalkerState", "BOHR_PER_ANGSTROM", "Molecule", "atom",
     "from_xyz", "hund_spin", "molecule", "parse_xyz",
 ]

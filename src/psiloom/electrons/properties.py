@@ -22,6 +22,16 @@ Dipole moment (atomic units, e·bohr; 1 e·bohr = 2.541746 D, CODATA, from memor
 
 independent of the origin for a neutral system.
 
+Where the local-energy variance comes from (:func:`local_energy_spread`): each sample is
+labelled by its closest coalescence, d(x) = min_{i,I} |r_i − R_I| (``by="nucleus"``) or
+min_{i<j} |r_i − r_j| (``by="pair"``), and binned by d with edges d_0 < d_1 < …; bin k reports
+its share of the samples, its mean local energy and its share of the total spread,
+
+    s_k = Σ_{x: d_k ≤ d(x) < d_{k+1}} (E_L(x) − Ē)² / Σ_x (E_L(x) − Ē)²,
+
+with Ē the mean over all samples. A share far above the bin's share of samples points to the
+region where the trial state is worst (e.g. a cusp or the core).
+
 Energy differences (bond curves, ionisation energies): for two series of local energies
 E_a(t, c), E_b(t, c) drawn from the *same* chains at the same times (correlated sampling) the
 difference series E_a − E_b is estimated directly, which counts their covariance; for
@@ -151,6 +161,60 @@ def dipole_moment(samples, system: Molecule) -> stats.Estimate:
     nuclear = np.sum(system.charges[:, None] * system.positions, axis=0)
     per_sample = nuclear - np.sum(samples, axis=2)  # (T, C, 3)
     return _estimate_columns(per_sample)
+
+
+class Spread(NamedTuple):
+    """Local-energy spread binned by the closest coalescence (:func:`local_energy_spread`)."""
+
+    edges: np.ndarray  # bin edges (bohr)
+    fraction: np.ndarray  # share of the samples in each bin
+    mean: np.ndarray  # mean local energy in each bin (hartree; NaN where empty)
+    share: np.ndarray  # share of Σ (E_L − Ē)² from each bin
+    outside: float  # share of Σ (E_L − Ē)² from samples outside the edges
+    variance: float  # variance of all local energies (hartree²)
+
+
+def local_energy_spread(samples, local_energies, system: Molecule, edges, by: str = "nucleus") -> Spread:
+    """Bin the local energies by the closest electron–nucleus or electron–electron distance.
+
+    Args:
+        samples: ``(n_time, n_chains, N, 3)`` configurations (bohr).
+        local_energies: ``(n_time, n_chains)`` their local energies (hartree; real part used).
+        system: the molecule.
+        edges: bin edges of the distance (bohr).
+        by: ``"nucleus"`` (min_{i,I} |r_i − R_I|) or ``"pair"`` (min_{i<j} |r_i − r_j|).
+    """
+    samples = _check_samples(samples, system.n_electrons)
+    edges = check_edges(edges, "spread edges", nonnegative=True)
+    energies = np.real(np.asarray(local_energies)).astype(np.float64)
+    if energies.shape != samples.shape[:2]:
+        raise ValueError(f"local_energies must have shape {samples.shape[:2]} (n_time, n_chains), got {energies.shape}")
+    if not np.all(np.isfinite(energies)):
+        raise ValueError("local energies must be finite")
+    if by == "nucleus":
+        d = np.linalg.norm(samples[..., :, None, :] - system.positions, axis=-1).min(axis=(-2, -1))
+    elif by == "pair":
+        if system.n_electrons < 2:
+            raise ValueError(f"by='pair' needs two electrons or more, {system.formula} has {system.n_electrons}")
+        diff = np.linalg.norm(samples[..., :, None, :] - samples[..., None, :, :], axis=-1)
+        upper = np.triu(np.ones((system.n_electrons,) * 2, bool), k=1)
+        d = diff[..., upper].min(axis=-1)
+    else:
+        raise ValueError(f"by must be 'nucleus' or 'pair', got {by!r}")
+    d, energies = d.ravel(), energies.ravel()
+    squares = (energies - energies.mean()) ** 2
+    total = squares.sum()
+    idx = np.digitize(d, edges) - 1
+    n_bins = edges.size - 1
+    inside = (idx >= 0) & (idx < n_bins)
+    counts = np.bincount(idx[inside], minlength=n_bins)
+    sums = np.bincount(idx[inside], weights=energies[inside], minlength=n_bins)
+    shares = np.bincount(idx[inside], weights=squares[inside], minlength=n_bins)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(counts > 0, sums / np.maximum(counts, 1), np.nan)
+        share = shares / total if total > 0 else np.zeros(n_bins)
+        outside = float(squares[~inside].sum() / total) if total > 0 else 0.0
+    return Spread(edges, counts / d.size, mean, share, outside, float(total / d.size))
 
 
 def energy_difference(a, b) -> Difference:
