@@ -196,7 +196,7 @@ def _replace_leaf(params, name: str, new):
     found = []
 
     def swap(path, leaf):
-        if str(getattr(path[-1], "key", path[-1])) == name:
+        if _path_names(path)[-1] == name:
             found.append(path)
             return new(leaf)
         return leaf
@@ -239,21 +239,21 @@ def fit_orbital_coefficients(model, params, target: GaussianOrbitals, x):
     return params
 
 
+def _path_names(path) -> list[str]:
+    """The names along a pytree key path (dictionary keys or attribute names)."""
+    return [str(getattr(k, "key", getattr(k, "name", k))) for k in path]
+
+
 def held_mask(params, hold: tuple[str, ...]):
     """Pytree of booleans like ``params``: True for leaves under a submodule named in ``hold``."""
     hold = tuple(hold)
-
-    def held(path, _):
-        names = [str(getattr(k, "key", getattr(k, "name", k))) for k in path]
-        return any(name in hold for name in names)
-
-    return jax.tree_util.tree_map_with_path(held, params)
+    return jax.tree_util.tree_map_with_path(lambda path, _: any(n in hold for n in _path_names(path)), params)
 
 
 def _module_names(params) -> set[str]:
     names: set[str] = set()
     for path, _ in jax.tree_util.tree_flatten_with_path(params)[0]:
-        names.update(str(getattr(k, "key", getattr(k, "name", k))) for k in path)
+        names.update(_path_names(path))
     return names
 
 
@@ -279,8 +279,8 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
         hold: names of submodules whose parameters keep their starting values (default: the
             backflow displacement ``"backflow"`` of :class:`~psiloom.electrons.BackflowOrbitals`
             where there is one, which starts at ξ = 0; ``()`` trains everything). The target
-            orbitals depend on r_i alone, so a displacement only fits the walkers' noise (LiH,
-            4 determinants, widths 32, after the refits: 42 mHa above E_HF held, 184 freed).
+            orbitals depend on r_i alone; on LiH (4 determinants, widths 32, after the refits)
+            the start was 42 mHa above E_HF held and 184 mHa freed.
         refits: number of least-squares solves after the Adam steps (0: none).
         fit_walkers: walkers drawn from each distribution for every solve.
     Returns:
