@@ -10,12 +10,13 @@ pretraining when PySCF is installed, long runs (first targets: He ≤ 0.1 mHa in
 H₂ ≤ 0.3, Li ≤ 1, LiH ≤ 1.6 mHa in ≤ 60 min; Be ≤ 3 mHa; then He ≤ 0.02 mHa with an error bar
 ≤ 0.007 mHa, LiH ≤ 0.3 and Be ≤ 0.5 mHa with bars ≤ a third, each ≤ 60 min). He: 5000 steps
 and 2²⁴ evaluation samples, 0.015 ± 0.007 mHa in 39 min (2026-12-04; 17 min of it the
-evaluation at 16k samples/s). Be and LiH use backflow and Jastrow widths 32 (channels 16): Be,
-with the additive enveloped orbital term, 0.18 ± 0.18 mHa in 68 min (3000 steps, 2²⁰ samples;
-without the term and with the former pretraining 0.96 ± 0.19 in 38 min, the default widths with
-4000 steps 1.21 ± 0.19, 16 determinants 1.16 ± 0.20); LiH, with the term, 0.40 ± 0.12 mHa in
-57 min (2000 steps, 2²⁰ samples; without it and with the former pretraining, 2500 steps:
-0.75 ± 0.17). Be meets its error target but not the bar or the time; LiH meets neither.
+evaluation at 16k samples/s). Be and LiH use backflow and Jastrow widths 32 (channels 16) and
+the additive enveloped orbital term: Be 0.40 ± 0.16 mHa in 56 min (2200 steps, 1.5 × 2²⁰
+samples: every target met; 3000 steps and 2²⁰ samples gave 0.18 ± 0.18 in 68 min; without the
+term and with the former pretraining 0.96 ± 0.19 in 38 min, the default widths with 4000 steps
+1.21 ± 0.19, 16 determinants 1.16 ± 0.20); LiH 0.40 ± 0.12 mHa in 57 min without the nuclear
+cusp map (2000 steps, 2²⁰ samples; without the term and with the former pretraining, 2500
+steps: 0.75 ± 0.17); LiH now runs with the cusp map and 1.5 × 2²⁰ samples (README row).
 
 For every system one energy line (energy from a separate evaluation pass) and one throughput line
 (walker-steps per second of the full optimisation step: sampling, local energy, gradient and SR);
@@ -94,16 +95,16 @@ FULL = {
     "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
                eval_samples=131072),
     "LiH": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
-                eval_samples=1048576, width=32, channels=16, jastrow_width=32, envelope_term=True),
-    "Be": dict(state="neural", n_det=4, steps=3000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
-               eval_samples=1048576, width=32, channels=16, jastrow_width=32, envelope_term=True),
+                eval_samples=1572864, width=32, channels=16, jastrow_width=32, envelope_term=True, cusp_map=True),
+    "Be": dict(state="neural", n_det=4, steps=2200, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=1572864, width=32, channels=16, jastrow_width=32, envelope_term=True),
 }
 N_CHAINS = 64
 PROPERTY_SAMPLES = 2 ** 19  # evaluation samples the density profiles and the dipole use, at most
 
 
 # optional sizes and options of the neural state in a config (defaults: those of el.neural_slater_jastrow)
-SIZE_KEYS = ("width", "channels", "jastrow_width", "envelope_term")
+SIZE_KEYS = ("width", "channels", "jastrow_width", "envelope_term", "cusp_map")
 
 
 def build_state(system, cfg):

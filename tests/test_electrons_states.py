@@ -197,12 +197,24 @@ def test_unknown_laplacian_method_raises():
 
 
 # ----------------------------------------------------------------------------- cusp conditions
-def test_kato_cusp_conditions(neural_li):
+@pytest.fixture(scope="module")
+def mapped_li():
+    # the same small state with the nuclear cusp map (psiloom.electrons.cusp_map)
+    model = el.neural_slater_jastrow(LI, n_det=2, width=4, channels=2, layers=0, jastrow_width=4, cusp_map=True)
+    params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(1), jnp.zeros((1, 3, 3))))
+    return model, params
+
+
+@pytest.mark.parametrize("case", ["plain", "mapped, pair inside the map's range"])
+def test_kato_cusp_conditions(neural_li, mapped_li, case):
     # Kato 1957: spherically averaged ∂ ln ψ/∂r at coalescence = −Z (electron–nucleus) and
     # +1/2 (antiparallel electrons); +1/4 for parallel electrons after removing the linear
     # zero of ψ (Pack & Byers Brown 1966, from memory). Averaging over ±n removes the smooth
-    # linear part; Richardson extrapolation 2f(δ) − f(2δ) removes the O(δ) remainder.
-    model, params = neural_li
+    # linear part; Richardson extrapolation 2f(δ) − f(2δ) removes the O(δ) remainder. With the
+    # cusp map the electron pairs meet 0.1 bohr from the nucleus, where the map stretches space
+    # (ψ varies faster there: smaller δ).
+    model, params = neural_li if case == "plain" else mapped_li
+    delta = 1e-4 if case == "plain" else 1e-5
     nucleus = jnp.asarray(LI.positions[0])
 
     @jax.jit
@@ -219,12 +231,15 @@ def test_kato_cusp_conditions(neural_li):
         def averaged(electron, centre, pole, delta):
             return 0.5 * (radial(electron, centre, n, delta) + radial(electron, centre, -n, delta)) - pole / delta
 
-        one = lambda e, c, p: 2 * averaged(e, c, p, 1e-4) - averaged(e, c, p, 2e-4)
+        one = lambda e, c, p: 2 * averaged(e, c, p, delta) - averaged(e, c, p, 2 * delta)
         return jax.vmap(one)(electrons, centres, poles)
 
     for seed in (0, 1):
         n = np.random.default_rng(seed).normal(size=3)
-        en, anti, par = np.asarray(cusps(jnp.asarray(_config(LI, 100 + seed)), jnp.asarray(n / np.linalg.norm(n))))
+        x = _config(LI, 100 + seed)
+        if case != "plain":
+            x[0] = np.asarray(LI.positions[0]) + 0.1 * n / np.linalg.norm(n)
+        en, anti, par = np.asarray(cusps(jnp.asarray(x), jnp.asarray(n / np.linalg.norm(n))))
         assert en == pytest.approx(-3.0, abs=1e-4)  # Z(Li) = 3
         assert anti == pytest.approx(0.5, abs=1e-4)  # electron 2 (down) meets electron 0 (up)
         assert par == pytest.approx(0.25, abs=1e-3)  # electron 1 (up) meets electron 0 (up)
@@ -283,6 +298,7 @@ def test_basis_normalisation_by_quadrature():
         "sc": (lambda r: (1 + zeta * r) * np.exp(-zeta * r), 4 * np.pi),
         "s2": (lambda r: r**2 * np.exp(-zeta * r), 4 * np.pi),
         "p": (lambda r: r * np.exp(-zeta * r), 4 * np.pi / 3),  # ⟨cos²θ⟩ over the sphere = 1/3
+        "pc": (lambda r: r * (1 + zeta * r) * np.exp(-zeta * r), 4 * np.pi / 3),
     }
     for kind, (f, angular) in radial.items():
         integral = angular * quad(lambda r: f(r) ** 2 * r**2, 0, np.inf)[0]

@@ -12,6 +12,7 @@ The optional Hartree-Fock start (:mod:`psiloom.electrons.pretrain`) needs PySCF.
 
 from psiloom.electrons.base import ElectronState
 from psiloom.electrons.basis import BasisFunction, aufbau_guess, default_basis
+from psiloom.electrons.cusp_map import NuclearCuspMap
 from psiloom.electrons.determinants import (
     SlaterJastrow,
     neural_slater_jastrow,
@@ -48,7 +49,7 @@ from psiloom.electrons.sampler import ElectronSampler, WalkerState
 from psiloom.electrons.system import BOHR_PER_ANGSTROM, Molecule, atom, from_xyz, hund_spin, molecule, parse_xyz
 
 __all__ = [
-    "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "SlaterJastrow",
+    "ElectronState", "BasisFunction", "aufbau_guess", "default_basis", "NuclearCuspMap", "SlaterJastrow",
     "neural_slater_jastrow", "signed_log_det", "signed_log_sum_exp", "slater_jastrow", "MomentMixer",
     "CoulombHamiltonian", "EnergyParts", "kinetic_energy", "potential_energy", "CuspJastrow",
     "NeuralJastrow", "EnergyComponents", "energy_components", "evaluate_components",

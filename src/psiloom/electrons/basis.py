@@ -1,15 +1,17 @@
 """Atom-centred Slater-type basis functions and an aufbau starting guess for orbitals.
 
 Each basis function sits on a nucleus I (u = r − R_I, r = |u|, exponent ζ > 0, bohr⁻¹) and has
-one of four radial–angular forms, normalised to ∫ χ² d³r = 1:
+one of five radial–angular forms, normalised to ∫ χ² d³r = 1:
 
     "s"   plain Slater 1s          e^{−ζr}                  norm² = π / ζ³
     "sc"  cusp-free 1s-like   (1 + ζr) e^{−ζr}              norm² = 7π / ζ³
     "s2"  2s-like (no cusp)       r² e^{−ζr}                norm² = 45π / (2ζ⁷)
     "p"   2p-like (x, y, z)      u_c e^{−ζr}                norm² = π / ζ⁵
+    "pc"  cusp-free 2p-like  u_c (1 + ζr) e^{−ζr}           norm² = 27π / (2ζ⁵)
 
-("sc" and "s2" have zero radial slope at the nucleus, so when a Jastrow factor supplies the
-electron–nucleus cusp the orbitals do not add to it; "s" carries the cusp −ζ itself.)
+("sc", "s2" and "pc" are smooth at their nucleus up to O(r³), so when a Jastrow factor supplies
+the electron–nucleus cusp the orbitals do not add to it; "s" carries the cusp −ζ itself and "p"
+the l = 1 slope u_c (1 − ζr), see :mod:`psiloom.electrons.cusp_map`.)
 
 Default exponents follow Slater's screening rules (Slater 1930, from memory):
 ζ_1s = Z − 0.30 (Z > 1; 1 for hydrogen), and for the n = 2 shell Z_eff = Z − 2·0.85 −
@@ -28,7 +30,7 @@ import numpy as np
 
 from psiloom.electrons.system import Molecule
 
-KINDS = ("s", "sc", "s2", "p")
+KINDS = ("s", "sc", "s2", "p", "pc")
 
 
 @dataclass(frozen=True)
@@ -50,14 +52,19 @@ def slater_exponents(z: float, n_electrons_on_atom: int | None = None) -> tuple[
     return float(zeta_1s), float(z_eff2)
 
 
-def default_basis(system: Molecule, cusp_free: bool = True, polarization: bool | None = None) -> list[BasisFunction]:
+def default_basis(system: Molecule, cusp_free: bool = True, polarization: bool | None = None,
+                  smooth_p: bool = False) -> list[BasisFunction]:
     """A small basis per atom: three 1s-like exponents, plus 2s/2p functions from Li on.
 
     Args:
         cusp_free: use the cusp-free "sc" form for 1s-like functions (else plain "s").
         polarization: add one set of p functions (ζ = 1) on H and He; default: only in molecules.
+        smooth_p: use the smooth "pc" form for 2p-like functions (else "p", whose l = 1 slope
+            the optimiser can combine into the right cusp; with "pc" the
+            :class:`~psiloom.electrons.NuclearCuspMap` supplies it).
     """
     s_kind = "sc" if cusp_free else "s"
+    p_kind = "pc" if smooth_p else "p"
     if polarization is None:
         polarization = system.n_nuclei > 1
     basis: list[BasisFunction] = []
@@ -70,12 +77,12 @@ def default_basis(system: Molecule, cusp_free: bool = True, polarization: bool |
             basis.append(BasisFunction(i, "s2", z_eff2, label="2s"))
             basis.append(BasisFunction(i, "s2", 0.6 * z_eff2))
             for c, axis in enumerate("xyz"):
-                basis.append(BasisFunction(i, "p", z_eff2 / 2, c, label="2p" + axis))
+                basis.append(BasisFunction(i, p_kind, z_eff2 / 2, c, label="2p" + axis))
             for c in range(3):
-                basis.append(BasisFunction(i, "p", 0.6 * z_eff2 / 2, c))
+                basis.append(BasisFunction(i, p_kind, 0.6 * z_eff2 / 2, c))
         elif polarization:
             for c in range(3):
-                basis.append(BasisFunction(i, "p", 1.0, c))
+                basis.append(BasisFunction(i, p_kind, 1.0, c))
     return basis
 
 
@@ -137,4 +144,6 @@ def normalisation(kind: str, zeta):
         return (2 * zeta**7 / (45 * pi)) ** 0.5
     if kind == "p":
         return (zeta**5 / pi) ** 0.5
+    if kind == "pc":
+        return (2 * zeta**5 / (27 * pi)) ** 0.5
     raise ValueError(f"unknown basis function kind {kind!r}; known: {KINDS}")

@@ -22,6 +22,7 @@ import jax
 import jax.numpy as jnp
 
 from psiloom.electrons.base import ElectronState
+from psiloom.electrons.cusp_map import NuclearCuspMap
 from psiloom.electrons.jastrow import CuspJastrow, NeuralJastrow
 from psiloom.electrons.orbitals import BackflowOrbitals, SlaterTypeOrbitals
 from psiloom.electrons.system import Molecule
@@ -53,14 +54,23 @@ class SlaterJastrow(ElectronState):
         orbitals: a module mapping ``(B, N, 3)`` to ``(up (B, K, n_up, n_up), down (B, K,
             n_down, n_down))`` (e.g. :class:`SlaterTypeOrbitals`, :class:`BackflowOrbitals`).
         jastrows: modules mapping ``(B, N, 3)`` to ``(B,)``, added to log|ψ|.
+        cusp_map: optional per-electron coordinate map x → x̃ (e.g. :class:`NuclearCuspMap`):
+            the orbital layer sees x̃; Jastrow factors that declare ``takes_mapped`` are called
+            as ``jastrow(x, mapped=x̃)``, the others as ``jastrow(x)``.
     """
 
     orbitals: nn.Module
     jastrows: Sequence[nn.Module] = ()
+    cusp_map: nn.Module | None = None
+
+    def orbital_coordinates(self, x):
+        """The coordinates the orbital layer sees: ``cusp_map(x)`` (:class:`NuclearCuspMap`) or ``x``."""
+        return x if self.cusp_map is None else self.cusp_map(x)
 
     @nn.compact
     def signed_log_amplitude(self, x):
-        up, down = self.orbitals(x)
+        y = self.orbital_coordinates(x)
+        up, down = self.orbitals(y)
         s_up, l_up = signed_log_det(up)
         s_dn, l_dn = signed_log_det(down)
         signs, logs = s_up * s_dn, l_up + l_dn  # (B, K)
@@ -71,12 +81,24 @@ class SlaterJastrow(ElectronState):
         else:
             sign, log = signs[:, 0], logs[:, 0]
         for jastrow in self.jastrows:
-            log = log + jastrow(x)
+            log = log + self._jastrow(jastrow, x, y)
         return sign, log
+
+    def _mapped(self, jastrow) -> bool:
+        return self.cusp_map is not None and getattr(jastrow, "takes_mapped", False)
+
+    def _jastrow(self, jastrow, x, y):
+        """A Jastrow factor's value; those that declare ``takes_mapped`` also get the cusp map's x̃."""
+        return jastrow(x, mapped=y) if self._mapped(jastrow) else jastrow(x)
 
     def orbital_matrices(self, x):
         """The orbital layer's ``(up, down)`` matrices for a batch ``(B, N, 3)``."""
-        return self.orbitals(x)
+        return self.orbitals(self.orbital_coordinates(x))
+
+    def orbital_basis_values(self, x):
+        """The orbital layer's ``basis_values`` (the functions its orbitals are linear
+        combinations of) at the coordinates it sees; needs an orbital layer that has them."""
+        return self.orbitals.basis_values(self.orbital_coordinates(x))
 
     def one_electron_log_factors(self, x):
         """``(B, N)``: the one-electron parts j_i of the Jastrow factors that provide them
@@ -84,26 +106,36 @@ class SlaterJastrow(ElectronState):
         Since e^{Σ_i j_i} det[φ_a(r_i)] = det[φ_a(r_i) e^{j_i}], ψ reproduces a target
         determinant det[Φ] when the orbitals equal Φ e^{−j} (Hartree-Fock pretraining)."""
         total = jnp.zeros(x.shape[:-1], x.dtype)
+        y = self.orbital_coordinates(x)
         for jastrow in self.jastrows:
             if hasattr(jastrow, "one_electron_terms"):
-                total = total + jastrow.one_electron_terms(x)
+                total = total + jastrow.one_electron_terms(y if self._mapped(jastrow) else x)
         return total
 
 
+def _cusp_map(system: Molecule, cusp_map: bool):
+    return NuclearCuspMap(system, name="cusp_map") if cusp_map else None
+
+
 def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True, width: int = 16,
-                   layers: int = 2) -> SlaterJastrow:
-    """Slater–Jastrow state: analytic Slater-type orbitals, cusp Jastrow (+ neural Jastrow)."""
+                   layers: int = 2, cusp_map: bool = False) -> SlaterJastrow:
+    """Slater–Jastrow state: analytic Slater-type orbitals, cusp Jastrow (+ neural Jastrow);
+    ``cusp_map=True`` adds a :class:`NuclearCuspMap` (and smooth 2p-like functions, "pc")."""
     jastrows: list[nn.Module] = [CuspJastrow(system)]
     if neural_jastrow:
         jastrows.append(NeuralJastrow(system, width=width, layers=layers))
-    return SlaterJastrow(SlaterTypeOrbitals(system, n_det), tuple(jastrows))
+    return SlaterJastrow(SlaterTypeOrbitals(system, n_det, smooth_p=cusp_map), tuple(jastrows), _cusp_map(system, cusp_map))
 
 
 def neural_slater_jastrow(system: Molecule, n_det: int = 4, width: int = 16, channels: int = 8, layers: int = 2,
-                          jastrow_width: int = 16, envelope_term: bool = False) -> SlaterJastrow:
+                          jastrow_width: int = 16, envelope_term: bool = False, cusp_map: bool = False) -> SlaterJastrow:
     """Backflow state: :class:`BackflowOrbitals` determinants (analytic orbitals at quasi-particle
-    positions r_i + ξ_i(x)), cusp and neural Jastrows."""
+    positions r_i + ξ_i(x)), cusp and neural Jastrows; ``cusp_map=True`` adds a
+    :class:`NuclearCuspMap` (the orbital layer, backflow included, sees its coordinates) and
+    uses smooth 2p-like functions ("pc")."""
     return SlaterJastrow(
-        BackflowOrbitals(system, n_det, width=width, channels=channels, layers=layers, envelope_term=envelope_term),
+        BackflowOrbitals(system, n_det, width=width, channels=channels, layers=layers, envelope_term=envelope_term,
+                         smooth_p=cusp_map),
         (CuspJastrow(system), NeuralJastrow(system, width=jastrow_width)),
+        _cusp_map(system, cusp_map),
     )

@@ -20,14 +20,30 @@ leaves the cusps alone): electron–electron–nucleus pair terms and one-electr
 with ρ the softened distances of :mod:`psiloom.electrons.features`, s_ij = s_i s_j the spin
 pairing, F and G small tanh networks whose last layers start at zero (so J_nn = 0 initially).
 Both factors are symmetric under exchanging any two same-spin electrons.
+
+With a :class:`~psiloom.electrons.NuclearCuspMap` in the state, both factors take the mapped
+coordinates x̃ as ``mapped``, so that the smooth gradients they have at a nucleus get the l = 1
+cusp too. The neural and electron–nucleus terms are evaluated at x̃ (the map keeps
+r̃_iI = r_iI + O(r²), so Kato's slope −Z_I is unchanged). The electron–electron term uses the
+blended separation
+
+    d_ij = r̃_ij + (r_ij − r̃_ij) w(r_ij / s),     w(t) = (1 − t²)³ for t < 1, else 0,
+
+with s from :func:`~psiloom.electrons.cusp_map.pair_blend_range`: d_ij = r_ij + O(r_ij²) keeps its
+cusps exact (the map would stretch them near a nucleus), and d_ij = r̃_ij once the electrons are
+more than s apart. Only while another electron is within s of one at a nucleus does the
+electron–electron term miss the l = 1 cusp.
 """
 
 from __future__ import annotations
+
+from typing import ClassVar
 
 import flax.linen as nn
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom.electrons.cusp_map import cutoff, pair_blend_range
 from psiloom.electrons.features import electron_electron, electron_nuclear, safe_distance, soft_distance, spin_signs
 from psiloom.electrons.system import Molecule
 
@@ -57,9 +73,11 @@ class CuspJastrow(nn.Module):
     system: Molecule
     nuclear: bool = True
     electronic: bool = True
+    takes_mapped: ClassVar[bool] = True  # SlaterJastrow passes the cusp map's coordinates
 
     @nn.compact
-    def __call__(self, x):
+    def __call__(self, x, mapped=None):
+        """J ``(B,)`` at ``x``, or with the cusp map's ``mapped`` coordinates x̃ (module docstring)."""
         dtype = x.dtype
         sys_ = self.system
         total = jnp.zeros(x.shape[:-2], dtype)
@@ -70,12 +88,15 @@ class CuspJastrow(nn.Module):
             b = jnp.where(same, lengths[0], lengths[1])
             _, r2 = electron_electron(x)
             r = safe_distance(r2)
+            if mapped is not None:
+                r_mapped = safe_distance(electron_electron(mapped)[1])
+                r = r_mapped + (r - r_mapped) * cutoff(r / pair_blend_range(sys_))
             a = cusp_coefficients(sys_, dtype)
             total = total + 0.5 * jnp.sum(a * r / (1.0 + r / b), axis=(-2, -1))
         if self.nuclear:
             z = jnp.asarray(sys_.charges, dtype)
             c = nn.softplus(self.param("en_length", lambda k: jnp.asarray(_inverse_softplus(1.0 / sys_.charges), dtype)))
-            _, r2 = electron_nuclear(x, sys_.positions)
+            _, r2 = electron_nuclear(x if mapped is None else mapped, sys_.positions)
             r = safe_distance(r2)
             total = total - jnp.sum(z * r / (1.0 + r / c), axis=(-2, -1))
         return total
@@ -107,6 +128,7 @@ class NeuralJastrow(nn.Module):
     width: int = 16
     layers: int = 2
     softening: float = 1.0
+    takes_mapped: ClassVar[bool] = True  # smooth everywhere: evaluated at the cusp map's x̃
 
     def _mlp(self, inputs, name):
         h = inputs
@@ -116,7 +138,9 @@ class NeuralJastrow(nn.Module):
         return out[..., 0]
 
     @nn.compact
-    def __call__(self, x):
+    def __call__(self, x, mapped=None):
+        """J_nn ``(B,)`` at ``x``, or at ``mapped`` (the cusp map's x̃) if given."""
+        x = x if mapped is None else mapped
         dtype = x.dtype
         sys_ = self.system
         n = sys_.n_electrons

@@ -22,8 +22,10 @@ e_{d,a}(r) = Σ_I π_{d,a,I} (1 + ζ_{a,I} r_iI) e^{−ζ_{a,I} r_iI} and a line
 backflow features h_i (initialised to zero). Exchanging two same-spin electrons exchanges two
 rows of a matrix (ξ and h are equivariant), hence ψ changes sign exactly.
 
-With ``cusp_free=True`` (default) all pieces are smooth at the nuclei and at electron
-coalescences, leaving the cusps to :class:`~psiloom.electrons.jastrow.CuspJastrow`.
+With ``cusp_free=True`` (default) the s-like pieces are smooth at the nuclei, leaving Kato's
+cusps to :class:`~psiloom.electrons.jastrow.CuspJastrow`; with ``smooth_p=True`` the 2p-like
+functions are smooth too ("pc"), and :class:`~psiloom.electrons.NuclearCuspMap` supplies the
+cusps of the non-spherical parts.
 """
 
 from __future__ import annotations
@@ -56,11 +58,13 @@ def evaluate_basis(x, system: Molecule, basis: list[BasisFunction], zetas):
     pick = jnp.asarray(np.eye(3)[comps], x.dtype)  # (K, 3) one-hot Cartesian component
     u_k = jnp.sum(u[..., centres, :] * pick, axis=-1)
     is_ = lambda name: jnp.asarray([k == name for k in kinds])
-    prefactor = jnp.where(is_("sc"), 1.0 + zetas * r_k, 1.0)
+    smooth = 1.0 + zetas * r_k  # (1 + ζr): zero radial slope at the nucleus
+    prefactor = jnp.where(is_("sc"), smooth, 1.0)
     prefactor = jnp.where(is_("s2"), r_k * r_k, prefactor)
     prefactor = jnp.where(is_("p"), u_k, prefactor)
+    prefactor = jnp.where(is_("pc"), u_k * smooth, prefactor)
     norms = normalisation("s", zetas)
-    for name in ("sc", "s2", "p"):
+    for name in ("sc", "s2", "p", "pc"):
         norms = jnp.where(is_(name), normalisation(name, zetas), norms)
     return norms * prefactor * jnp.exp(-zetas * r_k)
 
@@ -72,6 +76,7 @@ class SlaterTypeOrbitals(nn.Module):
         system: the molecule.
         n_det: number of determinants K.
         cusp_free: 1s-like functions without a nuclear cusp (pair with a nuclear Jastrow).
+        smooth_p: 2p-like functions without an l = 1 slope of their own (pair with the cusp map).
         basis: basis functions (default :func:`~psiloom.electrons.basis.default_basis`).
         coefficients: optional starting coefficients ``(C_up, C_down)`` (default: aufbau guess).
         noise: scale of random perturbations added to the starting coefficients of
@@ -84,9 +89,12 @@ class SlaterTypeOrbitals(nn.Module):
     basis: tuple | None = None
     coefficients: tuple | None = None
     noise: float = 0.1
+    smooth_p: bool = False
 
     def _basis(self):
-        return list(self.basis) if self.basis is not None else default_basis(self.system, self.cusp_free)
+        if self.basis is not None:
+            return list(self.basis)
+        return default_basis(self.system, self.cusp_free, smooth_p=self.smooth_p)
 
     @nn.compact
     def basis_values(self, x):
@@ -131,7 +139,7 @@ class BackflowOrbitals(nn.Module):
         system: the molecule.
         n_det: number of determinants (all share one backflow displacement).
         width, channels, layers, softening: sizes of the :class:`~psiloom.electrons.backflow.BackflowShift`.
-        cusp_free: passed to the analytic orbitals.
+        cusp_free, smooth_p: passed to the analytic orbitals.
         envelope_term: add the enveloped neural term e(r_i) f(h_i) (off by default: see
             DEVELOPERS.md for the measurement).
     """
@@ -144,13 +152,17 @@ class BackflowOrbitals(nn.Module):
     softening: float = 1.0
     cusp_free: bool = True
     envelope_term: bool = False
+    smooth_p: bool = False
+
+    def _analytic(self):
+        return SlaterTypeOrbitals(self.system, self.n_det, self.cusp_free, smooth_p=self.smooth_p, name="analytic")
 
     @nn.compact
     def basis_values(self, x):
         """``(B, N, K)``: the analytic basis functions at the quasi-particle positions, χ_k(q_i).
         Without the envelope term every orbital is linear in them (``SlaterTypeOrbitals.basis_values``)."""
         backflow = BackflowShift(self.system, self.width, self.channels, self.layers, self.softening, name="backflow")
-        return SlaterTypeOrbitals(self.system, self.n_det, self.cusp_free, name="analytic").basis_values(x + backflow(x))
+        return self._analytic().basis_values(x + backflow(x))
 
     @nn.compact
     def __call__(self, x):
@@ -160,7 +172,7 @@ class BackflowOrbitals(nn.Module):
             raise ValueError(f"orbitals were built for {sys_.n_electrons} electrons, got shape {x.shape}")
         backflow = BackflowShift(sys_, self.width, self.channels, self.layers, self.softening, name="backflow")
         shift = backflow(x)
-        up, down = SlaterTypeOrbitals(sys_, self.n_det, self.cusp_free, name="analytic")(x + shift)
+        up, down = self._analytic()(x + shift)
         if not self.envelope_term:
             return up, down
         h = MomentMixer(sys_, self.width, self.channels, self.layers, self.softening, name="envelope_features")(x)

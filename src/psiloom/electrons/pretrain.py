@@ -223,7 +223,7 @@ def fit_orbital_coefficients(model, params, target: GaussianOrbitals, x):
     this ill-conditioned quadratic (DEVELOPERS.md). Returns the updated parameters.
     """
     nu = model.orbitals.system.n_up
-    chi = np.asarray(model.apply(params, x, method=lambda m, y: m.orbitals.basis_values(y)), dtype=np.float64)
+    chi = np.asarray(model.apply(params, x, method=model.orbital_basis_values), dtype=np.float64)
     current = [np.asarray(m, dtype=np.float64)[:, 0] for m in model.apply(params, x, method=model.orbital_matrices)]
     scale = np.exp(-np.asarray(model.apply(params, x, method=model.one_electron_log_factors), dtype=np.float64))
     targets = [np.asarray(t, dtype=np.float64)[:, 0] for t in cast(tuple, target.apply({}, x))]
@@ -278,7 +278,8 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
         sweeps_per_step: Metropolis sweeps on |ψ_HF|² between steps.
         hold: names of submodules whose parameters keep their starting values (default: the
             backflow displacement ``"backflow"`` of :class:`~psiloom.electrons.BackflowOrbitals`
-            where there is one, which starts at ξ = 0; ``()`` trains everything). The target
+            where there is one, which starts at ξ = 0, and the range of the ``"cusp_map"``
+            (:class:`~psiloom.electrons.NuclearCuspMap`); ``()`` trains everything). The target
             orbitals depend on r_i alone; on LiH (4 determinants, widths 32, after the refits)
             the start was 42 mHa above E_HF held and 184 mHa freed.
         refits: number of least-squares solves after the Adam steps (0: none).
@@ -296,7 +297,7 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
     walkers = sampler.init(k_init, hf_log)
     present = _module_names(params)
     if hold is None:
-        hold = tuple(name for name in ("backflow",) if name in present)
+        hold = tuple(name for name in ("backflow", "cusp_map") if name in present)
     hold = (hold,) if isinstance(hold, str) else tuple(hold)
     unknown = set(hold) - present
     if unknown:
@@ -322,7 +323,7 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
         carry, loss = step(carry, k)
         losses.append(loss)
     params = carry[0]
-    if refits and hasattr(getattr(model, "orbitals", None), "basis_values"):
+    if refits and hasattr(model, "orbital_basis_values") and hasattr(getattr(model, "orbitals", None), "basis_values"):
         fit_sampler = ElectronSampler(system, n_chains=fit_walkers, burn_in=0, equilibrate=100)
         k_hf, k_model = jax.random.split(k_fit)
         x_hf = np.asarray(fit_sampler.init(k_hf, hf_log).x)
