@@ -117,3 +117,24 @@ def test_map_commutes_with_permutations(seed):
     params = cusp_map.init(jax.random.PRNGKey(0), x)
     np.testing.assert_allclose(np.asarray(cusp_map.apply(params, x[:, perm])),
                                np.asarray(cusp_map.apply(params, x))[:, perm], atol=1e-14)
+
+
+def test_each_nucleus_term_sees_the_map_of_the_other_nuclei_only():
+    # The electron–nucleus Jastrow term of nucleus I uses x̃ less I's own shift: in an atom it
+    # is the unmapped term (no added curvature at its own nucleus); in LiH the H term near Li
+    # sees Li's map.
+    jastrow = el.CuspJastrow(LI, electronic=False)
+    x = jnp.asarray(np.random.default_rng(0).normal(scale=0.3, size=(5, 3, 3)))
+    params = jastrow.init(jax.random.PRNGKey(0), x)
+    mapped = el.NuclearCuspMap(LI).apply(el.NuclearCuspMap(LI).init(jax.random.PRNGKey(0), x), x,
+                                         method=el.NuclearCuspMap.mapped)
+    assert float(jnp.max(jnp.abs(mapped.coordinates - x))) > 1e-3  # the map does move them
+    np.testing.assert_allclose(np.asarray(jastrow.apply(params, x, mapped=mapped)),
+                               np.asarray(jastrow.apply(params, x)), rtol=1e-13)
+    lih = el.molecule([("Li", (0.0, 0.0, 0.0)), ("H", (0.0, 0.0, 3.015))])
+    cusp_map = el.NuclearCuspMap(lih)
+    y = jnp.asarray(np.random.default_rng(1).normal(scale=0.2, size=(5, 4, 3)))  # all near Li
+    out = cusp_map.apply(cusp_map.init(jax.random.PRNGKey(0), y), y, method=el.NuclearCuspMap.mapped)
+    views = np.asarray(out.without_own_term())
+    np.testing.assert_allclose(views[:, :, 0], np.asarray(y), atol=1e-14)  # Li's term: unmapped
+    np.testing.assert_allclose(views[:, :, 1], np.asarray(out.coordinates), atol=1e-14)  # H's: mapped

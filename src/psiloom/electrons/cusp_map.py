@@ -7,11 +7,11 @@ from memory) is: the part of ψ with angular momentum l about the nucleus behave
 
     ψ_l(u) = r^l Y_l(û) [c_l (1 − Z r / (l + 1)) + O(r²)],      u = r_i − R_I, r = |u|.
 
-psiloom's states are ψ = e^{J} D with a smooth determinant part D and the cusp Jastrow's
-e^{−Z r}. Then D's l = 1 part g·u becomes g·u (1 − Z r): slope −Z where −Z/2 is exact, and the
-local energy keeps a direction-dependent step Z r̂·∇_i log D at the nucleus (it does not vanish
-as r → 0; from −½|∇ log ψ|², with ∇J → −Z r̂). This map removes that step: the determinant part
-is evaluated at mapped electron coordinates x̃ (the Jastrow factors stay at x),
+psiloom's states are ψ = e^{J} D with a smooth part D (the determinants and the smooth Jastrow
+terms) and the cusp Jastrow's e^{−Z r}. Then D's l = 1 part g·u becomes g·u (1 − Z r): slope −Z
+where −Z/2 is exact, and the local energy keeps a direction-dependent step Z r̂·∇_i log D at the
+nucleus (it does not vanish as r → 0; from −½|∇ log ψ|², with ∇J → −Z r̂). This map removes that
+step: D is evaluated at mapped electron coordinates x̃,
 
     r̃_i = r_i + Σ_I (Z_I / 2) r_iI w(r_iI / ℓ_I) u_iI,      w(t) = (1 − t²)³ for t < 1, else 0,
 
@@ -22,8 +22,9 @@ differentiable (the local energy stays continuous) and vanishes beyond ℓ_I, wh
 half the distance to the nearest other nucleus, so near each nucleus only its own term acts and
 the result is exact. Each electron is mapped on its own, the same way for all electrons, so the
 map commutes with permutations (ψ stays antisymmetric) and keeps the one-electron sparsity the
-forward Laplacian uses. Smooth away from the nuclei (electron–electron cusps are untouched);
-|r̃_i − r_i| ≤ 0.053 Z_I ℓ_I².
+forward Laplacian uses. Smooth away from the nuclei; |r̃_i − r_i| ≤ 0.053 Z_I ℓ_I². How each
+Jastrow term uses x̃ (the electron–nucleus term sees x̃ less its own nucleus's term, the
+electron–electron term a blend that keeps its cusps): :mod:`psiloom.electrons.jastrow`.
 
 The range ℓ_I = ℓ_max,I σ(θ_I) is learned (σ the logistic function), with ℓ_max,I the smaller
 of 4/Z_I, which keeps the radial map r ↦ r (1 + (Z/2) r w) monotonic (slope ≥ 1 − 0.18 Z ℓ),
@@ -33,7 +34,10 @@ a 1s shell.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import flax.linen as nn
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -41,6 +45,20 @@ from psiloom.electrons.features import electron_nuclear, safe_distance
 from psiloom.electrons.system import Molecule
 
 MAX_RANGE_TIMES_Z = 4.0  # ℓ_I < 4/Z_I keeps the radial map monotonic (module docstring)
+
+
+class MappedCoordinates(NamedTuple):
+    """The map's output: ``coordinates`` x̃ ``(B, N, 3)`` and each nucleus's own term ``shifts``
+    ``(B, N, M, 3)``, (Z_I/2) r_iI w(r_iI/ℓ_I) u_iI, with x̃ = x + Σ_I shifts[..., I, :]."""
+
+    coordinates: jax.Array
+    shifts: jax.Array
+
+    def without_own_term(self):
+        """``(B, N, M, 3)``: x̃ less nucleus I's own term, the coordinates a function centred on
+        nucleus I should see: unmapped near I (a cusp term −Z_I r_iI keeps its exact form, with no
+        extra curvature −(Z_I²/2) r² there) and mapped near every other nucleus."""
+        return self.coordinates[..., None, :] - self.shifts
 
 
 def maximum_ranges(system: Molecule) -> np.ndarray:
@@ -77,8 +95,13 @@ class NuclearCuspMap(nn.Module):
 
     system: Molecule
 
-    @nn.compact
     def __call__(self, x):
+        """x̃ ``(B, N, 3)``."""
+        return self.mapped(x).coordinates
+
+    @nn.compact
+    def mapped(self, x) -> MappedCoordinates:
+        """x̃ and each nucleus's term (:class:`MappedCoordinates`)."""
         dtype = x.dtype
         z = np.asarray(self.system.charges, dtype=np.float64)
         longest = maximum_ranges(self.system)
@@ -88,4 +111,5 @@ class NuclearCuspMap(nn.Module):
         u, r2 = electron_nuclear(x, self.system.positions)  # (B, N, M, 3), (B, N, M)
         r = safe_distance(r2)
         scale = 0.5 * jnp.asarray(z, dtype) * r * cutoff(r / length)  # (B, N, M)
-        return x + jnp.einsum("bnm,bnmx->bnx", scale, u)
+        shifts = scale[..., None] * u
+        return MappedCoordinates(x + jnp.sum(shifts, axis=-2), shifts)

@@ -56,7 +56,8 @@ class SlaterJastrow(ElectronState):
         jastrows: modules mapping ``(B, N, 3)`` to ``(B,)``, added to log|ψ|.
         cusp_map: optional per-electron coordinate map x → x̃ (e.g. :class:`NuclearCuspMap`):
             the orbital layer sees x̃; Jastrow factors that declare ``takes_mapped`` are called
-            as ``jastrow(x, mapped=x̃)``, the others as ``jastrow(x)``.
+            as ``jastrow(x, mapped=...)`` with the map's :class:`~psiloom.electrons.cusp_map.MappedCoordinates`,
+            the others as ``jastrow(x)``.
     """
 
     orbitals: nn.Module
@@ -67,9 +68,16 @@ class SlaterJastrow(ElectronState):
         """The coordinates the orbital layer sees: ``cusp_map(x)`` (:class:`NuclearCuspMap`) or ``x``."""
         return x if self.cusp_map is None else self.cusp_map(x)
 
+    def _map(self, x):
+        """``(coordinates for the orbitals, what Jastrow factors get as mapped)``."""
+        if self.cusp_map is None:
+            return x, None
+        mapped = self.cusp_map.mapped(x)
+        return mapped.coordinates, mapped
+
     @nn.compact
     def signed_log_amplitude(self, x):
-        y = self.orbital_coordinates(x)
+        y, mapped = self._map(x)
         up, down = self.orbitals(y)
         s_up, l_up = signed_log_det(up)
         s_dn, l_dn = signed_log_det(down)
@@ -81,15 +89,16 @@ class SlaterJastrow(ElectronState):
         else:
             sign, log = signs[:, 0], logs[:, 0]
         for jastrow in self.jastrows:
-            log = log + self._jastrow(jastrow, x, y)
+            log = log + self._jastrow(jastrow, x, mapped)
         return sign, log
 
     def _mapped(self, jastrow) -> bool:
         return self.cusp_map is not None and getattr(jastrow, "takes_mapped", False)
 
-    def _jastrow(self, jastrow, x, y):
-        """A Jastrow factor's value; those that declare ``takes_mapped`` also get the cusp map's x̃."""
-        return jastrow(x, mapped=y) if self._mapped(jastrow) else jastrow(x)
+    def _jastrow(self, jastrow, x, mapped):
+        """A Jastrow factor's value; those that declare ``takes_mapped`` also get the cusp map's
+        output (:class:`~psiloom.electrons.cusp_map.MappedCoordinates`)."""
+        return jastrow(x, mapped=mapped) if self._mapped(jastrow) else jastrow(x)
 
     def orbital_matrices(self, x):
         """The orbital layer's ``(up, down)`` matrices for a batch ``(B, N, 3)``."""
@@ -106,10 +115,11 @@ class SlaterJastrow(ElectronState):
         Since e^{Σ_i j_i} det[φ_a(r_i)] = det[φ_a(r_i) e^{j_i}], ψ reproduces a target
         determinant det[Φ] when the orbitals equal Φ e^{−j} (Hartree-Fock pretraining)."""
         total = jnp.zeros(x.shape[:-1], x.dtype)
-        y = self.orbital_coordinates(x)
+        _, mapped = self._map(x)
         for jastrow in self.jastrows:
             if hasattr(jastrow, "one_electron_terms"):
-                total = total + jastrow.one_electron_terms(y if self._mapped(jastrow) else x)
+                total = total + (jastrow.one_electron_terms(x, mapped=mapped) if self._mapped(jastrow)
+                                 else jastrow.one_electron_terms(x))
         return total
 
 
