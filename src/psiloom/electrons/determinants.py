@@ -66,7 +66,7 @@ class SlaterJastrow(ElectronState):
 
     def orbital_coordinates(self, x):
         """The coordinates the orbital layer sees: ``cusp_map(x)`` (:class:`NuclearCuspMap`) or ``x``."""
-        return x if self.cusp_map is None else self.cusp_map(x)
+        return self._map(x)[0]
 
     def _map(self, x):
         """``(coordinates for the orbitals, what Jastrow factors get as mapped)``."""
@@ -77,8 +77,8 @@ class SlaterJastrow(ElectronState):
 
     @nn.compact
     def signed_log_amplitude(self, x):
-        y, mapped = self._map(x)
-        up, down = self.orbitals(y)
+        coordinates, mapped = self._map(x)
+        up, down = self.orbitals(coordinates)
         s_up, l_up = signed_log_det(up)
         s_dn, l_dn = signed_log_det(down)
         signs, logs = s_up * s_dn, l_up + l_dn  # (B, K)
