@@ -73,12 +73,17 @@ def maximum_ranges(system: Molecule) -> np.ndarray:
     return limit
 
 
-def pair_blend_range(system: Molecule) -> float:
-    """s = half the smallest starting range min(1/Z_I, ℓ_max,I/2) (bohr): below this distance the
-    electron–electron cusp term of :class:`~psiloom.electrons.CuspJastrow` uses the unmapped
-    separation (its cusp stays exact), above it the mapped one."""
+def starting_ranges(system: Molecule) -> np.ndarray:
+    """``(M,)`` the ranges ℓ_I the map starts with, min(1/Z_I, ℓ_max,I/2) in bohr."""
     z = np.asarray(system.charges, dtype=np.float64)
-    return float(0.5 * np.min(np.minimum(1.0 / z, 0.5 * maximum_ranges(system))))
+    return np.minimum(1.0 / z, 0.5 * maximum_ranges(system))
+
+
+def pair_blend_range(system: Molecule) -> float:
+    """s = half the smallest starting range (bohr): below this distance the electron–electron
+    cusp term of :class:`~psiloom.electrons.CuspJastrow` uses the unmapped separation (its cusp
+    stays exact), above it the mapped one."""
+    return float(0.5 * np.min(starting_ranges(system)))
 
 
 def cutoff(t):
@@ -105,7 +110,7 @@ class NuclearCuspMap(nn.Module):
         dtype = x.dtype
         z = np.asarray(self.system.charges, dtype=np.float64)
         longest = maximum_ranges(self.system)
-        start = np.minimum(1.0 / z, 0.5 * longest) / longest  # σ(θ) at the start
+        start = starting_ranges(self.system) / longest  # σ(θ) at the start
         theta = self.param("cusp_range", lambda k: jnp.asarray(np.log(start / (1.0 - start)), dtype))
         length = jnp.asarray(longest, dtype) * nn.sigmoid(theta)  # (M,)
         u, r2 = electron_nuclear(x, self.system.positions)  # (B, N, M, 3), (B, N, M)
