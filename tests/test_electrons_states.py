@@ -205,16 +205,25 @@ def mapped_li():
     return model, params
 
 
-@pytest.mark.parametrize("case", ["plain", "mapped, pair inside the map's range"])
-def test_kato_cusp_conditions(neural_li, mapped_li, case):
+@pytest.fixture(scope="module")
+def radial_li():
+    # the same small state with the cusp Jastrow's short-range radial terms (non-zero after _perturbed)
+    model = el.neural_slater_jastrow(LI, n_det=2, width=4, channels=2, layers=0, jastrow_width=4, radial_terms=3)
+    params = _perturbed(jax.jit(model.init)(jax.random.PRNGKey(1), jnp.zeros((1, 3, 3))))
+    return model, params
+
+
+@pytest.mark.parametrize("case", ["plain", "mapped, pair inside the map's range", "radial terms"])
+def test_kato_cusp_conditions(neural_li, mapped_li, radial_li, case):
     # Kato 1957: spherically averaged ∂ ln ψ/∂r at coalescence = −Z (electron–nucleus) and
     # +1/2 (antiparallel electrons); +1/4 for parallel electrons after removing the linear
     # zero of ψ (Pack & Byers Brown 1966, from memory). Averaging over ±n removes the smooth
     # linear part; Richardson extrapolation 2f(δ) − f(2δ) removes the O(δ) remainder. With the
     # cusp map the electron pairs meet 0.1 bohr from the nucleus, where the map stretches space
     # (ψ varies faster there: smaller δ).
-    model, params = neural_li if case == "plain" else mapped_li
-    delta = 1e-4 if case == "plain" else 1e-5
+    model, params = {"plain": neural_li, "radial terms": radial_li}.get(case, mapped_li)
+    mapped = case.startswith("mapped")
+    delta = 1e-5 if mapped else 1e-4
     nucleus = jnp.asarray(LI.positions[0])
 
     @jax.jit
@@ -237,12 +246,45 @@ def test_kato_cusp_conditions(neural_li, mapped_li, case):
     for seed in (0, 1):
         n = np.random.default_rng(seed).normal(size=3)
         x = _config(LI, 100 + seed)
-        if case != "plain":
+        if mapped:
             x[0] = np.asarray(LI.positions[0]) + 0.1 * n / np.linalg.norm(n)
         en, anti, par = np.asarray(cusps(jnp.asarray(x), jnp.asarray(n / np.linalg.norm(n))))
         assert en == pytest.approx(-3.0, abs=1e-4)  # Z(Li) = 3
         assert anti == pytest.approx(0.5, abs=1e-4)  # electron 2 (down) meets electron 0 (up)
         assert par == pytest.approx(0.25, abs=1e-3)  # electron 1 (up) meets electron 0 (up)
+
+
+_RADIAL_BE = el.CuspJastrow(BE, radial_terms=3)
+_RADIAL_BE_PARAMS = _perturbed(jax.jit(_RADIAL_BE.init)(jax.random.PRNGKey(6), jnp.zeros((1, 4, 3))), scale=0.5)
+
+
+@given(st.integers(0, 2**31 - 1), st.permutations([0, 1]), st.permutations([2, 3]))
+def test_radial_terms_are_symmetric_under_same_spin_exchange(seed, perm_up, perm_down):
+    # a Jastrow factor is symmetric under any permutation within a spin species (exact)
+    x = jnp.asarray(_config(BE, seed))[None]
+    permuted = x[:, np.asarray(list(perm_up) + list(perm_down))]
+    value, swapped = (_RADIAL_BE.apply(_RADIAL_BE_PARAMS, y) for y in (x, permuted))
+    np.testing.assert_allclose(np.asarray(swapped), np.asarray(value), rtol=1e-12)
+
+
+def test_radial_terms_start_at_zero_and_factor_into_one_electron_terms():
+    # a new state is unchanged by the radial terms (zero coefficients); the electron–nucleus
+    # part stays a product of one-electron factors (what Hartree-Fock pretraining moves into
+    # the orbitals): J_en = Σ_i j_i exactly
+    lih = el.molecule([("Li", (0, 0, 0)), ("H", (0.3, -0.2, 3.015))])
+    x = lih.random(jax.random.PRNGKey(0), 5)
+    radial, plain = el.CuspJastrow(lih, radial_terms=4), el.CuspJastrow(lih)
+    fresh = radial.init(jax.random.PRNGKey(1), x)
+    shared = {"params": {k: fresh["params"][k] for k in ("ee_length", "en_length")}}
+    np.testing.assert_allclose(np.asarray(radial.apply(fresh, x)), np.asarray(plain.apply(shared, x)), rtol=1e-14)
+    nuclear = el.CuspJastrow(lih, electronic=False, radial_terms=4)
+    params = _perturbed(nuclear.init(jax.random.PRNGKey(2), x), scale=0.5)
+    assert np.any(np.abs(np.asarray(params["params"]["en_radial_coeff"])) > 0.1)
+    terms = nuclear.apply(params, x, method=nuclear.one_electron_terms)
+    np.testing.assert_allclose(np.asarray(jnp.sum(terms, axis=-1)), np.asarray(nuclear.apply(params, x)), rtol=1e-12)
+    # ... and they do change the value once the coefficients are non-zero
+    no_radial = {"params": {"en_length": params["params"]["en_length"]}}
+    assert np.max(np.abs(np.asarray(nuclear.apply(params, x) - el.CuspJastrow(lih, electronic=False).apply(no_radial, x)))) > 1e-3
 
 
 # ----------------------------------------------------------------------------- building blocks

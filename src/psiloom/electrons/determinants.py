@@ -128,24 +128,27 @@ def _cusp_map(system: Molecule, cusp_map: bool):
 
 
 def slater_jastrow(system: Molecule, n_det: int = 1, neural_jastrow: bool = True, width: int = 16,
-                   layers: int = 2, cusp_map: bool = False) -> SlaterJastrow:
+                   layers: int = 2, cusp_map: bool = False, radial_terms: int = 0) -> SlaterJastrow:
     """Slater–Jastrow state: analytic Slater-type orbitals, cusp Jastrow (+ neural Jastrow);
-    ``cusp_map=True`` adds a :class:`NuclearCuspMap` (and smooth 2p-like functions, "pc")."""
-    jastrows: list[nn.Module] = [CuspJastrow(system)]
+    ``cusp_map=True`` adds a :class:`NuclearCuspMap` (and smooth 2p-like functions, "pc");
+    ``radial_terms`` is the cusp Jastrow's number of short-range radial functions."""
+    jastrows: list[nn.Module] = [CuspJastrow(system, radial_terms=radial_terms)]
     if neural_jastrow:
         jastrows.append(NeuralJastrow(system, width=width, layers=layers))
     return SlaterJastrow(SlaterTypeOrbitals(system, n_det, smooth_p=cusp_map), tuple(jastrows), _cusp_map(system, cusp_map))
 
 
 def neural_slater_jastrow(system: Molecule, n_det: int = 4, width: int = 16, channels: int = 8, layers: int = 2,
-                          jastrow_width: int = 16, envelope_term: bool = False, cusp_map: bool = False) -> SlaterJastrow:
+                          jastrow_width: int = 16, envelope_term: bool = False, cusp_map: bool = False,
+                          radial_terms: int = 0) -> SlaterJastrow:
     """Backflow state: :class:`BackflowOrbitals` determinants (analytic orbitals at quasi-particle
     positions r_i + ξ_i(x)), cusp and neural Jastrows; ``cusp_map=True`` adds a
     :class:`NuclearCuspMap` (the orbital layer, backflow included, sees its coordinates) and
-    uses smooth 2p-like functions ("pc")."""
+    uses smooth 2p-like functions ("pc"); ``radial_terms`` is the cusp Jastrow's number of
+    short-range radial functions (:class:`CuspJastrow`)."""
     return SlaterJastrow(
         BackflowOrbitals(system, n_det, width=width, channels=channels, layers=layers, envelope_term=envelope_term,
                          smooth_p=cusp_map),
-        (CuspJastrow(system), NeuralJastrow(system, width=jastrow_width)),
+        (CuspJastrow(system, radial_terms=radial_terms), NeuralJastrow(system, width=jastrow_width)),
         _cusp_map(system, cusp_map),
     )

@@ -12,6 +12,20 @@ derivative of ψ at a coalescence is +1/2 (antiparallel), +1/4 (parallel) and �
 (electron–nucleus) provided the rest of ψ is smooth there, as psiloom's cusp-free orbitals are.
 Each term saturates at large distances (a·b, −Z_I c_I), so the orbitals set the decay.
 
+With ``radial_terms = K > 0`` it adds short-range radial expansions that leave every cusp alone,
+
+    J_radial = Σ_{i,I} Σ_k α_{σ_i,I,k} g(r_iI / ℓ_{I,k})  +  Σ_{i<j} Σ_k γ_{p_ij,k} g(r_ij / m_k),
+
+    g(t) = (1 + t) e^{−t} = 1 − t²/2 + t³/3 − …   (g'(0) = 0: no change of slope at a coalescence),
+
+with coefficients α per electron spin σ_i, nucleus and length and γ per spin pairing p_ij
+(parallel, antiparallel) and length, all starting at zero, and learned lengths starting on the
+grids ℓ_{I,k} = 2^k / (8 Z_I) and m_k = 2^k / 10 bohr (k = 0 … K−1). They give the state radial
+freedom on the scale of a core (Li's 1s shell is ~0.3 bohr across), which the neural term's
+softened distances (λ = 1 bohr) cannot resolve: expanding a one-body Jastrow in a few
+fixed-shape radial functions is common practice in QMC Jastrow factors (the particular
+functions here are our choice).
+
 :class:`NeuralJastrow` adds a learnable symmetric part built from smooth features only (it
 leaves the cusps alone): electron–electron–nucleus pair terms and one-electron terms,
 
@@ -71,11 +85,14 @@ class CuspJastrow(nn.Module):
         nuclear: include the electron–nucleus term (set False when the orbitals carry the
             nuclear cusp themselves, e.g. plain Slater "s" functions).
         electronic: include the electron–electron term.
+        radial_terms: K, the number of short-range radial functions per nucleus and per spin
+            pairing (module docstring; 0: none).
     """
 
     system: Molecule
     nuclear: bool = True
     electronic: bool = True
+    radial_terms: int = 0
     takes_mapped: ClassVar[bool] = True  # SlaterJastrow passes the cusp map's coordinates
 
     @nn.compact
@@ -96,12 +113,40 @@ class CuspJastrow(nn.Module):
                 r = r_mapped + (r - r_mapped) * cutoff(r / pair_blend_range(sys_))
             a = cusp_coefficients(sys_, dtype)
             total = total + 0.5 * jnp.sum(a * r / (1.0 + r / b), axis=(-2, -1))
+            if self.radial_terms:
+                total = total + self._pair_radial(r)
         if self.nuclear:
             z = jnp.asarray(sys_.charges, dtype)
             c = nn.softplus(self.param("en_length", lambda k: jnp.asarray(_inverse_softplus(1.0 / sys_.charges), dtype)))
             r = safe_distance(self._nuclear_r2(x, mapped))
             total = total - jnp.sum(z * r / (1.0 + r / c), axis=(-2, -1))
+            if self.radial_terms:
+                k = self.radial_terms
+                start = (2.0 ** np.arange(k))[None, :] / (8.0 * np.asarray(sys_.charges, float)[:, None])  # (M, K)
+                self.param("en_radial_length", lambda key: jnp.asarray(_inverse_softplus(start), dtype))
+                self.param("en_radial_coeff", nn.initializers.zeros, (2, sys_.n_nuclei, k), dtype)
+                total = total + jnp.sum(self._nuclear_radial(r), axis=-1)
         return total
+
+    def _nuclear_radial(self, r):
+        """``(B, N)``: each electron's Σ_{I,k} α_{σ_i,I,k} g(r_iI / ℓ_{I,k}) from ``r`` ``(B, N, M)``."""
+        lengths = nn.softplus(self.get_variable("params", "en_radial_length"))
+        alpha = self.get_variable("params", "en_radial_coeff")
+        channel = (np.asarray(self.system.spins) < 0).astype(int)  # 0 for spin up, 1 for spin down
+        t = r[..., None] / lengths  # (B, N, M, K)
+        return jnp.sum(alpha[channel] * (1.0 + t) * jnp.exp(-t), axis=(-2, -1))
+
+    def _pair_radial(self, r):
+        """``(B,)``: Σ_{i<j} Σ_k γ_{p_ij,k} g(r_ij / m_k) from the separations ``r`` ``(B, N, N)``."""
+        sys_, k, dtype = self.system, self.radial_terms, r.dtype
+        start = 2.0 ** np.arange(k) / 10.0
+        lengths = nn.softplus(self.param("ee_radial_length", lambda key: jnp.asarray(_inverse_softplus(start), dtype)))
+        gamma = self.param("ee_radial_coeff", nn.initializers.zeros, (2, k), dtype)
+        s = np.asarray(sys_.spins)
+        pairing = (s[:, None] * s[None, :] < 0).astype(int)  # 0 parallel, 1 antiparallel
+        upper = jnp.asarray(np.triu(np.ones((sys_.n_electrons,) * 2), k=1), dtype)
+        t = r[..., None] / lengths  # (B, N, N, K)
+        return jnp.sum(upper[..., None] * gamma[pairing] * (1.0 + t) * jnp.exp(-t), axis=(-3, -2, -1))
 
     def _nuclear_r2(self, x, mapped):
         """``(B, N, M)`` squared electron–nucleus distances, each nucleus's at x̃ less that
@@ -112,8 +157,9 @@ class CuspJastrow(nn.Module):
         return jnp.sum(u * u, axis=-1)
 
     def one_electron_terms(self, x, mapped=None):
-        """``(B, N)``: each electron's share −Σ_I Z_I r_iI / (1 + r_iI / c_I) of the
-        electron–nucleus term (zeros without it), with the cusp map's ``mapped`` as in
+        """``(B, N)``: each electron's share −Σ_I Z_I r_iI / (1 + r_iI / c_I) (+ its radial
+        expansion Σ_{I,k} α_{σ_i,I,k} g(r_iI / ℓ_{I,k})) of the electron–nucleus term (zeros
+        without it), with the cusp map's ``mapped`` as in
         ``__call__``. A product of one-electron factors, so it can be moved into the orbitals
         (used by Hartree-Fock pretraining). Call on a bound module."""
         sys_ = self.system
@@ -122,7 +168,8 @@ class CuspJastrow(nn.Module):
             return jnp.zeros(r2.shape[:-1], x.dtype)
         c = nn.softplus(self.get_variable("params", "en_length"))
         r = safe_distance(r2)
-        return -jnp.sum(jnp.asarray(sys_.charges, x.dtype) * r / (1.0 + r / c), axis=-1)
+        terms = -jnp.sum(jnp.asarray(sys_.charges, x.dtype) * r / (1.0 + r / c), axis=-1)
+        return terms + self._nuclear_radial(r) if self.radial_terms else terms
 
 
 class NeuralJastrow(nn.Module):
