@@ -247,6 +247,14 @@ BASIS_LIMIT = "PySCF FCI aug-cc-pVQZ/5Z, X^-3 limit (about 0.05 mHa low at R <= 
 H2_CURVE = {0.8: (-1.0201267, BASIS_LIMIT), 1.0: (-1.1245385, KW), 1.4: (-1.1744757, KW), 2.0: (-1.1381329, KW),
             3.0: (-1.0573262, KW), 5.0: (-1.0037873, BASIS_LIMIT)}
 LIH_CURVE = (2.6, 2.8, 3.015, 3.4, 4.0)
+# LiH full CI in cc-pCVTZ (cc-pVTZ on H), all electrons (baselines/lih_curve_fci.py): the shape
+# E(R) − E(3.015) the scan's LiH curve is compared with
+LIH_FCI_SOURCE = "PySCF FCI cc-pCVTZ (baselines/lih_curve_fci.py)"
+LIH_FCI = {}
+# the LiH curve's run: 512 walkers and samples per step (0.45 s per step against 1.15 s with
+# 1024), the first geometry `steps` (no pretraining), each later one a third of them from the
+# previous geometry's state, and 2^18 evaluation samples each (bars ~0.25 mHa)
+LIH_SCAN = dict(steps=1500, eval_samples=262144, n_samples=512, chains=512)
 # non-relativistic exact total energies (from memory): neutral atoms as in SYSTEMS, cations
 # Li⁺ −7.279913 Ha and Be⁺ −14.324763 Ha (Pekeris-type Hylleraas values).
 CATIONS = {"Li": -7.279913, "Be": -14.324763}
@@ -309,7 +317,8 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
                [H2_CURVE[r] for r in lengths])]
     curves = [c for c in curves if c[0] in names]
     if not quick and "LiH" in names:
-        curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE], configs["LiH"],
+        curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE],
+                       dict(configs["LiH"], **LIH_SCAN),
                        [(None, "none")] * len(LIH_CURVE)))
     for name, geometries, cfg, references in curves:
         warm_steps = max(2, cfg["steps"] // 3)
@@ -321,7 +330,33 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
             line_cfg = dict(cfg, steps=cfg["steps"] if point.geometry == 0 else warm_steps)
             records.append(_energy_line(point.system, line_cfg, point.evaluation, reference, source,
                                         point.seconds, {"bond_length_bohr": r, "warm_start": point.warm_start}))
+        if name == "LiH" and LIH_FCI:
+            records.append(_curve_shape_line(points, LIH_CURVE))
     return records
+
+
+def _curve_shape_line(points, lengths, centre=3.015):
+    """The LiH curve's shape: E(R) − E(centre) against full CI's (``LIH_FCI``) at the bond
+    ``lengths`` of ``points``, each difference of two independent evaluation passes (errors in
+    quadrature)."""
+    at = {r: p.evaluation.components.total for r, p in zip(lengths, points)}
+    differences, errors, deviations = {}, {}, {}
+    for r in lengths:
+        d = el.energy_difference(at[r], at[centre])
+        reference = LIH_FCI[r] - LIH_FCI[centre]
+        differences[r], errors[r], deviations[r] = d.value, d.error, 1e3 * (d.value - reference)
+    worst = max(deviations, key=lambda r: abs(deviations[r]) / max(1e3 * errors[r], 1e-12) if r != centre else 0.0)
+    progress("LiH curve E(R) − E(3.015) minus full CI's (mHa): "
+             + ", ".join(f"{r}: {deviations[r]:+.2f} ± {1e3 * errors[r]:.2f}" for r in lengths))
+    return emit({
+        "benchmark": "molecules", "metric": f"LiH curve shape E(R) − E({centre}) (hartree)",
+        "value": {"bond_lengths_bohr": lengths, "differences": [differences[r] for r in lengths],
+                  "error_bars": [errors[r] for r in lengths],
+                  "reference_differences": [LIH_FCI[r] - LIH_FCI[centre] for r in lengths],
+                  "deviations_mha": [deviations[r] for r in lengths]},
+        "reference_source": LIH_FCI_SOURCE, "largest_deviation_in_bars": abs(deviations[worst]) / (1e3 * errors[worst]),
+        "unit": "hartree (deviations in mHa)", "seconds": 0.0,
+    })
 
 
 def case_ionisation(configs, laplacian, quick, seed=0, names=tuple(CATIONS)):
