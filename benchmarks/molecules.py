@@ -36,7 +36,9 @@ diagnosis.
   from the previous geometry, :func:`psiloom.electrons.geometry_scan`), one energy line per
   geometry against Kołos & Wolniewicz (from memory) or, at R = 0.8 and 5.0 bohr, PySCF full CI at
   the basis-set limit (``baselines/h2_basis_limit.py``). Full mode also scans LiH at 5 bond
-  lengths (no references: the curve's shape and the warm-start cost are what it reports).
+  lengths (``LIH_SCAN``: 512 walkers, no pretraining) against PySCF CCSD(T) at the basis-set
+  limit (``baselines/lih_curve_basis_limit.py``, 0.04 mHa above the exact energy at R = 3.015),
+  plus one line for the curve's shape, E(R) − E(3.015) against the reference's.
 * ``ionisation`` — first ionisation energies of Li and Be as differences of total energies
   (neutral and cation run independently, so errors add in quadrature), one line per species
   and one per ionisation energy (``abs_error_mha`` of the difference).
@@ -246,11 +248,12 @@ KW = "Kolos & Wolniewicz (from memory)"
 BASIS_LIMIT = "PySCF FCI aug-cc-pVQZ/5Z, X^-3 limit (about 0.05 mHa low at R <= 1.4)"
 H2_CURVE = {0.8: (-1.0201267, BASIS_LIMIT), 1.0: (-1.1245385, KW), 1.4: (-1.1744757, KW), 2.0: (-1.1381329, KW),
             3.0: (-1.0573262, KW), 5.0: (-1.0037873, BASIS_LIMIT)}
-LIH_CURVE = (2.6, 2.8, 3.015, 3.4, 4.0)
-# LiH full CI in cc-pCVTZ (cc-pVTZ on H), all electrons (baselines/lih_curve_fci.py): the shape
-# E(R) − E(3.015) the scan's LiH curve is compared with
-LIH_FCI_SOURCE = "PySCF FCI cc-pCVTZ (baselines/lih_curve_fci.py)"
-LIH_FCI = {}
+# LiH energies along the bond: PySCF CCSD(T), all electrons, cc-pCVTZ/QZ with the correlation
+# energy extrapolated as X^-3 (baselines/lih_curve_basis_limit.py, results/lih_curve_basis_limit.json).
+# At R = 3.015 bohr it lies 0.04 mHa above the exact −8.070548 (Cencek & Rychlewski, from memory).
+LIH_LIMIT = "PySCF CCSD(T) cc-pCVTZ/QZ, X^-3 limit (0.04 mHa above exact at R = 3.015)"
+LIH_CURVE = {2.6: (-8.0630769, LIH_LIMIT), 2.8: (-8.0687774, LIH_LIMIT), 3.015: (-8.0705108, LIH_LIMIT),
+             3.4: (-8.066613, LIH_LIMIT), 4.0: (-8.0521832, LIH_LIMIT)}
 # the LiH curve's run: 512 walkers and samples per step (0.45 s per step against 1.15 s with
 # 1024), the first geometry `steps` (no pretraining), each later one a third of them from the
 # previous geometry's state, and 2^18 evaluation samples each (bars ~0.25 mHa)
@@ -318,8 +321,7 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
     curves = [c for c in curves if c[0] in names]
     if not quick and "LiH" in names:
         curves.append(("LiH", [el.molecule([("Li", (0, 0, 0)), ("H", (0, 0, r))]) for r in LIH_CURVE],
-                       dict(configs["LiH"], **LIH_SCAN),
-                       [(None, "none")] * len(LIH_CURVE)))
+                       dict(configs["LiH"], **LIH_SCAN), list(LIH_CURVE.values())))
     for name, geometries, cfg, references in curves:
         warm_steps = max(2, cfg["steps"] // 3)
         points = el.geometry_scan(geometries, lambda system: _search(system, cfg, laplacian), steps=warm_steps,
@@ -330,31 +332,32 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
             line_cfg = dict(cfg, steps=cfg["steps"] if point.geometry == 0 else warm_steps)
             records.append(_energy_line(point.system, line_cfg, point.evaluation, reference, source,
                                         point.seconds, {"bond_length_bohr": r, "warm_start": point.warm_start}))
-        if name == "LiH" and LIH_FCI:
-            records.append(_curve_shape_line(points, LIH_CURVE))
+        if name == "LiH":
+            records.append(_curve_shape_line(points, tuple(LIH_CURVE)))
     return records
 
 
 def _curve_shape_line(points, lengths, centre=3.015):
-    """The LiH curve's shape: E(R) − E(centre) against full CI's (``LIH_FCI``) at the bond
+    """The LiH curve's shape: E(R) − E(centre) against the reference's (``LIH_CURVE``) at the bond
     ``lengths`` of ``points``, each difference of two independent evaluation passes (errors in
     quadrature)."""
     at = {r: p.evaluation.components.total for r, p in zip(lengths, points)}
     differences, errors, deviations = {}, {}, {}
     for r in lengths:
         d = el.energy_difference(at[r], at[centre])
-        reference = LIH_FCI[r] - LIH_FCI[centre]
-        differences[r], errors[r], deviations[r] = d.value, d.error, 1e3 * (d.value - reference)
+        reference = LIH_CURVE[r][0] - LIH_CURVE[centre][0]
+        error = 0.0 if r == centre else d.error  # E(centre) − E(centre) is exactly zero
+        differences[r], errors[r], deviations[r] = d.value, error, 1e3 * (d.value - reference)
     worst = max(deviations, key=lambda r: abs(deviations[r]) / max(1e3 * errors[r], 1e-12) if r != centre else 0.0)
-    progress("LiH curve E(R) − E(3.015) minus full CI's (mHa): "
+    progress(f"LiH curve E(R) − E({centre}) minus the reference's (mHa): "
              + ", ".join(f"{r}: {deviations[r]:+.2f} ± {1e3 * errors[r]:.2f}" for r in lengths))
     return emit({
         "benchmark": "molecules", "metric": f"LiH curve shape E(R) − E({centre}) (hartree)",
         "value": {"bond_lengths_bohr": lengths, "differences": [differences[r] for r in lengths],
                   "error_bars": [errors[r] for r in lengths],
-                  "reference_differences": [LIH_FCI[r] - LIH_FCI[centre] for r in lengths],
+                  "reference_differences": [LIH_CURVE[r][0] - LIH_CURVE[centre][0] for r in lengths],
                   "deviations_mha": [deviations[r] for r in lengths]},
-        "reference_source": LIH_FCI_SOURCE, "largest_deviation_in_bars": abs(deviations[worst]) / (1e3 * errors[worst]),
+        "reference_source": LIH_LIMIT, "largest_deviation_in_bars": abs(deviations[worst]) / (1e3 * errors[worst]),
         "unit": "hartree (deviations in mHa)", "seconds": 0.0,
     })
 
