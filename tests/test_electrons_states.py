@@ -287,6 +287,12 @@ def test_radial_terms_start_at_zero_and_factor_into_one_electron_terms():
     assert np.max(np.abs(np.asarray(nuclear.apply(params, x) - el.CuspJastrow(lih, electronic=False).apply(no_radial, x)))) > 1e-3
 
 
+@pytest.mark.parametrize("bad", [-1, 2.5, "3", True])
+def test_bad_radial_terms_raise(bad):
+    with pytest.raises(ValueError, match="radial_terms"):
+        el.CuspJastrow(BE, radial_terms=bad)
+
+
 # ----------------------------------------------------------------------------- building blocks
 _WEIGHTS = st.floats(-2, 2, allow_subnormal=False).filter(lambda w: w == 0 or abs(w) > 1e-6)
 

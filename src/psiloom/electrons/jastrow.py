@@ -60,6 +60,7 @@ import flax.linen as nn
 import jax.numpy as jnp
 import numpy as np
 
+from psiloom._validation import nonnegative_int
 from psiloom.electrons.cusp_map import cutoff, pair_blend_range
 from psiloom.electrons.features import electron_electron, electron_nuclear, safe_distance, soft_distance, spin_signs
 from psiloom.electrons.system import Molecule
@@ -94,6 +95,10 @@ class CuspJastrow(nn.Module):
     electronic: bool = True
     radial_terms: int = 0
     takes_mapped: ClassVar[bool] = True  # SlaterJastrow passes the cusp map's coordinates
+
+    def __post_init__(self):
+        nonnegative_int("radial_terms", self.radial_terms)
+        super().__post_init__()
 
     @nn.compact
     def __call__(self, x, mapped=None):
