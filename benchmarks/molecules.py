@@ -340,22 +340,23 @@ def case_scan(configs, laplacian, quick, seed=0, names=("H2", "LiH")):
 def _curve_shape_line(points, lengths, centre=3.015):
     """The LiH curve's shape: E(R) − E(centre) against the reference's (``LIH_CURVE``) at the bond
     ``lengths`` of ``points``, each difference of two independent evaluation passes (errors in
-    quadrature)."""
-    at = {r: p.evaluation.components.total for r, p in zip(lengths, points)}
-    differences, errors, deviations = {}, {}, {}
+    quadrature; at the centre itself exactly 0 ± 0)."""
+    at = dict(zip(lengths, (p.evaluation.components.total for p in points)))
+    differences, errors = {centre: 0.0}, {centre: 0.0}
     for r in lengths:
-        d = el.energy_difference(at[r], at[centre])
-        reference = LIH_CURVE[r][0] - LIH_CURVE[centre][0]
-        error = 0.0 if r == centre else d.error  # E(centre) − E(centre) is exactly zero
-        differences[r], errors[r], deviations[r] = d.value, error, 1e3 * (d.value - reference)
-    worst = max(deviations, key=lambda r: abs(deviations[r]) / max(1e3 * errors[r], 1e-12) if r != centre else 0.0)
+        if r != centre:
+            d = el.energy_difference(at[r], at[centre])
+            differences[r], errors[r] = d.value, d.error
+    references = {r: LIH_CURVE[r][0] - LIH_CURVE[centre][0] for r in lengths}
+    deviations = {r: 1e3 * (differences[r] - references[r]) for r in lengths}
+    worst = max((r for r in lengths if r != centre), key=lambda r: abs(deviations[r]) / errors[r])
     progress(f"LiH curve E(R) − E({centre}) minus the reference's (mHa): "
              + ", ".join(f"{r}: {deviations[r]:+.2f} ± {1e3 * errors[r]:.2f}" for r in lengths))
     return emit({
         "benchmark": "molecules", "metric": f"LiH curve shape E(R) − E({centre}) (hartree)",
-        "value": {"bond_lengths_bohr": lengths, "differences": [differences[r] for r in lengths],
+        "value": {"bond_lengths_bohr": list(lengths), "differences": [differences[r] for r in lengths],
                   "error_bars": [errors[r] for r in lengths],
-                  "reference_differences": [LIH_CURVE[r][0] - LIH_CURVE[centre][0] for r in lengths],
+                  "reference_differences": [references[r] for r in lengths],
                   "deviations_mha": [deviations[r] for r in lengths]},
         "reference_source": LIH_LIMIT, "largest_deviation_in_bars": abs(deviations[worst]) / (1e3 * errors[worst]),
         "unit": "hartree (deviations in mHa)", "seconds": 0.0,

@@ -119,6 +119,9 @@ class CuspJastrow(nn.Module):
             a = cusp_coefficients(sys_, dtype)
             total = total + 0.5 * jnp.sum(a * r / (1.0 + r / b), axis=(-2, -1))
             if self.radial_terms:
+                k = self.radial_terms
+                self.param("ee_radial_length", lambda key: jnp.asarray(_inverse_softplus(2.0 ** np.arange(k) / 10.0), dtype))
+                self.param("ee_radial_coeff", nn.initializers.zeros, (2, k), dtype)
                 total = total + self._pair_radial(r)
         if self.nuclear:
             z = jnp.asarray(sys_.charges, dtype)
@@ -143,13 +146,12 @@ class CuspJastrow(nn.Module):
 
     def _pair_radial(self, r):
         """``(B,)``: Σ_{i<j} Σ_k γ_{p_ij,k} g(r_ij / m_k) from the separations ``r`` ``(B, N, N)``."""
-        sys_, k, dtype = self.system, self.radial_terms, r.dtype
-        start = 2.0 ** np.arange(k) / 10.0
-        lengths = nn.softplus(self.param("ee_radial_length", lambda key: jnp.asarray(_inverse_softplus(start), dtype)))
-        gamma = self.param("ee_radial_coeff", nn.initializers.zeros, (2, k), dtype)
+        sys_ = self.system
+        lengths = nn.softplus(self.get_variable("params", "ee_radial_length"))
+        gamma = self.get_variable("params", "ee_radial_coeff")
         s = np.asarray(sys_.spins)
         pairing = (s[:, None] * s[None, :] < 0).astype(int)  # 0 parallel, 1 antiparallel
-        upper = jnp.asarray(np.triu(np.ones((sys_.n_electrons,) * 2), k=1), dtype)
+        upper = jnp.asarray(np.triu(np.ones((sys_.n_electrons,) * 2), k=1), r.dtype)
         t = r[..., None] / lengths  # (B, N, N, K)
         return jnp.sum(upper[..., None] * gamma[pairing] * (1.0 + t) * jnp.exp(-t), axis=(-3, -2, -1))
 
