@@ -160,7 +160,7 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
     method = {
         "trial_state": state_text(cfg),
         "sampler": f"Metropolis all-electron Gaussian, {_chains(cfg)} walkers, sweep 5, adaptive step",
-        "optimizer": f"SR (auto solver, shift 1e-3) + sgd {_schedule_text(cfg)}, energy clip 5",
+        "optimizer": f"SR (auto solver, shift {cfg.get('shift', 1e-3):g}) + sgd {_schedule_text(cfg)}, energy clip 5",
         "laplacian": laplacian, "pretraining": pretrained, "tau": float(estimate.tau),
         "rhat": float(estimate.rhat), "acceptance": acceptance, "variance": float(estimate.variance),
         "kinetic": float(parts.kinetic.mean), "kinetic_error": float(parts.kinetic.error),
@@ -291,7 +291,7 @@ def _search(system, cfg, laplacian, params=None, key=None, model=None):
     chains = _chains(cfg)
     sampler = el.ElectronSampler(system, n_chains=chains, sweep=5, burn_in=cfg.get("burn_in", 1), equilibrate=100)
     lr = _learning_rate(cfg)
-    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-3, solver="auto"), optax.sgd(lr))
+    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto"), optax.sgd(lr))
     return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
                                       optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
 
