@@ -137,5 +137,6 @@ def test_mismatched_or_degenerate_batches_are_refused():
         held_out_check(fit, Batch(np.zeros((1, 5)), np.zeros(1)))
     with pytest.raises(ValueError, match="complex_output"):
         held_out_check(fit, Batch(np.zeros((16, 5)), np.zeros(16), complex_output=True))
-    with pytest.raises(ValueError, match="shift=0"):
-        held_out_check(random_batch(2, 4, 9), random_batch(3, 4, 9), 0.0)
+    for n, p in ((4, 9), (12, 3)):  # fewer and more samples than parameters
+        with pytest.raises(ValueError, match="shift=0"):
+            held_out_check(random_batch(2, n, p), random_batch(3, n, p), 0.0)

@@ -81,7 +81,7 @@ def held_out_check(fit, held_out, shift: float = 1e-3) -> HeldOutCheck:
     ``fit``, ``held_out``: :class:`~psiloom.optimize.SampleGeometry` of two independent batches
     of the same state (same parameters), e.g. two draws of the search's sampler with their local
     energies; anything with ``jacobian()``, ``residual()`` and ``complex_output`` works.
-    ``shift``: the absolute diagonal shift ε ≥ 0 of :func:`stochastic_reconfiguration`.
+    ``shift``: the absolute diagonal shift ε > 0 of :func:`stochastic_reconfiguration`.
     Returns a :class:`HeldOutCheck`. Costs one SR solve and two n × P products (not jitted
     over the geometries; call it between training steps, not inside them).
 
@@ -109,8 +109,9 @@ def held_out_check(fit, held_out, shift: float = 1e-3) -> HeldOutCheck:
     for name, rows in (("fit", x.shape[0]), ("held_out", x_held.shape[0])):
         if rows < 2:
             raise ValueError(f"{name} has {rows} sample row(s); a held-out check needs at least 2 per batch")
-    if eps == 0.0 and x.shape[0] < x.shape[1]:
-        raise ValueError("shift=0 with fewer samples than parameters leaves S singular; use shift > 0")
+    if eps == 0.0:
+        raise ValueError("shift=0 leaves S + εI singular whenever samples are fewer than parameters or a "
+                         "parameter does not change log ψ on the batch; use shift > 0")
     delta, norm, (m_fit, d_fit, c_fit), (m_held, d_held, c_held) = _check(
         x, residual, x_held, residual_held, jnp.asarray(eps, x.dtype))
     d_fit, d_held = float(d_fit), float(d_held)
