@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 
 import psiloom as pl
-from psiloom.optimize import SampleGeometry, energy_gradient, held_out_check, ravel_real
+from psiloom.optimize import SampleGeometry, energy_gradient, held_out_check, held_out_scan, ravel_real
 
 
 class Batch:
@@ -140,3 +140,20 @@ def test_mismatched_or_degenerate_batches_are_refused():
     for n, p in ((4, 9), (12, 3)):  # fewer and more samples than parameters
         with pytest.raises(ValueError, match="shift=0"):
             held_out_check(random_batch(2, n, p), random_batch(3, n, p), 0.0)
+
+
+def test_a_scan_over_shifts_equals_one_check_per_shift():
+    fit, held = random_batch(8, 10, 25), random_batch(9, 12, 25)
+    shifts = [1e-3, 1e-2, 1e-1]
+    for scanned, shift in zip(held_out_scan(fit, held, shifts), shifts):
+        single = held_out_check(fit, held, shift)
+        assert scanned.shift == shift
+        np.testing.assert_allclose(np.asarray(scanned.delta), np.asarray(single.delta), rtol=1e-12)
+        assert scanned.held_out_correlation == pytest.approx(single.held_out_correlation, rel=1e-12)
+
+
+@pytest.mark.parametrize("shifts", [[], 0.01, "0.01", [1e-2, -1.0], [1e-2, 0.0]])
+def test_a_bad_scan_is_refused(shifts):
+    fit = random_batch(0, 8, 5)
+    with pytest.raises((ValueError, TypeError), match="shift"):
+        held_out_scan(fit, fit, shifts)

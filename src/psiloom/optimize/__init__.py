@@ -4,10 +4,11 @@
 from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.optimize.flatten import conj_complex_leaves, ravel_real, tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
-from psiloom.optimize.holdout import HeldOutCheck, held_out_check
+from psiloom.optimize.holdout import HeldOutCheck, held_out_check, held_out_scan
 from psiloom.optimize.sr import SRState, stochastic_reconfiguration
 
 __all__ = [
     "conj_complex_leaves", "ravel_real", "tree_norm", "SampleGeometry", "energy_gradient",
     "SRState", "stochastic_reconfiguration", "winsorize_local_energies", "HeldOutCheck", "held_out_check",
+    "held_out_scan",
 ]

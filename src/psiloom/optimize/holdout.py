@@ -13,7 +13,7 @@ independently from the same state, (X_h δ) · ε_h estimates the descent the st
 When samples are fewer than parameters a small shift lets δ fit the fit batch's noise: the
 held-out descent is then a small fraction of the fit descent, and the held-out correlation
 between X_h δ and ε_h (the Pearson correlation of −η O δ's decrease with E_L, both centred) is
-low. Comparing shifts on the same two batches shows which one generalises (a measured case is in
+low. Comparing shifts on the same two batches (:func:`held_out_scan`) shows which one generalises (a measured case is in
 DEVELOPERS.md, "LiH's optimisation, measured"). The idea is the validation-set check of
 statistical learning applied to the natural-gradient step (common practice).
 
@@ -82,8 +82,15 @@ def held_out_check(fit, held_out, shift: float = 1e-3) -> HeldOutCheck:
     of the same state (same parameters), e.g. two draws of the search's sampler with their local
     energies; anything with ``jacobian()``, ``residual()`` and ``complex_output`` works.
     ``shift``: the absolute diagonal shift ε > 0 of :func:`stochastic_reconfiguration`.
-    Returns a :class:`HeldOutCheck`. Costs one SR solve and two n × P products (not jitted
-    over the geometries; call it between training steps, not inside them).
+    Returns a :class:`HeldOutCheck`. Costs one SR solve and two n × P products, plus the two
+    batches' log-derivatives; to compare shifts, :func:`held_out_scan` forms those once.
+    """
+    return held_out_scan(fit, held_out, [shift])[0]
+
+
+def held_out_scan(fit, held_out, shifts) -> list[HeldOutCheck]:
+    """:func:`held_out_check` for each shift in ``shifts`` (a non-empty sequence), with the two
+    batches' log-derivatives formed once. Call it between training steps, not inside them.
 
     For a trained electronic state (``search``, ``state`` of a
     :class:`~psiloom.train.GroundStateSearch`), two batches from independent chains::
@@ -94,10 +101,15 @@ def held_out_check(fit, held_out, shift: float = 1e-3) -> HeldOutCheck:
         log_psi = lambda z: model.apply(state.params, z)
         fit, held = (SampleGeometry(model.apply, state.params, b,
                                     search.hamiltonian.local_energy(log_psi, b)) for b in batches)
-        for eps in (1e-3, 1e-2, 1e-1):
-            print(eps, held_out_check(fit, held, eps).held_out_correlation)
+        for check in held_out_scan(fit, held, [1e-3, 1e-2, 1e-1]):
+            print(check.shift, check.held_out_correlation)
     """
-    eps = finite_real("shift", shift, minimum=0.0)
+    if isinstance(shifts, (str, bytes)) or not hasattr(shifts, "__len__") or not len(shifts):
+        raise ValueError(f"shifts must be a non-empty sequence of positive numbers, got {shifts!r}")
+    values = [finite_real("shift", shift, minimum=0.0) for shift in shifts]
+    if 0.0 in values:
+        raise ValueError("shift=0 leaves S + εI singular whenever samples are fewer than parameters or a "
+                         "parameter does not change log ψ on the batch; use shift > 0")
     if bool(fit.complex_output) != bool(held_out.complex_output):
         raise ValueError(f"fit and held_out differ in complex_output ({fit.complex_output} vs "
                          f"{held_out.complex_output}): they must come from the same trial state")
@@ -109,15 +121,15 @@ def held_out_check(fit, held_out, shift: float = 1e-3) -> HeldOutCheck:
     for name, rows in (("fit", x.shape[0]), ("held_out", x_held.shape[0])):
         if rows < 2:
             raise ValueError(f"{name} has {rows} sample row(s); a held-out check needs at least 2 per batch")
-    if eps == 0.0:
-        raise ValueError("shift=0 leaves S + εI singular whenever samples are fewer than parameters or a "
-                         "parameter does not change log ψ on the batch; use shift > 0")
-    delta, norm, (m_fit, d_fit, c_fit), (m_held, d_held, c_held) = _check(
-        x, residual, x_held, residual_held, jnp.asarray(eps, x.dtype))
-    d_fit, d_held = float(d_fit), float(d_held)
-    return HeldOutCheck(
-        shift=eps, delta=delta, euclidean_length=float(norm), metric_length=float(m_fit),
-        held_out_metric_length=float(m_held), fit_descent=d_fit, held_out_descent=d_held,
-        fit_correlation=float(c_fit), held_out_correlation=float(c_held),
-        generalisation=d_held / d_fit if d_fit != 0.0 else float("nan"),
-    )
+    checks = []
+    for eps in values:
+        delta, norm, (m_fit, d_fit, c_fit), (m_held, d_held, c_held) = _check(
+            x, residual, x_held, residual_held, jnp.asarray(eps, x.dtype))
+        d_fit, d_held = float(d_fit), float(d_held)
+        checks.append(HeldOutCheck(
+            shift=eps, delta=delta, euclidean_length=float(norm), metric_length=float(m_fit),
+            held_out_metric_length=float(m_held), fit_descent=d_fit, held_out_descent=d_held,
+            fit_correlation=float(c_fit), held_out_correlation=float(c_held),
+            generalisation=d_held / d_fit if d_fit != 0.0 else float("nan"),
+        ))
+    return checks
