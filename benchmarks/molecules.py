@@ -149,6 +149,8 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
         if checkpoints:
             os.makedirs(checkpoints, exist_ok=True)
             search.save(os.path.join(checkpoints, f"{name}.ckpt"), state, history)
+        if cfg.get("average_from") is not None:
+            state = state._replace(params=pl.optimize.averaged_parameters(state.opt_state))
         evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
     parts, acceptance = evaluation.components, evaluation.acceptance
     estimate = parts.total
@@ -281,7 +283,10 @@ def _learning_rate(cfg):
 
 def _schedule_text(cfg):
     text = f"{cfg['lr'] / 5}->{cfg['lr']}"
-    return text + (f" then lr/(1+t/{cfg['decay']})" if cfg.get("decay") else "")
+    text += f" then lr/(1+t/{cfg['decay']})" if cfg.get("decay") else ""
+    if cfg.get("average_from") is not None:
+        text += f", evaluated at the mean of the iterates after step {cfg['average_from']} (Polyak-Ruppert)"
+    return text
 
 
 def _search(system, cfg, laplacian, params=None, key=None, model=None):
@@ -291,7 +296,10 @@ def _search(system, cfg, laplacian, params=None, key=None, model=None):
     chains = _chains(cfg)
     sampler = el.ElectronSampler(system, n_chains=chains, sweep=5, burn_in=cfg.get("burn_in", 1), equilibrate=100)
     lr = _learning_rate(cfg)
-    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto"), optax.sgd(lr))
+    # ``average_from`` = s: the evaluation uses the mean of the iterates after update s (Polyak-Ruppert)
+    averaging = [pl.optimize.iterate_average(cfg["average_from"])] if cfg.get("average_from") is not None else []
+    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto"),
+                            optax.sgd(lr), *averaging)
     return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
                                       optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
 

@@ -1,6 +1,7 @@
 """Gradients and preconditioners: energy gradient, sample geometry, stochastic reconfiguration
-(dense, sample-space and matrix-free CG solvers), its held-out check, local-energy clipping."""
+(dense, sample-space and matrix-free CG solvers), its held-out check, local-energy clipping, iterate averaging."""
 
+from psiloom.optimize.averaging import IterateAverageState, averaged_parameters, iterate_average
 from psiloom.optimize.outliers import winsorize_local_energies
 from psiloom.optimize.flatten import conj_complex_leaves, ravel_real, tree_norm
 from psiloom.optimize.gradient import SampleGeometry, energy_gradient
@@ -10,5 +11,5 @@ from psiloom.optimize.sr import SRState, stochastic_reconfiguration
 __all__ = [
     "conj_complex_leaves", "ravel_real", "tree_norm", "SampleGeometry", "energy_gradient",
     "SRState", "stochastic_reconfiguration", "winsorize_local_energies", "HeldOutCheck", "held_out_check",
-    "held_out_scan",
+    "held_out_scan", "IterateAverageState", "iterate_average", "averaged_parameters",
 ]
