@@ -8,9 +8,10 @@ the He line is the headline (target: within 5 mHa in under 2 minutes on two CPU 
 Full mode: backflow multi-determinant states (``neural_slater_jastrow``), Hartree-Fock
 pretraining when PySCF is installed, long runs (first targets: He ≤ 0.1 mHa in ≤ 10 min;
 H₂ ≤ 0.3, Li ≤ 1, LiH ≤ 1.6 mHa in ≤ 60 min; Be ≤ 3 mHa; then He ≤ 0.02 mHa with an error bar
-≤ 0.007 mHa, LiH ≤ 0.3 and Be ≤ 0.5 mHa with bars ≤ a third, each ≤ 60 min). He: 5000 steps
-and 2²⁴ evaluation samples, 0.015 ± 0.007 mHa in 39 min (2026-12-04; 17 min of it the
-evaluation at 16k samples/s). Be and LiH use backflow and Jastrow widths 32 (channels 16) and
+≤ 0.007 mHa, LiH ≤ 0.3 and Be ≤ 0.5 mHa with bars ≤ a third, each ≤ 60 min). He: 7500 steps
+and 2²⁵ evaluation samples, 0.012 ± 0.005 mHa in 57 min (2026-12-05; 30 min of it the
+evaluation at 19k samples/s; every target met; 5000 steps and 2²⁴ samples gave 0.015 ± 0.007
+and 0.022 ± 0.008 mHa in two runs). Be and LiH use backflow and Jastrow widths 32 (channels 16) and
 the additive enveloped orbital term: Be 0.40 ± 0.16 mHa in 56 min (2200 steps, 1.5 × 2²⁰
 samples: every target met; 3000 steps and 2²⁰ samples gave 0.18 ± 0.18 in 68 min; without the
 term and with the former pretraining 0.96 ± 0.19 in 38 min, the default widths with 4000 steps
@@ -91,8 +92,8 @@ QUICK = {
 # full mode: 1024 walkers, one stored sample each per step (a 5-move sweep apart), the learning
 # rate decaying after the warm-up; the evaluation pass continues the same walkers
 FULL = {
-    "He": dict(state="neural", n_det=1, steps=5000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
-               eval_samples=16777216),
+    "He": dict(state="neural", n_det=1, steps=7500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+               eval_samples=33554432),
     "H2": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
                eval_samples=131072),
     "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
