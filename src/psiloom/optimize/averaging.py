@@ -39,12 +39,12 @@ class IterateAverageState(NamedTuple):
     """State of :func:`iterate_average`.
 
     Attributes:
-        count: updates seen so far (int32); the iterate after update t is θ_{t+1}.
-        n_averaged: iterates in the mean (int32; 0 until ``count`` reaches ``start``).
+        n_updates: updates seen so far (int32); the iterate after update t is θ_{t+1}.
+        n_averaged: iterates in the mean (int32; 0 until ``n_updates`` passes ``start``).
         mean: θ̄, a pytree like ``params`` (zeros while ``n_averaged`` is 0).
     """
 
-    count: jax.Array
+    n_updates: jax.Array
     n_averaged: jax.Array
     mean: Any
 
@@ -71,8 +71,8 @@ def iterate_average(start: int = 0) -> optax.GradientTransformation:
     def update(updates, state, params=None):
         if params is None:
             raise ValueError("iterate_average needs the parameters: call update(updates, state, params)")
-        count = state.count + 1
-        averaging = count > start
+        n_updates = state.n_updates + 1
+        averaging = n_updates > start
         n = state.n_averaged + averaging.astype(jnp.int32)
         weight = jnp.where(averaging, 1.0 / jnp.maximum(n, 1), 0.0)
 
@@ -81,7 +81,7 @@ def iterate_average(start: int = 0) -> optax.GradientTransformation:
             return (mean + (new - mean) * weight.astype(jnp.real(mean).dtype)).astype(mean.dtype)
 
         mean = jax.tree_util.tree_map(running_mean, state.mean, params, updates)
-        return updates, IterateAverageState(count, n, mean)
+        return updates, IterateAverageState(n_updates, n, mean)
 
     return optax.GradientTransformation(init, update)
 
@@ -111,6 +111,6 @@ def averaged_parameters(opt_state, *, minimum: int = 1):
     state = found[0]
     n = int(state.n_averaged)
     if n < minimum:
-        raise ValueError(f"averaged_parameters: the mean holds {n} iterate(s) (update count {int(state.count)}), "
+        raise ValueError(f"averaged_parameters: the mean holds {n} iterate(s) (after {int(state.n_updates)} updates), "
                          f"fewer than minimum={minimum}: run more updates past iterate_average's start")
     return state.mean
