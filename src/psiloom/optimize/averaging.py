@@ -4,7 +4,7 @@ Near convergence a stochastic optimiser's iterate θ_t wanders about the optimum
 set by the step size and the noise of the per-step estimates (for VMC: the finite batch of
 samples behind the force and the metric). The mean of the iterates of the last stretch,
 
-    θ̄_T = (1/m) Σ_{t = s}^{T} θ_t ,      θ_t = θ_{t-1} + u_{t-1} ,  m = T - s + 1 ,
+    θ̄_T = (1/m) Σ_{t = s+1}^{T} θ_t ,      θ_t = θ_{t-1} + u_{t-1} ,  m = T - s ,
 
 averages that wander out: for a quadratic loss its excess over the optimum falls as 1/m while the
 last iterate's stays at the level the step size sets (Ruppert 1988, Cornell ORIE TR 781; Polyak &
@@ -22,8 +22,8 @@ training state's ``opt_state``). Optimisation itself is unchanged: the run follo
 search's history reports the energies of θ_t, not of θ̄.
 
 Complex leaves are averaged as complex numbers; the mean is accumulated in the leaves' own dtype
-(use float64 parameters where the average of many nearby iterates must keep digits: in float32 the
-increments (θ_t - θ̄)/m fall below the mean's rounding once m ≳ 10⁴ for relative spreads ~10⁻³).
+(a running mean of many nearby iterates adds increments (θ_t - θ̄)/m that shrink with m: prefer
+float64 parameters for long averaging windows).
 """
 
 from __future__ import annotations
