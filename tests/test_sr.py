@@ -480,3 +480,119 @@ def test_sign_only_phase_drops_zero_rows_and_keeps_the_step(solver):
     # complex parameters ignore the flag (their phase can vary)
     complex_params = jax.tree_util.tree_map(lambda p: p.astype(jnp.complex128), params)
     assert SampleGeometry(model.apply, complex_params, x, e_loc, sign_only_phase=True).complex_output
+
+
+# ----------------------------------------------------------------------------- carried-over direction
+def momentum_updates(solver, batches, shift, momentum, forces=None, **kw):
+    """Outputs of consecutive SR updates with ``momentum`` on the given (X, ε_res) batches."""
+    p = np.asarray(batches[0][0]).shape[1]
+    params = {"w": jnp.zeros(p)}
+    tx = stochastic_reconfiguration(shift, solver, momentum=momentum, **kw)
+    state = tx.init(params)
+    outs = []
+    for k, (x, res) in enumerate(batches):
+        force = np.asarray(x).T @ np.asarray(res) if forces is None else forces[k]
+        out, state = tx.update({"w": 2.0 * jnp.asarray(force)}, state, params, geometry=MatrixGeometry(x, res))
+        outs.append(np.asarray(out["w"]))
+        if momentum > 0:  # the state keeps the output (μ = 0 keeps nothing)
+            np.testing.assert_array_equal(np.asarray(state.previous), outs[-1])
+    return outs
+
+
+@given(
+    shape=st.sampled_from(SHAPES),
+    shift=st.floats(1e-2, 1.0),
+    momentum=st.floats(0.0, 0.999),
+    factor=st.floats(-2.0, 2.0),
+    seed=st.integers(0, 2**16),
+)
+def test_momentum_step_is_the_regularised_least_squares_solution(shape, shift, momentum, factor, seed):
+    # Goldshlager, Abrahamsen & Lin, J. Chem. Phys. 161 (2024): δ_k = argmin ‖X_k φ − ε_k‖² + ε‖φ − μδ_{k−1}‖².
+    # Reference: numpy.linalg.lstsq of the stacked system [X_k; √ε I] φ = [ε_k; √ε μ δ_{k−1}] (no
+    # normal equations), over three batches; with a rescaled force F (an earlier transformation
+    # changed it) the normal-equation form (S + εI) δ = F + εμδ_prev by numpy.linalg.solve.
+    n, p = shape
+    rng = np.random.default_rng(seed)
+    batches = [(rng.normal(size=(n, p)), rng.normal(size=n)) for _ in range(3)]
+    forces = [factor * (x.T @ r) + 0.1 * rng.normal(size=p) for x, r in batches]
+    cond = (max(np.linalg.norm(x, 2) for x, _ in batches) ** 2 + shift) / shift
+    for solver in ("dense", "sample_space", "cg", "auto"):
+        kw = {"tol": 1e-14} if solver == "cg" else {}
+        got = momentum_updates(solver, batches, shift, momentum, **kw)
+        previous = np.zeros(p)
+        for (x, res), delta in zip(batches, got):
+            a = np.vstack([x, np.sqrt(shift) * np.eye(p)])
+            b = np.concatenate([res, np.sqrt(shift) * momentum * previous])
+            ref = np.linalg.lstsq(a, b, rcond=None)[0]
+            tol = 1e-13 * cond + 1e-10 if solver == "cg" else 1e-10
+            assert np.linalg.norm(delta - ref) <= tol * np.linalg.norm(ref) + 1e-12, (solver, momentum)
+            previous = delta
+        got = momentum_updates(solver, batches, shift, momentum, forces=forces, **kw)
+        previous = np.zeros(p)
+        for (x, _), force, delta in zip(batches, forces, got):
+            ref = np.linalg.solve(x.T @ x + shift * np.eye(p), force + shift * momentum * previous)
+            # the sample-space remainder goes through the Woodbury form: rounding ~ u·cond² (as above)
+            tol = 1e-13 * cond + 1e-10 if solver == "cg" else 2.2e-16 * cond ** 2 + 1e-10
+            assert np.linalg.norm(delta - ref) <= tol * np.linalg.norm(ref) + 1e-12, (solver, momentum)
+            previous = delta
+
+
+@pytest.mark.parametrize("solver", ["sample_space", "cg"])
+def test_momentum_fits_the_direction_to_many_batches(solver):
+    # Kaczmarz: block projections onto the solution sets of the batches of a consistent system
+    # A θ* = b converge to θ* (Strohmer & Vershynin, J. Fourier Anal. Appl. 15, 262 (2009);
+    # Needell & Tropp, Linear Algebra Appl. 441, 199 (2014)); with μ < 1 and ε → 0 the expected
+    # fixed point is off by (I − μ(I − P̄))⁻¹(1 − μ)(I − P̄)θ*, P̄ the mean projection (algebra
+    # from the update rule), i.e. O((1 − μ)/λ_min(P̄)). Each batch has 8 rows for 24 parameters,
+    # so a single SR step (μ = 0) is the minimum-norm solution of 8 equations and misses θ* by ~80%.
+    rng = np.random.default_rng(4)
+    n, p, n_batches = 8, 24, 12
+    a = rng.normal(size=(n * n_batches, p))
+    theta = rng.normal(size=p)
+    b = a @ theta
+    order = rng.integers(0, n_batches, size=600)
+    batches = [(a[k * n:(k + 1) * n], b[k * n:(k + 1) * n]) for k in order]
+    kw = {"tol": 1e-14} if solver == "cg" else {}
+    plain = momentum_updates(solver, batches[:1], 1e-9, 0.0, **kw)[-1]
+    carried = momentum_updates(solver, batches, 1e-9, 0.999, **kw)[-1]
+    projections = [np.linalg.pinv(a[k * n:(k + 1) * n]) @ a[k * n:(k + 1) * n] for k in range(n_batches)]
+    p_mean = np.mean(projections, axis=0)
+    bias = (1 - 0.999) / np.linalg.eigvalsh(p_mean).min()
+    assert np.linalg.norm(plain - theta) > 0.5 * np.linalg.norm(theta)
+    assert np.linalg.norm(carried - theta) < 3 * bias * np.linalg.norm(theta)
+
+
+@given(bad=st.sampled_from([-0.1, 1.0, 1.5, float("nan"), float("inf"), "0.5", True]))
+def test_bad_momentum_rejected(bad):
+    with pytest.raises(ValueError, match="momentum"):
+        stochastic_reconfiguration(1e-3, momentum=bad)
+
+
+def test_momentum_with_a_relative_shift_rejected():
+    with pytest.raises(ValueError, match="momentum"):
+        stochastic_reconfiguration(1e-3, momentum=0.9, relative_shift=1e-3)
+
+
+def test_momentum_direction_survives_a_checkpoint(tmp_path):
+    # the carried-over direction lives in the optimiser state: a resumed search continues identically
+    from psiloom.spaces import SpinSpace
+    from psiloom.states import RBM
+
+    lattice = pl.lattices.chain(6)
+    sampler = pl.sampling.MetropolisChains(SpinSpace(6, magnetisation=0), n_chains=8, bonds=lattice.bonds, burn_in=1)
+    optimizer = optax.chain(stochastic_reconfiguration(shift=1e-2, momentum=0.9), optax.sgd(0.05))
+    search = pl.train.GroundStateSearch(RBM(alpha=1.0, init_scale=0.05), pl.operators.heisenberg(lattice),
+                                        sampler, optimizer, n_samples=64)
+    state = search.init(jax.random.PRNGKey(0))
+    for _ in range(3):
+        state, _ = search.step(state)
+    previous = np.asarray(state.opt_state[0].previous)
+    assert np.linalg.norm(previous) > 0
+    path = str(tmp_path / "momentum.ckpt")
+    search.save(path, state)
+    restored, _ = search.resume(path)
+    np.testing.assert_array_equal(np.asarray(restored.opt_state[0].previous), previous)
+    a, _ = search.step(state)
+    b, _ = search.step(restored)
+    for x, y in zip(jax.tree_util.tree_leaves(a.params), jax.tree_util.tree_leaves(b.params)):
+        np.testing.assert_array_equal(np.asarray(x), np.asarray(y))

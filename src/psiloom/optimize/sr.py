@@ -62,6 +62,22 @@ the Fubini-Study metric; the direction is unchanged). To first order the step mo
 does. It matters when a chain first reaches a region the state weights enormously and its local
 energies dwarf the others' (a measured case is in the documentation's benchmark notes).
 
+Carried-over direction (``momentum``, optional): with μ ∈ [0, 1) each step solves the regularised
+least-squares problem of Goldshlager, Abrahamsen & Lin (J. Chem. Phys. 161, 2024), whose
+regulariser pulls toward the previous step's direction δ_prev instead of toward zero,
+
+    δ = argmin_φ ‖X φ − ε_res‖² + ε ‖φ − μ δ_prev‖²  =  (S + ε I)⁻¹ (F + ε μ δ_prev)
+      = μ δ_prev + (S + ε I)⁻¹ (F − μ S δ_prev) .
+
+The batch's n rows of X fix δ in the directions they resolve (there μ δ_prev is refitted, not
+added: this is not heavy-ball momentum), while in the directions they do not resolve the earlier
+batches' solution carries over with weight μ, so over about 1/(1 − μ) steps the direction is
+fitted to many batches' samples at one batch's cost (a randomised Kaczmarz iteration, as the
+paper shows). The last computation is done as the solvers' own: the residual becomes
+ε_res − μ X δ_prev (sample space) or the force F − μ S δ_prev (dense, CG). δ_prev is the
+transformation's previous output (after the trust radius, before the learning rate), kept in the
+state; μ = 0 is plain SR. Only the absolute shift is available with it.
+
 Memory guard (``memory_limit``): ``"dense"`` and ``"sample_space"`` form X (n×P, 2n×P for complex
 ψ; ``chunk`` does not bound it: the chunks are concatenated), next to the per-sample
 log-derivatives O it is built from, and the P×P or n×n matrix with its Cholesky factor. Before
@@ -98,7 +114,7 @@ SOLVERS = ("dense", "sample_space", "cg", "auto")
 class SRState(NamedTuple):
     """Optax state of :func:`stochastic_reconfiguration`: the update count and the CG warm start."""
     count: jax.Array  # type: ignore[assignment]  # number of updates made (Optax's name; shadows tuple.count)
-    previous: Any = None  # last δ (real vector) when the CG solver warm-starts, else None
+    previous: Any = None  # last δ (real vector) for the CG warm start or ``momentum``, else None
 
 
 def _as_schedule(value, name) -> Callable:
@@ -241,6 +257,7 @@ def stochastic_reconfiguration(
     maxiter: int | None = None,
     warm_start: bool = False,
     max_metric_norm: float | None = None,
+    momentum: float = 0.0,
     memory_limit: float | None = None,
 ) -> optax.GradientTransformationExtraArgs:
     """Precondition the energy gradient with (S + ε I + ε_rel diag S)⁻¹ (see module docstring).
@@ -255,6 +272,8 @@ def stochastic_reconfiguration(
         warm_start: start CG from the previous δ (stored in the state).
         max_metric_norm: optional trust radius r > 0: shorten δ to ‖δ‖_S = (δᵀSδ)^{1/2} ≤ r
             (module docstring); ``None`` leaves δ as solved.
+        momentum: weight μ ∈ [0, 1) of the previous direction in the regulariser ε‖δ − μδ_prev‖²
+            (module docstring, "Carried-over direction"); 0 (default) is plain SR.
         memory_limit: bytes the solver's matrices may take (module docstring, "Memory guard");
             ``None``: half of the physical memory; ``float("inf")``: no check. A solver above
             it raises ``ValueError`` at trace time (``"auto"`` picks one that fits).
@@ -273,7 +292,13 @@ def stochastic_reconfiguration(
     atol = finite_real("atol", atol, minimum=0.0)
     if maxiter is not None:
         maxiter = positive_int("maxiter", maxiter)
-    use_previous = warm_start and solver == "cg"
+    momentum = finite_real("momentum", momentum, minimum=0.0)
+    if not momentum < 1.0:
+        raise ValueError(f"momentum must lie in [0, 1), got {momentum!r}")
+    if momentum > 0 and rel_fn is not None:
+        raise ValueError("momentum needs a scalar shift ε (the regulariser ε‖δ − μδ_prev‖²); "
+                         "leave relative_shift=None")
+    use_previous = (warm_start and solver == "cg") or momentum > 0
     if max_metric_norm is not None:
         max_metric_norm = positive_real("max_metric_norm", max_metric_norm)
 
@@ -307,12 +332,18 @@ def stochastic_reconfiguration(
         if kind == "cg":
             s_op = geometry.s_operator()
             matvec = lambda v: s_op(v) + eps * v
-            x0 = previous if use_previous else None
+            if momentum > 0:  # solve for δ − μδ_prev: force F − μ S δ_prev
+                force = force - momentum * s_op(previous)
+            x0 = previous if warm_start else None
             delta, _ = jax.scipy.sparse.linalg.cg(matvec, force, x0=x0, tol=tol, atol=atol, maxiter=maxiter)
-            if use_previous:
-                previous = delta
         else:
             x = geometry.jacobian()
+            residual = geometry.residual() if kind == "sample_space" else None
+            if momentum > 0:  # solve for δ − μδ_prev: residual ε_res − μXδ_prev, force Xᵀ(that) + r
+                seen = momentum * (x @ previous)
+                force = force - x.T @ seen
+                if residual is not None:
+                    residual = residual - seen
             if rel_fn is not None:
                 lam = eps + jnp.asarray(rel_fn(state.count), force.dtype) * sample_sum(x * x)
             else:
@@ -320,14 +351,18 @@ def stochastic_reconfiguration(
             if kind == "dense":
                 delta = _solve_dense(x, force, lam)
             elif rel_fn is None:
-                delta = _solve_sample_space_scalar(x, geometry.residual(), force, eps)
+                delta = _solve_sample_space_scalar(x, residual, force, eps)
             else:
-                delta = _solve_sample_space_diag(x, geometry.residual(), force, lam)
+                delta = _solve_sample_space_diag(x, residual, force, lam)
+        if momentum > 0:
+            delta = delta + momentum * previous
         if max_metric_norm is not None:
             # ‖δ‖_S² = δᵀ Xᵀ X δ, from X when it is formed, else one application of S
             norm2 = jnp.vdot(delta, s_op(delta)) if s_op is not None else sample_sum((x @ delta) ** 2)
             norm = jnp.sqrt(jnp.maximum(jnp.real(norm2), 0.0))
             delta = delta * jnp.minimum(1.0, max_metric_norm / jnp.maximum(norm, jnp.finfo(norm.dtype).tiny))
+        if use_previous:
+            previous = delta
         return unravel(delta.astype(g.dtype)), SRState(count=state.count + 1, previous=previous)
 
     return optax.GradientTransformationExtraArgs(init, update)
