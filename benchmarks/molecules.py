@@ -152,6 +152,11 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
             search.save(os.path.join(checkpoints, f"{name}.ckpt"), state, history)
         if cfg.get("average_from") is not None:
             state = state._replace(params=pl.optimize.averaged_parameters(state.opt_state))
+        if cfg.get("select_window") is not None:
+            chosen = pl.optimize.selection.find_selection_state(state.opt_state)
+            progress(f"{name}: evaluating the window ending at update {int(chosen.best_end)} "
+                     f"(mean training variance {float(chosen.best_variance):.5f})")
+            state = state._replace(params=pl.optimize.selected_parameters(state.opt_state))
         evaluation = el.evaluation_pass(search, state, cfg["eval_samples"], burn_in_sweeps=10)
     parts, acceptance = evaluation.components, evaluation.acceptance
     estimate = parts.total
@@ -287,6 +292,10 @@ def _schedule_text(cfg):
     text += f" then lr/(1+t/{cfg['decay']})" if cfg.get("decay") else ""
     if cfg.get("average_from") is not None:
         text += f", evaluated at the mean of the iterates after step {cfg['average_from']} (Polyak-Ruppert)"
+    if cfg.get("select_window") is not None:
+        w, s0 = cfg["select_window"]
+        text += (f", evaluated at the mean of the {w}-step window after step {s0} with the lowest mean local-energy "
+                 "variance")
     return text
 
 
@@ -299,6 +308,10 @@ def _search(system, cfg, laplacian, params=None, key=None, model=None):
     lr = _learning_rate(cfg)
     # ``average_from`` = s: the evaluation uses the mean of the iterates after update s (Polyak-Ruppert)
     averaging = [pl.optimize.iterate_average(cfg["average_from"])] if cfg.get("average_from") is not None else []
+    # ``select_window`` = (w, s): the evaluation uses the mean of the w-update window after update s
+    # with the lowest mean local-energy variance (psiloom.optimize.lowest_variance_window)
+    if cfg.get("select_window") is not None:
+        averaging.append(pl.optimize.lowest_variance_window(*cfg["select_window"]))
     optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto"),
                             optax.sgd(lr), *averaging)
     return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
