@@ -51,7 +51,8 @@ class WindowSelectionState(NamedTuple):
         n_windows: completed windows (int32).
         best_params: the mean parameters of the completed window with the lowest mean variance
             (zeros while ``n_windows`` is 0).
-        best_variance: that window's mean variance (+inf while ``n_windows`` is 0).
+        best_variance: that window's mean variance (0 while ``n_windows`` is 0: the state stays
+            finite, as the training loop's non-finite guard requires).
         best_end: the number of updates at the end of that window (int32; 0 while none).
     """
 
@@ -94,7 +95,7 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
         return WindowSelectionState(
             n_updates=jnp.zeros((), jnp.int32), in_window=jnp.zeros((), jnp.int32), window_params=zeros,
             window_variance=jnp.zeros(()), n_windows=jnp.zeros((), jnp.int32), best_params=zeros,
-            best_variance=jnp.full((), jnp.inf), best_end=jnp.zeros((), jnp.int32))
+            best_variance=jnp.zeros(()), best_end=jnp.zeros((), jnp.int32))
 
     def update(updates, state, params=None, *, geometry=None, **extra):
         del extra
@@ -114,7 +115,7 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
         window_params = jax.tree_util.tree_map(running_mean, state.window_params, params)
         window_variance = state.window_variance + (variance - state.window_variance) * weight
         closes = recording & (k == window)
-        better = closes & (window_variance < state.best_variance)
+        better = closes & ((state.n_windows == 0) | (window_variance < state.best_variance))
         best_params = jax.tree_util.tree_map(lambda b, w: jnp.where(better, w, b), state.best_params, window_params)
         new_state = WindowSelectionState(
             n_updates=n_updates,
