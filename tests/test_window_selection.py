@@ -128,7 +128,7 @@ def test_in_a_search_the_choice_matches_the_history_and_survives_a_checkpoint(tm
         expected, _ = numpy_selection(np.array([r[i] for r in recorded]), np.array(variances), 3, 1)
         np.testing.assert_allclose(np.asarray(leaf), expected, rtol=1e-10, atol=1e-12)
     # the guarded loop accepts the state (every leaf finite from the start) and keeps selecting
-    longer, _ = search.run(6, state=state)
+    longer, _ = search.run(16, state=state, progress=False)
     assert int(pl.optimize.selection.find_selection_state(longer.opt_state).n_windows) == 5
     path = str(tmp_path / "selected.ckpt")
     search.save(path, state)
