@@ -52,8 +52,10 @@ communicates as follows (read off the compiled programs on 4 simulated devices):
 * ``"cg"``: per iteration, the jvp is local, the centring all-reduces 1-2 block means and the vjp
   all-reduces one P-vector (Xᵀu summed over devices); the CG vector updates are replicated.
 
-The trust radius and the relative shift add one all-reduce each (a scalar, a P-vector). All three
-give the same δ on any number of devices up to the order of additions (``tests/test_parallel.py``).
+The trust radius and the relative shift add one all-reduce each (a scalar, a P-vector), the
+carried-over direction one more P-vector (Xᵀ X δ_prev). The three solvers give the same δ on
+any number of devices up to the order of additions (``tests/test_parallel.py``; the carried-over
+direction is not among the cases tested there).
 
 Trust radius (``max_metric_norm``, optional): a step whose length in the metric,
 ‖δ‖_S = (δᵀ S δ)^{1/2}, exceeds a bound r is shortened to it, δ ← δ · r/‖δ‖_S (a trust region in
@@ -112,7 +114,8 @@ SOLVERS = ("dense", "sample_space", "cg", "auto")
 
 
 class SRState(NamedTuple):
-    """Optax state of :func:`stochastic_reconfiguration`: the update count and the CG warm start."""
+    """Optax state of :func:`stochastic_reconfiguration`: the update count and the previous δ
+    (for the CG warm start or the carried-over direction)."""
     count: jax.Array  # type: ignore[assignment]  # number of updates made (Optax's name; shadows tuple.count)
     previous: Any = None  # last δ (real vector) for the CG warm start or ``momentum``, else None
 
