@@ -55,7 +55,11 @@ def test_default_run_and_evaluation_compile_the_step_once():
         logger.removeHandler(handler)
     assert handler.names.count("jit(multi)") == 1, handler.names
     assert not any("lambda" in name for name in handler.names), handler.names  # no evaluation program
-    assert [m._cache_size() for m in search._multi.values()] == [1] and not search._programs
+    # one visit program and at most one dispatch-cache entry for it: the compile log above is the
+    # count that matters; the entry itself lives in JAX's process-wide LRU dispatch cache, which
+    # late in a long test process can hold none (seen once in a clean-clone run, not reproduced alone)
+    assert len(search._multi) == 1 and [m._cache_size() for m in search._multi.values()][0] <= 1
+    assert not search._programs
 
 
 @pytest.fixture(scope="module")
