@@ -49,6 +49,30 @@ class IterateAverageState(NamedTuple):
     mean: Any
 
 
+def count_argument(owner: str, name: str, value, minimum: int) -> int:
+    """``value`` if it is a Python integer ≥ ``minimum``, else ``ValueError`` naming ``owner`` and ``name``."""
+    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+        raise ValueError(f"{owner}: {name} must be an integer ≥ {minimum}, got {value!r}")
+    return value
+
+
+def running_mean(mean, new, weight):
+    """mean + (new − mean)·weight leaf by leaf, in each leaf's own dtype (complex leaves too)."""
+    return jax.tree_util.tree_map(
+        lambda m, x: (m + (x - m) * weight.astype(jnp.real(m).dtype)).astype(m.dtype), mean, new)
+
+
+def find_unique_state(opt_state, state_type: type, transformation: str):
+    """The one node of type ``state_type`` in an optimiser state (at any depth of a chain)."""
+    is_state = lambda node: isinstance(node, state_type)
+    found = [node for node in jax.tree_util.tree_leaves(opt_state, is_leaf=is_state) if is_state(node)]
+    if len(found) != 1:
+        name = transformation.split("(")[0]
+        raise ValueError(f"the optimiser state holds {len(found)} {name} states; expected exactly one "
+                         f"(chain {transformation} last)")
+    return found[0]
+
+
 def iterate_average(start: int = 0) -> optax.GradientTransformation:
     """Keep the running mean of the iterates produced from update number ``start`` on.
 
@@ -61,8 +85,7 @@ def iterate_average(start: int = 0) -> optax.GradientTransformation:
         a transformation whose ``update(updates, state, params)`` returns ``updates`` unchanged
         (``params`` is required: the mean is of ``params + updates``). Chain it last.
     """
-    if isinstance(start, bool) or not isinstance(start, int) or start < 0:
-        raise ValueError(f"iterate_average: start must be an integer ≥ 0, got {start!r}")
+    start = count_argument("iterate_average", "start", start, 0)
 
     def init(params):
         zeros = jax.tree_util.tree_map(jnp.zeros_like, params)
@@ -76,18 +99,10 @@ def iterate_average(start: int = 0) -> optax.GradientTransformation:
         n = state.n_averaged + averaging.astype(jnp.int32)
         weight = jnp.where(averaging, 1.0 / jnp.maximum(n, 1), 0.0)
 
-        def running_mean(mean, p, u):
-            new = p + u
-            return (mean + (new - mean) * weight.astype(jnp.real(mean).dtype)).astype(mean.dtype)
-
-        mean = jax.tree_util.tree_map(running_mean, state.mean, params, updates)
+        mean = running_mean(state.mean, jax.tree_util.tree_map(jnp.add, params, updates), weight)
         return updates, IterateAverageState(n_updates, n, mean)
 
     return optax.GradientTransformation(init, update)
-
-
-def _is_average_state(node) -> bool:
-    return isinstance(node, IterateAverageState)
 
 
 def averaged_parameters(opt_state, *, minimum: int = 1):
@@ -101,14 +116,8 @@ def averaged_parameters(opt_state, *, minimum: int = 1):
     Returns:
         the mean parameters (a pytree like ``params``).
     """
-    if isinstance(minimum, bool) or not isinstance(minimum, int) or minimum < 1:
-        raise ValueError(f"averaged_parameters: minimum must be an integer ≥ 1, got {minimum!r}")
-    found = [node for node in jax.tree_util.tree_leaves(opt_state, is_leaf=_is_average_state)
-             if _is_average_state(node)]
-    if len(found) != 1:
-        raise ValueError(f"averaged_parameters: the optimiser state holds {len(found)} iterate_average states; "
-                         "expected exactly one (chain iterate_average(start) last)")
-    state = found[0]
+    minimum = count_argument("averaged_parameters", "minimum", minimum, 1)
+    state = find_unique_state(opt_state, IterateAverageState, "iterate_average(start)")
     n = int(state.n_averaged)
     if n < minimum:
         raise ValueError(f"averaged_parameters: the mean holds {n} iterate(s) (after {int(state.n_updates)} updates), "

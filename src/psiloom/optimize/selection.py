@@ -39,6 +39,8 @@ import jax
 import jax.numpy as jnp
 import optax
 
+from psiloom.optimize.averaging import count_argument, find_unique_state, running_mean
+
 
 class WindowSelectionState(NamedTuple):
     """State of :func:`lowest_variance_window`.
@@ -46,8 +48,9 @@ class WindowSelectionState(NamedTuple):
     Attributes:
         n_updates: updates seen so far (int32).
         in_window: updates recorded in the current window (int32, < ``window``).
-        window_params: running mean of θ_t over the current window (pytree like ``params``).
-        window_variance: running mean of σ²(θ_t) over the current window (float).
+        window_params: running mean of θ_t over the current window (pytree like ``params``;
+            after a window closes it holds that window's mean until the next update overwrites it).
+        window_variance: running mean of σ²(θ_t) over the current window (float; likewise).
         n_windows: completed windows (int32).
         best_params: the mean parameters of the completed window with the lowest mean variance
             (zeros while ``n_windows`` is 0).
@@ -66,12 +69,6 @@ class WindowSelectionState(NamedTuple):
     best_end: jax.Array
 
 
-def _check_count(name: str, value, minimum: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-        raise ValueError(f"lowest_variance_window: {name} must be an integer ≥ {minimum}, got {value!r}")
-    return value
-
-
 def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransformationExtraArgs:
     """Keep the mean parameters of the ``window``-update stretch with the lowest mean variance.
 
@@ -87,8 +84,8 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
         and the keyword ``geometry`` (a :class:`~psiloom.optimize.SampleGeometry`, which the
         training step passes) are required. Read the choice with :func:`selected_parameters`.
     """
-    window = _check_count("window", window, 1)
-    start = _check_count("start", start, 0)
+    window = count_argument("lowest_variance_window", "window", window, 1)
+    start = count_argument("lowest_variance_window", "start", start, 0)
 
     def init(params):
         zeros = jax.tree_util.tree_map(jnp.zeros_like, params)
@@ -109,10 +106,7 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
         k = state.in_window + recording.astype(jnp.int32)  # θ_t's index in its window (1-based)
         weight = jnp.where(recording, 1.0 / jnp.maximum(k, 1), 0.0)
 
-        def running_mean(mean, p):
-            return (mean + (p - mean) * weight.astype(jnp.real(mean).dtype)).astype(mean.dtype)
-
-        window_params = jax.tree_util.tree_map(running_mean, state.window_params, params)
+        window_params = running_mean(state.window_params, params, weight)
         window_variance = state.window_variance + (variance - state.window_variance) * weight
         closes = recording & (k == window)
         better = closes & ((state.n_windows == 0) | (window_variance < state.best_variance))
@@ -121,7 +115,7 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
             n_updates=n_updates,
             in_window=jnp.where(closes, 0, k),
             window_params=window_params,  # the next window's first weight is 1: no reset needed
-            window_variance=jnp.where(closes, 0.0, window_variance),
+            window_variance=window_variance,
             n_windows=state.n_windows + closes.astype(jnp.int32),
             best_params=best_params,
             best_variance=jnp.where(better, window_variance, state.best_variance),
@@ -132,18 +126,9 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
     return optax.GradientTransformationExtraArgs(init, update)
 
 
-def _is_selection_state(node) -> bool:
-    return isinstance(node, WindowSelectionState)
-
-
 def find_selection_state(opt_state) -> WindowSelectionState:
     """The one :class:`WindowSelectionState` in an optimiser state (at any depth of a chain)."""
-    found = [node for node in jax.tree_util.tree_leaves(opt_state, is_leaf=_is_selection_state)
-             if _is_selection_state(node)]
-    if len(found) != 1:
-        raise ValueError(f"the optimiser state holds {len(found)} lowest_variance_window states; expected exactly "
-                         "one (chain lowest_variance_window(window, start) last)")
-    return found[0]
+    return find_unique_state(opt_state, WindowSelectionState, "lowest_variance_window(window, start)")
 
 
 def selected_parameters(opt_state):
