@@ -1,4 +1,5 @@
-"""The persistent compilation cache: entries appear on disk, and a second process reuses them."""
+"""The persistent compilation cache: entries appear on disk, and a second process reuses them;
+`psiloom.testing.compilations` counts compilations from JAX's compile log."""
 
 import json
 import os
@@ -57,3 +58,23 @@ def test_bad_directory(tmp_path):
 def test_default_dir_follows_xdg(monkeypatch, tmp_path):
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path))
     assert default_cache_dir() == str(tmp_path / "psiloom")
+
+
+def test_compilations_counts_each_new_shape_once():
+    import jax
+    import jax.numpy as jnp
+
+    from psiloom.testing import compilations
+
+    def doubled(x):
+        return 2.0 * x
+
+    f = jax.jit(doubled)
+    with compilations() as names:
+        f(jnp.ones(3))
+        f(jnp.ones(3))  # served from the in-memory cache: no compilation
+        f(jnp.ones(4))  # a new shape: a second compilation
+    assert names.count("jit(doubled)") == 2, names
+    with compilations() as names:
+        f(jnp.ones(4))
+    assert "jit(doubled)" not in names, names

@@ -6,7 +6,6 @@ its stopping rule is checked on the uniform state of a Heisenberg ring, whose lo
 and variance follow exactly from the Hamiltonian's matrix (⟨u|H|u⟩ and ⟨u|H²|u⟩ − ⟨u|H|u⟩²).
 """
 
-import logging
 import warnings
 
 import jax
@@ -16,6 +15,7 @@ import pytest
 
 import psiloom as pl
 from psiloom.stats import Estimate, combine_batches
+from psiloom.testing import compilations
 
 L = 6
 
@@ -31,34 +31,16 @@ def make(init_scale: float = 0.01, n_samples: int = 128):
     return search, hamiltonian, space
 
 
-class _Names(logging.Handler):
-    def __init__(self):
-        super().__init__(logging.DEBUG)
-        self.names = []
-
-    def emit(self, record):
-        message = record.getMessage()
-        if message.startswith("Finished XLA compilation of "):
-            self.names.append(message.split(" of ")[1].split(" in ")[0])
-
-
 def test_default_run_and_evaluation_compile_the_step_once():
     search, _, _ = make()
-    handler = _Names()
-    logger = logging.getLogger("jax")
-    logger.addHandler(handler)
-    try:
-        with jax.log_compiles():
-            state, _ = search.run(5, key=jax.random.PRNGKey(0), progress=False, steps_per_visit=3)
-            search.evaluate(state, target_error=1.0, max_samples=1024)
-    finally:
-        logger.removeHandler(handler)
-    assert handler.names.count("jit(multi)") == 1, handler.names
-    assert not any("lambda" in name for name in handler.names), handler.names  # no evaluation program
-    # one visit program and at most one dispatch-cache entry for it: the compile log above is the
-    # count that matters; the entry itself lives in JAX's process-wide LRU dispatch cache, which
-    # late in a long test process can hold none (seen once in a clean-clone run, not reproduced alone)
-    assert len(search._multi) == 1 and [m._cache_size() for m in search._multi.values()][0] <= 1
+    with compilations() as names:
+        state, _ = search.run(5, key=jax.random.PRNGKey(0), progress=False, steps_per_visit=3)
+        search.evaluate(state, target_error=1.0, max_samples=1024)
+    assert names.count("jit(multi)") == 1, names
+    assert not any("lambda" in name for name in names), names  # no evaluation program
+    # one visit program; the compile log counts its compilations (the size of its dispatch cache,
+    # JAX's process-wide LRU, can be 0 late in a long test process: seen once in a clean-clone run)
+    assert len(search._multi) == 1
     assert not search._programs
 
 

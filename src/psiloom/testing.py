@@ -16,6 +16,11 @@ Comparison:
 * :func:`trees_equal` — two pytrees with the same leaves bit for bit (NaN equal to NaN), e.g. a
   resumed run against an uninterrupted one.
 
+Compilation counts:
+
+* :func:`compilations` — a context manager collecting the names of the programs XLA compiles
+  inside it (from JAX's compile log), to test that a loop compiles its step once.
+
 Fault injection:
 
 * :func:`sgd_failing_at` — plain SGD whose update turns NaN at a chosen step, to test that a
@@ -29,6 +34,8 @@ projection vanishes) only need a negligible image amplitude too.
 
 from __future__ import annotations
 
+import contextlib
+import logging
 from typing import Any, cast
 
 import numpy as np
@@ -36,7 +43,7 @@ import numpy as np
 from psiloom._validation import nonnegative_int, positive_int
 
 __all__ = ["configurations", "group_elements", "assert_invariant", "assert_covariant", "log_amplitudes",
-           "trees_equal", "sgd_failing_at", "fail_at_step"]
+           "trees_equal", "compilations", "sgd_failing_at", "fail_at_step"]
 
 
 def _hypothesis():
@@ -161,6 +168,45 @@ def trees_equal(a, b) -> bool:
 def _leaf_equal(x: np.ndarray, y: np.ndarray) -> bool:
     inexact = np.issubdtype(x.dtype, np.inexact) and np.issubdtype(y.dtype, np.inexact)
     return bool(np.array_equal(x, y, equal_nan=inexact))
+
+
+class _CompileNames(logging.Handler):
+    PREFIX = "Finished XLA compilation of "
+
+    def __init__(self, names: list[str]):
+        super().__init__(logging.DEBUG)
+        self.names = names
+
+    def emit(self, record):
+        message = record.getMessage()
+        if message.startswith(self.PREFIX):
+            self.names.append(message[len(self.PREFIX):].split(" in ")[0])
+
+
+@contextlib.contextmanager
+def compilations():
+    """Collect the names of the programs XLA compiles inside the ``with`` block, in order.
+
+    Yields a list that fills as programs compile, e.g. ``"jit(multi)"`` for a jitted function
+    ``multi``; a program served from the in-memory cache adds nothing. It reads JAX's compile
+    log (``jax.log_compiles``), so it counts compilations exactly, unlike the size of a jitted
+    function's dispatch cache, which JAX may trim at any time. Example::
+
+        with compilations() as names:
+            search.run(9, key=key, progress=False)
+        assert names.count("jit(multi)") == 1
+    """
+    import jax
+
+    names: list[str] = []
+    handler = _CompileNames(names)
+    logger = logging.getLogger("jax")
+    logger.addHandler(handler)
+    try:
+        with jax.log_compiles():
+            yield names
+    finally:
+        logger.removeHandler(handler)
 
 
 def sgd_failing_at(learning_rate: float = 0.05):
