@@ -188,9 +188,10 @@ def compilations():
     """Collect the names of the programs XLA compiles inside the ``with`` block, in order.
 
     Yields a list that fills as programs compile, e.g. ``"jit(multi)"`` for a jitted function
-    ``multi``; a program served from the in-memory cache adds nothing. It reads JAX's compile
-    log (``jax.log_compiles``), so it counts compilations exactly, unlike the size of a jitted
-    function's dispatch cache, which JAX may trim at any time. Example::
+    ``multi``; a program loaded from a persistent compilation cache counts too, one served from
+    the in-memory cache adds nothing. It reads JAX's compile log (``jax.log_compiles``), so it
+    counts compilations exactly, unlike the size of a jitted function's dispatch cache, which
+    JAX may trim at any time. Example::
 
         with compilations() as names:
             search.run(9, key=key, progress=False)
