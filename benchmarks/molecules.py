@@ -109,7 +109,7 @@ PROPERTY_SAMPLES = 2 ** 19  # evaluation samples the density profiles and the di
 
 
 # optional sizes and options of the neural state in a config (defaults: those of el.neural_slater_jastrow)
-SIZE_KEYS = ("width", "channels", "jastrow_width", "envelope_term", "cusp_map", "radial_terms")
+SIZE_KEYS = ("width", "channels", "layers", "jastrow_width", "envelope_term", "cusp_map", "radial_terms")
 
 
 def build_state(system, cfg):
