@@ -148,6 +148,10 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
         search = _search(system, cfg, laplacian, model=model)
         state = search.init(key, params=params)
         state, history = search.run(cfg["steps"], state=state, progress=progress, print_every=50)
+        if cfg.get("late_steps"):  # a last stretch with more samples per step (same walkers)
+            search = _search(system, dict(cfg, n_samples=cfg["late_samples"]), laplacian, model=model)
+            state, history = search.run(cfg["steps"] + cfg["late_steps"], state=state, history=history,
+                                        progress=progress, print_every=50)
         if checkpoints:
             os.makedirs(checkpoints, exist_ok=True)
             search.save(os.path.join(checkpoints, f"{name}.ckpt"), state, history)
@@ -165,7 +169,7 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
     parts, acceptance = evaluation.components, evaluation.acceptance
     estimate = parts.total
     energy, error = float(np.real(estimate.mean)), float(estimate.error)
-    step_seconds = np.median(history["seconds"][1:]) if len(history) > 1 else float("nan")
+    step_seconds = np.median(history["seconds"][1:cfg["steps"]]) if len(history) > 1 else float("nan")
     progress(f"{name}: E = {energy:.6f} ± {error:.6f} (exact {exact}, error {1e3 * (energy - exact):+.2f} mHa) "
              f"in {timer.seconds:.0f} s")
     n_params = search.n_parameters(state)
@@ -186,6 +190,8 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
         "rel_error": relative_error(energy, exact), "abs_error_mha": abs(energy - exact) * 1e3,
         "seconds": timer.seconds, "steps": cfg["steps"], "samples_per_step": cfg["n_samples"],
         "walkers": _chains(cfg), "n_params": n_params,
+        **({"late_steps": cfg["late_steps"], "late_samples_per_step": cfg["late_samples"]}
+           if cfg.get("late_steps") else {}),
     })
     throughput = emit({
         "benchmark": "molecules", "system": system.describe(), "method": {"trial_state": method["trial_state"],
@@ -294,6 +300,8 @@ def _learning_rate(cfg):
 def _schedule_text(cfg):
     text = f"{cfg['lr'] / 5}->{cfg['lr']}"
     text += f" then lr/(1+t/{cfg['decay']})" if cfg.get("decay") else ""
+    if cfg.get("gram_dtype"):
+        text += f", Gram matrix in {cfg['gram_dtype']} refined {cfg.get('refinement_steps', 2)}x"
     if cfg.get("average_from") is not None:
         text += f", evaluated at the mean of the iterates after step {cfg['average_from']} (Polyak-Ruppert)"
     if cfg.get("select_window") is not None:
@@ -316,7 +324,10 @@ def _search(system, cfg, laplacian, params=None, key=None, model=None):
     # with the lowest mean local-energy variance (psiloom.optimize.lowest_variance_window)
     if cfg.get("select_window") is not None:
         averaging.append(pl.optimize.lowest_variance_window(*cfg["select_window"]))
-    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto"),
+    # ``gram_dtype`` (e.g. "float32"): the SR Gram product in that precision, each solve refined
+    # ``refinement_steps`` times against the float64 operator (psiloom.optimize.sr module docstring)
+    solve = {k: cfg[k] for k in ("gram_dtype", "refinement_steps") if k in cfg}
+    optimizer = optax.chain(pl.optimize.stochastic_reconfiguration(shift=cfg.get("shift", 1e-3), solver="auto", **solve),
                             optax.sgd(lr), *averaging)
     return pl.train.GroundStateSearch(model, el.CoulombHamiltonian(system, laplacian=laplacian), sampler,
                                       optimizer, n_samples=cfg["n_samples"], winsorize=5.0)
