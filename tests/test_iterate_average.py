@@ -148,3 +148,14 @@ def test_in_a_search_the_mean_is_of_the_trained_iterates_and_survives_a_checkpoi
     restored, _ = search.resume(path)
     for a, b in zip(jax.tree_util.tree_leaves(averaged_parameters(restored.opt_state)), mean):
         np.testing.assert_array_equal(np.asarray(a), np.asarray(b))
+
+
+def test_numpy_integer_counts_are_accepted():
+    # counts read from arrays or configs arrive as NumPy integers; they mean the same as Python ints
+    from psiloom.optimize import lowest_variance_window
+
+    assert isinstance(iterate_average(np.int64(3)), type(iterate_average(3)))
+    state = iterate_average(np.int32(0)).init(jnp.ones(2))
+    with pytest.raises(ValueError, match="holds 0 iterate"):  # accepted as a count; nothing averaged yet
+        averaged_parameters(state, minimum=np.int64(1))
+    lowest_variance_window(np.int64(4), start=np.int16(2))

@@ -596,3 +596,60 @@ def test_momentum_direction_survives_a_checkpoint(tmp_path):
     b, _ = search.step(restored)
     for x, y in zip(jax.tree_util.tree_leaves(a.params), jax.tree_util.tree_leaves(b.params)):
         np.testing.assert_array_equal(np.asarray(x), np.asarray(y))
+
+
+# ----------------------------------------------------------------------------- Gram product and its precision
+@given(n=st.integers(1, 23), p=st.integers(1, 9), blocks=st.integers(1, 6), seed=st.integers(0, 2**16))
+def test_block_triangular_gram_equals_the_full_product(n, p, blocks, seed):
+    # reference: numpy's X Xᵀ; the block form mirrors the upper blocks, so it is exactly symmetric
+    from psiloom.optimize.sr import gram_matrix
+
+    x = np.random.default_rng(seed).normal(size=(n, p))
+    k = np.asarray(gram_matrix(jnp.asarray(x), blocks=min(blocks, n)))
+    np.testing.assert_allclose(k, x @ x.T, rtol=0, atol=1e-12 * max(1.0, np.abs(x @ x.T).max()))
+    np.testing.assert_array_equal(k, k.T)
+
+
+@jax.jit
+def mixed_precision_outputs(x, res, force, shift, rel):
+    """δ of the sample-space solver with the Gram matrix in float32 and 0, 1, 2 refinement steps."""
+    geom = MatrixGeometry(x, res)
+    params = {"w": jnp.zeros(x.shape[1])}
+    out = {}
+    for steps in (0, 1, 2):
+        for use_rel in (False, True):
+            tx = stochastic_reconfiguration(lambda c: shift, "sample_space", relative_shift=(lambda c: rel) if use_rel
+                                            else None, gram_dtype="float32", refinement_steps=steps)
+            out[steps, use_rel] = tx.update({"w": 2.0 * force}, tx.init(params), params, geometry=geom)[0]["w"]
+    return out
+
+
+@given(shape=st.sampled_from([(12, 40), (30, 70), (300, 400)]), shift=st.floats(1e-2, 1.0),
+       rel=st.floats(1e-2, 1.0), seed=st.integers(0, 2**16))
+def test_a_float32_gram_matrix_with_refinement_gives_the_float64_step(shape, shift, rel, seed):
+    # reference: numpy.linalg.solve in float64. Iterative refinement (Higham, Accuracy and Stability
+    # of Numerical Algorithms, 2nd ed., ch. 12) multiplies the error by about u₃₂ tr K / ε per step
+    # (u₃₂ = 6e-8): here tr K ≈ n·p·σ² ≤ 1.2 × 10², ε ≥ 10⁻², a factor ≤ 10⁻³, so one step leaves
+    # ≲ 10⁻³ of the unrefined error and two reach float64 rounding. (300, 400) takes the blocked product.
+    n, p = shape
+    rng = np.random.default_rng(seed)
+    x = rng.normal(size=(n, p)) / 10
+    res = rng.normal(size=n)
+    force = x.T @ res + 0.01 * rng.normal(size=p)  # a remainder for the Woodbury term too
+    outs = mixed_precision_outputs(x, res, force, shift, rel)
+    for use_rel in (False, True):
+        ref = numpy_sr(x, force, shift, rel if use_rel else 0.0)
+        err = {k: np.linalg.norm(np.asarray(outs[k, use_rel]) - ref) / np.linalg.norm(ref) for k in (0, 1, 2)}
+        assert err[0] < 1e-5, err  # float32 rounding of K: a few u₃₂ times the condition number
+        assert err[1] <= max(1e-2 * err[0], 1e-11), err
+        assert err[2] <= 1e-10, err
+
+
+def test_bad_gram_precision_options_rejected():
+    for bad in ("int32", "not-a-dtype", "complex64"):
+        with pytest.raises(ValueError, match="gram_dtype"):
+            stochastic_reconfiguration(1e-3, gram_dtype=bad)
+    with pytest.raises(ValueError, match="refinement_steps"):
+        stochastic_reconfiguration(1e-3, gram_dtype="float32", refinement_steps=-1)
+    with pytest.raises(TypeError, match="refinement_steps"):
+        stochastic_reconfiguration(1e-3, gram_dtype="float32", refinement_steps=1.5)

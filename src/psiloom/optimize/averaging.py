@@ -34,6 +34,8 @@ import jax
 import jax.numpy as jnp
 import optax
 
+from psiloom._validation import integer
+
 
 class IterateAverageState(NamedTuple):
     """State of :func:`iterate_average`.
@@ -47,13 +49,6 @@ class IterateAverageState(NamedTuple):
     n_updates: jax.Array
     n_averaged: jax.Array
     mean: Any
-
-
-def count_argument(owner: str, name: str, value, minimum: int) -> int:
-    """``value`` if it is a Python integer ≥ ``minimum``, else ``ValueError`` naming ``owner`` and ``name``."""
-    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-        raise ValueError(f"{owner}: {name} must be an integer ≥ {minimum}, got {value!r}")
-    return value
 
 
 def running_mean(mean, new, weight):
@@ -85,7 +80,7 @@ def iterate_average(start: int = 0) -> optax.GradientTransformation:
         a transformation whose ``update(updates, state, params)`` returns ``updates`` unchanged
         (``params`` is required: the mean is of ``params + updates``). Chain it last.
     """
-    start = count_argument("iterate_average", "start", start, 0)
+    start = integer("iterate_average: start", start, minimum=0)
 
     def init(params):
         zeros = jax.tree_util.tree_map(jnp.zeros_like, params)
@@ -116,7 +111,7 @@ def averaged_parameters(opt_state, *, minimum: int = 1):
     Returns:
         the mean parameters (a pytree like ``params``).
     """
-    minimum = count_argument("averaged_parameters", "minimum", minimum, 1)
+    minimum = integer("averaged_parameters: minimum", minimum, minimum=1)
     state = find_unique_state(opt_state, IterateAverageState, "iterate_average(start)")
     n = int(state.n_averaged)
     if n < minimum:

@@ -39,7 +39,8 @@ import jax
 import jax.numpy as jnp
 import optax
 
-from psiloom.optimize.averaging import count_argument, find_unique_state, running_mean
+from psiloom._validation import integer
+from psiloom.optimize.averaging import find_unique_state, running_mean
 
 
 class WindowSelectionState(NamedTuple):
@@ -84,8 +85,8 @@ def lowest_variance_window(window: int, start: int = 0) -> optax.GradientTransfo
         and the keyword ``geometry`` (a :class:`~psiloom.optimize.SampleGeometry`, which the
         training step passes) are required. Read the choice with :func:`selected_parameters`.
     """
-    window = count_argument("lowest_variance_window", "window", window, 1)
-    start = count_argument("lowest_variance_window", "start", start, 0)
+    window = integer("lowest_variance_window: window", window, minimum=1)
+    start = integer("lowest_variance_window: start", start, minimum=0)
 
     def init(params):
         zeros = jax.tree_util.tree_map(jnp.zeros_like, params)

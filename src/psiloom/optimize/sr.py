@@ -254,11 +254,13 @@ def gram_matrix(x, dtype=None, blocks: int | None = None):
         blocks = GRAM_BLOCKS if n >= GRAM_BLOCK_ROWS else 1
     out_dtype = x.dtype
     y = x if dtype is None else x.astype(dtype)
+    symmetric = lambda a: 0.5 * (a + a.T)  # a diagonal block's product is symmetric only up to rounding
     if blocks <= 1:
-        return (y @ y.T).astype(out_dtype)
+        return symmetric(y @ y.T).astype(out_dtype)
     edges = [round(i * n / blocks) for i in range(blocks + 1)]
     parts = [y[edges[i]:edges[i + 1]] for i in range(blocks)]
-    upper = {(i, j): parts[i] @ parts[j].T for i in range(blocks) for j in range(i, blocks)}
+    upper = {(i, j): parts[i] @ parts[j].T if j > i else symmetric(parts[i] @ parts[i].T)
+             for i in range(blocks) for j in range(i, blocks)}
     rows = [jnp.concatenate([upper[i, j] if j >= i else upper[j, i].T for j in range(blocks)], axis=1)
             for i in range(blocks)]
     return jnp.concatenate(rows, axis=0).astype(out_dtype)
