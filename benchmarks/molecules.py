@@ -99,8 +99,9 @@ FULL = {
                eval_samples=131072),
     "Li": dict(state="neural", n_det=2, steps=2500, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
                eval_samples=131072),
-    "LiH": dict(state="neural", n_det=4, steps=2000, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
-                eval_samples=1048576, width=32, channels=16, jastrow_width=32, envelope_term=True),
+    "LiH": dict(state="neural", n_det=4, steps=2200, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
+                eval_samples=1468416, width=32, channels=16, jastrow_width=32, envelope_term=True,
+                gram_dtype="float32", refinement_steps=1),
     "Be": dict(state="neural", n_det=4, steps=2200, n_samples=1024, chains=1024, burn_in=0, lr=0.05, decay=1000,
                eval_samples=1572864, width=32, channels=16, jastrow_width=32, envelope_term=True),
 }
@@ -182,7 +183,7 @@ def run_system(name, cfg, laplacian, quick, seed=0, checkpoints=None):
         "kinetic": float(parts.kinetic.mean), "kinetic_error": float(parts.kinetic.error),
         "potential": float(parts.potential.mean), "potential_error": float(parts.potential.error),
         "virial_ratio": float(parts.virial_ratio),
-        "hartree_fock_limit": HF_LIMIT[name], **selection,
+        "hartree_fock_limit": HF_LIMIT[name], "seed": seed, **selection,
     }
     record = emit({
         "benchmark": "molecules", "system": system.describe(), "method": method,
@@ -275,7 +276,8 @@ LIH_CURVE = {2.6: (-8.0630769, LIH_LIMIT), 2.8: (-8.0687774, LIH_LIMIT), 3.015: 
 # the LiH curve's run: 512 walkers and samples per step (0.45 s per step against 1.15 s with
 # 1024), the first geometry `steps` (no pretraining), each later one a third of them from the
 # previous geometry's state, and 2^18 evaluation samples each (bars ~0.25 mHa)
-LIH_SCAN = dict(steps=1500, eval_samples=262144, n_samples=512, chains=512)
+# (the Gram matrix in float64, as when results/molecules_scan_lih.json was made)
+LIH_SCAN = dict(steps=1500, eval_samples=262144, n_samples=512, chains=512, gram_dtype=None)
 # non-relativistic exact total energies (from memory): neutral atoms as in SYSTEMS, cations
 # Li⁺ −7.279913 Ha and Be⁺ −14.324763 Ha (Pekeris-type Hylleraas values).
 CATIONS = {"Li": -7.279913, "Be": -14.324763}
@@ -559,6 +561,8 @@ def main() -> None:
         parser.add_argument("--checkpoints", metavar="DIR", default=None,
                             help="energies case: write each trained state to DIR/<system>.ckpt (psiloom.checkpoint) "
                                  "before its evaluation pass")
+        parser.add_argument("--seed", type=int, default=0,
+                            help="PRNG seed of the runs (walkers, sampling, network initialisation)")
 
     args = parse_args("molecules", "atoms and molecules: VMC energies against exact references", extra=extra)
     names = [n.strip() for n in args.systems.split(",") if n.strip()]
@@ -575,7 +579,7 @@ def main() -> None:
         if args.case == "ionisation" and not set(names) & set(CATIONS):
             raise SystemExit(f"--case ionisation runs {', '.join(CATIONS)}; --systems names none of them")
         kwargs = {"names": names} if args.case in ("scan", "laplacian", "ionisation") else {}
-        records = run_case(configs, args.laplacian, args.quick, **kwargs)
+        records = run_case(configs, args.laplacian, args.quick, seed=args.seed, **kwargs)
         energy_records = [r for r in records if r.get("abs_error_mha") is not None]
         summary(energy_records, benchmark="molecules", case=args.case, quick=args.quick, n_lines=len(records) + 1,
                 max_abs_error_mha=max((r["abs_error_mha"] for r in energy_records), default=None),
@@ -590,7 +594,7 @@ def main() -> None:
     for name in names:
         progress(f"{name}: {configs[name]}")
         record, throughput, model, params, properties = run_system(name, configs[name], args.laplacian, args.quick,
-                                                                    checkpoints=args.checkpoints)
+                                                                    seed=args.seed, checkpoints=args.checkpoints)
         records += [record, throughput] + properties
         if compare_with is None or name == "LiH":
             compare_with = (name, model, params)
