@@ -200,6 +200,28 @@ def test_cg_respects_maxiter_and_warm_start():
     np.testing.assert_allclose(np.asarray(out1["w"]), ref, rtol=1e-6)
 
 
+@pytest.mark.parametrize("momentum", [0.0, 0.6])
+def test_cg_warm_start_with_momentum_starts_at_the_fixed_point(momentum):
+    # Repeating one batch, δ = argmin ‖Xφ − ε_res‖² + ε‖φ − μδ‖² has the fixed point
+    # (XᵀX + (1 − μ)ε I) δ* = Xᵀε_res (algebra from the update rule). Started from δ_prev = δ*, CG's
+    # unknown δ − μδ_prev equals (1 − μ)δ*, so a warm start there returns δ* after one iteration;
+    # the reference is numpy.linalg.solve.
+    rng = np.random.default_rng(11)
+    x = rng.normal(size=(30, 20))
+    res = rng.normal(size=30)
+    f = x.T @ res
+    fixed = np.linalg.solve(x.T @ x + (1 - momentum) * 1e-3 * np.eye(20), f)
+    params = {"w": jnp.zeros(20)}
+    tx = stochastic_reconfiguration(1e-3, "cg", warm_start=True, momentum=momentum, maxiter=1)
+    state = tx.init(params)._replace(previous=jnp.asarray(fixed), count=jnp.ones((), jnp.int32))
+    out, state = tx.update({"w": 2 * jnp.asarray(f)}, state, params, geometry=MatrixGeometry(x, res))
+    np.testing.assert_allclose(np.asarray(out["w"]), fixed, rtol=1e-8)
+    cold = stochastic_reconfiguration(1e-3, "cg", momentum=momentum, maxiter=1)
+    out, _ = cold.update({"w": 2 * jnp.asarray(f)}, tx.init(params)._replace(previous=jnp.asarray(fixed)),
+                         params, geometry=MatrixGeometry(x, res))
+    assert np.linalg.norm(np.asarray(out["w"]) - fixed) > 1e-3 * np.linalg.norm(fixed)
+
+
 def test_shift_schedule_is_followed():
     # ε(t) from an optax schedule, checked against numpy.linalg.solve at each count
     rng = np.random.default_rng(7)

@@ -76,7 +76,8 @@ added: this is not heavy-ball momentum), while in the directions they do not res
 batches' solution carries over with weight μ, so over about 1/(1 − μ) steps the direction is
 fitted to many batches' samples at one batch's cost (a randomised Kaczmarz iteration, as the
 paper shows). The last computation is done as the solvers' own: the residual becomes
-ε_res − μ X δ_prev (sample space) or the force F − μ S δ_prev (dense, CG). δ_prev is the
+ε_res − μ X δ_prev (sample space) or the force F − μ S δ_prev (dense, CG; a CG warm start then
+begins at (1 − μ) δ_prev, the previous step's value of the unknown δ − μ δ_prev). δ_prev is the
 transformation's previous output (after the trust radius, before the learning rate), kept in the
 state; μ = 0 is plain SR. Only the absolute shift is available with it.
 
@@ -417,7 +418,8 @@ def stochastic_reconfiguration(
             matvec = lambda v: s_op(v) + eps * v
             if momentum > 0:  # solve for δ − μδ_prev: force F − μ S δ_prev
                 force = force - momentum * s_op(previous)
-            x0 = previous if warm_start else None
+            # the unknown is δ − μδ_prev, so the previous step's value of it, (1 − μ)δ_prev, starts CG
+            x0 = (1.0 - momentum) * previous if warm_start else None
             delta, _ = jax.scipy.sparse.linalg.cg(matvec, force, x0=x0, tol=tol, atol=atol, maxiter=maxiter)
         else:
             x = geometry.jacobian()
