@@ -90,8 +90,8 @@ def lattice_search(optimizer, model, compiled=False, mesh=MESH, n_chains=N_CHAIN
                              mesh=mesh)
 
 
-def sr(solver, lr=0.05):
-    return optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2, solver=solver), optax.sgd(lr))
+def sr(solver, lr=0.05, **options):
+    return optax.chain(pl.optimize.stochastic_reconfiguration(shift=1e-2, solver=solver, **options), optax.sgd(lr))
 
 
 def check_train():
@@ -126,12 +126,15 @@ def record(search, n_steps):
 
 
 def check_cg():
-    """Real RBM on the JAX sampling path, matrix-free CG solver."""
-    return record(lattice_search(sr("cg"), pl.states.RBM(alpha=1.0, init_scale=0.1)), 2)
+    """Real RBM on the JAX sampling path, matrix-free CG solver with a carried-over direction
+    (``momentum``, the previous δ kept in the replicated optimiser state) and a warm start."""
+    return record(lattice_search(sr("cg", momentum=0.5, warm_start=True),
+                                 pl.states.RBM(alpha=1.0, init_scale=0.1)), 3)
 
 
 def check_compiled():
-    """Real RBM with the compiled (Numba) sweeps, sample-space SR; records how many chains each
+    """Real RBM with the compiled (Numba) sweeps, sample-space SR with the Gram matrix in float32
+    (refined three times: float64 agreement across device counts); records how many chains each
     call of the kernel receives (seen when the call is traced: one trace per device block shape)."""
     calls = []
     host = rbm_sweep._foreign_sweeps
@@ -142,7 +145,8 @@ def check_compiled():
 
     rbm_sweep._foreign_sweeps = spy
     try:
-        search = lattice_search(sr("sample_space"), pl.states.RBM(alpha=1.0, init_scale=0.1), compiled=True)
+        search = lattice_search(sr("sample_space", gram_dtype="float32", refinement_steps=3),
+                                pl.states.RBM(alpha=1.0, init_scale=0.1), compiled=True)
         out = record(search, 2)
     finally:
         rbm_sweep._foreign_sweeps = host

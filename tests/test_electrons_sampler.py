@@ -57,3 +57,33 @@ def test_sampler_validation():
         el.ElectronSampler(SYSTEM, n_chains=0)
     with pytest.raises(ValueError, match="target_acceptance"):
         el.ElectronSampler(SYSTEM, target_acceptance=1.5)
+
+
+def test_init_takes_bound_parameters_as_arguments_not_captured_constants():
+    # Parameters captured as constants of a compiled program gave all-NaN walkers in about half
+    # the compilations for a trained LiH state (DEVELOPERS.md, "Two draws of one LiH config, and
+    # captured constants"); a BoundState must enter ElectronSampler.init's program as an
+    # argument. JAX's own lowering check
+    # (jax_captured_constants_warn_bytes) warns when a program captures more than the given bytes.
+    import warnings
+
+    from psiloom.states import BoundState
+
+    system = el.atom("He")
+    model = el.slater_jastrow(system)
+    params = jax.jit(model.init)(jax.random.PRNGKey(0), system.random(jax.random.PRNGKey(0), 1))
+    # the model's own constants (nuclear positions, charges, cusp coefficients) stay captured:
+    # a few hundred bytes, well below half of the parameters' bytes
+    limit = sum(leaf.nbytes for leaf in jax.tree_util.tree_leaves(params)) // 2
+    sampler = el.ElectronSampler(system, n_chains=8, burn_in=0, equilibrate=2)
+    previous = jax.config.values["jax_captured_constants_warn_bytes"]
+    jax.config.update("jax_captured_constants_warn_bytes", limit)
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("error", message=".*constants were captured.*")
+            state = sampler.init(jax.random.PRNGKey(1), BoundState(model, params))
+        with pytest.warns(UserWarning, match="constants were captured"):  # the check can fail
+            sampler.init(jax.random.PRNGKey(1), lambda x: model.apply(params, x))
+    finally:
+        jax.config.update("jax_captured_constants_warn_bytes", previous)
+    np.testing.assert_allclose(np.asarray(state.log_amp), np.asarray(model.apply(params, state.x)), rtol=1e-12)

@@ -41,6 +41,7 @@ import optax
 
 from psiloom.electrons.determinants import SlaterJastrow
 from psiloom.electrons.sampler import ElectronSampler
+from psiloom.states.bound import BoundState
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
 from psiloom._validation import nonnegative_int, positive_int
@@ -328,11 +329,9 @@ def pretrain_orbitals(model, params, hf: HartreeFock, key: jax.Array, n_steps: i
         k_hf, k_model = jax.random.split(k_fit)
         x_hf = np.asarray(fit_sampler.init(k_hf, hf_log).x)
         for k in jax.random.split(k_model, refits):
-            current = params
-
-            def model_log(x):
-                return cast(jax.Array, model.apply(current, x))
-
-            x_model = np.asarray(fit_sampler.init(k, model_log).x)
+            # the parameters as an argument of the compiled program, not captured constants
+            # (ElectronSampler.init; DEVELOPERS.md, "Two draws of one LiH config, and captured
+            # constants")
+            x_model = np.asarray(fit_sampler.init(k, BoundState(model, params)).x)
             params = fit_orbital_coefficients(model, params, target, np.concatenate([x_hf, x_model]))
     return params, np.asarray(jnp.stack(losses))

@@ -26,6 +26,7 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from psiloom._validation import nonnegative_int, positive_int, positive_real, probability
 from psiloom.electrons.system import Molecule
@@ -135,8 +136,16 @@ class ElectronSampler:
 
     # ------------------------------------------------------------------ interface
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
-        """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps."""
-        def start(key):
+        """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps.
+
+        A ``log_amplitude`` that is a pytree of arrays (a :class:`~psiloom.states.BoundState`)
+        enters the compiled program as an argument; a plain function's arrays become captured
+        constants of the program, which is how LiH's trained parameters gave all-NaN walkers
+        in about half the compilations (DEVELOPERS.md, "Two draws of one LiH config, and
+        captured constants"): bind parameters with ``BoundState(model, params)`` rather than
+        ``lambda x: model.apply(params, x)``.
+        """
+        def start(key, log_amplitude):
             k_pos, k_eq = jax.random.split(key)
             x = self.system.random(k_pos, self.n_chains, self.init_width)
             state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
@@ -145,8 +154,11 @@ class ElectronSampler:
                                        jax.random.split(k_eq, self.equilibrate))
             return state
 
-        # compiled as one program (also when called outside jit, as GroundStateSearch.init does)
-        return jax.jit(start)(key)
+        # compiled as one program (also when called outside jit)
+        leaves, tree = jax.tree_util.tree_flatten(log_amplitude)
+        if leaves and all(isinstance(leaf, (jax.Array, np.ndarray)) for leaf in leaves):
+            return jax.jit(lambda k, leaves: start(k, jax.tree_util.tree_unflatten(tree, leaves)))(key, leaves)
+        return jax.jit(lambda k: start(k, log_amplitude))(key)
 
     def refresh(self, state: WalkerState, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Recompute the cached log|ψ| after a parameter update."""
