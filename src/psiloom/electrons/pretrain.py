@@ -155,7 +155,9 @@ class HartreeFock(NamedTuple):
 def hartree_fock(system: Molecule, basis: str = "cc-pvdz", cart: bool = False, verbose: int = 0) -> HartreeFock:
     """Run PySCF restricted (closed shell) or unrestricted Hartree-Fock for ``system``.
 
-    Raises ImportError naming the optional extra when PySCF is absent.
+    PySCF's SCF is not bitwise repeatable when it runs threaded (LiH's occupied MO coefficients
+    differed by ~1e-14 between runs); set ``OMP_NUM_THREADS=1`` before the process starts where a
+    run must repeat bit for bit. Raises ImportError naming the optional extra when PySCF is absent.
     """
     try:
         from pyscf import gto, scf
