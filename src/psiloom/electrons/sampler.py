@@ -26,13 +26,13 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
 from psiloom._validation import nonnegative_int, positive_int, positive_real, probability
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
 from psiloom.sampling import base
 from psiloom.sampling.base import burn_in_and_collect, scan_sweeps
+from psiloom.states.bound import BoundState
 
 LogAmplitudeFn = Callable[[jax.Array], jax.Array]
 MOVES = ("all", "one")
@@ -138,12 +138,11 @@ class ElectronSampler:
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps.
 
-        A ``log_amplitude`` that is a pytree of arrays (a :class:`~psiloom.states.BoundState`)
-        enters the compiled program as an argument; a plain function's arrays become captured
-        constants of the program, which is how LiH's trained parameters gave all-NaN walkers
-        in about half the compilations (DEVELOPERS.md, "Two draws of one LiH config, and
-        captured constants"): bind parameters with ``BoundState(model, params)`` rather than
-        ``lambda x: model.apply(params, x)``.
+        A :class:`~psiloom.states.BoundState` ``log_amplitude`` enters the compiled program as
+        an argument; a plain function's arrays become captured constants of the program, which
+        is how LiH's trained parameters gave all-NaN walkers in about half the compilations
+        (DEVELOPERS.md, "Two draws of one LiH config, and captured constants"): bind parameters
+        with ``BoundState(model, params)`` rather than ``lambda x: model.apply(params, x)``.
         """
         def start(key, log_amplitude):
             k_pos, k_eq = jax.random.split(key)
@@ -154,10 +153,10 @@ class ElectronSampler:
                                        jax.random.split(k_eq, self.equilibrate))
             return state
 
-        # compiled as one program (also when called outside jit)
-        leaves, tree = jax.tree_util.tree_flatten(log_amplitude)
-        if leaves and all(isinstance(leaf, (jax.Array, np.ndarray)) for leaf in leaves):
-            return jax.jit(lambda k, leaves: start(k, jax.tree_util.tree_unflatten(tree, leaves)))(key, leaves)
+        # compiled as one program (also when called outside jit); a BoundState is a pytree
+        # argument, as in psiloom.sampling.MetropolisChains.init
+        if isinstance(log_amplitude, BoundState):
+            return jax.jit(start)(key, log_amplitude)
         return jax.jit(lambda k: start(k, log_amplitude))(key)
 
     def refresh(self, state: WalkerState, log_amplitude: LogAmplitudeFn) -> WalkerState:
