@@ -63,8 +63,8 @@ def test_init_takes_bound_parameters_as_arguments_not_captured_constants():
     # Parameters captured as constants of a compiled program gave all-NaN walkers in about half
     # the compilations for a trained LiH state (DEVELOPERS.md, "Two draws of one LiH config, and
     # captured constants"); a BoundState must enter ElectronSampler.init's program as an
-    # argument. JAX's own lowering check
-    # (jax_captured_constants_warn_bytes) warns when a program captures more than the given bytes.
+    # argument. JAX's own lowering check (jax_captured_constants_warn_bytes) warns when a program
+    # captures more than the given bytes.
     import warnings
 
     from psiloom.states import BoundState

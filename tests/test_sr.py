@@ -217,7 +217,7 @@ def test_cg_warm_start_with_momentum_starts_at_the_fixed_point(momentum):
     out, state = tx.update({"w": 2 * jnp.asarray(f)}, state, params, geometry=MatrixGeometry(x, res))
     np.testing.assert_allclose(np.asarray(out["w"]), fixed, rtol=1e-8)
     cold = stochastic_reconfiguration(1e-3, "cg", momentum=momentum, maxiter=1)
-    out, _ = cold.update({"w": 2 * jnp.asarray(f)}, tx.init(params)._replace(previous=jnp.asarray(fixed)),
+    out, _ = cold.update({"w": 2 * jnp.asarray(f)}, cold.init(params)._replace(previous=jnp.asarray(fixed)),
                          params, geometry=MatrixGeometry(x, res))
     assert np.linalg.norm(np.asarray(out["w"]) - fixed) > 1e-3 * np.linalg.norm(fixed)
 

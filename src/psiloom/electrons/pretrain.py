@@ -41,9 +41,9 @@ import optax
 
 from psiloom.electrons.determinants import SlaterJastrow
 from psiloom.electrons.sampler import ElectronSampler
-from psiloom.states.bound import BoundState
 from psiloom.electrons.system import Molecule
 from psiloom.reduce import sample_mean
+from psiloom.states.bound import BoundState
 from psiloom._validation import nonnegative_int, positive_int
 
 _SHELL_FACTOR = {0: 0.5 / np.sqrt(np.pi), 1: np.sqrt(3.0 / (4.0 * np.pi))}
