@@ -59,12 +59,12 @@ def test_sampler_validation():
         el.ElectronSampler(SYSTEM, target_acceptance=1.5)
 
 
-def test_init_takes_bound_parameters_as_arguments_not_captured_constants():
+def test_init_passes_parameters_as_arguments_not_captured_constants():
     # Parameters captured as constants of a compiled program gave all-NaN walkers in about half
     # the compilations for a trained LiH state (DEVELOPERS.md, "Two draws of one LiH config, and
-    # captured constants"); a BoundState must enter ElectronSampler.init's program as an
-    # argument. JAX's own lowering check (jax_captured_constants_warn_bytes) warns when a program
-    # captures more than the given bytes.
+    # captured constants"): neither a BoundState nor a closure over the parameters may leave them
+    # as constants of ElectronSampler.init's programs. JAX's own lowering check
+    # (jax_captured_constants_warn_bytes) warns when a program captures more than the given bytes.
     import warnings
 
     from psiloom.states import BoundState
@@ -72,6 +72,7 @@ def test_init_takes_bound_parameters_as_arguments_not_captured_constants():
     system = el.atom("He")
     model = el.slater_jastrow(system)
     params = jax.jit(model.init)(jax.random.PRNGKey(0), system.random(jax.random.PRNGKey(0), 1))
+    closure = lambda x: model.apply(params, x)
     # the model's own constants (nuclear positions, charges, cusp coefficients) stay captured:
     # a few hundred bytes, well below half of the parameters' bytes
     limit = sum(leaf.nbytes for leaf in jax.tree_util.tree_leaves(params)) // 2
@@ -81,9 +82,26 @@ def test_init_takes_bound_parameters_as_arguments_not_captured_constants():
     try:
         with warnings.catch_warnings():
             warnings.filterwarnings("error", message=".*constants were captured.*")
-            state = sampler.init(jax.random.PRNGKey(1), BoundState(model, params))
+            bound = sampler.init(jax.random.PRNGKey(1), BoundState(model, params))
+            eager = sampler.init(jax.random.PRNGKey(1), closure)
         with pytest.warns(UserWarning, match="constants were captured"):  # the check can fail
-            sampler.init(jax.random.PRNGKey(1), lambda x: model.apply(params, x))
+            compiled = jax.jit(lambda k: sampler.init(k, closure))(jax.random.PRNGKey(1))
     finally:
         jax.config.update("jax_captured_constants_warn_bytes", previous)
-    np.testing.assert_allclose(np.asarray(state.log_amp), np.asarray(model.apply(params, state.x)), rtol=1e-12)
+    np.testing.assert_allclose(np.asarray(bound.log_amp), np.asarray(model.apply(params, bound.x)), rtol=1e-12)
+    for other in (eager, compiled):  # one key, one result whichever way the program was built
+        np.testing.assert_allclose(np.asarray(other.x), np.asarray(bound.x), rtol=1e-12)
+
+
+def test_init_names_walkers_with_a_non_finite_log_amplitude():
+    # a trial state that is NaN wherever electron 0 lies beyond 1 bohr of the origin: walkers
+    # there can neither be equilibrated nor sampled, and init says so instead of returning them
+    def broken(x):
+        return jnp.where(jnp.linalg.norm(x[..., 0, :], axis=-1) > 1.0, jnp.nan, LOG_PSI(x))
+
+    sampler = el.ElectronSampler(SYSTEM, n_chains=16, burn_in=0, equilibrate=2, init_width=3.0)
+    with pytest.raises(ValueError, match=r"of 16 walkers have a non-finite log\|psi\|"):
+        sampler.init(jax.random.PRNGKey(0), broken)
+    # inside a trace there is nothing to inspect: the training loop's guard checks its energies
+    state = jax.jit(lambda k: sampler.init(k, broken))(jax.random.PRNGKey(0))
+    assert not np.all(np.isfinite(np.asarray(state.log_amp)))

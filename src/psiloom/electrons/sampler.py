@@ -138,26 +138,37 @@ class ElectronSampler:
     def init(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Walkers around the nuclei, equilibrated for ``equilibrate`` adaptive sweeps.
 
-        A :class:`~psiloom.states.BoundState` ``log_amplitude`` enters the compiled program as
-        an argument; a plain function's arrays become captured constants of the program, which
-        is how LiH's trained parameters gave all-NaN walkers in about half the compilations
-        (DEVELOPERS.md, "Two draws of one LiH config, and captured constants"): bind parameters
-        with ``BoundState(model, params)`` rather than ``lambda x: model.apply(params, x)``.
-        """
-        def start(key, log_amplitude):
-            k_pos, k_eq = jax.random.split(key)
-            x = self.system.random(k_pos, self.n_chains, self.init_width)
-            state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
-            if self.equilibrate:
-                state, _ = scan_sweeps(self._adaptive_sweep(log_amplitude), state,
-                                       jax.random.split(k_eq, self.equilibrate))
-            return state
+        A :class:`~psiloom.states.BoundState` ``log_amplitude`` enters one compiled program as an
+        argument; a plain function runs eagerly (its sweeps still run as one compiled loop, into
+        which the arrays it closes over pass as operands), as in
+        :meth:`psiloom.sampling.MetropolisChains.init`. A plain function compiled whole would make
+        its arrays captured constants of the program, which is how LiH's trained parameters gave
+        all-NaN walkers in about half the compilations (DEVELOPERS.md, "Two draws of one LiH
+        config, and captured constants").
 
-        # compiled as one program (also when called outside jit); a BoundState is a pytree
-        # argument, as in psiloom.sampling.MetropolisChains.init
+        Raises:
+            ValueError: (outside a trace) when a walker's log|ψ| is not finite after equilibration.
+        """
         if isinstance(log_amplitude, BoundState):
-            return jax.jit(start)(key, log_amplitude)
-        return jax.jit(lambda k: start(k, log_amplitude))(key)
+            state = jax.jit(self._start)(key, log_amplitude)
+        else:
+            state = self._start(key, log_amplitude)
+        if not isinstance(state.log_amp, jax.core.Tracer):  # inside a trace the loop's guard checks
+            bad = ~jnp.isfinite(state.log_amp)
+            if bool(jnp.any(bad)):
+                raise ValueError(f"ElectronSampler.init: {int(jnp.sum(bad))} of {self.n_chains} walkers have a "
+                                 f"non-finite log|psi| after equilibration (first: walker "
+                                 f"{int(jnp.argmax(bad))}); check the trial state and its parameters")
+        return state
+
+    def _start(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
+        k_pos, k_eq = jax.random.split(key)
+        x = self.system.random(k_pos, self.n_chains, self.init_width)
+        state = WalkerState(x, log_amplitude(x), jnp.asarray(self.step_size, x.dtype))
+        if self.equilibrate:
+            state, _ = scan_sweeps(self._adaptive_sweep(log_amplitude), state,
+                                   jax.random.split(k_eq, self.equilibrate))
+        return state
 
     def refresh(self, state: WalkerState, log_amplitude: LogAmplitudeFn) -> WalkerState:
         """Recompute the cached log|ψ| after a parameter update."""
