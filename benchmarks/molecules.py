@@ -17,10 +17,11 @@ samples: every target met; 3000 steps and 2²⁰ samples gave 0.18 ± 0.18 in 68
 term and with the former pretraining 0.96 ± 0.19 in 38 min, the default widths with 4000 steps
 1.21 ± 0.19, 16 determinants 1.16 ± 0.20); LiH, as configured (2200 steps, the SR Gram matrix in
 float32 refined once, 1434 × 1024 samples), 0.88 ± 0.15 and 0.36 ± 0.10 mHa in two runs of 53 min
-(runs are independent draws, not bitwise repeatable); 0.40 ± 0.12 mHa in 57 min (2000 steps, 2²⁰
-samples; without the term and with the former pretraining, 2500 steps: 0.75 ± 0.17; with the
-nuclear cusp map, ``cusp_map=True``, and 1.5 × 2²⁰ samples 0.73 ± 0.16 in 53 min; 1700 steps
-evaluated at the lowest-variance window, ``select_window=(100, 700)``, 0.65 ± 0.26 in 55 min).
+(independent draws before the pretraining fix), 0.36 ± 0.11 in 56 min with ``--seed 1`` after it;
+0.40 ± 0.12 mHa in 57 min (2000 steps, 2²⁰ samples; without the term and with the former
+pretraining, 2500 steps: 0.75 ± 0.17; with the nuclear cusp map, ``cusp_map=True``, and 1.5 × 2²⁰
+samples 0.73 ± 0.16 in 53 min; 1700 steps evaluated at the lowest-variance window,
+``select_window=(100, 700)``, 0.65 ± 0.26 in 55 min).
 LiH misses its 0.3 mHa target.
 
 For every system one energy line (energy from a separate evaluation pass) and one throughput line
