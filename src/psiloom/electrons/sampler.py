@@ -26,6 +26,7 @@ from typing import Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from psiloom._validation import nonnegative_int, positive_int, positive_real, probability
 from psiloom.electrons.system import Molecule
@@ -154,11 +155,11 @@ class ElectronSampler:
         else:
             state = self._start(key, log_amplitude)
         if not isinstance(state.log_amp, jax.core.Tracer):  # inside a trace the loop's guard checks
-            bad = ~jnp.isfinite(state.log_amp)
-            if bool(jnp.any(bad)):
-                raise ValueError(f"ElectronSampler.init: {int(jnp.sum(bad))} of {self.n_chains} walkers have a "
-                                 f"non-finite log|psi| after equilibration (first: walker "
-                                 f"{int(jnp.argmax(bad))}); check the trial state and its parameters")
+            bad = np.flatnonzero(~np.isfinite(np.asarray(state.log_amp)))  # one transfer to the host
+            if bad.size:
+                raise ValueError(f"ElectronSampler.init: {bad.size} of {self.n_chains} walkers have a non-finite "
+                                 f"log|psi| after equilibration (first: walker {bad[0]}); check the trial state "
+                                 f"and its parameters")
         return state
 
     def _start(self, key: jax.Array, log_amplitude: LogAmplitudeFn) -> WalkerState:
